@@ -1,0 +1,35 @@
+# rwls: every target creates or reuses the project venv in .venv.
+PYTHON ?= python3
+VENV := .venv
+PY := $(VENV)/bin/python
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test test-fast bench lint clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e '.[test,bench]'
+	touch $(STAMP)
+
+## demo: replay the bundled Larkspur Valley demo history and write a report
+demo: $(STAMP)
+	$(VENV)/bin/rwls replay examples/larkspur_sub7.csv --config examples/larkspur_sub7.toml
+
+## test: every test layer (unit, property, reference, slow robustness runs)
+test: $(STAMP)
+	$(PY) -m pytest tests/unit tests/property tests/reference -q
+
+## test-fast: the offline layers without the long robustness runs
+test-fast: $(STAMP)
+	$(PY) -m pytest -q -m "not slow"
+
+## bench: timing runs with printed figures (no timed asserts)
+bench: $(STAMP)
+	$(PY) -m pytest tests/benchmarks -q -s -m benchmark -p no:cacheprovider
+
+lint: $(STAMP)
+	$(VENV)/bin/ruff check estimator service tests
+
+clean:
+	rm -rf $(VENV) build *.egg-info .pytest_cache

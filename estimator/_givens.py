@@ -1,0 +1,217 @@
+"""Givens-rotation kernels of the square-root information update.
+
+Two implementations of the same arithmetic: a vectorised one over B channels
+(structure-of-arrays factor ``(n+1, n+1, B)``, preallocated buffers, no
+temporaries in the loop) and a scalar one on Python floats for one channel.
+Both perform the same IEEE operations in the same order, so they produce the
+same bits; ``tests/unit/test_rwls.py`` holds them to that.
+
+Rotation i folds row x into row i of ``sl * A`` and zeroes ``x[i]``::
+
+    a = sl A[i, i] >= 0,  b = x[i],  r = hypot(a, b) = h sqrt(1 + (l / h)^2)
+    c = a / r,  s = b / r                  (c = 0, s = 1 when r == 0: a row swap)
+    A[i, j] <- (c sl) A[i, j] + s x[j]     j > i
+    x[j]    <- c x[j] - (s sl) A[i, j]
+    A[i, i] <- r
+
+with ``h = max(a, |b|)``, ``l = min(a, |b|)``: the overflow- and underflow-safe
+hypot of LAPACK's dlapy2. Measured on the NIST StRD files it also keeps about
+one more digit than ``sqrt(a a + b b)`` on Norris and Pontius (file order).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numpy.typing import NDArray
+
+FloatArray = NDArray[np.float64]
+
+
+class Workspace:
+    """Preallocated buffers for batches of up to ``capacity`` channels."""
+
+    def __init__(self, n_params: int, capacity: int) -> None:
+        m = n_params + 1
+        self.capacity = capacity
+        self.row = np.empty((m, capacity))
+        self.wide1 = np.empty((m, capacity))
+        self.wide2 = np.empty((m, capacity))
+        self.theta = np.empty((n_params, capacity))
+        names = ("a", "r", "t", "c", "s", "csl", "ssl", "cos_product", "h", "l")
+        for name in names:
+            setattr(self, name, np.empty(capacity))
+        self.empty = np.empty(capacity, dtype=bool)
+
+    def view(self, b: int) -> Workspace:
+        """Buffers trimmed to ``b`` channels (views, no copies)."""
+        if b > self.capacity:
+            raise ValueError(f"batch of {b} exceeds workspace capacity {self.capacity}")
+        if b == self.capacity:
+            return self
+        trimmed = object.__new__(Workspace)
+        trimmed.capacity = b
+        for key, value in self.__dict__.items():
+            if isinstance(value, np.ndarray):
+                setattr(trimmed, key, value[..., :b])
+        return trimmed
+
+
+def rotate_rows(A: FloatArray, x: FloatArray, sl: FloatArray | None, ws: Workspace,
+                first: int = 0, skip_before: NDArray[np.int64] | None = None) -> FloatArray:
+    """Rotate x, shape (n+1, B), into rows ``first..n-1`` of ``sl * A`` in place.
+
+    Parameters
+    ----------
+    A : ndarray, shape (n+1, n+1, B)
+        Augmented factor, modified in place (columns 0..n of rows 0..n-1).
+    x : ndarray, shape (n+1, B)
+        The new row; on return ``x[n]`` holds the rotated right-hand side.
+    sl : ndarray, shape (B,), or None
+        sqrt(forgetting factor) per channel; None means 1 (no scaling).
+    first : int
+        Rows before ``first`` are left alone (x is zero there).
+    skip_before : ndarray of int, shape (B,), optional
+        Per channel, rows ``i < skip_before`` are identities (x is zero there).
+
+    Returns
+    -------
+    ndarray, shape (B,)
+        Product of the cosines (a view into the workspace).
+    """
+    n = A.shape[0] - 1
+    cp = ws.cos_product
+    cp.fill(1.0)
+    a, r, t, c, s = ws.a, ws.r, ws.t, ws.c, ws.s
+    for i in range(first, n):
+        if sl is None:
+            np.copyto(a, A[i, i])
+        else:
+            np.multiply(sl, A[i, i], out=a)
+        b = x[i]
+        h, low = ws.h, ws.l
+        np.abs(b, out=t)
+        np.maximum(a, t, out=h)
+        np.minimum(a, t, out=low)
+        np.equal(h, 0.0, out=ws.empty)
+        if ws.empty.any():
+            np.divide(low, np.where(ws.empty, 1.0, h), out=low)
+        else:
+            np.divide(low, h, out=low)
+        np.multiply(low, low, out=r)
+        np.add(r, 1.0, out=r)
+        np.sqrt(r, out=r)
+        np.multiply(h, r, out=r)           # r = h sqrt(1 + (l / h)^2)
+        if ws.empty.any():
+            np.divide(a, np.where(ws.empty, 1.0, r), out=c)
+            np.divide(b, np.where(ws.empty, 1.0, r), out=s)
+            c[ws.empty] = 0.0
+            s[ws.empty] = 1.0
+        else:
+            np.divide(a, r, out=c)
+            np.divide(b, r, out=s)
+        if skip_before is not None:
+            identity = i < skip_before
+            c[identity] = 1.0
+            s[identity] = 0.0
+            r[identity] = A[i, i][identity]
+        if sl is None:
+            csl, ssl = c, s
+        else:
+            csl, ssl = ws.csl, ws.ssl
+            np.multiply(c, sl, out=csl)
+            np.multiply(s, sl, out=ssl)
+        m = n - i
+        Ai = A[i, i + 1:]
+        xi = x[i + 1:]
+        old = ws.wide1[:m]
+        tmp = ws.wide2[:m]
+        np.multiply(Ai, ssl, out=old)      # (s sl) A[i, j], from the old row
+        np.multiply(Ai, csl, out=Ai)
+        np.multiply(xi, s, out=tmp)
+        np.add(Ai, tmp, out=Ai)            # (c sl) A[i, j] + s x[j]
+        np.multiply(xi, c, out=xi)
+        np.subtract(xi, old, out=xi)       # c x[j] - (s sl) A[i, j]
+        A[i, i] = r
+        np.multiply(cp, c, out=cp)
+    return cp
+
+
+def rotate_rows_scalar(A: list[list[float]], x: list[float], sl: float | None,
+                       first: int = 0) -> float:
+    """Scalar twin of :func:`rotate_rows` for one channel (lists, in place)."""
+    n = len(x) - 1
+    cos_product = 1.0
+    for i in range(first, n):
+        Ai = A[i]
+        a = Ai[i] if sl is None else sl * Ai[i]
+        b = x[i]
+        b_abs = abs(b)
+        h = max(a, b_abs)
+        if h == 0.0:
+            r = 0.0
+        else:
+            q = min(a, b_abs) / h
+            r = h * math.sqrt(1.0 + q * q)
+        if r == 0.0:
+            c, s = 0.0, 1.0
+        else:
+            c = a / r
+            s = b / r
+        if sl is None:
+            csl, ssl = c, s
+        else:
+            csl = c * sl
+            ssl = s * sl
+        for j in range(i + 1, n + 1):
+            aij = Ai[j]
+            xj = x[j]
+            Ai[j] = csl * aij + s * xj
+            x[j] = c * xj - ssl * aij
+        Ai[i] = r
+        cos_product = cos_product * c
+    return cos_product
+
+
+def back_substitute(A: FloatArray, ws: Workspace, stop: int = 0) -> FloatArray:
+    """theta = R^-1 q per channel, shape (n, B); theta_i = 0 where R_ii == 0.
+
+    Only rows ``stop..n-1`` are solved (the others are left undefined).
+    Sums run left to right over the leading axis, as in the scalar twin.
+    """
+    n = A.shape[0] - 1
+    theta = ws.theta
+    acc = ws.t
+    for i in range(n - 1, stop - 1, -1):
+        np.copyto(acc, A[i, n])
+        if i < n - 1:
+            dot = ws.r
+            np.multiply(A[i, i + 1], theta[i + 1], out=dot)
+            for j in range(i + 2, n):
+                np.add(dot, A[i, j] * theta[j], out=dot)
+            np.subtract(acc, dot, out=acc)
+        d = A[i, i]
+        zero = d == 0.0
+        if zero.any():
+            np.divide(acc, np.where(zero, 1.0, d), out=theta[i])
+            theta[i][zero] = 0.0
+        else:
+            np.divide(acc, d, out=theta[i])
+    return theta
+
+
+def back_substitute_scalar(A: list[list[float]], n: int) -> list[float]:
+    """Scalar twin of :func:`back_substitute`."""
+    theta = [0.0] * n
+    for i in range(n - 1, -1, -1):
+        Ai = A[i]
+        acc = Ai[n]
+        if i < n - 1:
+            dot = Ai[i + 1] * theta[i + 1]
+            for j in range(i + 2, n):
+                dot = dot + Ai[j] * theta[j]
+            acc = acc - dot
+        d = Ai[i]
+        theta[i] = acc / d if d != 0.0 else 0.0
+    return theta

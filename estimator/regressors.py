@@ -1,0 +1,254 @@
+"""Regressor vectors from a channel's term list.
+
+A term list such as ``["1", "ref_temp", "speed^2", "load*speed", "u[-2]", "y[-1]"]``
+defines ``z_k``. Grammar (whitespace ignored)::
+
+    term   := "1" | factor ("*" factor)*
+    factor := NAME ["[-" LAG "]"] ["^" POWER]       LAG >= 1, POWER >= 1
+    NAME   := letter or "_", then letters, digits, "_" or "."
+
+``y[-k]`` is the channel's own output k accepted samples back (ARX structure);
+the output at lag 0 is never a regressor. Lags count accepted samples of the
+channel: a rejected sample does not advance them.
+
+Two evaluators share one arithmetic (powers by repeated multiplication, products
+left to right), so they agree bit for bit:
+
+* :meth:`RegressorSpec.block` builds the whole ``Z`` of a history at once;
+* :class:`RegressorBuilder` builds one row at a time from its own lag buffers.
+"""
+
+from __future__ import annotations
+
+import re
+from collections import deque
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+__all__ = ["Factor", "NotUsable", "RegressorBuilder", "RegressorSpec", "Term", "parse_term"]
+
+OUTPUT_NAME = "y"
+_FACTOR = re.compile(r"^(?P<name>[A-Za-z_][A-Za-z0-9_.]*)(?:\[-(?P<lag>\d+)\])?(?:\^(?P<power>\d+))?$")
+
+
+@dataclass(frozen=True)
+class Factor:
+    """One factor of a term: ``name`` (an input, or ``y`` for the output), ``lag`` >= 0, ``power`` >= 1."""
+
+    name: str
+    lag: int
+    power: int
+
+    @property
+    def is_output(self) -> bool:
+        return self.name == OUTPUT_NAME
+
+
+@dataclass(frozen=True)
+class Term:
+    """A parsed term; no factors means the constant ``1``."""
+
+    text: str
+    factors: tuple[Factor, ...]
+
+
+class NotUsable(Exception):
+    """A sample whose regressor cannot be formed (yet).
+
+    Attributes
+    ----------
+    reason : str
+        ``missing_input`` (state untouched) or ``lags_not_filled`` (the sample
+        still fills the lag buffers).
+    """
+
+    def __init__(self, reason: str, message: str) -> None:
+        super().__init__(message)
+        self.reason = reason
+
+
+def parse_term(text: str) -> Term:
+    """Parse one term of the grammar in the module docstring.
+
+    Raises
+    ------
+    ValueError
+        Naming the term and what is wrong with it.
+    """
+    if not isinstance(text, str):
+        raise ValueError(f"term must be a string, got {text!r}")
+    compact = "".join(text.split())
+    if compact == "1":
+        return Term(text=compact, factors=())
+    if not compact:
+        raise ValueError("term is empty")
+    factors = []
+    for part in compact.split("*"):
+        match = _FACTOR.match(part)
+        if match is None:
+            raise ValueError(
+                f"term {text!r}: cannot read factor {part!r}; expected name, name^k, "
+                f"name[-k] or y[-k] (k a positive integer)")
+        lag = int(match["lag"]) if match["lag"] is not None else 0
+        power = int(match["power"]) if match["power"] is not None else 1
+        if match["lag"] is not None and lag < 1:
+            raise ValueError(f"term {text!r}: lag must be >= 1, got {lag}")
+        if power < 1:
+            raise ValueError(f"term {text!r}: power must be >= 1, got {power}")
+        if match["name"] == OUTPUT_NAME and lag == 0:
+            raise ValueError(f"term {text!r}: the output y can only appear lagged, as y[-k]")
+        factors.append(Factor(match["name"], lag, power))
+    return Term(text=compact, factors=tuple(factors))
+
+
+class RegressorSpec:
+    """A parsed term list.
+
+    Parameters
+    ----------
+    terms : sequence of str
+        At least one term, no duplicates.
+    """
+
+    def __init__(self, terms: Sequence[str]) -> None:
+        if isinstance(terms, str) or len(terms) == 0:
+            raise ValueError(f"terms must be a non-empty list of strings, got {terms!r}")
+        parsed = [parse_term(t) for t in terms]
+        seen: set[str] = set()
+        for term in parsed:
+            if term.text in seen:
+                raise ValueError(f"terms: {term.text!r} appears twice")
+            seen.add(term.text)
+        self.terms: tuple[Term, ...] = tuple(parsed)
+        factors = [f for t in parsed for f in t.factors]
+        self.input_names: tuple[str, ...] = tuple(sorted({f.name for f in factors if not f.is_output}))
+        self.input_lags: dict[str, int] = {}
+        for f in factors:
+            if not f.is_output:
+                self.input_lags[f.name] = max(self.input_lags.get(f.name, 0), f.lag)
+        self.output_lag: int = max((f.lag for f in factors if f.is_output), default=0)
+        self.warmup: int = max([self.output_lag, *self.input_lags.values()], default=0)
+
+    @property
+    def names(self) -> list[str]:
+        """Canonical term texts, the parameter names."""
+        return [t.text for t in self.terms]
+
+    @property
+    def n_params(self) -> int:
+        return len(self.terms)
+
+    def block(self, inputs: Mapping[str, NDArray[np.float64]], y: NDArray[np.float64]
+              ) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
+        """Regressor matrix of a whole history of accepted samples.
+
+        Parameters
+        ----------
+        inputs : mapping of name to ndarray, shape (N,)
+            Every name in :attr:`input_names`.
+        y : ndarray, shape (N,)
+
+        Returns
+        -------
+        Z : ndarray, shape (N, n)
+            Rows before :attr:`warmup` hold zeros for lagged factors.
+        usable : ndarray of bool, shape (N,)
+            False for the first :attr:`warmup` rows (lags not filled).
+        """
+        y = np.asarray(y, dtype=np.float64)
+        count = y.shape[0]
+        missing = [name for name in self.input_names if name not in inputs]
+        if missing:
+            raise ValueError(f"inputs missing: {', '.join(missing)}")
+        Z = np.empty((count, self.n_params))
+        for col, term in enumerate(self.terms):
+            value = np.ones(count)
+            for k, factor in enumerate(term.factors):
+                source = y if factor.is_output else np.asarray(inputs[factor.name], dtype=np.float64)
+                shifted = np.zeros(count)
+                shifted[factor.lag:] = source[: count - factor.lag]
+                powered = shifted
+                for _ in range(factor.power - 1):
+                    powered = powered * shifted
+                value = powered if k == 0 else value * powered
+            Z[:, col] = value
+        usable = np.arange(count) >= self.warmup
+        return Z, usable
+
+
+class RegressorBuilder:
+    """Streaming regressor rows for one channel, with the channel's lag buffers.
+
+    Use :meth:`row` to form ``z_k`` for a sample, then :meth:`push` once the
+    sample is accepted (also when its row was not usable because lags were
+    still filling).
+    """
+
+    def __init__(self, spec: RegressorSpec) -> None:
+        self.spec = spec
+        self._inputs: dict[str, deque[float]] = {
+            name: deque(maxlen=lag) for name, lag in spec.input_lags.items() if lag > 0}
+        self._outputs: deque[float] = deque(maxlen=max(spec.output_lag, 1))
+        self._accepted = 0
+
+    def check(self, inputs: Mapping[str, float]) -> None:
+        """Raise :class:`NotUsable` ``missing_input`` if a needed input is absent."""
+        for name in self.spec.input_names:
+            if name not in inputs:
+                raise NotUsable("missing_input", f"input {name!r} missing")
+
+    def row(self, inputs: Mapping[str, float]) -> list[float]:
+        """The regressor ``z_k`` for a sample with these current inputs.
+
+        Raises
+        ------
+        NotUsable
+            ``missing_input`` when an input is absent; ``lags_not_filled``
+            while fewer than :attr:`RegressorSpec.warmup` samples were accepted.
+        """
+        self.check(inputs)
+        if self._accepted < self.spec.warmup:
+            raise NotUsable("lags_not_filled",
+                            f"{self._accepted} of {self.spec.warmup} samples needed for lags")
+        z = []
+        for term in self.spec.terms:
+            value = 1.0
+            for k, factor in enumerate(term.factors):
+                x = self._value(factor, inputs)
+                powered = x
+                for _ in range(factor.power - 1):
+                    powered = powered * x
+                value = powered if k == 0 else value * powered
+            z.append(value)
+        return z
+
+    def _value(self, factor: Factor, inputs: Mapping[str, float]) -> float:
+        if factor.is_output:
+            return self._outputs[-factor.lag]
+        if factor.lag == 0:
+            return float(inputs[factor.name])
+        return self._inputs[factor.name][-factor.lag]
+
+    def push(self, inputs: Mapping[str, float], y: float) -> None:
+        """Record an accepted sample in the lag buffers."""
+        for name, buffer in self._inputs.items():
+            buffer.append(float(inputs[name]))
+        self._outputs.append(float(y))
+        self._accepted += 1
+
+    def state(self) -> dict[str, object]:
+        """Lag buffers and count, as plain lists (for checkpoints)."""
+        return {"accepted": self._accepted, "outputs": list(self._outputs),
+                "inputs": {name: list(buf) for name, buf in self._inputs.items()}}
+
+    def restore(self, state: Mapping[str, object]) -> None:
+        """Load what :meth:`state` returned."""
+        self._accepted = int(state["accepted"])  # type: ignore[arg-type]
+        self._outputs.clear()
+        self._outputs.extend(state["outputs"])  # type: ignore[arg-type]
+        for name, values in state["inputs"].items():  # type: ignore[union-attr]
+            self._inputs[name].clear()
+            self._inputs[name].extend(values)

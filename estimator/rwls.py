@@ -1,0 +1,430 @@
+"""Recursive weighted least squares with exponential forgetting, square-root information form.
+
+The estimator minimises, per channel,
+
+    J_k(theta) = sum_i lambda^(k-i) w_i (y_i - z_i^T theta)^2
+
+and keeps, instead of the covariance P, the upper-triangular factor of the
+augmented information matrix of the sqrt(w)-scaled data ``[Z | y]``::
+
+    A = [[R, q],        R^T R = H = sum lambda^(k-i) w_i z_i z_i^T   (information)
+         [0, rho]]      R theta = q,  rho^2 = weighted residual sum of squares
+
+A new sample is one more row ``sqrt(w) [z^T, y]``; Givens rotations fold it into
+``sqrt(lambda) A`` (Bierman 1977, ch. V, square-root information filter; the
+rotation form is the QR-RLS array of McWhirter 1983). Rotations are orthogonal,
+so ``H = R^T R`` is symmetric positive semi-definite by construction and the
+conditioning is that of the data, not its square as in covariance-form RLS.
+With ``A = 0`` at the start (diffuse prior) and ``lambda = 1`` the factor is
+exactly the R of a QR of the weighted data, so the recursive estimate equals
+batch WLS up to rounding.
+
+Anti-windup. With ``lambda < 1`` and no excitation the information decays as
+``lambda^k`` and P grows without bound. We add Tikhonov regularisation that
+does not fade (Gunnarsson 1996, "Combining tracking and regularization in
+recursive least squares identification", CDC), centred on the current estimate
+as in stabilised forgetting (Kulhavy & Zarrop 1993): on average
+``(1 - lambda) * diag(floor)`` of information per update, supplied as one row
+``sqrt(n (1 - lambda) floor_j) e_j`` every update with j cycling through the
+parameters. In steady state ``H >= lambda^(n-1) diag(floor)``, so
+``P <= diag(1 / floor) / lambda^(n-1)``: the covariance is bounded by
+``covariance_limit = 1 / floor``. The row's right-hand side is
+``sqrt(.) theta_j``, so it adds information without moving the estimate or the
+residual sum of squares.
+
+Innovation for free. After the data row has been rotated through R, its
+right-hand side entry is ``alpha = gamma^(1/2) sqrt(w) e`` with ``e`` the
+a-priori residual and ``gamma = prod(cos)^2 = lambda / (lambda + w z^T P z)``
+the conversion factor (Haykin, Adaptive Filter Theory, QR-RLS chapter), so the
+innovation and its leverage come out of the rotation without solving for theta.
+
+Layout: the bank stores ``A`` structure-of-arrays as ``(n+1, n+1, K)`` so that
+one rotation acts on contiguous ``(m, K)`` slices for all channels at once.
+``update_one`` is a scalar path for one channel that performs the same floating
+point operations in the same order, so both paths give bit-identical states.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from estimator._givens import (
+    Workspace,
+    back_substitute,
+    back_substitute_scalar,
+    rotate_rows,
+    rotate_rows_scalar,
+)
+
+__all__ = ["BankState", "RecursiveWLSBank", "RejectedSample", "UpdateResult"]
+
+FloatArray = NDArray[np.float64]
+
+
+class RejectedSample(ValueError):
+    """A sample the estimator refuses; the state is left untouched.
+
+    Attributes
+    ----------
+    reason : str
+        Stable reason code: ``non_finite``, ``bad_weight``, ``bad_shape``,
+        ``bad_channel`` or ``duplicate_channel``.
+    """
+
+    def __init__(self, reason: str, message: str) -> None:
+        super().__init__(message)
+        self.reason = reason
+
+
+@dataclass(frozen=True)
+class UpdateResult:
+    """Per-sample by-products of one update (arrays of shape ``(B,)``).
+
+    Attributes
+    ----------
+    innovation : a-priori residual ``e = y - z^T theta_{k-1}`` (NaN while the
+        parameters were not yet identifiable).
+    leverage : ``w z^T P_{k-1} z`` (inf while not identifiable).
+    weight : the weight ``w`` the sample was applied with.
+    """
+
+    innovation: FloatArray
+    leverage: FloatArray
+    weight: FloatArray
+
+
+@dataclass(frozen=True)
+class BankState:
+    """Copy of every array of a bank; enough to rebuild it exactly.
+
+    ``factor`` has shape ``(K, n+1, n+1)`` (channel first, for readers);
+    the other arrays have shape ``(K,)`` or ``(K, n)``.
+    """
+
+    factor: FloatArray
+    forgetting_factor: FloatArray
+    information_floor: FloatArray
+    effective_count: FloatArray
+    effective_count_sq: FloatArray
+    sample_count: NDArray[np.int64]
+
+
+def _as_channel_vector(value: ArrayLike, n_channels: int, name: str) -> FloatArray:
+    arr = np.asarray(value, dtype=np.float64)
+    if arr.ndim == 0:
+        arr = np.full(n_channels, float(arr))
+    if arr.shape != (n_channels,):
+        raise ValueError(f"{name} must be a scalar or shape ({n_channels},), got {arr.shape}")
+    return arr.copy()
+
+
+class RecursiveWLSBank:
+    """K channels with the same number of parameters n, updated in one vectorised step.
+
+    Parameters
+    ----------
+    n_channels : int
+        K, number of channels in the bank.
+    n_params : int
+        n, parameters per channel.
+    forgetting_factor : float or ndarray, shape (K,)
+        lambda in (0, 1]; effective memory about ``1 / (1 - lambda)`` samples
+        (common practice).
+    covariance_limit : float or ndarray, shape (n,) or (K, n)
+        Bound on the diagonal of the (unscaled) covariance P that the
+        anti-windup floor enforces when excitation vanishes; ``inf`` disables
+        the floor. It has no effect when ``forgetting_factor == 1``.
+    """
+
+    def __init__(
+        self,
+        n_channels: int,
+        n_params: int,
+        forgetting_factor: ArrayLike = 1.0,
+        covariance_limit: ArrayLike = 1e6,
+    ) -> None:
+        if n_channels < 1:
+            raise ValueError(f"n_channels must be >= 1, got {n_channels}")
+        if n_params < 1:
+            raise ValueError(f"n_params must be >= 1, got {n_params}")
+        lam = _as_channel_vector(forgetting_factor, n_channels, "forgetting_factor")
+        if not np.all((lam > 0.0) & (lam <= 1.0)):
+            bad = lam[~((lam > 0.0) & (lam <= 1.0))][0]
+            raise ValueError(f"forgetting_factor must be in (0, 1], got {bad}")
+        limit = np.broadcast_to(np.asarray(covariance_limit, dtype=np.float64),
+                                (n_channels, n_params)) if np.ndim(covariance_limit) < 2 \
+            else np.asarray(covariance_limit, dtype=np.float64)
+        if limit.shape != (n_channels, n_params):
+            raise ValueError(
+                f"covariance_limit must be a scalar, shape ({n_params},) or "
+                f"({n_channels}, {n_params}), got {limit.shape}")
+        if not np.all(limit > 0.0):
+            raise ValueError(f"covariance_limit must be > 0, got {limit.min()}")
+        self.n_channels = n_channels
+        self.n_params = n_params
+        m = n_params + 1
+        self._A: FloatArray = np.zeros((m, m, n_channels))
+        self._sqrt_lambda: FloatArray = np.sqrt(lam)
+        self._lambda: FloatArray = lam
+        # Information added per floor row: n (1 - lambda) / limit, so that on
+        # average (1 - lambda) / limit per update reaches each parameter.
+        floor = np.where(lam[:, None] < 1.0, 1.0 / limit, 0.0)
+        self._floor: FloatArray = np.ascontiguousarray(floor.T)  # (n, K)
+        self._sqrt_floor_row: FloatArray = np.sqrt(n_params * (1.0 - lam)[None, :] * self._floor)
+        self._has_floor = np.any(self._floor > 0.0, axis=0)
+        self._all_unit_lambda = bool(np.all(lam == 1.0))
+        self._workspace = Workspace(n_params, n_channels)
+        self._all_channels = np.arange(n_channels)
+        self._n_eff: FloatArray = np.zeros(n_channels)
+        self._n_eff_sq: FloatArray = np.zeros(n_channels)
+        self._count: NDArray[np.int64] = np.zeros(n_channels, dtype=np.int64)
+
+    # ------------------------------------------------------------------ checks
+    def _check_batch(self, z: FloatArray, y: FloatArray, w: FloatArray,
+                     channels: NDArray[np.intp] | None) -> None:
+        b = y.shape[0] if y.ndim == 1 else -1
+        if z.shape != (b, self.n_params) or y.shape != (b,) or w.shape != (b,):
+            raise RejectedSample(
+                "bad_shape",
+                f"z must be (B, {self.n_params}) and y, weight (B,); got "
+                f"{z.shape}, {y.shape}, {w.shape}")
+        if channels is not None:
+            if channels.shape != (b,):
+                raise RejectedSample("bad_shape", f"channels must have shape ({b},), got {channels.shape}")
+            if b and (channels.min() < 0 or channels.max() >= self.n_channels):
+                raise RejectedSample("bad_channel",
+                                     f"channel index out of range 0..{self.n_channels - 1}")
+            seen = np.zeros(self.n_channels, dtype=bool)
+            seen[channels] = True
+            if np.count_nonzero(seen) != b:
+                raise RejectedSample("duplicate_channel",
+                                     "a channel may appear once per vectorised step; apply in order")
+        elif b != self.n_channels:
+            raise RejectedSample("bad_shape", f"without channels, B must equal K = {self.n_channels}, got {b}")
+        if not (np.isfinite(z).all() and np.isfinite(y).all()):
+            raise RejectedSample("non_finite", "z and y must be finite")
+        if not (np.isfinite(w).all() and (w > 0.0).all()):
+            raise RejectedSample("bad_weight", "weight must be finite and > 0")
+
+    # ---------------------------------------------------------------- updates
+    def update(
+        self,
+        z: ArrayLike,
+        y: ArrayLike,
+        weight: ArrayLike | None = None,
+        channels: ArrayLike | None = None,
+    ) -> UpdateResult:
+        """Apply one sample to each of B distinct channels in one vectorised step.
+
+        Parameters
+        ----------
+        z : array_like, shape (B, n)
+            Regressor rows.
+        y : array_like, shape (B,)
+            Outputs.
+        weight : array_like, shape (B,), optional
+            Positive weights w (``1 / sigma^2`` for BLUE); default 1.
+        channels : array_like of int, shape (B,), optional
+            Channel indices, each at most once; default ``arange(K)``.
+
+        Returns
+        -------
+        UpdateResult
+
+        Raises
+        ------
+        RejectedSample
+            Any row non-finite, a weight not positive, shapes or channel
+            indices wrong. Nothing is applied then.
+        """
+        zz = np.asarray(z, dtype=np.float64)
+        yy = np.asarray(y, dtype=np.float64)
+        ww = np.ones_like(yy) if weight is None else np.asarray(weight, dtype=np.float64)
+        full = channels is None
+        given = None if full else np.asarray(channels, dtype=np.intp)
+        self._check_batch(zz, yy, ww, given)
+        idx = self._all_channels if given is None else given
+
+        b = idx.shape[0]
+        ws = self._workspace.view(b) if b <= self._workspace.capacity else Workspace(self.n_params, b)
+        A = self._A if full else self._A[:, :, idx]
+        sl = self._sqrt_lambda if full else self._sqrt_lambda[idx]
+        n = self.n_params
+        sw = np.sqrt(ww)
+        row = ws.row
+        np.multiply(zz.T, sw, out=row[:n])
+        np.multiply(yy, sw, out=row[n])
+        cos_product = rotate_rows(A, row, None if self._all_unit_lambda else sl, ws).copy()
+        alpha = row[n].copy()
+        rho = sl * A[n, n]
+        A[n, n] = np.sqrt(rho * rho + alpha * alpha)   # rho'^2 = lambda rho^2 + alpha^2
+
+        count = self._count[idx] + 1
+        has_floor = self._has_floor if full else self._has_floor[idx]
+        if has_floor.any():
+            self._apply_floor_rows(A, idx, count % n, has_floor, ws)
+        if not full:
+            self._A[:, :, idx] = A
+        lam = self._lambda[idx]
+        self._n_eff[idx] = lam * self._n_eff[idx] + 1.0
+        self._n_eff_sq[idx] = lam * lam * self._n_eff_sq[idx] + 1.0
+        self._count[idx] = count
+        return _innovation(alpha, cos_product, sw, ww, sl)
+
+    def _apply_floor_rows(self, A: FloatArray, idx: NDArray[np.intp], j: NDArray[np.int64],
+                          has_floor: NDArray[np.bool_], ws: Workspace) -> None:
+        """Rotate the anti-windup row sqrt(a_j) [e_j^T, theta_j] into R (rho untouched)."""
+        n = self.n_params
+        uniform = bool(has_floor.all() and (j == j[0]).all())
+        theta = back_substitute(A, ws, stop=int(j[0]) if uniform else 0)
+        cols = np.arange(idx.shape[0])
+        amp = self._sqrt_floor_row[j, idx]
+        x = ws.row
+        x.fill(0.0)
+        x[j, cols] = amp
+        x[n] = amp * theta[j, cols]
+        if uniform:
+            rotate_rows(A, x, None, ws, first=int(j[0]))
+        else:
+            rotate_rows(A, x, None, ws, skip_before=np.where(has_floor, j, n))
+
+    def update_one(self, channel: int, z: Sequence[float], y: float, weight: float = 1.0) -> tuple[float, float]:
+        """Scalar path for one sample of one channel; bit-identical to :meth:`update`.
+
+        Parameters
+        ----------
+        channel : int
+        z : sequence of float, length n
+        y, weight : float
+
+        Returns
+        -------
+        (innovation, leverage) : tuple of float
+            As in :class:`UpdateResult`.
+
+        Raises
+        ------
+        RejectedSample
+            As :meth:`update`; the state is untouched then.
+        """
+        n = self.n_params
+        if not 0 <= channel < self.n_channels:
+            raise RejectedSample("bad_channel", f"channel must be in 0..{self.n_channels - 1}, got {channel}")
+        zs = [float(v) for v in z]
+        y = float(y)
+        weight = float(weight)
+        if len(zs) != n:
+            raise RejectedSample("bad_shape", f"z must have length {n}, got {len(zs)}")
+        if not (all(math.isfinite(v) for v in zs) and math.isfinite(y)):
+            raise RejectedSample("non_finite", "z and y must be finite")
+        if not (math.isfinite(weight) and weight > 0.0):
+            raise RejectedSample("bad_weight", f"weight must be finite and > 0, got {weight}")
+
+        A = self._A[:, :, channel].tolist()
+        sl = float(self._sqrt_lambda[channel])
+        sw = math.sqrt(weight)
+        x = [v * sw for v in zs]
+        x.append(y * sw)
+        cos_product = rotate_rows_scalar(A, x, sl)
+        alpha = x[n]
+        rho = sl * A[n][n]
+        A[n][n] = math.sqrt(rho * rho + alpha * alpha)
+
+        count = int(self._count[channel]) + 1
+        if self._has_floor[channel]:
+            j = count % n
+            theta = back_substitute_scalar(A, n)
+            amp = float(self._sqrt_floor_row[j, channel])
+            floor_row = [0.0] * (n + 1)
+            floor_row[j] = amp
+            floor_row[n] = amp * theta[j]
+            rotate_rows_scalar(A, floor_row, None, first=j)
+        self._A[:, :, channel] = A
+        lam = float(self._lambda[channel])
+        self._n_eff[channel] = lam * float(self._n_eff[channel]) + 1.0
+        self._n_eff_sq[channel] = lam * lam * float(self._n_eff_sq[channel]) + 1.0
+        self._count[channel] = count
+        if cos_product > 0.0:
+            gamma = cos_product * cos_product
+            return alpha / (sw * cos_product), sl * sl * (1.0 - gamma) / gamma
+        return math.nan, math.inf
+
+    # ------------------------------------------------------------------ reads
+    def state(self) -> BankState:
+        """Copy of every array (channel-first factor); see :class:`BankState`."""
+        return BankState(
+            factor=np.ascontiguousarray(np.moveaxis(self._A, 2, 0)),
+            forgetting_factor=self._lambda.copy(),
+            information_floor=self._floor.T.copy(),
+            effective_count=self._n_eff.copy(),
+            effective_count_sq=self._n_eff_sq.copy(),
+            sample_count=self._count.copy(),
+        )
+
+    @classmethod
+    def from_state(cls, state: BankState) -> RecursiveWLSBank:
+        """Rebuild a bank exactly from :meth:`state`."""
+        k, m, _ = state.factor.shape
+        floor = state.information_floor
+        limit = np.where(floor > 0.0, 1.0 / np.where(floor > 0.0, floor, 1.0), np.inf)
+        bank = cls(k, m - 1, state.forgetting_factor, np.where(np.isinf(limit), 1.0, limit))
+        bank._A = np.ascontiguousarray(np.moveaxis(state.factor, 0, 2))
+        bank._floor = np.ascontiguousarray(floor.T)
+        bank._sqrt_floor_row = np.sqrt((m - 1) * (1.0 - bank._lambda)[None, :] * bank._floor)
+        bank._has_floor = np.any(bank._floor > 0.0, axis=0)
+        bank._n_eff = state.effective_count.copy()
+        bank._n_eff_sq = state.effective_count_sq.copy()
+        bank._count = state.sample_count.copy()
+        return bank
+
+    def factor(self) -> FloatArray:
+        """Augmented factor ``[[R, q], [0, rho]]`` per channel, shape (K, n+1, n+1) (a copy)."""
+        return np.ascontiguousarray(np.moveaxis(self._A, 2, 0))
+
+    def kappa(self, channels: ArrayLike | None = None) -> FloatArray:
+        """Ratio ``sum lambda^(2(k-i)) / sum lambda^(k-i)`` per channel, shape (B,).
+
+        With stationary regressors and weights, the covariance of the estimate
+        is about ``kappa * P`` (sandwich ``P H_2 P`` with ``H_2`` the
+        lambda^2-weighted information): 1 for lambda = 1, ``1 / (1 + lambda)``
+        in steady state. 1 before the first sample.
+        """
+        idx = self._all_channels if channels is None else np.asarray(channels, dtype=np.intp)
+        n1 = self._n_eff[idx]
+        return np.where(n1 > 0.0, self._n_eff_sq[idx] / np.where(n1 > 0.0, n1, 1.0), 1.0)
+
+    def kappa_one(self, channel: int) -> float:
+        """Scalar twin of :meth:`kappa`."""
+        n1 = float(self._n_eff[channel])
+        return float(self._n_eff_sq[channel]) / n1 if n1 > 0.0 else 1.0
+
+    @property
+    def effective_count(self) -> FloatArray:
+        """``sum lambda^(k-i)`` per channel, shape (K,) (a copy)."""
+        return self._n_eff.copy()
+
+    @property
+    def sample_count(self) -> NDArray[np.int64]:
+        """Samples applied per channel, shape (K,) (a copy)."""
+        return self._count.copy()
+
+
+def _innovation(alpha: FloatArray, cos_product: FloatArray, sw: FloatArray,
+                w: FloatArray, sl: FloatArray) -> UpdateResult:
+    """e = alpha / (sqrt(w) prod(cos)); w z^T P z = lambda (1 - gamma) / gamma, gamma = prod(cos)^2."""
+    ok = cos_product > 0.0
+    if ok.all():
+        gamma = cos_product * cos_product
+        innovation = alpha / (sw * cos_product)
+        leverage = sl * sl * (1.0 - gamma) / gamma
+    else:
+        cp = np.where(ok, cos_product, 1.0)
+        gamma = cp * cp
+        innovation = np.where(ok, alpha / (sw * cp), np.nan)
+        leverage = np.where(ok, sl * sl * (1.0 - gamma) / gamma, np.inf)
+    return UpdateResult(innovation=innovation, leverage=leverage, weight=w.copy())
