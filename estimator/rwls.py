@@ -20,17 +20,20 @@ exactly the R of a QR of the weighted data, so the recursive estimate equals
 batch WLS up to rounding.
 
 Anti-windup. With ``lambda < 1`` and no excitation the information decays as
-``lambda^k`` and P grows without bound. We add Tikhonov regularisation that
-does not fade (Gunnarsson 1996, "Combining tracking and regularization in
-recursive least squares identification", CDC), centred on the current estimate
-as in stabilised forgetting (Kulhavy & Zarrop 1993): on average
-``(1 - lambda) * diag(floor)`` of information per update, supplied as one row
-``sqrt(n (1 - lambda) floor_j) e_j`` every update with j cycling through the
-parameters. In steady state ``H >= lambda^(n-1) diag(floor)``, so
-``P <= diag(1 / floor) / lambda^(n-1)``: the covariance is bounded by
-``covariance_limit = 1 / floor``. The row's right-hand side is
-``sqrt(.) theta_j``, so it adds information without moving the estimate or the
-residual sum of squares.
+``lambda^k`` and P grows without bound; when excitation returns, the huge gain
+throws the estimate about. We bound the covariance, as the bounded-covariance
+family does (Salgado, Goodwin & Middleton 1988), by the mechanism of stabilised
+forgetting (Kulhavy & Zarrop 1993): information is added only where it is
+missing, as a pseudo-observation of a parameter at its current estimate.
+Each update checks one parameter j (cycling through them); if
+``P_jj > covariance_limit_j`` it rotates in the row ``sqrt(a) [e_j^T, theta_j]``
+with ``a = 1 / limit_j - 1 / P_jj``, which sets ``P_jj`` to the limit exactly
+(rank-one update of ``H``) without moving the estimate or the residual sum of
+squares. Between checks ``P_jj`` grows at most by ``1 / lambda`` per update, so
+once the channel is identifiable ``P_jj <= covariance_limit_j / lambda^n`` at all
+times. While the data keep every ``P_jj`` below its limit nothing is added and
+the recursion is exactly exponentially weighted WLS (so ``rwls fit`` agrees with
+it). The limit applies only when ``lambda < 1``: without forgetting P never grows.
 
 Innovation for free. After the data row has been rotated through R, its
 right-hand side entry is ``alpha = gamma^(1/2) sqrt(w) e`` with ``e`` the
@@ -56,9 +59,9 @@ from numpy.typing import ArrayLike, NDArray
 from estimator._givens import (
     Workspace,
     back_substitute,
-    back_substitute_scalar,
+    covariance_diagonal,
     rotate_rows,
-    rotate_rows_scalar,
+    scalar_step,
 )
 
 __all__ = ["BankState", "RecursiveWLSBank", "RejectedSample", "UpdateResult"]
@@ -79,6 +82,20 @@ class RejectedSample(ValueError):
     def __init__(self, reason: str, message: str) -> None:
         super().__init__(message)
         self.reason = reason
+
+
+def checked_sample(z: Sequence[float], y: float, weight: float, n: int) -> tuple[list[float], float, float]:
+    """One sample as floats, or :class:`RejectedSample` (``bad_shape``, ``non_finite``, ``bad_weight``)."""
+    zs = [float(v) for v in z]
+    y = float(y)
+    weight = float(weight)
+    if len(zs) != n:
+        raise RejectedSample("bad_shape", f"z must have length {n}, got {len(zs)}")
+    if not (all(math.isfinite(v) for v in zs) and math.isfinite(y)):
+        raise RejectedSample("non_finite", "z and y must be finite")
+    if not (math.isfinite(weight) and weight > 0.0):
+        raise RejectedSample("bad_weight", f"weight must be finite and > 0, got {weight}")
+    return zs, y, weight
 
 
 @dataclass(frozen=True)
@@ -108,7 +125,7 @@ class BankState:
 
     factor: FloatArray
     forgetting_factor: FloatArray
-    information_floor: FloatArray
+    covariance_limit: FloatArray
     effective_count: FloatArray
     effective_count_sq: FloatArray
     sample_count: NDArray[np.int64]
@@ -136,9 +153,10 @@ class RecursiveWLSBank:
         lambda in (0, 1]; effective memory about ``1 / (1 - lambda)`` samples
         (common practice).
     covariance_limit : float or ndarray, shape (n,) or (K, n)
-        Bound on the diagonal of the (unscaled) covariance P that the
-        anti-windup floor enforces when excitation vanishes; ``inf`` disables
-        the floor. It has no effect when ``forgetting_factor == 1``.
+        Bound on the diagonal of the unscaled covariance P (units of
+        ``parameter^2 * weight``) enforced when excitation vanishes (see the
+        module docstring); ``inf`` disables it. No effect when
+        ``forgetting_factor == 1``.
     """
 
     def __init__(
@@ -156,13 +174,12 @@ class RecursiveWLSBank:
         if not np.all((lam > 0.0) & (lam <= 1.0)):
             bad = lam[~((lam > 0.0) & (lam <= 1.0))][0]
             raise ValueError(f"forgetting_factor must be in (0, 1], got {bad}")
-        limit = np.broadcast_to(np.asarray(covariance_limit, dtype=np.float64),
-                                (n_channels, n_params)) if np.ndim(covariance_limit) < 2 \
-            else np.asarray(covariance_limit, dtype=np.float64)
-        if limit.shape != (n_channels, n_params):
+        limit = np.asarray(covariance_limit, dtype=np.float64)
+        if limit.shape not in ((), (n_params,), (n_channels, n_params)):
             raise ValueError(
                 f"covariance_limit must be a scalar, shape ({n_params},) or "
                 f"({n_channels}, {n_params}), got {limit.shape}")
+        limit = np.broadcast_to(limit, (n_channels, n_params))
         if not np.all(limit > 0.0):
             raise ValueError(f"covariance_limit must be > 0, got {limit.min()}")
         self.n_channels = n_channels
@@ -171,12 +188,11 @@ class RecursiveWLSBank:
         self._A: FloatArray = np.zeros((m, m, n_channels))
         self._sqrt_lambda: FloatArray = np.sqrt(lam)
         self._lambda: FloatArray = lam
-        # Information added per floor row: n (1 - lambda) / limit, so that on
-        # average (1 - lambda) / limit per update reaches each parameter.
-        floor = np.where(lam[:, None] < 1.0, 1.0 / limit, 0.0)
-        self._floor: FloatArray = np.ascontiguousarray(floor.T)  # (n, K)
-        self._sqrt_floor_row: FloatArray = np.sqrt(n_params * (1.0 - lam)[None, :] * self._floor)
-        self._has_floor = np.any(self._floor > 0.0, axis=0)
+        # The limit only applies with forgetting; inf disables it.
+        limit = np.where(lam[:, None] < 1.0, limit, np.inf)
+        self._limit: FloatArray = np.ascontiguousarray(limit.T)          # (n, K)
+        self._inv_limit: FloatArray = 1.0 / self._limit
+        self._has_limit = np.any(np.isfinite(self._limit), axis=0)
         self._all_unit_lambda = bool(np.all(lam == 1.0))
         self._workspace = Workspace(n_params, n_channels)
         self._all_channels = np.arange(n_channels)
@@ -246,7 +262,11 @@ class RecursiveWLSBank:
         yy = np.asarray(y, dtype=np.float64)
         ww = np.ones_like(yy) if weight is None else np.asarray(weight, dtype=np.float64)
         full = channels is None
-        given = None if full else np.asarray(channels, dtype=np.intp)
+        given = None if full else np.asarray(channels)
+        if given is not None:
+            if given.dtype.kind not in "iu":
+                raise RejectedSample("bad_channel", f"channels must be integers, got dtype {given.dtype}")
+            given = given.astype(np.intp, copy=False)
         self._check_batch(zz, yy, ww, given)
         idx = self._all_channels if given is None else given
 
@@ -264,34 +284,47 @@ class RecursiveWLSBank:
         rho = sl * A[n, n]
         A[n, n] = np.sqrt(rho * rho + alpha * alpha)   # rho'^2 = lambda rho^2 + alpha^2
 
-        count = self._count[idx] + 1
-        has_floor = self._has_floor if full else self._has_floor[idx]
-        if has_floor.any():
-            self._apply_floor_rows(A, idx, count % n, has_floor, ws)
+        sel = slice(None) if full else idx     # a slice avoids fancy-index copies
+        count = self._count[sel] + 1
+        has_limit = self._has_limit if full else self._has_limit[idx]
+        if has_limit.any():
+            # Only identifiable channels (every R_ii > 0) are bounded; before that
+            # the start stays diffuse.
+            diagonal = A[np.arange(n), np.arange(n)]
+            due = has_limit & (diagonal > 0.0).all(axis=0)
+            if due.any():
+                self._bound_covariance(A, idx, count % n, due, ws)
         if not full:
             self._A[:, :, idx] = A
-        lam = self._lambda[idx]
-        self._n_eff[idx] = lam * self._n_eff[idx] + 1.0
-        self._n_eff_sq[idx] = lam * lam * self._n_eff_sq[idx] + 1.0
-        self._count[idx] = count
+        lam = self._lambda[sel]
+        self._n_eff[sel] = lam * self._n_eff[sel] + 1.0
+        self._n_eff_sq[sel] = lam * lam * self._n_eff_sq[sel] + 1.0
+        self._count[sel] = count
         return _innovation(alpha, cos_product, sw, ww, sl)
 
-    def _apply_floor_rows(self, A: FloatArray, idx: NDArray[np.intp], j: NDArray[np.int64],
-                          has_floor: NDArray[np.bool_], ws: Workspace) -> None:
-        """Rotate the anti-windup row sqrt(a_j) [e_j^T, theta_j] into R (rho untouched)."""
+    def _bound_covariance(self, A: FloatArray, idx: NDArray[np.intp], j: NDArray[np.int64],
+                          due: NDArray[np.bool_], ws: Workspace) -> None:
+        """Where ``P_jj`` exceeds its limit, rotate in ``sqrt(a) [e_j^T, theta_j]`` (rho untouched)."""
         n = self.n_params
-        uniform = bool(has_floor.all() and (j == j[0]).all())
-        theta = back_substitute(A, ws, stop=int(j[0]) if uniform else 0)
         cols = np.arange(idx.shape[0])
-        amp = self._sqrt_floor_row[j, idx]
+        first = int(j[due].min())
+        p_jj = covariance_diagonal(A, j, first, ws)
+        limit = self._limit[j, idx]
+        over = due & (p_jj > limit)
+        if not over.any():
+            return
+        amp = np.zeros(idx.shape[0])
+        amp[over] = np.sqrt(self._inv_limit[j, idx][over] - 1.0 / p_jj[over])
+        first = int(j[over].min())
+        theta = back_substitute(A, ws, stop=first)
         x = ws.row
         x.fill(0.0)
         x[j, cols] = amp
         x[n] = amp * theta[j, cols]
-        if uniform:
-            rotate_rows(A, x, None, ws, first=int(j[0]))
+        if over.all() and (j == first).all():
+            rotate_rows(A, x, None, ws, first=first)
         else:
-            rotate_rows(A, x, None, ws, skip_before=np.where(has_floor, j, n))
+            rotate_rows(A, x, None, ws, skip_before=np.where(over, j, n))
 
     def update_one(self, channel: int, z: Sequence[float], y: float, weight: float = 1.0) -> tuple[float, float]:
         """Scalar path for one sample of one channel; bit-identical to :meth:`update`.
@@ -312,55 +345,31 @@ class RecursiveWLSBank:
         RejectedSample
             As :meth:`update`; the state is untouched then.
         """
-        n = self.n_params
-        if not 0 <= channel < self.n_channels:
-            raise RejectedSample("bad_channel", f"channel must be in 0..{self.n_channels - 1}, got {channel}")
-        zs = [float(v) for v in z]
-        y = float(y)
-        weight = float(weight)
-        if len(zs) != n:
-            raise RejectedSample("bad_shape", f"z must have length {n}, got {len(zs)}")
-        if not (all(math.isfinite(v) for v in zs) and math.isfinite(y)):
-            raise RejectedSample("non_finite", "z and y must be finite")
-        if not (math.isfinite(weight) and weight > 0.0):
-            raise RejectedSample("bad_weight", f"weight must be finite and > 0, got {weight}")
-
+        if not isinstance(channel, int | np.integer) or not 0 <= channel < self.n_channels:
+            raise RejectedSample("bad_channel", f"channel must be in 0..{self.n_channels - 1}, got {channel!r}")
+        zs, y, weight = checked_sample(z, y, weight, self.n_params)
         A = self._A[:, :, channel].tolist()
-        sl = float(self._sqrt_lambda[channel])
-        sw = math.sqrt(weight)
-        x = [v * sw for v in zs]
-        x.append(y * sw)
-        cos_product = rotate_rows_scalar(A, x, sl)
-        alpha = x[n]
-        rho = sl * A[n][n]
-        A[n][n] = math.sqrt(rho * rho + alpha * alpha)
-
         count = int(self._count[channel]) + 1
-        if self._has_floor[channel]:
-            j = count % n
-            theta = back_substitute_scalar(A, n)
-            amp = float(self._sqrt_floor_row[j, channel])
-            floor_row = [0.0] * (n + 1)
-            floor_row[j] = amp
-            floor_row[n] = amp * theta[j]
-            rotate_rows_scalar(A, floor_row, None, first=j)
+        bounded = bool(self._has_limit[channel])
+        result = scalar_step(A, zs, y, weight, float(self._sqrt_lambda[channel]), count,
+                             self._limit[:, channel].tolist() if bounded else None,
+                             self._inv_limit[:, channel].tolist() if bounded else None)
         self._A[:, :, channel] = A
         lam = float(self._lambda[channel])
         self._n_eff[channel] = lam * float(self._n_eff[channel]) + 1.0
         self._n_eff_sq[channel] = lam * lam * float(self._n_eff_sq[channel]) + 1.0
         self._count[channel] = count
-        if cos_product > 0.0:
-            gamma = cos_product * cos_product
-            return alpha / (sw * cos_product), sl * sl * (1.0 - gamma) / gamma
-        return math.nan, math.inf
+        return result
 
     # ------------------------------------------------------------------ reads
     def state(self) -> BankState:
         """Copy of every array (channel-first factor); see :class:`BankState`."""
         return BankState(
-            factor=np.ascontiguousarray(np.moveaxis(self._A, 2, 0)),
+            # .copy(), not ascontiguousarray: with K = 1 the moved view is already
+            # contiguous and would be handed out uncopied, aliasing live state.
+            factor=np.moveaxis(self._A, 2, 0).copy(),
             forgetting_factor=self._lambda.copy(),
-            information_floor=self._floor.T.copy(),
+            covariance_limit=self._limit.T.copy(),
             effective_count=self._n_eff.copy(),
             effective_count_sq=self._n_eff_sq.copy(),
             sample_count=self._count.copy(),
@@ -370,13 +379,8 @@ class RecursiveWLSBank:
     def from_state(cls, state: BankState) -> RecursiveWLSBank:
         """Rebuild a bank exactly from :meth:`state`."""
         k, m, _ = state.factor.shape
-        floor = state.information_floor
-        limit = np.where(floor > 0.0, 1.0 / np.where(floor > 0.0, floor, 1.0), np.inf)
-        bank = cls(k, m - 1, state.forgetting_factor, np.where(np.isinf(limit), 1.0, limit))
-        bank._A = np.ascontiguousarray(np.moveaxis(state.factor, 0, 2))
-        bank._floor = np.ascontiguousarray(floor.T)
-        bank._sqrt_floor_row = np.sqrt((m - 1) * (1.0 - bank._lambda)[None, :] * bank._floor)
-        bank._has_floor = np.any(bank._floor > 0.0, axis=0)
+        bank = cls(k, m - 1, state.forgetting_factor, state.covariance_limit)
+        bank._A = np.moveaxis(state.factor, 0, 2).copy()   # a copy also when K = 1 (see state())
         bank._n_eff = state.effective_count.copy()
         bank._n_eff_sq = state.effective_count_sq.copy()
         bank._count = state.sample_count.copy()
@@ -384,7 +388,7 @@ class RecursiveWLSBank:
 
     def factor(self) -> FloatArray:
         """Augmented factor ``[[R, q], [0, rho]]`` per channel, shape (K, n+1, n+1) (a copy)."""
-        return np.ascontiguousarray(np.moveaxis(self._A, 2, 0))
+        return np.moveaxis(self._A, 2, 0).copy()
 
     def kappa(self, channels: ArrayLike | None = None) -> FloatArray:
         """Ratio ``sum lambda^(2(k-i)) / sum lambda^(k-i)`` per channel, shape (B,).

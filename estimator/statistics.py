@@ -129,8 +129,10 @@ def bank_statistics(factor: ArrayLike, effective_count: ArrayLike,
 def student_t_quantile(probability: float, dof: float) -> float:
     """Quantile of Student's t by the Cornish-Fisher expansion.
 
-    Abramowitz & Stegun (1964), 26.7.5; absolute error below 1e-3 for
-    dof >= 3 at the usual 90-99 % levels. For dof < 1 it returns NaN.
+    Abramowitz & Stegun (1964), 26.7.5. Measured against scipy.stats.t.ppf:
+    absolute error below 1e-3 for dof >= 6 at probabilities 0.90-0.99 and for
+    dof >= 7 up to 0.995; it grows fast below that (0.018 at dof 3,
+    probability 0.99). For dof < 1 it returns NaN.
     """
     if not 0.0 < probability < 1.0:
         raise ValueError(f"probability must be in (0, 1), got {probability}")

@@ -1,0 +1,690 @@
+"""Noise variance from the a-priori residuals of a :class:`~estimator.rwls.RecursiveWLSBank`.
+
+Normalisation. With weights consistent with the noise (``w_k = c / sigma_k^2``
+for any c > 0) the a-priori innovation ``e_k = y_k - z_k^T theta_{k-1}`` has
+
+    Var(e_k) ~= sigma_k^2 (1 + kappa_{k-1} h_k),       h_k = w_k z_k^T P_{k-1} z_k
+
+because the estimate's error is independent of the new noise and has
+covariance ``~ kappa c P_{k-1}``; ``kappa = sum lambda^(2(k-i)) / sum lambda^(k-i)``
+is the bank's :meth:`~estimator.rwls.RecursiveWLSBank.kappa`, read before the
+update that produced ``e_k``. For lambda = 1 (kappa = 1) the relation is exact
+given the regressors. Hence
+
+    v_k = e_k^2 / (1 + kappa h_k)                                          (1)
+
+is an unbiased one-sample estimate of ``sigma_k^2``; under Gaussian noise
+``v_k / sigma_k^2 ~ chi2_1``. For lambda < 1, ``kappa P`` is a steady-state
+approximation of the estimate's covariance; measured with two Gaussian
+regressors and unit weights, the mean of ``v_k / sigma^2`` is 1.000 at
+lambda = 0.995, 1.002 at 0.95, 0.993 at 0.9 and 0.973 at 0.8 (raw ``e^2``:
+1.005, 1.056, 1.109, 1.239). Samples the bank could not yet predict (NaN
+innovation, infinite leverage) carry no information and are skipped.
+
+Two users of (1):
+
+* :class:`NoiseVarianceTracker`, an EWMA of ``v_k`` per channel (Roberts 1959),
+  debiased at start-up, optionally robust (Huber-type clipping);
+* :class:`LogVarianceModel`, ``ln sigma^2 = z_op^T beta`` on operating-point
+  regressors, a recursive fit of ``ln v_k`` with Harvey's (1976) bias correction.
+
+Each has a vectorised path over channels and a scalar path for one channel
+that perform the same IEEE operations in the same order, so their states agree
+bit for bit. Transcendental functions go through numpy's ufuncs in both paths:
+``math.log`` and ``np.log`` may differ in the last bit where numpy uses SIMD
+kernels.
+
+References
+----------
+Roberts, S. W. (1959). Control chart tests based on geometric moving averages.
+    Technometrics 1(3), 239-250.
+Huber, P. J. (1964). Robust estimation of a location parameter. Annals of
+    Mathematical Statistics 35(1), 73-101.
+Harvey, A. C. (1976). Estimating regression models with multiplicative
+    heteroscedasticity. Econometrica 44(3), 461-465.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from estimator._givens import Workspace, back_substitute, back_substitute_scalar
+from estimator.rwls import BankState, RecursiveWLSBank
+
+__all__ = ["LogVarianceModel", "LogVarianceState", "NoiseVarianceTracker", "TrackerState"]
+
+FloatArray = NDArray[np.float64]
+IndexArray = NDArray[np.intp]
+
+_LN2 = math.log(2.0)
+_EULER_GAMMA = 0.5772156649015329
+# -E[ln chi2_1] = -(psi(1/2) + ln 2) = gamma_Euler + ln 2 = 1.2704 (Harvey 1976;
+# psi(1/2) = -gamma - 2 ln 2, Abramowitz & Stegun 6.3.3).
+_LOG_CHI2_BIAS = _EULER_GAMMA + _LN2
+_TINY = float(np.finfo(np.float64).tiny)   # smallest positive normal float
+_LOG_MAX = math.log(float(np.finfo(np.float64).max))   # exp overflows above this
+
+
+# ------------------------------------------------------------------ checks
+def _check_int(value: object, name: str, minimum: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int | np.integer) or value < minimum:
+        raise ValueError(f"{name} must be an integer >= {minimum}, got {value!r}")
+    return int(value)
+
+
+def _check_positive(value: object, name: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float | np.integer | np.floating):
+        raise ValueError(f"{name} must be a number, got {value!r}")
+    x = float(value)
+    if not (math.isfinite(x) and x > 0.0):
+        raise ValueError(f"{name} must be finite and > 0, got {x}")
+    return x
+
+
+def _batch_vector(value: ArrayLike, b: int, name: str) -> FloatArray:
+    arr = np.asarray(value, dtype=np.float64)
+    if arr.ndim == 0:
+        return np.full(b, float(arr))
+    if arr.shape != (b,):
+        raise ValueError(f"{name} must be a scalar or shape ({b},), got {arr.shape}")
+    return arr
+
+
+def _check_residuals(n_channels: int, channels: ArrayLike | None, innovation: ArrayLike,
+                     leverage: ArrayLike, kappa: ArrayLike
+                     ) -> tuple[IndexArray, FloatArray, FloatArray, FloatArray]:
+    """Validate a batch of bank by-products; return (channels, e, h, kappa), each (B,)."""
+    e = np.asarray(innovation, dtype=np.float64)
+    if e.ndim != 1:
+        raise ValueError(f"innovation must have shape (B,), got {e.shape}")
+    b = e.shape[0]
+    if channels is None:
+        if b != n_channels:
+            raise ValueError(f"without channels, innovation must have shape ({n_channels},), got {e.shape}")
+        idx = np.arange(n_channels)
+    else:
+        raw = np.asarray(channels)
+        if raw.shape != (b,) or (b and raw.dtype.kind not in "iu"):
+            raise ValueError(f"channels must be integers of shape ({b},), got {raw.dtype} {raw.shape}")
+        idx = raw.astype(np.intp)
+        if b and (idx.min() < 0 or idx.max() >= n_channels):
+            bad = idx[(idx < 0) | (idx >= n_channels)][0]
+            raise ValueError(f"channels must be in 0..{n_channels - 1}, got {bad}")
+        if np.unique(idx).shape[0] != b:
+            raise ValueError("channels must be distinct in one vectorised update; apply repeats in order")
+    if np.isinf(e).any():
+        raise ValueError("innovation must be finite, or NaN while not identifiable; got inf")
+    h = np.asarray(leverage, dtype=np.float64)
+    if h.shape != (b,):
+        raise ValueError(f"leverage must have shape ({b},), got {h.shape}")
+    if not (h >= 0.0).all():
+        raise ValueError(f"leverage must be >= 0 (inf while not identifiable), got {h[~(h >= 0.0)][0]}")
+    kap = _batch_vector(kappa, b, "kappa")
+    good = np.isfinite(kap) & (kap > 0.0)
+    if not good.all():
+        raise ValueError(f"kappa must be finite and > 0, got {kap[~good][0]}")
+    return idx, e, h, kap
+
+
+def _check_residual_one(n_channels: int, channel: int, innovation: float, leverage: float,
+                        kappa: float) -> tuple[float, float, float]:
+    """Scalar twin of :func:`_check_residuals`."""
+    if isinstance(channel, bool) or not isinstance(channel, int | np.integer) or not 0 <= channel < n_channels:
+        raise ValueError(f"channel must be an integer in 0..{n_channels - 1}, got {channel!r}")
+    e, h, kap = float(innovation), float(leverage), float(kappa)
+    if math.isinf(e):
+        raise ValueError(f"innovation must be finite, or NaN while not identifiable; got {e}")
+    if not h >= 0.0:
+        raise ValueError(f"leverage must be >= 0 (inf while not identifiable), got {h}")
+    if not (math.isfinite(kap) and kap > 0.0):
+        raise ValueError(f"kappa must be finite and > 0, got {kap}")
+    return e, h, kap
+
+
+# ---------------------------------------------------------------- tracker
+def _clipped_chi2_1_mean(clip: float) -> float:
+    """``E[min(X, c^2)]`` for X ~ chi2_1, in closed form.
+
+    ``E[X; X <= t] = P(chi2_3 <= t)`` because ``x f_1(x) = f_3(x)``, so
+    ``E[min(X, t)] = P(chi2_3 <= t) + t P(chi2_1 > t)`` with
+    ``P(chi2_1 <= t) = erf(sqrt(t/2))`` and
+    ``P(chi2_3 <= t) = erf(sqrt(t/2)) - sqrt(2t/pi) exp(-t/2)``
+    (Abramowitz & Stegun 1964, section 26.4, odd degrees of freedom).
+    """
+    t = clip * clip
+    p1 = math.erf(math.sqrt(t / 2.0))
+    p3 = p1 - math.sqrt(2.0 * t / math.pi) * math.exp(-t / 2.0)
+    return p3 + t * (1.0 - p1)
+
+
+@dataclass(frozen=True)
+class TrackerState:
+    """Copy of every array of a :class:`NoiseVarianceTracker`; enough to rebuild it exactly.
+
+    ``half_life``, ``weighted_sum`` (S), ``weight_sum`` (C) and ``sample_count``
+    have shape (K,).
+    """
+
+    half_life: FloatArray
+    time_based: bool
+    robust: bool
+    clip: float
+    warmup: int
+    weighted_sum: FloatArray
+    weight_sum: FloatArray
+    sample_count: NDArray[np.int64]
+
+
+class NoiseVarianceTracker:
+    """Per-channel noise variance: debiased EWMA of the normalised squared innovations (1).
+
+    With ``alpha = 1 - 2^(-1/half_life)`` (``1 - 2^(-elapsed/half_life)`` when
+    time based) the recursions
+
+        S_k = (1 - alpha) S_{k-1} + alpha v_k,    C_k = (1 - alpha) C_{k-1} + alpha
+
+    give the estimate ``S_k / C_k``: a normalised weighted mean of the ``v_i``,
+    hence unbiased from the first sample (start-up debiasing, common practice).
+    The first sample of a channel has no preceding interval; it enters with the
+    weight of the second (for a constant interval this is exactly the debiased
+    EWMA started from ``S = C = 0``). A sample's weight halves every half-life.
+    The estimate's variance in steady state is ``2 sigma^4 alpha / (2 - alpha)``
+    under Gaussian noise (EWMA of chi2_1 samples).
+
+    Robust option (Huber-type). Once an estimate exists, ``v_k`` is clipped at
+    ``clip^2 * estimate_{k-1}`` and the estimate is divided by the consistency
+    factor ``E[min(X, clip^2)]``, X ~ chi2_1, so that it stays unbiased for
+    Gaussian noise; the factor assumes Gaussian noise, and for heavier-tailed
+    noise the robust estimate is biased low. Samples that cannot be clipped
+    (before ``warmup``, or while the estimate is exactly zero, which would
+    otherwise absorb every later sample) enter as ``factor * v_k``, their
+    expected clipped value, so the scale of ``S / C`` is the same throughout;
+    they are not protected against outliers.
+
+    Parameters
+    ----------
+    n_channels : int
+        K, number of channels.
+    half_life : float or ndarray, shape (K,)
+        In samples, or in seconds when ``time_based``; finite and > 0.
+    time_based : bool
+        Decay by the ``elapsed`` seconds passed to each update (irregular sampling).
+    robust : bool
+        Clip outlying samples as described above.
+    clip : float
+        c, the clipping point in standard deviations; > 0 (2-3 is usual).
+    warmup : int
+        Tracked samples before :meth:`variance` reports a value; >= 1.
+
+    References
+    ----------
+    Roberts (1959); Huber (1964); see the module docstring.
+    """
+
+    def __init__(self, n_channels: int, half_life: ArrayLike = 200.0, *, time_based: bool = False,
+                 robust: bool = False, clip: float = 3.0, warmup: int = 10) -> None:
+        k = _check_int(n_channels, "n_channels", 1)
+        hl = np.asarray(half_life, dtype=np.float64)
+        if hl.ndim == 0:
+            hl = np.full(k, float(hl))
+        if hl.shape != (k,):
+            raise ValueError(f"half_life must be a scalar or shape ({k},), got {hl.shape}")
+        good = np.isfinite(hl) & (hl > 0.0)
+        if not good.all():
+            raise ValueError(f"half_life must be finite and > 0, got {hl[~good][0]}")
+        if not isinstance(time_based, bool):
+            raise ValueError(f"time_based must be a bool, got {time_based!r}")
+        if not isinstance(robust, bool):
+            raise ValueError(f"robust must be a bool, got {robust!r}")
+        c = _check_positive(clip, "clip")
+        self.n_channels = k
+        self.time_based = time_based
+        self.robust = robust
+        self.clip = c
+        self.warmup = _check_int(warmup, "warmup", 1)
+        self._half_life: FloatArray = hl.copy()
+        # alpha = 1 - 2^(-1/H) = -expm1(-ln2 / H): expm1 keeps the digits when H is long.
+        self._alpha: FloatArray = -np.expm1(-_LN2 * (1.0 / hl))
+        self._clip2 = c * c
+        self._factor = _clipped_chi2_1_mean(c) if robust else 1.0
+        self._S: FloatArray = np.zeros(k)
+        self._C: FloatArray = np.zeros(k)
+        self._count: NDArray[np.int64] = np.zeros(k, dtype=np.int64)
+
+    @property
+    def consistency_factor(self) -> float:
+        """``E[min(X, clip^2)]``, X ~ chi2_1 (Gaussian noise assumed); 1 when not robust."""
+        return self._factor
+
+    @property
+    def sample_count(self) -> NDArray[np.int64]:
+        """Tracked samples per channel, shape (K,) (a copy)."""
+        return self._count.copy()
+
+    # ---------------------------------------------------------------- updates
+    def _check_elapsed(self, elapsed: ArrayLike | None, idx: IndexArray) -> FloatArray | None:
+        if not self.time_based:
+            if elapsed is not None:
+                raise ValueError(f"elapsed is only accepted when time_based=True, got {elapsed!r}")
+            return None
+        if elapsed is None:
+            if (self._count[idx] > 0).any():
+                raise ValueError("elapsed is required when time_based=True once a channel has tracked samples, "
+                                 "got None")
+            return np.full(idx.shape[0], np.inf)   # first samples: alpha is not used
+        dt = _batch_vector(elapsed, idx.shape[0], "elapsed")
+        if not (dt > 0.0).all():
+            raise ValueError(f"elapsed must be > 0 seconds (inf when unknown), got {dt[~(dt > 0.0)][0]}")
+        return dt
+
+    def update(self, channels: ArrayLike | None, innovation: ArrayLike, leverage: ArrayLike,
+               kappa: ArrayLike, elapsed: ArrayLike | None = None) -> NDArray[np.bool_]:
+        """Track one sample for each of B distinct channels.
+
+        Parameters
+        ----------
+        channels : array_like of int, shape (B,), or None
+            Channel indices, each at most once; None means ``arange(K)``.
+        innovation, leverage : array_like, shape (B,)
+            From the bank's :class:`~estimator.rwls.UpdateResult`. A sample with
+            NaN innovation or infinite leverage is skipped (not counted).
+        kappa : float or array_like, shape (B,)
+            The bank's ``kappa(channels)`` read before that update; 1 when lambda = 1.
+        elapsed : float or array_like, shape (B,), optional
+            Only when ``time_based``: seconds since the channel's previous
+            *tracked* sample (> 0; inf when unknown). Ignored for a channel's
+            first tracked sample; None is accepted while none of the channels
+            in the batch has a tracked sample yet.
+
+        Returns
+        -------
+        ndarray of bool, shape (B,)
+            Which samples were tracked.
+
+        Raises
+        ------
+        ValueError
+            Shapes, channel indices or values out of their domain; nothing is
+            applied then.
+        """
+        idx, e, h, kap = _check_residuals(self.n_channels, channels, innovation, leverage, kappa)
+        dt = self._check_elapsed(elapsed, idx)
+        used = ~np.isnan(e) & (h < np.inf)
+        if not used.all():
+            idx, e, h, kap = idx[used], e[used], h[used], kap[used]
+            dt = None if dt is None else dt[used]
+        if idx.shape[0] == 0:
+            return used
+        v = e * e / (1.0 + kap * h)                  # (1)
+        S = self._S[idx]
+        C = self._C[idx]
+        count = self._count[idx]
+        alpha = self._alpha[idx] if dt is None else -np.expm1(-_LN2 * (dt / self._half_life[idx]))
+        if self.robust:
+            warm = count >= self.warmup
+            limit = self._clip2 * (S / np.where(warm, C, 1.0) / self._factor)
+            clippable = warm & (limit > 0.0)
+            v = np.where(clippable, np.minimum(v, limit), v * self._factor)
+        second = count == 1                          # first sample takes the second one's weight
+        S = np.where(second, S * alpha, S)
+        C = np.where(second, C * alpha, C)
+        keep = 1.0 - alpha
+        S = keep * S + alpha * v                     # S_k = (1 - alpha) S_{k-1} + alpha v_k
+        C = keep * C + alpha                         # C_k = (1 - alpha) C_{k-1} + alpha
+        first = count == 0
+        self._S[idx] = np.where(first, v, S)
+        self._C[idx] = np.where(first, 1.0, C)
+        self._count[idx] = count + 1
+        return used
+
+    def update_one(self, channel: int, innovation: float, leverage: float, kappa: float,
+                   elapsed: float | None = None) -> bool:
+        """Scalar path for one sample of one channel; bit-identical to :meth:`update`.
+
+        Returns
+        -------
+        bool
+            Whether the sample was tracked.
+
+        Raises
+        ------
+        ValueError
+            As :meth:`update`; the state is untouched then.
+        """
+        e, h, kap = _check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
+        dt = math.inf
+        if self.time_based:
+            if elapsed is None:
+                if self._count[channel] > 0:
+                    raise ValueError("elapsed is required when time_based=True once the channel has tracked "
+                                     "samples, got None")
+            else:
+                dt = float(elapsed)
+            if not dt > 0.0:
+                raise ValueError(f"elapsed must be > 0 seconds (inf when unknown), got {dt}")
+        elif elapsed is not None:
+            raise ValueError(f"elapsed is only accepted when time_based=True, got {elapsed!r}")
+        if math.isnan(e) or h == math.inf:
+            return False
+        v = e * e / (1.0 + kap * h)                  # (1)
+        s = float(self._S[channel])
+        c = float(self._C[channel])
+        count = int(self._count[channel])
+        if self.time_based:
+            alpha = -float(np.expm1(-_LN2 * (dt / float(self._half_life[channel]))))
+        else:
+            alpha = float(self._alpha[channel])
+        if self.robust:
+            limit = self._clip2 * (s / c / self._factor) if count >= self.warmup else 0.0
+            v = min(v, limit) if limit > 0.0 else v * self._factor
+        if count == 0:
+            s, c = v, 1.0
+        else:
+            if count == 1:
+                s = s * alpha
+                c = c * alpha
+            keep = 1.0 - alpha
+            s = keep * s + alpha * v
+            c = keep * c + alpha
+        self._S[channel] = s
+        self._C[channel] = c
+        self._count[channel] = count + 1
+        return True
+
+    # ------------------------------------------------------------------ reads
+    def variance(self) -> FloatArray:
+        """Noise variance per channel, shape (K,); NaN before ``warmup`` tracked samples."""
+        ready = self._count >= self.warmup
+        return np.where(ready, self._S / np.where(ready, self._C, 1.0) / self._factor, np.nan)
+
+    def variance_one(self, channel: int) -> float:
+        """Scalar twin of :meth:`variance` for one channel."""
+        if isinstance(channel, bool) or not isinstance(channel, int | np.integer) \
+                or not 0 <= channel < self.n_channels:
+            raise ValueError(f"channel must be an integer in 0..{self.n_channels - 1}, got {channel!r}")
+        if self._count[channel] < self.warmup:
+            return math.nan
+        return float(self._S[channel]) / float(self._C[channel]) / self._factor
+
+    def state(self) -> TrackerState:
+        """Copy of every array; see :class:`TrackerState`."""
+        return TrackerState(half_life=self._half_life.copy(), time_based=self.time_based,
+                            robust=self.robust, clip=self.clip, warmup=self.warmup,
+                            weighted_sum=self._S.copy(), weight_sum=self._C.copy(),
+                            sample_count=self._count.copy())
+
+    @classmethod
+    def from_state(cls, state: TrackerState) -> NoiseVarianceTracker:
+        """Rebuild a tracker exactly from :meth:`state`."""
+        k = np.shape(state.half_life)[0] if np.ndim(state.half_life) == 1 else 0
+        tracker = cls(k, state.half_life, time_based=state.time_based, robust=state.robust,
+                      clip=state.clip, warmup=state.warmup)
+        for name in ("weighted_sum", "weight_sum", "sample_count"):
+            if np.shape(getattr(state, name)) != (k,):
+                raise ValueError(f"state.{name} must have shape ({k},), got {np.shape(getattr(state, name))}")
+        tracker._S = np.array(state.weighted_sum, dtype=np.float64)
+        tracker._C = np.array(state.weight_sum, dtype=np.float64)
+        tracker._count = np.array(state.sample_count, dtype=np.int64)
+        return tracker
+
+
+# -------------------------------------------------------- log-variance model
+def _bank_factor(bank: RecursiveWLSBank, idx: IndexArray | int) -> FloatArray:
+    """The bank's augmented factor for channels ``idx``, layout (n+1, n+1, B), or (n+1, n+1) for one.
+
+    Reads the bank's structure-of-arrays storage directly: the public
+    ``factor()`` copies every channel, too slow for a one-channel read.
+    """
+    return bank._A[:, :, idx]
+
+
+@dataclass(frozen=True)
+class LogVarianceState:
+    """Copy of a :class:`LogVarianceModel`: the state of its bank and its settings."""
+
+    bank: BankState
+    floor_ratio: float
+    warmup: int
+
+
+class LogVarianceModel:
+    """Operating-point dependent noise variance ``ln sigma^2 = z_op^T beta`` (Harvey 1976).
+
+    Per channel a :class:`~estimator.rwls.RecursiveWLSBank` with unit weights
+    fits ``z_op^T beta`` to the targets ``ln v_k + 1.2704`` with ``v_k`` from (1).
+    Under Gaussian noise ``ln v_k = ln sigma_k^2 + ln chi2_1``, whose mean is
+    ``ln sigma_k^2 - 1.2704`` (``E[ln chi2_1] = psi(1/2) + ln 2``) and whose
+    variance ``pi^2 / 2`` does not depend on the operating point, so unit
+    weights are the right ones. Without the correction the intercept would be
+    low by 1.2704, the variance by a factor 3.56.
+
+    Zero guard. Quantised sensors give ``e == 0`` exactly and ``ln 0 = -inf``.
+    ``v_k`` is floored at ``floor_ratio`` times the variance predicted before
+    the sample once the model predicts (identifiable and past ``warmup``), and
+    always at the smallest positive normal float (``ln = -708.4``). Not
+    earlier: a fit of a few samples can be wildly too high (a slope of 190 after
+    four samples was seen in a test), and a floor relative to it would then
+    bind on most samples and hold the fit there for thousands of samples. The floor clips the lower tail of
+    ``chi2_1``: with ``floor_ratio = 1e-6`` a fraction 8e-4 of Gaussian samples,
+    raising the mean target by about ``4 sqrt(1e-6) / sqrt(2 pi) = 1.6e-3``.
+
+    Parameters
+    ----------
+    n_channels : int
+        K.
+    n_terms : int
+        m, entries of the operating-point regressor ``z_op`` (e.g. built by
+        :class:`~estimator.regressors.RegressorSpec` from ``["1", "load"]``).
+    forgetting_factor : float or ndarray, shape (K,)
+        lambda of the log fit, in (0, 1]; memory about ``1 / (1 - lambda)``
+        samples (common practice).
+    floor_ratio : float
+        In (0, 1); see the zero guard.
+    warmup : int, optional
+        Samples fitted before :meth:`variance` reports a value; default
+        ``50 m``, where the intercept's standard error is about
+        ``sqrt(pi^2 / 2 / 50) = 0.31`` (a factor 1.4 in variance).
+
+    References
+    ----------
+    Harvey (1976); see the module docstring.
+    """
+
+    def __init__(self, n_channels: int, n_terms: int, forgetting_factor: ArrayLike = 0.999,
+                 floor_ratio: float = 1e-6, warmup: int | None = None) -> None:
+        k = _check_int(n_channels, "n_channels", 1)
+        m = _check_int(n_terms, "n_terms", 1)
+        ratio = _check_positive(floor_ratio, "floor_ratio")
+        if not ratio < 1.0:
+            raise ValueError(f"floor_ratio must be in (0, 1), got {ratio}")
+        self.warmup = 50 * m if warmup is None else _check_int(warmup, "warmup", 1)
+        self._bank = RecursiveWLSBank(k, m, forgetting_factor)
+        self.n_channels = k
+        self.n_terms = m
+        self.floor_ratio = ratio
+        self._log_floor_ratio = math.log(ratio)
+        self._workspace = Workspace(m, k)
+        self._diagonal = np.arange(m)
+        self._count: NDArray[np.int64] = np.zeros(k, dtype=np.int64)
+
+    @property
+    def sample_count(self) -> NDArray[np.int64]:
+        """Samples fitted per channel, shape (K,) (a copy)."""
+        return self._count.copy()
+
+    # ---------------------------------------------------------------- helpers
+    def _check_z(self, z_op: ArrayLike, b: int) -> FloatArray:
+        z = np.asarray(z_op, dtype=np.float64)
+        if z.shape != (b, self.n_terms):
+            raise ValueError(f"z_op must have shape ({b}, {self.n_terms}), got {z.shape}")
+        if not np.isfinite(z).all():
+            raise ValueError("z_op must be finite")
+        return z
+
+    def _check_z_one(self, z_op: Sequence[float]) -> list[float]:
+        z = [float(x) for x in z_op]
+        if len(z) != self.n_terms:
+            raise ValueError(f"z_op must have length {self.n_terms}, got {len(z)}")
+        if not all(math.isfinite(x) for x in z):
+            raise ValueError(f"z_op must be finite, got {z}")
+        return z
+
+    def _log_prediction(self, idx: IndexArray, z: FloatArray) -> tuple[FloatArray, FloatArray, NDArray[np.bool_]]:
+        """(z^T beta (B,), beta (m, B) view into the workspace, identifiable (B,))."""
+        A = _bank_factor(self._bank, idx)
+        b = idx.shape[0]     # reads may repeat a channel, so b can exceed K
+        ws = self._workspace.view(b) if b <= self._workspace.capacity else Workspace(self.n_terms, b)
+        beta = back_substitute(A, ws)
+        identifiable = np.all(A[self._diagonal, self._diagonal] != 0.0, axis=0)
+        lp = z[:, 0] * beta[0]
+        for j in range(1, self.n_terms):             # left to right, as the scalar twin
+            lp = lp + z[:, j] * beta[j]
+        return lp, beta, identifiable
+
+    def _log_prediction_one(self, channel: int, z: list[float]) -> tuple[float, bool]:
+        m = self.n_terms
+        A = _bank_factor(self._bank, channel).tolist()
+        beta = back_substitute_scalar(A, m)
+        lp = z[0] * beta[0]
+        for j in range(1, m):
+            lp = lp + z[j] * beta[j]
+        return lp, all(A[i][i] != 0.0 for i in range(m))
+
+    def _channel_index(self, channels: ArrayLike | None, b: int) -> IndexArray:
+        if channels is None:
+            if b != self.n_channels:
+                raise ValueError(f"without channels, z_op must have {self.n_channels} rows, got {b}")
+            return np.arange(self.n_channels)
+        raw = np.asarray(channels)
+        if raw.shape != (b,) or (b and raw.dtype.kind not in "iu"):
+            raise ValueError(f"channels must be integers of shape ({b},), got {raw.dtype} {raw.shape}")
+        idx = raw.astype(np.intp)
+        if b and (idx.min() < 0 or idx.max() >= self.n_channels):
+            raise ValueError(f"channels must be in 0..{self.n_channels - 1}, got {idx.min()}..{idx.max()}")
+        return idx
+
+    # ---------------------------------------------------------------- updates
+    def update(self, channels: ArrayLike | None, z_op: ArrayLike, innovation: ArrayLike,
+               leverage: ArrayLike, kappa: ArrayLike) -> NDArray[np.bool_]:
+        """Fit one sample for each of B distinct channels.
+
+        Parameters
+        ----------
+        channels : array_like of int, shape (B,), or None
+            Each at most once; None means ``arange(K)``.
+        z_op : array_like, shape (B, m)
+            Operating-point regressor rows.
+        innovation, leverage : array_like, shape (B,)
+        kappa : float or array_like, shape (B,)
+            As for :meth:`NoiseVarianceTracker.update`; NaN innovation or
+            infinite leverage skips the sample.
+
+        Returns
+        -------
+        ndarray of bool, shape (B,)
+            Which samples were fitted.
+
+        Raises
+        ------
+        ValueError
+            Shapes, channel indices or values out of their domain, ``z_op`` not
+            finite; nothing is applied then.
+        """
+        idx, e, h, kap = _check_residuals(self.n_channels, channels, innovation, leverage, kappa)
+        z = self._check_z(z_op, e.shape[0])
+        used = ~np.isnan(e) & (h < np.inf)
+        if not used.all():
+            idx, e, h, kap, z = idx[used], e[used], h[used], kap[used], z[used]
+        if idx.shape[0] == 0:
+            return used
+        v = e * e / (1.0 + kap * h)                  # (1)
+        lp, _, identifiable = self._log_prediction(idx, z)
+        predicts = identifiable & (self._count[idx] >= self.warmup)
+        log_v = np.log(np.maximum(v, _TINY))
+        # ln max(v, floor_ratio * exp(z^T beta)) = max(ln v, ln floor_ratio + z^T beta)
+        target = np.maximum(log_v, np.where(predicts, self._log_floor_ratio + lp, -np.inf))
+        self._bank.update(z, target + _LOG_CHI2_BIAS, None, idx)
+        self._count[idx] += 1
+        return used
+
+    def update_one(self, channel: int, z_op: Sequence[float], innovation: float, leverage: float,
+                   kappa: float) -> bool:
+        """Scalar path for one sample of one channel; bit-identical to :meth:`update`.
+
+        Returns
+        -------
+        bool
+            Whether the sample was fitted.
+
+        Raises
+        ------
+        ValueError
+            As :meth:`update`; the state is untouched then.
+        """
+        e, h, kap = _check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
+        z = self._check_z_one(z_op)
+        if math.isnan(e) or h == math.inf:
+            return False
+        v = e * e / (1.0 + kap * h)                  # (1)
+        lp, identifiable = self._log_prediction_one(channel, z)
+        target = float(np.log(max(v, _TINY)))
+        if identifiable and self._count[channel] >= self.warmup:
+            target = max(target, self._log_floor_ratio + lp)
+        self._bank.update_one(channel, z, target + _LOG_CHI2_BIAS)
+        self._count[channel] += 1
+        return True
+
+    # ------------------------------------------------------------------ reads
+    def variance(self, channels: ArrayLike | None, z_op: ArrayLike) -> FloatArray:
+        """Predicted noise variance ``exp(z_op^T beta)``, shape (B,).
+
+        NaN where the channel is not identifiable or has fewer than ``warmup``
+        samples; saturates at the largest float instead of overflowing.
+        """
+        z = np.asarray(z_op, dtype=np.float64)
+        if z.ndim != 2:
+            raise ValueError(f"z_op must have shape (B, {self.n_terms}), got {z.shape}")
+        idx = self._channel_index(channels, z.shape[0])
+        z = self._check_z(z, idx.shape[0])
+        lp, _, identifiable = self._log_prediction(idx, z)
+        ready = identifiable & (self._count[idx] >= self.warmup)
+        return np.where(ready, np.exp(np.minimum(lp, _LOG_MAX)), np.nan)
+
+    def variance_one(self, channel: int, z_op: Sequence[float]) -> float:
+        """Scalar twin of :meth:`variance`."""
+        if isinstance(channel, bool) or not isinstance(channel, int | np.integer) \
+                or not 0 <= channel < self.n_channels:
+            raise ValueError(f"channel must be an integer in 0..{self.n_channels - 1}, got {channel!r}")
+        z = self._check_z_one(z_op)
+        if self._count[channel] < self.warmup:
+            return math.nan
+        lp, identifiable = self._log_prediction_one(channel, z)
+        if not identifiable:
+            return math.nan
+        return float(np.exp(min(lp, _LOG_MAX)))
+
+    def coefficients(self, channels: ArrayLike | None = None) -> FloatArray:
+        """beta per channel, shape (B, m) (a copy); NaN rows where not identifiable."""
+        idx = np.arange(self.n_channels) if channels is None else np.asarray(channels, dtype=np.intp)
+        if idx.ndim != 1 or (idx.shape[0] and (idx.min() < 0 or idx.max() >= self.n_channels)):
+            raise ValueError(f"channels must be a vector of indices in 0..{self.n_channels - 1}")
+        _, beta, identifiable = self._log_prediction(idx, np.zeros((idx.shape[0], self.n_terms)))
+        return np.where(identifiable[:, None], beta.T, np.nan)
+
+    def state(self) -> LogVarianceState:
+        """Copy of the bank's arrays and the settings; see :class:`LogVarianceState`."""
+        return LogVarianceState(bank=self._bank.state(), floor_ratio=self.floor_ratio, warmup=self.warmup)
+
+    @classmethod
+    def from_state(cls, state: LogVarianceState) -> LogVarianceModel:
+        """Rebuild a model exactly from :meth:`state`."""
+        k, m1, _ = state.bank.factor.shape
+        model = cls(k, m1 - 1, state.bank.forgetting_factor, state.floor_ratio, state.warmup)
+        model._bank = RecursiveWLSBank.from_state(state.bank)
+        model._count = state.bank.sample_count.copy()
+        return model

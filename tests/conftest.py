@@ -1,0 +1,58 @@
+"""Shared test factories: synthetic regression data and a bit-exact comparison of bank states."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, fields
+
+import numpy as np
+import pytest
+from numpy.typing import NDArray
+
+from estimator import BankState
+
+FloatArray = NDArray[np.float64]
+
+
+@dataclass(frozen=True)
+class RegressionData:
+    """``y = Z theta + e / sqrt(w)``: heteroscedastic noise with known inverse-variance weights."""
+
+    Z: FloatArray          # (N, n), first column 1 when with_constant
+    y: FloatArray          # (N,)
+    weight: FloatArray     # (N,), 1 / noise variance
+    theta: FloatArray      # (n,), the true parameters
+
+
+def _make_regression(seed: int, n_samples: int, n_params: int, *, noise: float = 0.1,
+                     with_constant: bool = True, unit_weights: bool = False) -> RegressionData:
+    rng = np.random.default_rng(seed)
+    Z = rng.normal(size=(n_samples, n_params))
+    if with_constant:
+        Z[:, 0] = 1.0
+    theta = rng.uniform(-2.0, 2.0, size=n_params)
+    weight = np.ones(n_samples) if unit_weights else rng.uniform(0.2, 5.0, size=n_samples)
+    y = Z @ theta + noise * rng.normal(size=n_samples) / np.sqrt(weight)
+    return RegressionData(Z=Z, y=y, weight=weight, theta=theta)
+
+
+@pytest.fixture
+def make_regression() -> Callable[..., RegressionData]:
+    """Factory ``make_regression(seed, n_samples, n_params, noise=0.1, with_constant=True, unit_weights=False)``."""
+    return _make_regression
+
+
+def _assert_same_state(actual: BankState, expected: BankState) -> None:
+    for field in fields(BankState):
+        a = getattr(actual, field.name)
+        b = getattr(expected, field.name)
+        assert a.dtype == b.dtype, field.name
+        assert a.shape == b.shape, field.name
+        # Bytes, not values: stricter than array_equal (tells -0.0 from 0.0, NaN payloads).
+        assert np.ascontiguousarray(a).tobytes() == np.ascontiguousarray(b).tobytes(), field.name
+
+
+@pytest.fixture
+def assert_same_state() -> Callable[[BankState, BankState], None]:
+    """Assert every array of two :class:`BankState` snapshots is identical bit for bit (dtype, shape, bytes)."""
+    return _assert_same_state

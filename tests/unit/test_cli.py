@@ -1,0 +1,157 @@
+"""The `rwls` command: replay, fit, check-config, exit codes, JSON, refused rows."""
+
+from __future__ import annotations
+
+import io
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from service.cli import main
+from service.progress import Progress
+
+REPO = Path(__file__).resolve().parents[2]
+DEMO_CSV = REPO / "examples" / "larkspur_sub7.csv"
+DEMO_TOML = REPO / "examples" / "larkspur_sub7.toml"
+
+
+def _json(capsys: pytest.CaptureFixture[str], *argv: str) -> dict:
+    assert main([*argv, "--json", "--no-progress"]) == 0
+    return json.loads(capsys.readouterr().out)
+
+
+def _write(tmp_path: Path, csv_text: str, toml_text: str) -> tuple[str, str]:
+    data, config = tmp_path / "d.csv", tmp_path / "c.toml"
+    data.write_text(csv_text)
+    config.write_text(toml_text)
+    return str(data), str(config)
+
+
+def test_demo_replay_reports_every_channel(capsys: pytest.CaptureFixture[str]) -> None:
+    result = _json(capsys, "replay", str(DEMO_CSV), "--config", str(DEMO_TOML))
+    channels = result["channels"]
+    assert sorted(channels) == ["sub7.flow", "sub7.return_dp", "sub7.stack_o2", "sub7.supply_temp"]
+    assert channels["sub7.flow"]["samples"] == 4320
+    assert (channels["sub7.stack_o2"]["samples"], channels["sub7.stack_o2"]["warmup"]) == (4319, 1)
+    assert result["rows"] == 4 * 4320 and result["bad_rows"] == 0
+    for report in channels.values():
+        assert set(report) >= {"terms", "parameters", "std_errors", "covariance", "residual_sd",
+                               "noise_sigma", "samples", "rejected"}
+        cov = np.array(report["covariance"])
+        assert cov.shape == (len(report["terms"]),) * 2
+        assert np.allclose(cov, cov.T, rtol=0.0, atol=0.0)   # symmetrised before it is reported
+        assert np.all(np.linalg.eigvalsh(cov) > 0.0)
+
+
+def test_fit_equals_replay_on_the_demo_history(capsys: pytest.CaptureFixture[str]) -> None:
+    replay = _json(capsys, "replay", str(DEMO_CSV), "--config", str(DEMO_TOML))["channels"]
+    fit = _json(capsys, "fit", str(DEMO_CSV), "--config", str(DEMO_TOML))["channels"]
+    for cid, report in replay.items():
+        r = np.array([report["parameters"][t] for t in report["terms"]])
+        f = np.array([fit[cid]["parameters"][t] for t in report["terms"]])
+        # Same samples, same weights; the anti-windup bound never engages on this
+        # richly excited history, so only rounding separates the two. The tolerance
+        # is relative to the parameter vector's size (an intercept near 0 would make
+        # an entrywise relative test meaningless).
+        assert np.max(np.abs(r - f)) <= 1e-10 * np.max(np.abs(f)), cid
+        se_r = np.array([report["std_errors"][t] for t in report["terms"]])
+        se_f = np.array([fit[cid]["std_errors"][t] for t in report["terms"]])
+        np.testing.assert_allclose(se_r, se_f, rtol=1e-8)
+
+
+def test_bad_rows_are_counted_listed_and_never_stop_the_run(tmp_path: Path,
+                                                             capsys: pytest.CaptureFixture[str]) -> None:
+    rows = ["t,y,u", "1,1.0,0.5", "2,oops,0.5", "3,2.0,", "3,2.1,0.7", "2.5,2.2,0.1", "4,nan,1",
+            "5,2.5,1.5", "6,1"]
+    rows += [f"{7 + k},{1.0 + 0.3 * k},{0.2 * k}" for k in range(10)]
+    data, config = _write(tmp_path, "\n".join(rows) + "\n", '[channels.c]\nterms = ["1", "u"]\n')
+    result = _json(capsys, "replay", data, "--config", config)
+    channel = result["channels"]["c"]
+    problems = [(p["line"], p["reason"]) for p in result["problems"]]
+    assert problems == [(3, "bad_number"), (4, "missing_input"), (6, "out_of_order"), (7, "non_finite"),
+                        (9, "bad_row")]
+    assert result["bad_rows"] == 2
+    assert channel["rejected"] == 3
+    assert channel["rejections"] == {"missing_input": 1, "non_finite": 1, "out_of_order": 1}
+    assert channel["samples"] == 13
+
+
+def test_rows_of_unknown_channels_are_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    text = "channel,y,u\na,1,1\nb,2,2\nzzz,3,3\na,2,2\n"
+    config = '[channels.a]\nterms = ["1", "u"]\n[channels.b]\nterms = ["u"]\n'
+    data, conf = _write(tmp_path, text, config)
+    result = _json(capsys, "replay", data, "--config", conf)
+    assert result["problems"] == [{"line": 4, "reason": "unknown_channel", "channel": "zzz"}]
+    assert result["channels"]["a"]["samples"] == 2 and result["channels"]["b"]["samples"] == 1
+
+
+def test_json_never_contains_nan(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # One sample for two parameters: nothing is identifiable yet, so the report is all nulls.
+    data, config = _write(tmp_path, "y,u\n1,2\n", '[channels.c]\nterms = ["1", "u"]\n')
+    assert main(["replay", data, "--config", config, "--json"]) == 0
+    text = capsys.readouterr().out
+    assert "NaN" not in text and "Infinity" not in text
+    report = json.loads(text)["channels"]["c"]
+    assert report["parameters"] == {"1": None, "u": None}
+
+
+def test_several_channels_need_a_channel_column(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    config = '[channels.a]\nterms = ["1"]\n[channels.b]\nterms = ["1"]\n'
+    data, conf = _write(tmp_path, "y\n1\n", config)
+    assert main(["replay", data, "--config", conf]) == 1
+    assert "lacks column(s): channel" in capsys.readouterr().err
+
+
+def test_missing_data_file_is_exit_1(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    _, config = _write(tmp_path, "", '[channels.a]\nterms = ["1"]\n')
+    assert main(["fit", str(tmp_path / "absent.csv"), "--config", config]) == 1
+    assert "data error" in capsys.readouterr().err
+
+
+def test_bad_config_is_exit_2_and_names_the_key(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    data, config = _write(tmp_path, "y\n1\n", '[channels.a]\nterms = ["1"]\nforgetting_factor = 0\n')
+    assert main(["replay", data, "--config", config]) == 2
+    assert "channels.a.forgetting_factor: must be in (0, 1], got 0" in capsys.readouterr().err
+    assert main(["check-config", config]) == 2
+
+
+def test_check_config_accepts_the_demo_configuration(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["check-config", str(DEMO_TOML)]) == 0
+    assert "ok, 4 channel(s)" in capsys.readouterr().out
+
+
+def test_forgetting_factor_override_applies_to_every_channel(capsys: pytest.CaptureFixture[str]) -> None:
+    result = _json(capsys, "replay", str(DEMO_CSV), "--config", str(DEMO_TOML), "--forgetting-factor", "0.99")
+    assert {r["forgetting_factor"] for r in result["channels"].values()} == {0.99}
+    # sum of lambda^m over 4320 samples = (1 - 0.99^4320) / 0.01 = 100 to 1e-17 relative.
+    for report in result["channels"].values():
+        assert report["effective_count"] == pytest.approx(100.0, rel=1e-9)
+    assert main(["replay", str(DEMO_CSV), "--config", str(DEMO_TOML), "--forgetting-factor", "1.5"]) == 2
+
+
+def test_text_output_shows_tables_and_refused_rows(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    data, config = _write(tmp_path, "y,u\n1,1\n2,x\n3,2\n4,3\n", '[channels.c]\nterms = ["1", "u"]\n')
+    assert main(["replay", data, "--config", config]) == 0
+    out = capsys.readouterr().out
+    assert "channel c  (replay; weighting unit" in out
+    assert "line 3: bad_number" in out
+    assert "95% interval" in out
+
+
+def test_fit_reports_a_not_identifiable_channel(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    data, config = _write(tmp_path, "y,u\n1,2\n2,2\n3,2\n", '[channels.c]\nterms = ["1", "u"]\n')
+    report = _json(capsys, "fit", data, "--config", config)["channels"]["c"]
+    assert report["error"].startswith("not identifiable")
+    assert report["parameters"] == {"1": None, "u": None}
+
+
+def test_progress_bar_draws_only_when_enabled() -> None:
+    shown, hidden = io.StringIO(), io.StringIO()
+    for stream, enabled in ((shown, True), (hidden, None)):
+        bar = Progress(100, "replay", stream=stream, enabled=enabled, interval=0.0)
+        bar.update(50, 1000)
+        bar.close()
+    assert "50.0%" in shown.getvalue() and "1,000 rows" in shown.getvalue()
+    assert hidden.getvalue() == ""     # StringIO is not a terminal
