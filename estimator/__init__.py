@@ -1,23 +1,36 @@
 """Pure-numpy recursive weighted least squares for sensor monitoring (no I/O)."""
 
 from estimator.batch import BatchFit, NotIdentifiable, fit_wls
+from estimator.channel import ChannelPipeline, ChannelSettings, SampleOutcome, WeightRule
+from estimator.log_variance import LogVarianceModel, LogVarianceState
 from estimator.regressors import Factor, NotUsable, RegressorBuilder, RegressorSpec, Term, parse_term
 from estimator.rwls import BankState, RecursiveWLSBank, RejectedSample, UpdateResult
+from estimator.rwls_scalar import ScalarRecursiveWLS
 from estimator.statistics import ChannelStatistics, bank_statistics, student_t_quantile
+from estimator.variance import NoiseVarianceTracker, TrackerState
 
 __all__ = [
     "BankState",
     "BatchFit",
+    "ChannelPipeline",
+    "ChannelSettings",
     "ChannelStatistics",
     "Factor",
+    "LogVarianceModel",
+    "LogVarianceState",
+    "NoiseVarianceTracker",
     "NotIdentifiable",
     "NotUsable",
     "RecursiveWLSBank",
     "RegressorBuilder",
     "RegressorSpec",
     "RejectedSample",
+    "SampleOutcome",
+    "ScalarRecursiveWLS",
     "Term",
+    "TrackerState",
     "UpdateResult",
+    "WeightRule",
     "bank_statistics",
     "fit_wls",
     "parse_term",

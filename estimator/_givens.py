@@ -84,11 +84,12 @@ def rotate_rows(A: FloatArray, x: FloatArray, sl: FloatArray | None, ws: Workspa
     n = A.shape[0] - 1
     cp = ws.cos_product
     cp.fill(1.0)
-    a, r, t, c, s = ws.a, ws.r, ws.t, ws.c, ws.s
+    r, t, c, s = ws.r, ws.t, ws.c, ws.s
     for i in range(first, n):
         if sl is None:
-            np.copyto(a, A[i, i])
+            a = A[i, i]          # a view is safe: A[i, i] is only overwritten at the end
         else:
+            a = ws.a
             np.multiply(sl, A[i, i], out=a)
         b = x[i]
         h, low = ws.h, ws.l
@@ -96,7 +97,8 @@ def rotate_rows(A: FloatArray, x: FloatArray, sl: FloatArray | None, ws: Workspa
         np.maximum(a, t, out=h)
         np.minimum(a, t, out=low)
         np.equal(h, 0.0, out=ws.empty)
-        if ws.empty.any():
+        any_empty = bool(ws.empty.any())      # h == 0 exactly when r == 0 (both inputs zero)
+        if any_empty:
             np.divide(low, np.where(ws.empty, 1.0, h), out=low)
         else:
             np.divide(low, h, out=low)
@@ -104,7 +106,7 @@ def rotate_rows(A: FloatArray, x: FloatArray, sl: FloatArray | None, ws: Workspa
         np.add(r, 1.0, out=r)
         np.sqrt(r, out=r)
         np.multiply(h, r, out=r)           # r = h sqrt(1 + (l / h)^2)
-        if ws.empty.any():
+        if any_empty:
             np.divide(a, np.where(ws.empty, 1.0, r), out=c)
             np.divide(b, np.where(ws.empty, 1.0, r), out=s)
             c[ws.empty] = 0.0

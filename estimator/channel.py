@@ -31,10 +31,11 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
+from estimator.log_variance import LogVarianceModel
 from estimator.regressors import NotUsable, RegressorBuilder, RegressorSpec
 from estimator.rwls import RejectedSample
 from estimator.rwls_scalar import ScalarRecursiveWLS
-from estimator.variance import LogVarianceModel, NoiseVarianceTracker
+from estimator.variance import NoiseVarianceTracker
 
 __all__ = ["ChannelPipeline", "ChannelSettings", "SampleOutcome", "WeightRule"]
 

@@ -59,6 +59,7 @@ from numpy.typing import ArrayLike, NDArray
 from estimator._givens import (
     Workspace,
     back_substitute,
+    back_substitute_scalar,
     covariance_diagonal,
     rotate_rows,
     scalar_step,
@@ -222,9 +223,13 @@ class RecursiveWLSBank:
                                      "a channel may appear once per vectorised step; apply in order")
         elif b != self.n_channels:
             raise RejectedSample("bad_shape", f"without channels, B must equal K = {self.n_channels}, got {b}")
-        if not (np.isfinite(z).all() and np.isfinite(y).all()):
+        # A sum of finite numbers is finite unless it overflows, and NaN or inf
+        # propagate into it: one pass decides the common case, the full scan
+        # only runs when the sum is not finite.
+        if not (math.isfinite(float(z.sum()) + float(y.sum()))
+                or (np.isfinite(z).all() and np.isfinite(y).all())):
             raise RejectedSample("non_finite", "z and y must be finite")
-        if not (np.isfinite(w).all() and (w > 0.0).all()):
+        if b and not (w.min() > 0.0 and w.max() < np.inf):     # a NaN fails both comparisons
             raise RejectedSample("bad_weight", "weight must be finite and > 0")
 
     # ---------------------------------------------------------------- updates
@@ -281,8 +286,11 @@ class RecursiveWLSBank:
         np.multiply(yy, sw, out=row[n])
         cos_product = rotate_rows(A, row, None if self._all_unit_lambda else sl, ws).copy()
         alpha = row[n].copy()
-        rho = sl * A[n, n]
-        A[n, n] = np.sqrt(rho * rho + alpha * alpha)   # rho'^2 = lambda rho^2 + alpha^2
+        rho = A[n, n]                                   # rho'^2 = lambda rho^2 + alpha^2
+        np.multiply(rho, sl, out=rho)
+        np.multiply(rho, rho, out=rho)
+        np.add(rho, row[n] * row[n], out=rho)
+        np.sqrt(rho, out=rho)
 
         sel = slice(None) if full else idx     # a slice avoids fancy-index copies
         count = self._count[sel] + 1
@@ -290,10 +298,11 @@ class RecursiveWLSBank:
         if has_limit.any():
             # Only identifiable channels (every R_ii > 0) are bounded; before that
             # the start stays diffuse.
-            diagonal = A[np.arange(n), np.arange(n)]
-            due = has_limit & (diagonal > 0.0).all(axis=0)
+            due = has_limit & (A[0, 0] > 0.0)
+            for i in range(1, n):
+                due &= A[i, i] > 0.0
             if due.any():
-                self._bound_covariance(A, idx, count % n, due, ws)
+                self._bound_covariance(A, sel, count % n, due, ws)
         if not full:
             self._A[:, :, idx] = A
         lam = self._lambda[sel]
@@ -302,26 +311,41 @@ class RecursiveWLSBank:
         self._count[sel] = count
         return _innovation(alpha, cos_product, sw, ww, sl)
 
-    def _bound_covariance(self, A: FloatArray, idx: NDArray[np.intp], j: NDArray[np.int64],
+    def _bound_covariance(self, A: FloatArray, sel: slice | NDArray[np.intp], j: NDArray[np.int64],
                           due: NDArray[np.bool_], ws: Workspace) -> None:
-        """Where ``P_jj`` exceeds its limit, rotate in ``sqrt(a) [e_j^T, theta_j]`` (rho untouched)."""
+        """Where ``P_jj`` exceeds its limit, rotate in ``sqrt(a) [e_j^T, theta_j]`` (rho untouched).
+
+        ``sel`` selects the bank columns of this batch (a slice for the whole bank).
+        """
         n = self.n_params
-        cols = np.arange(idx.shape[0])
-        first = int(j[due].min())
+        b = j.shape[0]
+        j0 = int(j[0])
+        lockstep = bool((j == j0).all())      # the usual case: the whole bank updated together
+        if lockstep:
+            limit, inv_limit = self._limit[j0, sel], self._inv_limit[j0, sel]
+            first = j0
+        else:
+            cols = np.arange(b)
+            bank_cols = np.arange(self.n_channels)[sel]
+            limit, inv_limit = self._limit[j, bank_cols], self._inv_limit[j, bank_cols]
+            first = int(j[due].min())
         p_jj = covariance_diagonal(A, j, first, ws)
-        limit = self._limit[j, idx]
         over = due & (p_jj > limit)
         if not over.any():
             return
-        amp = np.zeros(idx.shape[0])
-        amp[over] = np.sqrt(self._inv_limit[j, idx][over] - 1.0 / p_jj[over])
-        first = int(j[over].min())
+        amp = np.zeros(b)
+        amp[over] = np.sqrt(inv_limit[over] - 1.0 / p_jj[over])
+        first = j0 if lockstep else int(j[over].min())
         theta = back_substitute(A, ws, stop=first)
         x = ws.row
         x.fill(0.0)
-        x[j, cols] = amp
-        x[n] = amp * theta[j, cols]
-        if over.all() and (j == first).all():
+        if lockstep:
+            x[j0] = amp
+            np.multiply(amp, theta[j0], out=x[n])
+        else:
+            x[j, cols] = amp
+            x[n] = amp * theta[j, cols]
+        if over.all() and lockstep:
             rotate_rows(A, x, None, ws, first=first)
         else:
             rotate_rows(A, x, None, ws, skip_before=np.where(over, j, n))
@@ -389,6 +413,33 @@ class RecursiveWLSBank:
     def factor(self) -> FloatArray:
         """Augmented factor ``[[R, q], [0, rho]]`` per channel, shape (K, n+1, n+1) (a copy)."""
         return np.moveaxis(self._A, 2, 0).copy()
+
+    def solution(self, channels: ArrayLike | None = None) -> tuple[FloatArray, NDArray[np.bool_]]:
+        """Current estimates by back-substitution ``R theta = q``.
+
+        Parameters
+        ----------
+        channels : array_like of int, shape (B,), optional
+            Channels to read (repeats allowed); default all.
+
+        Returns
+        -------
+        theta : ndarray, shape (n, B)
+            0 in the components that are not identifiable yet.
+        identifiable : ndarray of bool, shape (B,)
+            Every diagonal entry of R non-zero.
+        """
+        idx = self._all_channels if channels is None else np.asarray(channels, dtype=np.intp)
+        A = self._A[:, :, idx]
+        theta = back_substitute(A, Workspace(self.n_params, idx.shape[0])).copy()
+        diagonal = np.arange(self.n_params)
+        return theta, np.all(A[diagonal, diagonal] != 0.0, axis=0)
+
+    def solution_one(self, channel: int) -> tuple[list[float], bool]:
+        """Scalar twin of :meth:`solution` for one channel (same bits)."""
+        A = self._A[:, :, channel].tolist()
+        n = self.n_params
+        return back_substitute_scalar(A, n), all(A[i][i] != 0.0 for i in range(n))
 
     def kappa(self, channels: ArrayLike | None = None) -> FloatArray:
         """Ratio ``sum lambda^(2(k-i)) / sum lambda^(k-i)`` per channel, shape (B,).

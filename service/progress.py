@@ -41,7 +41,7 @@ class Progress:
         self._next = now + self._interval
         fraction = min(done / self._total, 1.0)
         width = 30
-        filled = int(round(fraction * width))
+        filled = round(fraction * width)
         rate = rows / max(now - self._start, 1e-9)
         self._stream.write(f"\r{self._label} [{'#' * filled}{'.' * (width - filled)}] "
                            f"{fraction * 100:5.1f}% {rows:,} rows {rate:,.0f} rows/s")

@@ -31,9 +31,10 @@ def test_unit_weighting_is_the_bank_with_unit_weights_bit_for_bit() -> None:
         u = float(rng.normal())
         y = 1.0 + 2.0 * u - 0.5 * u * u + float(rng.normal(0.0, 0.1))
         outcome = pipeline.apply({"u": u}, y)
-        e, h = bank.update_one(0, [1.0, u, u * u], y, 1.0)
+        e, leverage = bank.update_one(0, [1.0, u, u * u], y, 1.0)
         assert outcome.status == "applied" and outcome.weight == 1.0
         assert (outcome.innovation == e or (math.isnan(e) and math.isnan(outcome.innovation)))
+        assert outcome.leverage == leverage
     assert np.array_equal(pipeline.estimator.factor(), bank.factor()[0])
 
 
@@ -115,7 +116,7 @@ def test_operating_point_model_supplies_the_tracked_weight_once_warm() -> None:
 
 
 def test_settings_validate_their_arguments() -> None:
-    with pytest.raises(ValueError, match="forgetting_factor must be in \\(0, 1\\], got 0.0"):
+    with pytest.raises(ValueError, match=r"forgetting_factor must be in \(0, 1\], got 0.0"):
         ChannelSettings(terms=("1",), forgetting_factor=0.0)
     with pytest.raises(ValueError, match="weighting must be one of"):
         ChannelSettings(terms=("1",), weighting="other")
