@@ -30,8 +30,11 @@ Each update checks one parameter j (cycling through them); if
 with ``a = 1 / limit_j - 1 / P_jj``, which sets ``P_jj`` to the limit exactly
 (rank-one update of ``H``) without moving the estimate or the residual sum of
 squares. Between checks ``P_jj`` grows at most by ``1 / lambda`` per update, so
-once the channel is identifiable ``P_jj <= covariance_limit_j / lambda^n`` at all
-times. While the data keep every ``P_jj`` below its limit nothing is added and
+once every j has been checked (n - 1 updates after the channel became
+identifiable; before that an unchecked ``P_jj`` is whatever the first samples
+give) ``P_jj <= covariance_limit_j / lambda^(n-1)`` between updates, and
+``/ lambda^n`` inside one before its check; with z = 0 the bound is attained.
+While the data keep every ``P_jj`` below its limit nothing is added and
 the recursion is exactly exponentially weighted WLS (so ``rwls fit`` agrees with
 it). The limit applies only when ``lambda < 1``: without forgetting P never grows.
 

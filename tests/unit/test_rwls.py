@@ -8,7 +8,7 @@ import math
 import numpy as np
 import pytest
 
-from estimator import BankState, RecursiveWLSBank, RejectedSample, bank_statistics, fit_wls
+from estimator import BankState, RecursiveWLSBank, RejectedSample, ScalarRecursiveWLS, bank_statistics, fit_wls
 
 
 def _statistics(bank: RecursiveWLSBank, scale: str = "estimated"):
@@ -230,6 +230,8 @@ UPDATE_REJECTIONS = {
     "channel_too_large": (dict(channels=[0, 1, 3]), "bad_channel", r"channel index out of range 0\.\.2"),
     "channel_negative": (dict(channels=[-1, 0, 1]), "bad_channel", r"channel index out of range 0\.\.2"),
     "channel_twice": (dict(channels=[0, 2, 2]), "duplicate_channel", "a channel may appear once per vectorised step"),
+    "channels_not_integers": (dict(channels=[0.0, 1.5, 2.0]), "bad_channel",
+                              "channels must be integers, got dtype float64"),
 }
 
 
@@ -257,6 +259,7 @@ UPDATE_ONE_REJECTIONS = {
     "z_too_short": ((0, [1.0], 1.0, 1.0), "bad_shape", "z must have length 2, got 1"),
     "channel_too_large": ((3, [1.0, 1.0], 1.0, 1.0), "bad_channel", r"channel must be in 0\.\.2, got 3"),
     "channel_negative": ((-1, [1.0, 1.0], 1.0, 1.0), "bad_channel", r"channel must be in 0\.\.2, got -1"),
+    "channel_not_an_int": ((1.0, [1.0, 1.0], 1.0, 1.0), "bad_channel", r"channel must be in 0\.\.2, got 1\.0"),
 }
 
 
@@ -533,3 +536,74 @@ def test_without_limit_constant_input_winds_up_covariance_and_estimate() -> None
     # ... and the estimate drifts along it (measured 1.4e10 with this seed; asserted > 1).
     assert np.abs(theta[-1] - theta_before).max() > 1.0
     assert np.isfinite(bank.factor()).all()
+
+
+# ------------------------------------------------------- one channel on floats
+@pytest.mark.parametrize(("forgetting_factor", "covariance_limit"),
+                         [(1.0, 1e6), (0.98, 1e6), (0.95, [1e-2, 1e6, 1e-3])])
+def test_scalar_channel_is_bit_identical_to_a_one_channel_bank(make_regression, forgetting_factor, covariance_limit,
+                                                               assert_same_state) -> None:
+    data = make_regression(seed=60, n_samples=400, n_params=3, noise=1.0)
+    channel = ScalarRecursiveWLS(3, forgetting_factor, covariance_limit)
+    bank = RecursiveWLSBank(1, 3, forgetting_factor, covariance_limit)
+    rows = data.Z.copy()
+    rows[100:150] = 0.0                      # a dead stretch, so binding limits act
+    for i, (z, y, w) in enumerate(zip(rows, data.y, data.weight, strict=True)):
+        expected = bank.update_one(0, z, y, w) if i % 2 else bank.update(z[None], [y], [w])
+        got = channel.update(z, y, w)
+        e, h = (expected[0], expected[1]) if i % 2 else (expected.innovation[0], expected.leverage[0])
+        assert got[0] == e or (math.isnan(got[0]) and math.isnan(e))
+        assert got[1] == h
+    assert np.array_equal(channel.factor(), bank.factor()[0])
+    assert_same_state(channel.state(), bank.state())
+    assert channel.kappa() == bank.kappa_one(0)
+    assert channel.effective_count == bank.effective_count[0]
+    assert channel.sample_count == bank.sample_count[0] == 400
+
+
+def test_scalar_channel_state_round_trips_with_the_bank(assert_same_state) -> None:
+    bank = RecursiveWLSBank(1, 2, forgetting_factor=0.98, covariance_limit=[1e6, 1e-2])
+    _random_steps(bank, seed=7, steps=50)
+    channel = ScalarRecursiveWLS.from_state(bank.state())
+    assert_same_state(channel.state(), bank.state())
+    rng = np.random.default_rng(8)
+    for _ in range(200):
+        z, y, w = rng.normal(size=2), float(rng.normal()), float(rng.lognormal())
+        bank.update_one(0, z, y, w)
+        channel.update(z, y, w)
+    assert_same_state(channel.state(), bank.state())
+    assert_same_state(RecursiveWLSBank.from_state(channel.state()).state(), bank.state())
+
+
+def test_scalar_channel_from_state_needs_one_channel() -> None:
+    with pytest.raises(ValueError, match="state must hold one channel, got 3"):
+        ScalarRecursiveWLS.from_state(RecursiveWLSBank(3, 2).state())
+
+
+@pytest.mark.parametrize(
+    ("arguments", "reason", "match"),
+    [
+        (([np.nan, 1.0], 1.0, 1.0), "non_finite", "z and y must be finite"),
+        (([1.0, 1.0], np.inf, 1.0), "non_finite", "z and y must be finite"),
+        (([1.0, 1.0], 1.0, 0.0), "bad_weight", "weight must be finite and > 0, got 0.0"),
+        (([1.0, 1.0, 1.0], 1.0, 1.0), "bad_shape", "z must have length 2, got 3"),
+    ],
+    ids=["z_nan", "y_inf", "weight_zero", "z_too_long"],
+)
+def test_scalar_channel_rejects_bad_sample_and_keeps_state(arguments, reason, match, assert_same_state) -> None:
+    channel = ScalarRecursiveWLS(2, 0.98)
+    rng = np.random.default_rng(9)
+    for _ in range(10):
+        channel.update(rng.normal(size=2), float(rng.normal()))
+    before = channel.state()
+    with pytest.raises(RejectedSample, match=match) as info:
+        channel.update(*arguments)
+    assert info.value.reason == reason
+    assert_same_state(channel.state(), before)
+
+
+def test_scalar_channel_validates_its_arguments_like_the_bank() -> None:
+    with pytest.raises(ValueError, match=r"forgetting_factor must be in \(0, 1\], got 1\.2"):
+        ScalarRecursiveWLS(2, 1.2)
+    with pytest.raises(ValueError, match="covariance_limit must be > 0"):
+        ScalarRecursiveWLS(2, 0.98, 0.0)
