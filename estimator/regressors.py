@@ -104,6 +104,14 @@ def parse_term(text: str) -> Term:
     return Term(text=compact, factors=tuple(factors))
 
 
+def _monomial(term: Term) -> tuple[tuple[str, int, int], ...]:
+    """Canonical form of a term: sorted (name, lag, total power), so u*u == u^2 and a*b == b*a."""
+    powers: dict[tuple[str, int], int] = {}
+    for f in term.factors:
+        powers[f.name, f.lag] = powers.get((f.name, f.lag), 0) + f.power
+    return tuple(sorted((name, lag, power) for (name, lag), power in powers.items()))
+
+
 class RegressorSpec:
     """A parsed term list.
 
@@ -117,11 +125,12 @@ class RegressorSpec:
         if isinstance(terms, str) or len(terms) == 0:
             raise ValueError(f"terms must be a non-empty list of strings, got {terms!r}")
         parsed = [parse_term(t) for t in terms]
-        seen: set[str] = set()
+        seen: dict[tuple[tuple[str, int, int], ...], str] = {}
         for term in parsed:
-            if term.text in seen:
-                raise ValueError(f"terms: {term.text!r} appears twice")
-            seen.add(term.text)
+            key = _monomial(term)
+            if key in seen:
+                raise ValueError(f"terms: {term.text!r} is the same regressor as {seen[key]!r}")
+            seen[key] = term.text
         self.terms: tuple[Term, ...] = tuple(parsed)
         factors = [f for t in parsed for f in t.factors]
         self.input_names: tuple[str, ...] = tuple(sorted({f.name for f in factors if not f.is_output}))

@@ -372,7 +372,8 @@ class RecursiveWLSBank:
         RejectedSample
             As :meth:`update`; the state is untouched then.
         """
-        if not isinstance(channel, int | np.integer) or not 0 <= channel < self.n_channels:
+        if (isinstance(channel, bool) or not isinstance(channel, int | np.integer)
+                or not 0 <= channel < self.n_channels):
             raise RejectedSample("bad_channel", f"channel must be in 0..{self.n_channels - 1}, got {channel!r}")
         zs, y, weight = checked_sample(z, y, weight, self.n_params)
         A = self._A[:, :, channel].tolist()

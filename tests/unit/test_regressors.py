@@ -70,8 +70,11 @@ def test_parse_term_rejects_non_strings(value: object) -> None:
 @pytest.mark.parametrize(
     ("terms", "match"),
     [
-        (["u", "v", "u"], "'u' appears twice"),
-        (["a*b", "a * b"], r"'a\*b' appears twice"),
+        (["u", "v", "u"], "'u' is the same regressor as 'u'"),
+        (["a*b", "a * b"], r"'a\*b' is the same regressor as 'a\*b'"),
+        (["a*b", "b*a"], r"'b\*a' is the same regressor as 'a\*b'"),
+        (["u^2", "u*u"], r"'u\*u' is the same regressor as 'u\^2'"),
+        (["y[-1]*u", "u*y[-1]"], r"'u\*y\[-1\]' is the same regressor as 'y\[-1\]\*u'"),
         ([], "terms must be a non-empty list of strings"),
         ("u", "terms must be a non-empty list of strings"),
         (["u", 2], "term must be a string, got 2"),

@@ -260,6 +260,7 @@ UPDATE_ONE_REJECTIONS = {
     "channel_too_large": ((3, [1.0, 1.0], 1.0, 1.0), "bad_channel", r"channel must be in 0\.\.2, got 3"),
     "channel_negative": ((-1, [1.0, 1.0], 1.0, 1.0), "bad_channel", r"channel must be in 0\.\.2, got -1"),
     "channel_not_an_int": ((1.0, [1.0, 1.0], 1.0, 1.0), "bad_channel", r"channel must be in 0\.\.2, got 1\.0"),
+    "channel_a_bool": ((True, [1.0, 1.0], 1.0, 1.0), "bad_channel", r"channel must be in 0\.\.2, got True"),
 }
 
 
