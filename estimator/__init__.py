@@ -1,7 +1,8 @@
 """Pure-numpy recursive weighted least squares for sensor monitoring (no I/O)."""
 
 from estimator.batch import BatchFit, NotIdentifiable, fit_wls
-from estimator.channel import ChannelPipeline, ChannelSettings, SampleOutcome, WeightRule
+from estimator.channel import ChannelSettings, Sample, SampleOutcome, WeightRule
+from estimator.channel_bank import ChannelBank, ChannelView
 from estimator.log_variance import LogVarianceModel, LogVarianceState
 from estimator.regressors import Factor, NotUsable, RegressorBuilder, RegressorSpec, Term, parse_term
 from estimator.rwls import BankState, RecursiveWLSBank, RejectedSample, UpdateResult
@@ -12,9 +13,10 @@ from estimator.variance import NoiseVarianceTracker, TrackerState
 __all__ = [
     "BankState",
     "BatchFit",
-    "ChannelPipeline",
+    "ChannelBank",
     "ChannelSettings",
     "ChannelStatistics",
+    "ChannelView",
     "Factor",
     "LogVarianceModel",
     "LogVarianceState",
@@ -25,6 +27,7 @@ __all__ = [
     "RegressorBuilder",
     "RegressorSpec",
     "RejectedSample",
+    "Sample",
     "SampleOutcome",
     "ScalarRecursiveWLS",
     "Term",

@@ -1,4 +1,4 @@
-"""One channel's sample pipeline: regressor, weight, recursive update, noise tracking.
+"""A channel's settings and the per-sample rules: which samples are refused, what weight the rest get.
 
 The order of work for an accepted sample k is fixed, and is the same offline
 (``rwls replay``) and live:
@@ -31,13 +31,10 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
-from estimator.log_variance import LogVarianceModel
-from estimator.regressors import NotUsable, RegressorBuilder, RegressorSpec
-from estimator.rwls import RejectedSample
-from estimator.rwls_scalar import ScalarRecursiveWLS
-from estimator.variance import NoiseVarianceTracker
+from estimator.regressors import RegressorSpec
 
-__all__ = ["ChannelPipeline", "ChannelSettings", "SampleOutcome", "WeightRule"]
+__all__ = ["ChannelCounters", "ChannelSettings", "Prepared", "Sample", "SampleOutcome", "WeightRule",
+           "check_sample", "sample_weight"]
 
 WEIGHTINGS = ("unit", "sample", "tracked")
 
@@ -106,136 +103,88 @@ class SampleOutcome:
     regressor: list[float] | None = None
 
 
+@dataclass(frozen=True)
+class Sample:
+    """One measurement for one channel, as ingest or a CSV row delivers it."""
+
+    channel: str
+    y: float
+    inputs: Mapping[str, float]
+    t: float | None = None
+    sigma: float | None = None
+    weight: float | None = None
+
+
 @dataclass
-class _Counters:
+class ChannelCounters:
+    """Samples applied, held for lag warm-up, and rejected by reason."""
+
     applied: int = 0
     warmup: int = 0
     rejected: dict[str, int] = field(default_factory=dict)
 
 
-class ChannelPipeline:
-    """The pipeline of one channel, on the scalar (one-sample) paths."""
+@dataclass
+class Prepared:
+    """A sample that passed the channel's checks, ready for the recursive update."""
 
-    def __init__(self, settings: ChannelSettings) -> None:
-        self.settings = settings
-        self.spec = RegressorSpec(settings.terms)
-        self.builder = RegressorBuilder(self.spec)
-        self.estimator = ScalarRecursiveWLS(self.spec.n_params, settings.forgetting_factor,
-                                            settings.covariance_limit)
-        self.tracker = NoiseVarianceTracker(
-            1, settings.noise_half_life, time_based=settings.noise_half_life_in_seconds,
-            robust=settings.noise_robust, warmup=settings.noise_warmup)
-        self.noise_spec = RegressorSpec(settings.noise_model_terms) if settings.noise_model_terms else None
-        self.noise_model = (LogVarianceModel(1, self.noise_spec.n_params,
-                                             settings.noise_model_forgetting_factor)
-                            if self.noise_spec is not None else None)
-        self._noise_builder = RegressorBuilder(self.noise_spec) if self.noise_spec is not None else None
-        self.counters = _Counters()
-        self.last_t: float | None = None
-        self._last_tracked_t: float | None = None
+    sample: Sample
+    z: list[float]
+    z_noise: list[float] | None
+    weight: float
 
-    def _reject(self, reason: str) -> SampleOutcome:
-        self.counters.rejected[reason] = self.counters.rejected.get(reason, 0) + 1
-        return SampleOutcome("rejected", reason)
 
-    def weight_for(self, inputs: Mapping[str, float], sigma: float | None, weight: float | None,
-                   z_noise: list[float] | None) -> float:
-        """The weight of a sample (see the module docstring); raises ValueError ``missing_weight``."""
-        s = self.settings
-        if s.weighting == "unit":
-            w = 1.0
-        elif s.weighting == "sample":
-            if sigma is not None:
-                w = 1.0 / (sigma * sigma)
-            elif weight is not None:
-                w = weight
-            else:
-                raise ValueError("missing_weight")
+def check_sample(settings: ChannelSettings, sample: Sample, last_t: float | None) -> str | None:
+    """The reason a sample is refused before any regressor is built, or None.
+
+    Order: non-finite values, sigma and weight signs, time ordering, time
+    required by a half-life in seconds, inputs present.
+    """
+    values = [sample.y, *sample.inputs.values()]
+    if sample.sigma is not None:
+        values.append(sample.sigma)
+    if sample.weight is not None:
+        values.append(sample.weight)
+    if not all(math.isfinite(v) for v in values):
+        return "non_finite"
+    if sample.sigma is not None and sample.sigma <= 0.0:
+        return "bad_sigma"
+    if sample.weight is not None and sample.weight <= 0.0:
+        return "bad_weight"
+    t = sample.t
+    if t is not None and not math.isfinite(t):
+        return "bad_time"
+    if t is not None and last_t is not None and t <= last_t:
+        return "duplicate_time" if t == last_t else "out_of_order"
+    if t is None and settings.noise_half_life_in_seconds:
+        return "missing_time"          # a half-life in seconds needs the sample's time
+    for name in settings.input_names:
+        if name not in sample.inputs:
+            return "missing_input"
+    return None
+
+
+def sample_weight(settings: ChannelSettings, sample: Sample, tracked_variance: float) -> float | None:
+    """The weight of a sample (see the module docstring); None when ``sample`` weighting has nothing.
+
+    ``tracked_variance`` is the noise variance known before this sample (NaN
+    when there is none yet), used by ``tracked`` weighting.
+    """
+    if settings.weighting == "unit":
+        w = 1.0
+    elif settings.weighting == "sample":
+        if sample.sigma is not None:
+            w = 1.0 / (sample.sigma * sample.sigma)
+        elif sample.weight is not None:
+            w = sample.weight
         else:
-            variance = math.nan
-            if self.noise_model is not None and z_noise is not None:
-                variance = self.noise_model.variance_one(0, z_noise)
-            if not math.isfinite(variance):
-                variance = self.tracker.variance_one(0)
-            if not (math.isfinite(variance) and variance > 0.0):
-                variance = s.initial_sigma * s.initial_sigma
-            w = 1.0 / variance
-        for rule in s.weight_rules:
-            if rule.low <= inputs[rule.input] <= rule.high:
-                w = w * rule.factor
-        return w
-
-    def apply(self, inputs: Mapping[str, float], y: float, *, t: float | None = None,
-              sigma: float | None = None, weight: float | None = None) -> SampleOutcome:
-        """Apply one sample; never raises on bad data, returns the outcome instead.
-
-        Parameters
-        ----------
-        inputs : mapping of input name to float
-        y : float
-        t : float, optional
-            Epoch seconds; must increase strictly from sample to sample when given.
-        sigma, weight : float, optional
-            Per-sample noise standard deviation or weight (``sample`` weighting).
-        """
-        values = [y, *inputs.values()]
-        if sigma is not None:
-            values.append(sigma)
-        if weight is not None:
-            values.append(weight)
-        if not all(math.isfinite(v) for v in values):
-            return self._reject("non_finite")
-        if sigma is not None and sigma <= 0.0:
-            return self._reject("bad_sigma")
-        if weight is not None and weight <= 0.0:
-            return self._reject("bad_weight")
-        if t is not None and self.last_t is not None and t <= self.last_t:
-            return self._reject("duplicate_time" if t == self.last_t else "out_of_order")
-        if t is None and self.settings.noise_half_life_in_seconds:
-            return self._reject("missing_time")     # a half-life in seconds needs the sample's time
-        for name in self.settings.input_names:
-            if name not in inputs:
-                return self._reject("missing_input")
-        try:
-            z = self.builder.row(inputs)
-            z_noise = self._noise_builder.row(inputs) if self._noise_builder is not None else None
-        except NotUsable as exc:
-            if exc.reason != "lags_not_filled":
-                return self._reject(exc.reason)
-            self._accept_without_update(inputs, y, t)
-            self.counters.warmup += 1
-            return SampleOutcome("warmup")
-        try:
-            w = self.weight_for(inputs, sigma, weight, z_noise)
-        except ValueError:
-            return self._reject("missing_weight")
-        if not (math.isfinite(w) and w > 0.0):
-            return self._reject("bad_weight")
-        kappa = self.estimator.kappa()
-        try:
-            innovation, leverage = self.estimator.update(z, y, w)
-        except RejectedSample as exc:
-            return self._reject(exc.reason)
-        elapsed = None
-        if self.settings.noise_half_life_in_seconds and self._last_tracked_t is not None:
-            elapsed = t - self._last_tracked_t     # > 0: t is present and strictly increasing here
-        if self.tracker.update_one(0, innovation, leverage, kappa, elapsed) and t is not None:
-            self._last_tracked_t = t
-        if self.noise_model is not None and z_noise is not None:
-            self.noise_model.update_one(0, z_noise, innovation, leverage, kappa)
-        self._accept_without_update(inputs, y, t)
-        self.counters.applied += 1
-        return SampleOutcome("applied", innovation=innovation, leverage=leverage, weight=w, regressor=z)
-
-    def _accept_without_update(self, inputs: Mapping[str, float], y: float, t: float | None) -> None:
-        self.builder.push(inputs, y)
-        if self._noise_builder is not None:
-            self._noise_builder.push(inputs, y)
-        if t is not None:
-            self.last_t = t
-
-    @property
-    def noise_sigma(self) -> float:
-        """Tracked noise standard deviation, NaN until warmed up."""
-        variance = self.tracker.variance_one(0)
-        return math.sqrt(variance) if math.isfinite(variance) and variance >= 0.0 else math.nan
+            return None
+    else:
+        variance = tracked_variance
+        if not (math.isfinite(variance) and variance > 0.0):
+            variance = settings.initial_sigma * settings.initial_sigma
+        w = 1.0 / variance
+    for rule in settings.weight_rules:
+        if rule.low <= sample.inputs[rule.input] <= rule.high:
+            w = w * rule.factor
+    return w

@@ -11,22 +11,22 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
 
 from estimator.batch import NotIdentifiable, fit_wls
-from estimator.channel import ChannelPipeline
-from estimator.statistics import bank_statistics, student_t_quantile
+from estimator.channel import Sample
+from estimator.channel_bank import ChannelBank
 from service.config import RwlsConfig
 from service.csvdata import BadRow, CsvSource
 from service.progress import Progress
+from service.reports import channel_report, finite_or_null
 
 __all__ = ["RunResult", "fit_file", "replay_file"]
 
 MAX_LISTED_ROWS = 1000   # bad rows and rejections listed with line numbers; all are counted
-INTERVAL_LEVEL = 0.95
 
 
 @dataclass
@@ -40,22 +40,12 @@ class RunResult:
 
     def to_json(self) -> dict[str, object]:
         """The ``--json`` document (NaN and inf become null)."""
-        return _finite_or_null({
+        return finite_or_null({
             "channels": self.channels,
             "rows": self.rows,
             "bad_rows": self.bad_rows,
             "problems": self.listed_problems,
         })
-
-
-def _finite_or_null(value: object) -> object:
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, dict):
-        return {k: _finite_or_null(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_finite_or_null(v) for v in value]
-    return value
 
 
 def _note(result: RunResult, line: int, channel: str | None, reason: str, detail: str = "") -> None:
@@ -70,10 +60,10 @@ def _note(result: RunResult, line: int, channel: str | None, reason: str, detail
 
 def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool | None,
          on_applied: Callable[[str, list[float], float, float], None] | None = None
-         ) -> tuple[dict[str, ChannelPipeline], RunResult]:
-    pipelines = {cid: ChannelPipeline(ch.settings()) for cid, ch in config.channels.items()}
-    inputs = {name for p in pipelines.values() for name in p.settings.input_names}
-    only = next(iter(pipelines)) if len(pipelines) == 1 else None
+         ) -> tuple[ChannelBank, RunResult]:
+    bank = ChannelBank({cid: ch.settings() for cid, ch in config.channels.items()})
+    inputs = {name for cid in bank.channel_ids for name in bank.settings(cid).input_names}
+    only = bank.channel_ids[0] if len(bank.channel_ids) == 1 else None
     source = CsvSource(data, inputs, need_channel=only is None)
     result = RunResult(channels={})
     progress = Progress(source.total_chars, label, enabled=show_progress)
@@ -86,47 +76,17 @@ def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool |
             _note(result, row.line, None, row.reason, row.detail)
             continue
         cid = row.channel if only is None else (row.channel or only)
-        pipeline = pipelines.get(cid) if cid is not None else None
-        if pipeline is None:
+        if cid is None or cid not in bank:
             result.bad_rows += 1
             _note(result, row.line, cid, "unknown_channel")
             continue
-        outcome = pipeline.apply(row.inputs, row.y, t=row.t, sigma=row.sigma, weight=row.weight)
+        outcome = bank.apply_one(Sample(cid, row.y, row.inputs, row.t, row.sigma, row.weight))
         if outcome.status == "rejected":
             _note(result, row.line, cid, outcome.reason)
         elif outcome.status == "applied" and on_applied is not None and outcome.regressor is not None:
             on_applied(cid, outcome.regressor, row.y, outcome.weight)
     progress.close()
-    return pipelines, result
-
-
-def _report(pipeline: ChannelPipeline, theta: np.ndarray, cov: np.ndarray, residual_sd: float,
-            effective_count: float, min_information: float, condition: float) -> dict[str, object]:
-    names = pipeline.spec.names
-    std = np.sqrt(np.clip(np.diagonal(cov), 0.0, None)) if np.all(np.isfinite(cov)) else np.full(len(names), np.nan)
-    dof = effective_count - len(names)
-    t_q = student_t_quantile(0.5 + INTERVAL_LEVEL / 2, dof) if dof >= 1 else math.nan
-    counters = pipeline.counters
-    return {
-        "terms": names,
-        "parameters": {n: float(v) for n, v in zip(names, theta, strict=True)},
-        "std_errors": {n: float(v) for n, v in zip(names, std, strict=True)},
-        "intervals_95": {n: [float(v - t_q * s), float(v + t_q * s)]
-                         for n, v, s in zip(names, theta, std, strict=True)},
-        "covariance": cov.tolist(),
-        "residual_sd": float(residual_sd),
-        "noise_sigma": pipeline.noise_sigma,
-        "samples": counters.applied,
-        "rejected": sum(counters.rejected.values()),
-        "rejections": dict(sorted(counters.rejected.items())),
-        "warmup": counters.warmup,
-        "forgetting_factor": pipeline.settings.forgetting_factor,
-        "weighting": pipeline.settings.weighting,
-        "covariance_scale": pipeline.settings.covariance_scale,
-        "effective_count": float(effective_count),
-        "min_information": float(min_information),
-        "information_condition": float(condition),
-    }
+    return bank, result
 
 
 def replay_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = None) -> RunResult:
@@ -137,15 +97,9 @@ def replay_file(data: str | Path, config: RwlsConfig, show_progress: bool | None
     service.csvdata.CsvError
         The file cannot be used at all (bad rows never raise).
     """
-    pipelines, result = _run(data, config, "replay", show_progress)
-    for cid, pipeline in pipelines.items():
-        estimator = pipeline.estimator
-        stats = bank_statistics(estimator.factor()[None], [estimator.effective_count],
-                                scale=pipeline.settings.covariance_scale)
-        result.channels[cid] = _report(
-            pipeline, stats.parameters[0], stats.covariance[0], float(stats.residual_sd[0]),
-            float(stats.effective_count[0]), float(stats.min_information[0]),
-            float(stats.information_condition[0]))
+    bank, result = _run(data, config, "replay", show_progress)
+    for cid, view in bank.view().items():
+        result.channels[cid] = channel_report(view)
     return result
 
 
@@ -164,27 +118,33 @@ def fit_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = 
         ys.append(y)
         ws.append(w)
 
-    pipelines, result = _run(data, config, "fit", show_progress, on_applied=collect)
-    for cid, pipeline in pipelines.items():
+    bank, result = _run(data, config, "fit", show_progress, on_applied=collect)
+    for cid, view in bank.view().items():
         Z, ys, ws = rows[cid]
-        n = pipeline.spec.n_params
-        lam = pipeline.settings.forgetting_factor
+        n = len(view.terms)
+        scale = view.settings.covariance_scale
         Zarr = np.array(Z, dtype=np.float64).reshape(-1, n)
         try:
-            fit = fit_wls(Zarr, np.array(ys), np.array(ws), lam)
+            fit = fit_wls(Zarr, np.array(ys), np.array(ws), view.settings.forgetting_factor)
         except NotIdentifiable as exc:
             nan = np.full(n, np.nan)
-            report = _report(pipeline, nan, np.full((n, n), np.nan), math.nan, float(len(ys)), 0.0, math.inf)
+            failed = replace(view, parameters=nan, std_errors=nan, covariance=np.full((n, n), np.nan),
+                             residual_sd=math.nan, dof=math.nan, noise_sigma=math.nan,
+                             min_information=0.0, information_condition=math.inf)
+            report = channel_report(failed)
             report["error"] = f"not identifiable: {exc}"
             result.channels[cid] = report
             continue
         dof = fit.effective_count - n
         residual_var = fit.residual_ss / dof if dof > 0 else math.nan
-        cov = fit.unscaled_covariance * (residual_var if pipeline.settings.covariance_scale == "estimated" else 1.0)
+        cov = fit.unscaled_covariance * (residual_var if scale == "estimated" else 1.0)
         # Eigenvalues of the information Z^T W Z from the singular values of sqrt(W) Z.
         singular = np.linalg.svd(Zarr * np.sqrt(fit.weights)[:, None], compute_uv=False)
-        report = _report(pipeline, fit.parameters, cov, math.sqrt(residual_var), fit.effective_count,
-                         float(singular[-1] ** 2), float((singular[0] / singular[-1]) ** 2))
-        report["noise_sigma"] = None   # the batch fit tracks no noise; see residual_sd
-        result.channels[cid] = report
+        batch_view = replace(
+            view, parameters=fit.parameters, covariance=cov,
+            std_errors=np.sqrt(np.clip(np.diagonal(cov), 0.0, None)), residual_sd=math.sqrt(residual_var),
+            dof=dof, noise_sigma=math.nan,      # the batch fit tracks no noise; see residual_sd
+            effective_count=fit.effective_count, min_information=float(singular[-1] ** 2),
+            information_condition=float((singular[0] / singular[-1]) ** 2))
+        result.channels[cid] = channel_report(batch_view)
     return result

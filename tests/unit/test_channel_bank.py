@@ -1,0 +1,122 @@
+"""ChannelBank: micro-batches across channels give the bits of one-at-a-time application."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from estimator.channel import ChannelSettings, Sample, WeightRule
+from estimator.channel_bank import ChannelBank
+
+SETTINGS = {
+    # Same shape (n = 2, sample-count tracker): one group, vectorised together.
+    "temp": ChannelSettings(terms=("1", "u"), forgetting_factor=0.999, weighting="tracked", initial_sigma=0.5),
+    "dp": ChannelSettings(terms=("1", "u"), forgetting_factor=0.98, covariance_limit=10.0,
+                          weight_rules=(WeightRule("u", -0.5, 0.5, 3.0),)),
+    "flowish": ChannelSettings(terms=("u", "1"), weighting="sample"),
+    # Other shapes: their own groups.
+    "flow": ChannelSettings(terms=("1", "u", "u^2"), forgetting_factor=0.995),
+    "o2": ChannelSettings(terms=("1", "y[-1]", "u"), forgetting_factor=0.999, weighting="tracked",
+                          noise_model_terms=("1", "u")),
+    "timed": ChannelSettings(terms=("1", "u"), weighting="tracked", noise_half_life=60.0,
+                             noise_half_life_in_seconds=True, noise_robust=True),
+}
+
+
+def _stream(seed: int, count: int) -> list[Sample]:
+    """Interleaved samples of every channel, with a few bad ones mixed in."""
+    rng = np.random.default_rng(seed)
+    samples = []
+    for k in range(count):
+        for cid in SETTINGS:
+            u = float(rng.normal())
+            y = 1.0 + 0.5 * u + float(rng.normal(0.0, 0.2))
+            t = 1000.0 + 10.0 * k + float(rng.uniform(0.0, 5.0))
+            sigma = 0.2 if cid == "flowish" else None
+            samples.append(Sample(cid, y, {"u": u}, t, sigma))
+        if k % 97 == 13:
+            samples.append(Sample("temp", math.nan, {"u": 1.0}, 1000.0 + 10.0 * k + 9.0))
+            samples.append(Sample("flow", 1.0, {}, 1000.0 + 10.0 * k + 9.5))
+            samples.append(Sample("nobody", 1.0, {"u": 1.0}))
+            samples.append(Sample("dp", 1.0, {"u": 1.0}, 0.0))       # out of order
+    return samples
+
+
+def _arrays(bank: ChannelBank) -> list[np.ndarray]:
+    out = []
+    for group in bank._groups:
+        state = group.bank.state()
+        out += [state.factor, state.effective_count, state.effective_count_sq, state.sample_count]
+        out += [v for v in vars(group.tracker.state()).values() if isinstance(v, np.ndarray)]
+        if group.model is not None:
+            model_state = group.model.state()
+            out += [v for v in vars(model_state).values() if isinstance(v, np.ndarray)]
+    return out
+
+
+@pytest.mark.parametrize("batch", [2, 7, 64, 1000])
+def test_micro_batches_give_the_bits_of_one_sample_at_a_time(batch: int) -> None:
+    samples = _stream(seed=5, count=300)
+    one_by_one, batched = ChannelBank(SETTINGS), ChannelBank(SETTINGS)
+    expected = [one_by_one.apply_one(s) for s in samples]
+    got = []
+    for start in range(0, len(samples), batch):
+        got += batched.apply(samples[start:start + batch])
+    assert [(o.status, o.reason) for o in got] == [(o.status, o.reason) for o in expected]
+    for a, b in zip(got, expected, strict=True):
+        assert a.weight == b.weight or (math.isnan(a.weight) and math.isnan(b.weight))
+        assert a.innovation == b.innovation or (math.isnan(a.innovation) and math.isnan(b.innovation))
+    for a, b in zip(_arrays(batched), _arrays(one_by_one), strict=True):
+        assert np.array_equal(a, b, equal_nan=True)
+    assert len(batched._groups) == 4      # the three n = 2 sample-count channels share a group
+
+
+def test_samples_of_one_channel_keep_their_order_within_a_batch() -> None:
+    bank = ChannelBank({"a": ChannelSettings(terms=("1", "y[-1]"))})
+    samples = [Sample("a", float(k), {}, float(k)) for k in range(5)]
+    outcomes = bank.apply(samples)
+    assert [o.status for o in outcomes] == ["warmup", "applied", "applied", "applied", "applied"]
+    # y_k = 1 + y_{k-1} exactly: after the warm-up sample the fit is exact.
+    view = bank.view()["a"]
+    np.testing.assert_allclose(view.parameters, [1.0, 1.0], rtol=1e-12)
+
+
+def test_unknown_channels_and_bad_samples_are_refused_with_reasons() -> None:
+    bank = ChannelBank(SETTINGS)
+    outcomes = bank.apply([Sample("nobody", 1.0, {"u": 1.0}), Sample("temp", 1.0, {}),
+                           Sample("flowish", 1.0, {"u": 1.0}), Sample("dp", 1.0, {"u": 1e200 * 1e200})])
+    assert [o.reason for o in outcomes] == ["unknown_channel", "missing_input", "missing_weight", "non_finite"]
+    view = bank.view()
+    assert view["temp"].rejected == {"missing_input": 1}
+    assert view["flowish"].rejected == {"missing_weight": 1}
+
+
+def test_an_overflowing_regressor_in_a_vectorised_round_refuses_only_its_sample() -> None:
+    settings = {c: ChannelSettings(terms=("1", "u^2")) for c in ("a", "b", "c")}
+    bank = ChannelBank(settings)
+    outcomes = bank.apply([Sample("a", 1.0, {"u": 1.0}), Sample("b", 1.0, {"u": 1e200}),
+                           Sample("c", 2.0, {"u": 2.0})])
+    assert [(o.status, o.reason) for o in outcomes] == [("applied", ""), ("rejected", "non_finite"),
+                                                         ("applied", "")]
+
+
+def test_view_reports_every_channel_with_its_settings() -> None:
+    bank = ChannelBank(SETTINGS)
+    bank.apply(_stream(seed=2, count=100))
+    views = bank.view()
+    assert list(views) == list(SETTINGS)
+    assert views["flow"].terms == ("1", "u", "u^2")
+    assert views["temp"].settings is SETTINGS["temp"]
+    for view in views.values():
+        assert view.identifiable
+        assert np.isfinite(view.parameters).all() and np.isfinite(view.std_errors).all()
+    # Tracked weighting learns sigma = 0.2 (invented data above); 25 % covers the EWMA's spread
+    # over a 200-sample half-life at 100 samples.
+    assert views["temp"].noise_sigma == pytest.approx(0.2, rel=0.25)
+
+
+def test_empty_configuration_is_refused() -> None:
+    with pytest.raises(ValueError, match="at least one channel"):
+        ChannelBank({})
