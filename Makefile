@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test test-fast bench lint clean
+.PHONY: demo replay-demo test test-fast bench lint clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -12,8 +12,12 @@ $(STAMP): pyproject.toml
 	$(PY) -m pip install --quiet -e '.[test,bench]'
 	touch $(STAMP)
 
-## demo: replay the bundled Larkspur Valley demo history and write a report
+## demo: embedded broker + simulated plant + service; prints the URL (Ctrl-C stops)
 demo: $(STAMP)
+	$(VENV)/bin/rwls demo
+
+## replay-demo: the offline path on the bundled demo history
+replay-demo: $(STAMP)
 	$(VENV)/bin/rwls replay examples/larkspur_sub7.csv --config examples/larkspur_sub7.toml
 
 ## test: every test layer (unit, property, reference, slow robustness runs)

@@ -147,8 +147,8 @@ def check_sample(settings: ChannelSettings, sample: Sample, last_t: float | None
         values.append(sample.weight)
     if not all(math.isfinite(v) for v in values):
         return "non_finite"
-    if sample.sigma is not None and sample.sigma <= 0.0:
-        return "bad_sigma"
+    if sample.sigma is not None and not (sample.sigma > 0.0 and 0.0 < sample.sigma * sample.sigma < math.inf):
+        return "bad_sigma"         # sigma <= 0, or so small or large that 1 / sigma^2 is no weight
     if sample.weight is not None and sample.weight <= 0.0:
         return "bad_weight"
     t = sample.t

@@ -1,4 +1,4 @@
-"""The ``rwls`` command line: offline ``replay`` and ``fit`` of CSV histories, ``check-config``.
+"""The ``rwls`` command line: ``serve``, ``demo``, ``simulate``, offline ``replay`` and ``fit``, ``check-config``.
 
 Exit status: 0 done, 1 the data file cannot be used, 2 bad usage or configuration.
 Bad rows never fail a run; they are counted and listed with their line numbers.
@@ -42,6 +42,27 @@ def _parser() -> argparse.ArgumentParser:
 
     check = sub.add_parser("check-config", help="validate a configuration file and explain errors by key")
     check.add_argument("config", help="TOML file")
+    check.add_argument("--serve", action="store_true", help="also require what serving needs (channel topics)")
+
+    serve = sub.add_parser("serve", help="run the live service: MQTT ingest, engine and REST API")
+    serve.add_argument("-c", "--config", required=True, help="TOML file (RWLS_* environment variables override)")
+    serve.add_argument("--host", help="override http.host")
+    serve.add_argument("--port", type=int, help="override http.port (0: a free port)")
+    serve.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+
+    demo = sub.add_parser("demo", help="embedded broker + simulated plant + service, on a free or given port")
+    demo.add_argument("--host", default="127.0.0.1")
+    demo.add_argument("--port", type=int, default=8080, help="0 picks a free port")
+    demo.add_argument("--rate", type=float, default=100.0, help="plant samples per second, all channels")
+    demo.add_argument("--data-dir", default="rwls-demo-data")
+    demo.add_argument("--exit-after", type=float, metavar="SECONDS", help="stop by itself (smoke tests)")
+
+    simulate = sub.add_parser("simulate", help="publish the demo plant (Larkspur Valley, substation 7) to a broker")
+    simulate.add_argument("--broker", default="mqtt://127.0.0.1:1883", help="mqtt://host:port")
+    simulate.add_argument("--prefix", default="larkspur", help="topic prefix (channels go under it)")
+    simulate.add_argument("--rate", type=float, default=200.0, help="messages per second, all channels")
+    simulate.add_argument("--samples", type=int, help="samples per channel (default: until Ctrl-C)")
+    simulate.add_argument("--seed", type=int, default=7)
     return parser
 
 
@@ -54,15 +75,80 @@ def _with_forgetting(config: RwlsConfig, value: float | None) -> RwlsConfig:
     return config.model_copy(update={"channels": channels})
 
 
+def _serve(args: argparse.Namespace) -> int:
+    import socket
+
+    import uvicorn
+
+    from service.api import create_app
+    from service.runtime import AlreadyRunning, Runtime
+
+    config = load_config(args.config)
+    runtime = Runtime(config)           # checks the topics (ConfigError by key)
+    host = args.host or config.http.host
+    port = config.http.port if args.port is None else args.port
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+    sock.bind((host, port))
+    try:
+        runtime.start()                 # takes the ingest lock first: fails fast if another process owns it
+    except AlreadyRunning as exc:
+        print(f"rwls: {exc}", file=sys.stderr)
+        return 2
+    # One process, one worker: the engine is the single writer (see service/runtime.py).
+    app = create_app(runtime, manage_runtime=False)
+    server = uvicorn.Server(uvicorn.Config(app, log_level=args.log_level, lifespan="on"))
+    print(f"rwls: serving http://{host}:{sock.getsockname()[1]}/ ; {ADVISORY}", flush=True)
+    try:
+        server.run(sockets=[sock])
+    finally:
+        runtime.stop()
+    return 0
+
+
+def _simulate(args: argparse.Namespace) -> int:
+    from service.config import parse_config
+    from service.simulate import simulate
+
+    broker = parse_config({"channels": {"x": {"terms": ["1"]}}, "broker": {"url": args.broker}}).broker
+    print(f"rwls simulate: publishing the demo plant to {args.broker} under {args.prefix}/ at {args.rate:g}/s",
+          flush=True)
+    try:
+        stats = simulate(broker.host, broker.port, prefix=args.prefix, rate=args.rate, samples=args.samples,
+                         seed=args.seed)
+    except ConnectionError as exc:
+        print(f"rwls simulate: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        return 0
+    print(f"rwls simulate: published {stats.published}, acknowledged {stats.acknowledged}, "
+          f"refused {stats.refused}")
+    return 0 if stats.refused == 0 and stats.acknowledged == stats.published else 1
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``rwls`` console script; returns the exit status."""
-    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
     args = _parser().parse_args(argv)
+    level = logging.INFO if args.command in ("serve", "demo") else logging.WARNING
+    logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     try:
         if args.command == "check-config":
             config = load_config(args.config)
+            if args.serve:
+                config.require_topics()
             print(f"{args.config}: ok, {len(config.channels)} channel(s): {', '.join(config.channels)}")
             return 0
+        if args.command == "serve":
+            return _serve(args)
+        if args.command == "demo":
+            from service.demo import run_demo
+            try:
+                return run_demo(host=args.host, port=args.port, rate=args.rate, data_dir=args.data_dir,
+                                exit_after=args.exit_after)
+            except KeyboardInterrupt:
+                return 0
+        if args.command == "simulate":
+            return _simulate(args)
         config = _with_forgetting(load_config(args.config), args.forgetting_factor)
         run = replay_file if args.command == "replay" else fit_file
         result: RunResult = run(args.data, config, show_progress=False if args.no_progress else None)

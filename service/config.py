@@ -1,25 +1,58 @@
-"""Configuration: one validated model read from a TOML file.
+"""Configuration: one validated model read from a TOML file and ``RWLS_`` environment variables.
 
 A bad value stops the program with a message naming the key, e.g.
 ``channels.sub7_flow.forgetting_factor: must be in (0, 1], got 1.2``.
+
+Environment variables override the file before validation: ``RWLS_HTTP__PORT=9090`` sets
+``http.port``; ``__`` separates levels, which are lower-cased except a channel id
+(``RWLS_CHANNELS__Flow__FORGETTING_FACTOR`` sets ``channels.Flow.forgetting_factor``).
+A value is read as a TOML value when it parses as one (``9090``, ``true``, ``["1", "u"]``),
+else as text; a text key (``broker.password``, ``broker.client_id``, a topic) always gets text.
+The broker password is a ``SecretStr``: it never shows in ``repr`` or in an error message.
 """
 
 from __future__ import annotations
 
 import math
+import os
 import re
 import tomllib
+import types
+from collections.abc import Mapping
 from pathlib import Path
-from typing import Literal
+from typing import Literal, Union, get_args, get_origin
+from urllib.parse import urlsplit
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SecretStr,
+    ValidationError,
+    ValidationInfo,
+    field_validator,
+    model_validator,
+)
 
 from estimator.channel import ChannelSettings, WeightRule
 from estimator.regressors import RegressorSpec
 
-__all__ = ["ChannelConfig", "ConfigError", "RwlsConfig", "load_config", "parse_config"]
+__all__ = [
+    "BrokerConfig",
+    "ChannelConfig",
+    "ConfigError",
+    "EngineConfig",
+    "HttpConfig",
+    "RwlsConfig",
+    "StoreConfig",
+    "load_config",
+    "parse_config",
+]
 
 _CHANNEL_ID = re.compile(r"^[A-Za-z0-9_.-]{1,128}$")
+_ENV_PREFIX = "RWLS_"
+_BROKER_SCHEMES = {"mqtt": (1883, False), "mqtts": (8883, True)}
+_TOPIC_MAX_BYTES = 65535  # MQTT strings carry a two-byte length prefix
 
 
 class ConfigError(Exception):
@@ -32,6 +65,51 @@ class ConfigError(Exception):
 
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class _StrictValues(_Strict):
+    # No coercion in the service sections: ``port = "80"`` or ``qos = true`` is a mistake to report.
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+
+
+def _check_topic(value: str) -> str:
+    """A concrete MQTT topic name (publish or exact subscription), as MQTT 3.1.1 section 4.7 allows."""
+    if not value:
+        raise ValueError("must not be empty")
+    if "+" in value or "#" in value:
+        raise ValueError(f"MQTT wildcards '+' and '#' are not allowed, got {value!r}")
+    if "\x00" in value:
+        raise ValueError("must not contain a NUL character")
+    if len(value.encode("utf-8")) > _TOPIC_MAX_BYTES:
+        raise ValueError(f"must be at most {_TOPIC_MAX_BYTES} bytes of UTF-8")
+    return value
+
+
+def _split_broker_url(url: str) -> tuple[str, int, bool]:
+    """``(host, port, tls)`` of an ``mqtt://`` or ``mqtts://`` URL; ``ValueError`` says what is wrong.
+
+    Messages never echo the whole URL: it might carry credentials.
+    """
+    if any(c.isspace() for c in url):
+        raise ValueError("must not contain spaces")
+    parts = urlsplit(url)
+    if parts.scheme not in _BROKER_SCHEMES or not url.lower().startswith(parts.scheme + "://"):
+        raise ValueError("must start with mqtt:// or mqtts:// (TLS)")
+    default_port, tls = _BROKER_SCHEMES[parts.scheme]
+    if "@" in parts.netloc:
+        raise ValueError("must not hold credentials; use broker.username and broker.password")
+    if parts.path not in ("", "/") or parts.query or parts.fragment:
+        raise ValueError("must be scheme://host[:port] with no path, query or fragment")
+    if not parts.hostname:
+        raise ValueError("needs a host, e.g. mqtt://127.0.0.1:1883")
+    # The port is read by hand: urlsplit accepts 0 and reports other problems with its own wording.
+    rest = parts.netloc.rpartition("]")[2] if parts.netloc.startswith("[") else parts.netloc
+    _, colon, port_text = rest.partition(":")
+    if not colon:
+        return parts.hostname, default_port, tls
+    if not port_text.isdigit() or not (1 <= int(port_text) <= 65535):
+        raise ValueError(f"port must be an integer in 1..65535, got {port_text!r}")
+    return parts.hostname, int(port_text), tls
 
 
 class WeightRuleConfig(_Strict):
@@ -78,13 +156,18 @@ class ChannelConfig(_Strict):
     covariance_limit: float = Field(default=1e6, gt=0.0)
     covariance_scale: Literal["estimated", "known"] = "estimated"
     noise: NoiseConfig = Field(default_factory=NoiseConfig)
-    topic: str | None = None
+    topic: str | None = Field(default=None, description="MQTT topic of the channel's samples")
 
     @field_validator("terms")
     @classmethod
     def _terms(cls, value: list[str]) -> list[str]:
         RegressorSpec(value)
         return value
+
+    @field_validator("topic")
+    @classmethod
+    def _topic(cls, value: str | None) -> str | None:
+        return None if value is None else _check_topic(value)
 
     @field_validator("forgetting_factor")
     @classmethod
@@ -113,10 +196,130 @@ class ChannelConfig(_Strict):
         )
 
 
+class BrokerConfig(_StrictValues):
+    """``[broker]``: the MQTT connection of the live service.
+
+    ``host``, ``port`` and ``tls`` are read from ``url``; the TLS file paths and the
+    credentials are empty when unused.
+    """
+
+    url: str = "mqtt://127.0.0.1:1883"
+    client_id: str = Field(default="rwls-1", min_length=1, max_length=128,
+                           description="fixed id, so the broker keeps the session across reconnects")
+    username: str = ""
+    password: SecretStr = SecretStr("")
+    ca_file: str = ""
+    cert_file: str = ""
+    key_file: str = ""
+    qos: int = 1
+    keepalive: int = Field(default=30, ge=5, le=3600, description="seconds")
+    dead_letter_topic: str = "rwls/dead-letter"
+    max_payload_bytes: int = Field(default=65536, ge=64, le=16 * 1024 * 1024)
+    reconnect_min_delay: float = Field(default=0.5, gt=0.0, le=3600.0, allow_inf_nan=False,
+                                       description="seconds")
+    reconnect_max_delay: float = Field(default=30.0, gt=0.0, le=3600.0, allow_inf_nan=False,
+                                       description="seconds")
+    protocol: Literal["auto", "5", "3.1.1"] = Field(
+        default="auto", description="MQTT version; auto tries 5 and falls back to 3.1.1")
+
+    @field_validator("url")
+    @classmethod
+    def _url(cls, value: str) -> str:
+        _split_broker_url(value)
+        return value
+
+    @field_validator("password")
+    @classmethod
+    def _password(cls, value: SecretStr, info: ValidationInfo) -> SecretStr:
+        # MQTT 3.1.1 section 3.1.2.9: no password without a user name.
+        if value.get_secret_value() and not info.data.get("username"):
+            raise ValueError("set but broker.username is empty")
+        return value
+
+    @field_validator("ca_file", "cert_file", "key_file")
+    @classmethod
+    def _tls_files(cls, value: str, info: ValidationInfo) -> str:
+        url = info.data.get("url")
+        if value and url is not None and not _split_broker_url(url)[2]:
+            raise ValueError("TLS file given but broker.url is not mqtts://")
+        if value and info.field_name == "key_file" and not info.data.get("cert_file"):
+            raise ValueError("set but broker.cert_file is empty")
+        return value
+
+    @field_validator("qos")
+    @classmethod
+    def _qos(cls, value: int) -> int:
+        if value not in (0, 1):
+            raise ValueError(f"must be 0 or 1, got {value}")
+        return value
+
+    @field_validator("dead_letter_topic")
+    @classmethod
+    def _dead_letter(cls, value: str) -> str:
+        return _check_topic(value)
+
+    @field_validator("reconnect_max_delay")
+    @classmethod
+    def _delays(cls, value: float, info: ValidationInfo) -> float:
+        low = info.data.get("reconnect_min_delay")
+        if low is not None and value < low:
+            raise ValueError(f"must be >= broker.reconnect_min_delay ({low}), got {value}")
+        return value
+
+    @property
+    def host(self) -> str:
+        """Broker host name or address (IPv6 without brackets)."""
+        return _split_broker_url(self.url)[0]
+
+    @property
+    def port(self) -> int:
+        """Broker port: the URL's, else 1883 for ``mqtt://`` and 8883 for ``mqtts://``."""
+        return _split_broker_url(self.url)[1]
+
+    @property
+    def tls(self) -> bool:
+        """Whether the connection uses TLS (``mqtts://``)."""
+        return _split_broker_url(self.url)[2]
+
+
+class HttpConfig(_StrictValues):
+    """``[http]``: where the REST API and dashboard listen."""
+
+    host: str = Field(default="127.0.0.1", min_length=1)
+    port: int = Field(default=8080, ge=0, le=65535, description="0 picks a free port")
+
+
+class StoreConfig(_StrictValues):
+    """``[store]``: where the service keeps its data."""
+
+    path: str = Field(default="rwls-data", min_length=1)
+
+
+class EngineConfig(_StrictValues):
+    """``[engine]``: the bounded ingest queue and its micro-batches."""
+
+    queue_size: int = Field(default=100_000, ge=1, description="samples")
+    max_batch: int = Field(default=5000, ge=1, description="samples per micro-batch")
+    max_wait_ms: float = Field(default=5.0, ge=0.0, le=60_000.0, allow_inf_nan=False,
+                               description="how long a micro-batch waits to fill")
+
+    @field_validator("max_batch")
+    @classmethod
+    def _batch(cls, value: int, info: ValidationInfo) -> int:
+        size = info.data.get("queue_size")
+        if size is not None and value > size:
+            raise ValueError(f"must be <= engine.queue_size ({size}), got {value}")
+        return value
+
+
 class RwlsConfig(_Strict):
-    """The whole configuration file."""
+    """The whole configuration: file plus ``RWLS_`` environment overrides."""
 
     channels: dict[str, ChannelConfig] = Field(min_length=1)
+    broker: BrokerConfig = Field(default_factory=BrokerConfig)
+    http: HttpConfig = Field(default_factory=HttpConfig)
+    store: StoreConfig = Field(default_factory=StoreConfig)
+    engine: EngineConfig = Field(default_factory=EngineConfig)
 
     @field_validator("channels")
     @classmethod
@@ -126,48 +329,186 @@ class RwlsConfig(_Strict):
                 raise ValueError(f"channel id {key!r} must be 1-128 of letters, digits, '_', '.', '-'")
         return value
 
+    def require_topics(self) -> dict[str, str]:
+        """Check that the configuration can serve MQTT: every channel has its own topic.
 
-def _explain(error: ValidationError) -> list[str]:
+        Returns
+        -------
+        dict
+            Topic -> channel id, in channel order.
+
+        Raises
+        ------
+        ConfigError
+            A channel without a topic, a topic used twice, or a channel topic equal
+            to ``broker.dead_letter_topic``; one line per problem, naming the key.
+        """
+        problems: list[str] = []
+        owners: dict[str, str] = {}
+        for cid, channel in self.channels.items():
+            key = f"channels.{cid}.topic"
+            if channel.topic is None:
+                problems.append(f"{key}: required to serve")
+            elif channel.topic in owners:
+                problems.append(f"{key}: also used by channel {owners[channel.topic]}")
+            elif channel.topic == self.broker.dead_letter_topic:
+                problems.append(f"{key}: same as broker.dead_letter_topic")
+            else:
+                owners[channel.topic] = cid
+        if problems:
+            raise ConfigError(problems)
+        return owners
+
+
+def _is_text(annotation: object) -> bool:
+    if annotation in (str, SecretStr):
+        return True
+    if get_origin(annotation) in (Union, types.UnionType):
+        return any(_is_text(arg) for arg in get_args(annotation))
+    return False
+
+
+def _wants_text(path: tuple[str, ...]) -> bool:
+    """Whether the key at ``path`` holds text (so ``RWLS_BROKER__PASSWORD=1234`` stays a string)."""
+    annotation: object = RwlsConfig
+    levels = iter(path)
+    for name in levels:
+        if not (isinstance(annotation, type) and issubclass(annotation, BaseModel)):
+            return False
+        field = annotation.model_fields.get(name)
+        if field is None:
+            return False
+        annotation = field.annotation
+        if get_origin(annotation) is dict:
+            if next(levels, None) is None:  # the dict itself, not one of its entries
+                return False
+            annotation = get_args(annotation)[1]
+    return _is_text(annotation)
+
+
+def _env_value(text: str, text_key: bool) -> object:
+    # A newline could smuggle a second TOML key in; such a value is taken as text.
+    if "\n" not in text and "\r" not in text:
+        try:
+            value = tomllib.loads(f"value = {text}")["value"]
+        except tomllib.TOMLDecodeError:
+            pass
+        else:
+            if not text_key or isinstance(value, str):
+                return value
+    return text
+
+
+def _env_path(name: str) -> tuple[str, ...] | None:
+    """The key path ``RWLS_A__B`` names, ``("a", "b")``; ``None`` when a level is empty."""
+    levels = name[len(_ENV_PREFIX):].split("__")
+    if not all(levels):
+        return None
+    path = [level.lower() for level in levels]
+    if path[0] == "channels" and len(levels) > 1:
+        path[1] = levels[1]  # channel ids are case-sensitive
+    return tuple(path)
+
+
+def _apply_environment(data: dict[str, object], environ: Mapping[str, str]
+                       ) -> tuple[dict[str, object], dict[tuple[str, ...], str]]:
+    """``data`` with every ``RWLS_`` variable applied (a copy), and which variable set which key.
+
+    Variables apply in name order, so ``RWLS_BROKER`` (a whole table) comes before
+    ``RWLS_BROKER__URL``, which then overrides one key in it.
+    """
+    merged = dict(data)
+    sources: dict[tuple[str, ...], str] = {}
+    problems: list[str] = []
+    for name in sorted(n for n in environ if n.startswith(_ENV_PREFIX)):
+        path = _env_path(name)
+        if path is None:
+            problems.append(f"{name}: empty key level; separate levels with exactly two underscores")
+            continue
+        table = merged
+        for depth, level in enumerate(path[:-1]):
+            inner = table.get(level, {})
+            if not isinstance(inner, dict):
+                problems.append(f"{'.'.join(path[:depth + 1])}: not a table, so {name} cannot set a key in it")
+                break
+            copied: dict[str, object] = dict(inner)  # so the caller's document is left as it was
+            table[level] = copied
+            table = copied
+        else:
+            table[path[-1]] = _env_value(environ[name], _wants_text(path))
+            sources[path] = name
+    if problems:
+        raise ConfigError(problems)
+    return merged, sources
+
+
+def _explain(error: ValidationError, sources: Mapping[tuple[str, ...], str] | None = None) -> list[str]:
+    # Only pydantic's message is used, never its ``input``: that could be the password.
     problems = []
     for item in error.errors():
-        key = ".".join(str(part) for part in item["loc"]) or "(file)"
+        loc = tuple(str(part) for part in item["loc"])
+        key = ".".join(loc) or "(file)"
         message = item["msg"].removeprefix("Value error, ")
         if item["type"] == "extra_forbidden":
             message = "unknown key"
         elif item["type"] == "missing":
             message = "required key missing"
+        origin = [name for path, name in (sources or {}).items() if loc[:len(path)] == path]
+        if origin:
+            message += f" (from {origin[-1]})"
         problems.append(f"{key}: {message}")
     return problems
 
 
-def parse_config(data: dict[str, object]) -> RwlsConfig:
-    """Validate an already-parsed TOML document.
+def _validate(data: Mapping[str, object], sources: Mapping[tuple[str, ...], str] | None = None) -> RwlsConfig:
+    problems: list[str] = []
+    try:
+        return RwlsConfig.model_validate(data)
+    except ValidationError as exc:
+        problems = _explain(exc, sources)
+    # Raised outside the handler so the pydantic error, whose text holds the raw input, is not chained.
+    raise ConfigError(problems)
+
+
+def parse_config(data: Mapping[str, object]) -> RwlsConfig:
+    """Validate an already-parsed TOML document (no environment overrides).
 
     Raises
     ------
     ConfigError
         One line per problem, each naming its key.
     """
-    try:
-        return RwlsConfig.model_validate(data)
-    except ValidationError as exc:
-        raise ConfigError(_explain(exc)) from None
+    return _validate(data)
 
 
-def load_config(path: str | Path) -> RwlsConfig:
-    """Read and validate a TOML configuration file.
+def load_config(path: str | Path | None, environ: Mapping[str, str] | None = None) -> RwlsConfig:
+    """Read a TOML configuration file, apply ``RWLS_`` environment overrides, and validate.
+
+    Parameters
+    ----------
+    path : str or Path or None
+        The TOML file; ``None`` builds the configuration from the environment alone.
+    environ : mapping, optional
+        Environment variables; ``os.environ`` when omitted. ``RWLS_A__B=value`` sets key
+        ``a.b``; the level after ``CHANNELS`` (a channel id) keeps its case, the others are
+        lower-cased. The value is read as a TOML value when it parses, else as text; text keys
+        always get text.
 
     Raises
     ------
     ConfigError
-        Unreadable file, TOML syntax error, or invalid values (each naming its key).
+        Unreadable file, TOML syntax error, an override that cannot apply, or invalid values
+        (each naming its key, and the variable when an override set it).
     """
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise ConfigError([f"{path}: cannot read: {exc}"]) from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError([f"{path}: TOML syntax error: {exc}"]) from None
-    return parse_config(data)
+    data: dict[str, object] = {}
+    if path is not None:
+        try:
+            text = Path(path).read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as exc:
+            raise ConfigError([f"{path}: cannot read: {exc}"]) from None
+        try:
+            data = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError([f"{path}: TOML syntax error: {exc}"]) from None
+    merged, sources = _apply_environment(data, os.environ if environ is None else environ)
+    return _validate(merged, sources)

@@ -60,9 +60,11 @@ def test_sample_weighting_uses_sigma_then_weight_and_rejects_neither() -> None:
     assert pipeline.apply({}, 1.0, sigma=0.5, weight=3.0).weight == 4.0   # sigma wins
     assert pipeline.apply({}, 1.0).reason == "missing_weight"
     assert pipeline.apply({}, 1.0, sigma=0.0).reason == "bad_sigma"
+    assert pipeline.apply({}, 1.0, sigma=1e-200).reason == "bad_sigma"   # 1 / sigma^2 overflows
+    assert pipeline.apply({}, 1.0, sigma=1e200).reason == "bad_sigma"    # 1 / sigma^2 underflows to 0
     assert pipeline.apply({}, 1.0, weight=-1.0).reason == "bad_weight"
     assert pipeline.counters.applied == 3
-    assert pipeline.counters.rejected == {"missing_weight": 1, "bad_sigma": 1, "bad_weight": 1}
+    assert pipeline.counters.rejected == {"missing_weight": 1, "bad_sigma": 3, "bad_weight": 1}
 
 
 def test_tracked_weight_is_the_inverse_variance_known_before_the_sample() -> None:

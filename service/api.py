@@ -1,0 +1,207 @@
+"""The REST API (FastAPI): read-only views of the engine's latest snapshot, plus HTTP ingest.
+
+Everything under ``/api/v1``; ``/metrics`` at the root by Prometheus
+convention. Handlers never touch estimator state: they read the immutable
+snapshot or hand a payload to the engine queue. Errors are short stable JSON
+(``{"detail": "..."}``), never tracebacks; NaN and infinity never reach JSON
+(null, with the channel's quality saying why).
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from typing import Any
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import HTMLResponse, JSONResponse, Response
+from prometheus_client import CollectorRegistry, generate_latest
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
+from prometheus_client.registry import Collector
+from starlette.exceptions import HTTPException as StarletteHTTPException
+
+from service.engine import ChannelEntry
+from service.payload import decode_payload
+from service.reports import channel_report, finite_or_null
+from service.runtime import Runtime
+
+__all__ = ["ADVISORY", "create_app"]
+
+log = logging.getLogger(__name__)
+
+ADVISORY = ("rwls is an advisory monitoring aid, not a safety instrumented function. Follow the site's "
+            "alarm philosophy, local codes and licensed engineering practice.")
+PROMETHEUS_TEXT = "text/plain; version=0.0.4; charset=utf-8"
+
+
+def _summary(cid: str, entry: ChannelEntry) -> dict[str, object]:
+    return {"id": cid, "quality": entry.quality, "quality_reason": entry.quality_reason,
+            "updated_at": entry.updated_at, "t": entry.view.last_t, "samples": entry.view.applied,
+            "rejected": sum(entry.view.rejected.values()),
+            "alarms": None}   # filled once the alarm subsystem exists
+
+
+def _detail(entry: ChannelEntry, cid: str) -> dict[str, object]:
+    report = channel_report(entry.view)
+    if entry.quality == "Bad":
+        # Estimates of a Bad channel are not for use: null them rather than show numbers.
+        for key in ("parameters", "std_errors", "intervals_95"):
+            report[key] = dict.fromkeys(report[key])  # type: ignore[arg-type]
+        report["covariance"] = None
+    report.update(id=cid, quality=entry.quality, quality_reason=entry.quality_reason,
+                  updated_at=entry.updated_at, t=entry.view.last_t, alarms=None)
+    return finite_or_null(report)  # type: ignore[return-value]
+
+
+class _EngineCollector(Collector):
+    """Reads the engine's and ingest's counters at scrape time."""
+
+    def __init__(self, runtime: Runtime) -> None:
+        self._runtime = runtime
+
+    def collect(self) -> Any:
+        engine, ingest = self._runtime.engine, self._runtime.ingest
+        stats = engine.stats
+        yield CounterMetricFamily("rwls_messages", "Messages taken from the ingest queue", value=stats.messages)
+        yield CounterMetricFamily("rwls_samples_applied", "Samples applied to an estimator",
+                                  value=stats.samples_applied)
+        yield CounterMetricFamily("rwls_samples_warmup", "Samples that only filled lag buffers",
+                                  value=stats.samples_warmup)
+        rejections = CounterMetricFamily("rwls_rejections", "Refused messages or samples", labels=["reason"])
+        for reason, count in sorted(stats.rejected.items()):
+            rejections.add_metric([reason], count)
+        yield rejections
+        yield CounterMetricFamily("rwls_dead_letter_failures", "Dead letters the broker did not take",
+                                  value=stats.dead_letter_failures)
+        yield GaugeMetricFamily("rwls_queue_depth", "Messages waiting for the engine", value=engine.queue_depth)
+        yield CounterMetricFamily("rwls_batches", "Micro-batches applied", value=stats.batches)
+        yield CounterMetricFamily("rwls_batch_seconds", "Time spent applying micro-batches",
+                                  value=stats.batch_seconds_total)
+        yield GaugeMetricFamily("rwls_last_batch_seconds", "Duration of the latest micro-batch",
+                                value=stats.last_batch_seconds)
+        quality = GaugeMetricFamily("rwls_channels", "Channels by quality", labels=["quality"])
+        counts = {"Good": 0, "Uncertain": 0, "Bad": 0}
+        for entry in engine.snapshot.channels.values():
+            counts[entry.quality] += 1
+        for name, count in counts.items():
+            quality.add_metric([name], count)
+        yield quality
+        if ingest is not None:
+            yield GaugeMetricFamily("rwls_broker_connected", "1 while connected to the broker",
+                                    value=1 if ingest.connected else 0)
+            yield CounterMetricFamily("rwls_broker_reconnects", "Reconnections to the broker",
+                                      value=ingest.reconnects)
+            yield CounterMetricFamily("rwls_mqtt_callback_errors", "Exceptions caught in MQTT callbacks",
+                                      value=ingest.callback_errors)
+
+
+def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
+    """The FastAPI application for a runtime; with ``manage_runtime`` its lifespan starts and stops it."""
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        if manage_runtime:
+            runtime.start()
+        try:
+            yield
+        finally:
+            if manage_runtime:
+                runtime.stop()
+
+    app = FastAPI(title="rwls", version="1", lifespan=lifespan,
+                  description="Recursive weighted least squares for sensor monitoring. " + ADVISORY)
+    registry = CollectorRegistry()
+    registry.register(_EngineCollector(runtime))
+    snapshot_cache: dict[str, object] = {"version": -1, "body": b""}
+    max_payload = runtime.config.broker.max_payload_bytes
+
+    @app.exception_handler(StarletteHTTPException)
+    async def http_error(request: Request, exc: StarletteHTTPException) -> JSONResponse:
+        return JSONResponse({"detail": str(exc.detail)}, status_code=exc.status_code, headers=exc.headers)
+
+    @app.exception_handler(RequestValidationError)
+    async def validation_error(request: Request, exc: RequestValidationError) -> JSONResponse:
+        return JSONResponse({"detail": "invalid request"}, status_code=422)
+
+    @app.exception_handler(Exception)
+    async def internal_error(request: Request, exc: Exception) -> JSONResponse:
+        log.exception("request failed path=%s", request.url.path)
+        return JSONResponse({"detail": "internal error"}, status_code=500)
+
+    def not_found(what: str) -> JSONResponse:
+        return JSONResponse({"detail": what}, status_code=404)
+
+    @app.get("/", response_class=HTMLResponse, include_in_schema=False)
+    def index() -> str:
+        return ("<!doctype html><html lang=en><meta charset=utf-8><title>rwls</title>"
+                f"<p><strong>Advisory use only.</strong> {ADVISORY}</p>"
+                "<p><a href=/docs>API documentation</a> &middot; <a href=/api/v1/channels>channels</a>"
+                " &middot; <a href=/api/v1/snapshot>snapshot</a> &middot; <a href=/metrics>metrics</a></p>")
+
+    @app.get("/api/v1/channels", summary="Every channel with its quality and last update")
+    def channels() -> list[dict[str, object]]:
+        return [_summary(cid, entry) for cid, entry in runtime.engine.snapshot.channels.items()]
+
+    @app.get("/api/v1/channels/{channel_id}", summary="One channel's full state", response_model=None)
+    def channel(channel_id: str) -> dict[str, object] | JSONResponse:
+        entry = runtime.engine.snapshot.channels.get(channel_id)
+        if entry is None:
+            return not_found("unknown channel")
+        return _detail(entry, channel_id)
+
+    @app.get("/api/v1/snapshot", summary="All channels, flat, in one call (for SCADA polling; ETag)",
+             response_class=Response)
+    def snapshot(request: Request) -> Response:
+        snap = runtime.engine.snapshot
+        etag = f'W/"{snap.version}"'
+        if request.headers.get("if-none-match") == etag:
+            return Response(status_code=304, headers={"ETag": etag})
+        if snapshot_cache["version"] != snap.version:
+            fragments = b",".join(entry.fragment for entry in snap.channels.values())
+            head = json.dumps({"version": snap.version, "created_at": snap.created_at})[:-1].encode()
+            snapshot_cache["body"] = head + b', "channels": {' + fragments + b"}}"
+            snapshot_cache["version"] = snap.version
+        return Response(snapshot_cache["body"], media_type="application/json",  # type: ignore[arg-type]
+                        headers={"ETag": etag, "Cache-Control": "no-cache"})
+
+    @app.post("/api/v1/channels/{channel_id}/samples", status_code=202, response_model=None,
+              summary="Ingest samples over HTTP (the MQTT payload contract, same validation)")
+    async def post_samples(channel_id: str, request: Request) -> dict[str, object] | JSONResponse:
+        if channel_id not in runtime.engine.bank:
+            return not_found("unknown channel")
+        declared = request.headers.get("content-length")
+        if declared is not None and declared.isdigit() and int(declared) > max_payload:
+            return JSONResponse({"detail": "payload too large"}, status_code=413)
+        body = b""
+        async for chunk in request.stream():
+            body += chunk
+            if len(body) > max_payload:
+                return JSONResponse({"detail": "payload too large"}, status_code=413)
+        inputs = runtime.engine.bank.settings(channel_id).input_names
+        decoded, rejections = decode_payload(body, max_bytes=max_payload, input_names=inputs)
+        if not runtime.submit_http(channel_id, body):
+            return JSONResponse({"detail": "busy, retry later"}, status_code=503, headers={"Retry-After": "1"})
+        if not decoded and rejections and rejections[0].index is None:
+            return JSONResponse({"detail": rejections[0].reason}, status_code=400)
+        return {"queued": len(decoded),
+                "rejected": [{"index": r.index, "reason": r.reason} for r in rejections]}
+
+    @app.get("/api/v1/health", summary="Liveness: the engine thread runs", response_model=None)
+    def health() -> dict[str, object] | JSONResponse:
+        ok = runtime.engine.alive() and (runtime.ingest is None or runtime.ingest.alive())
+        return {"status": "ok"} if ok else JSONResponse({"detail": "engine or ingest thread down"}, 503)
+
+    @app.get("/api/v1/ready", summary="Readiness: broker connected, engine alive, queue not full",
+             response_model=None)
+    def ready() -> dict[str, object] | JSONResponse:
+        state = runtime.readiness()
+        return finite_or_null(state) if state["ready"] else JSONResponse(finite_or_null(state), 503)  # type: ignore
+
+    @app.get("/metrics", include_in_schema=False)
+    def metrics() -> Response:
+        return Response(generate_latest(registry), media_type=PROMETHEUS_TEXT)
+
+    return app

@@ -1,0 +1,115 @@
+"""`rwls demo`: everything in one process on embedded defaults.
+
+An embedded MQTT broker on a free loopback port, the demo plant publishing to
+it, the service (engine, ingest, API) with its data directory, and the URL
+printed. Channel tables come from
+``examples/larkspur_sub7.toml``'s twin below (a test keeps the two equal).
+"""
+
+from __future__ import annotations
+
+import logging
+import socket
+import threading
+import time
+import tomllib
+
+import uvicorn
+
+from service.api import ADVISORY, create_app
+from service.config import RwlsConfig, parse_config
+from service.embedded_broker import EmbeddedBroker
+from service.runtime import Runtime
+from service.simulate import simulate
+
+__all__ = ["DEMO_CHANNELS_TOML", "demo_config", "run_demo"]
+
+log = logging.getLogger(__name__)
+
+DEMO_CHANNELS_TOML = '''
+[channels."sub7.supply_temp"]
+topic = "larkspur/sub7/supply_temp"
+terms = ["1", "ref_temp"]
+forgetting_factor = 0.999
+weighting = "tracked"
+noise = { half_life = 300, robust = true, initial_sigma = 0.2 }
+
+[channels."sub7.flow"]
+topic = "larkspur/sub7/flow"
+terms = ["1", "pump_speed", "pump_speed^2"]
+forgetting_factor = 0.998
+weighting = "unit"
+
+[channels."sub7.return_dp"]
+topic = "larkspur/sub7/return_dp"
+terms = ["1", "ref_dp"]
+forgetting_factor = 0.995
+weighting = "unit"
+weight_rules = [{ input = "ref_dp", low = 44.0, high = 52.0, factor = 2.0 }]
+
+[channels."sub7.stack_o2"]
+topic = "larkspur/sub7/stack_o2"
+terms = ["1", "y[-1]", "load"]
+forgetting_factor = 0.999
+weighting = "tracked"
+noise = { half_life = 500, model_terms = ["1", "load"], initial_sigma = 0.1 }
+'''
+
+
+def demo_config(broker_url: str, data_dir: str) -> RwlsConfig:
+    """The demo channels against a broker URL, with the store in ``data_dir``."""
+    data = tomllib.loads(DEMO_CHANNELS_TOML)
+    data["broker"] = {"url": broker_url, "client_id": "rwls-demo"}
+    data["store"] = {"path": data_dir}
+    return parse_config(data)
+
+
+def _bind(host: str, port: int) -> socket.socket:
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+    sock.bind((host, port))
+    return sock
+
+
+def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, data_dir: str = "rwls-demo-data",
+             exit_after: float | None = None) -> int:
+    """Run the demo until Ctrl-C (or ``exit_after`` seconds); returns the exit status."""
+    broker = EmbeddedBroker()
+    broker.start()
+    config = demo_config(broker.url, data_dir)
+    runtime = Runtime(config)
+    runtime.start()
+    sock = _bind(host, port)
+    actual_port = sock.getsockname()[1]
+    server = uvicorn.Server(uvicorn.Config(create_app(runtime, manage_runtime=False), log_level="warning",
+                                           lifespan="on"))
+    stop = threading.Event()
+
+    def publish() -> None:
+        time.sleep(1.0)          # let the service subscribe first
+        try:
+            simulate(broker.host, broker.port, prefix="larkspur", rate=rate, stop=stop,
+                     client_id="rwls-demo-plant")
+        except Exception:
+            log.exception("demo plant stopped")
+
+    def stopper() -> None:
+        if exit_after is not None and not stop.wait(exit_after):
+            server.should_exit = True
+
+    plant = threading.Thread(target=publish, name="rwls-demo-plant", daemon=True)
+    timer = threading.Thread(target=stopper, name="rwls-demo-timer", daemon=True)
+    print(f"rwls demo: service at http://{host}:{actual_port}/ (API docs /docs, snapshot /api/v1/snapshot)",
+          flush=True)
+    print(f"rwls demo: embedded MQTT broker at {broker.url}; plant publishing {rate:g} samples/s", flush=True)
+    print(f"rwls demo: {ADVISORY}", flush=True)
+    plant.start()
+    timer.start()
+    try:
+        server.run(sockets=[sock])
+    finally:
+        stop.set()
+        plant.join(5.0)
+        runtime.stop()
+        broker.stop()
+    return 0

@@ -1,0 +1,354 @@
+"""The single writer: drains the ingest queue in micro-batches and owns the ChannelBank.
+
+Everything that changes estimator state happens on the engine's own thread.
+MQTT and HTTP hand raw messages over through a bounded queue (a full queue
+blocks MQTT, which stops acknowledging and lets the broker hold the messages,
+and makes HTTP answer 503); readers get an immutable :class:`Snapshot` that the
+engine replaces after each batch, so no reader ever holds a lock on numpy state.
+
+Per message: decode (``service.payload``), per-channel ``seq`` de-duplication,
+then the samples of a micro-batch go to :meth:`ChannelBank.apply` together.
+Every refused message or sample is counted by reason and handed to the
+dead-letter callback with that reason; nothing is dropped silently.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import math
+import queue
+import threading
+import time
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+
+from estimator.channel import ChannelSettings, Sample
+from estimator.channel_bank import ChannelBank, ChannelView
+from service.payload import DecodedSample, decode_payload
+
+__all__ = ["ChannelEntry", "DeadLetter", "Engine", "EngineStats", "Message", "Snapshot", "channel_quality"]
+
+log = logging.getLogger(__name__)
+
+CONDITION_LIMIT = 1e12          # information condition above which estimates are only Uncertain
+
+
+@dataclass(frozen=True)
+class Message:
+    """One raw message for one channel (``channel`` None: its topic matched no channel)."""
+
+    channel: str | None
+    payload: bytes
+    source: str                  # "mqtt" or "http"
+    topic: str | None = None
+    received: float = field(default_factory=time.time)
+
+
+@dataclass(frozen=True)
+class DeadLetter:
+    """A refused message or sample, with its reason, for the dead-letter topic."""
+
+    reason: str
+    detail: str
+    channel: str | None
+    topic: str | None
+    source: str
+    index: int | None
+    payload: bytes
+
+    def to_json(self, excerpt: int = 2048) -> bytes:
+        """Reason and context, with at most ``excerpt`` bytes of the payload (as text, replaced if not UTF-8)."""
+        body = {"reason": self.reason, "detail": self.detail, "channel": self.channel, "topic": self.topic,
+                "source": self.source, "index": self.index,
+                "payload": self.payload[:excerpt].decode("utf-8", errors="replace"),
+                "truncated": len(self.payload) > excerpt}
+        return json.dumps(body).encode()
+
+
+@dataclass(frozen=True)
+class ChannelEntry:
+    """What readers see of one channel."""
+
+    view: ChannelView
+    quality: str                 # "Good", "Uncertain" or "Bad" (OPC UA quality families)
+    quality_reason: str
+    updated_at: float | None     # wall-clock time of the last applied sample
+    fragment: bytes              # its member of the flat /snapshot document
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    """An immutable picture of every channel, replaced after each batch."""
+
+    version: int
+    created_at: float
+    channels: Mapping[str, ChannelEntry]
+
+
+@dataclass
+class EngineStats:
+    """Counters the engine thread writes and the metrics endpoint reads."""
+
+    messages: int = 0
+    samples_applied: int = 0
+    samples_warmup: int = 0
+    rejected: dict[str, int] = field(default_factory=dict)
+    batches: int = 0
+    last_batch_seconds: float = 0.0
+    batch_seconds_total: float = 0.0
+    dead_letter_failures: int = 0
+
+    def reject(self, reason: str) -> None:
+        self.rejected[reason] = self.rejected.get(reason, 0) + 1
+
+
+def channel_quality(view: ChannelView, updated_at: float | None, now: float,
+                    stale_after: float) -> tuple[str, str]:
+    """Quality family and reason (OPC UA Good / Uncertain / Bad) of a channel's estimates."""
+    if view.applied == 0:
+        return "Bad", "no_data"
+    if not view.identifiable or not all(math.isfinite(v) for v in view.parameters):
+        return "Bad", "not_identifiable"
+    if updated_at is not None and now - updated_at > stale_after:
+        return "Uncertain", "stale"
+    if not view.dof >= 1.0:
+        return "Uncertain", "warming_up"
+    if not view.information_condition <= CONDITION_LIMIT:
+        return "Uncertain", "low_excitation"
+    return "Good", ""
+
+
+def _fragment(view: ChannelView, quality: str, reason: str, updated_at: float | None) -> bytes:
+    def num(value: float) -> float | None:
+        return value if math.isfinite(value) else None
+
+    good = quality != "Bad"
+    record = {
+        "quality": quality, "quality_reason": reason, "updated_at": updated_at, "t": view.last_t,
+        "samples": view.applied, "rejected": sum(view.rejected.values()),
+        "parameters": {n: num(float(v)) if good else None for n, v in zip(view.terms, view.parameters, strict=True)},
+        "std_errors": {n: num(float(v)) if good else None for n, v in zip(view.terms, view.std_errors, strict=True)},
+        "noise_sigma": num(view.noise_sigma), "residual_sd": num(view.residual_sd) if good else None,
+    }
+    return json.dumps(view.channel).encode() + b":" + json.dumps(record, allow_nan=False).encode()
+
+
+class Engine:
+    """Owns the ChannelBank; applies queued messages in micro-batches on its own thread.
+
+    Parameters
+    ----------
+    channels : mapping of channel id to settings
+    queue_size : bound of the message queue
+    max_batch : samples per micro-batch at most (a batch payload is never split)
+    max_wait : seconds a micro-batch waits to fill after its first message
+    max_payload_bytes : larger payloads are refused ``too_large``
+    dead_letter : called on the engine thread for every refusal; must not block for long
+    stale_after : seconds without data after which a channel's quality is Uncertain
+    """
+
+    def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
+                 max_batch: int = 5000, max_wait: float = 0.005, max_payload_bytes: int = 65536,
+                 dead_letter: Callable[[DeadLetter], None] | None = None, stale_after: float = 600.0,
+                 clock: Callable[[], float] = time.time) -> None:
+        self.bank = ChannelBank(channels)
+        self._inputs = {cid: tuple(s.input_names) for cid, s in channels.items()}
+        self._queue: queue.Queue[Message | None] = queue.Queue(maxsize=queue_size)
+        self._max_batch = max_batch
+        self._max_wait = max_wait
+        self._max_payload = max_payload_bytes
+        self._dead_letter = dead_letter
+        self._stale_after = stale_after
+        self._clock = clock
+        self._last_seq: dict[str, int] = {}
+        self._updated_at: dict[str, float] = {}
+        self.stats = EngineStats()
+        self._thread: threading.Thread | None = None
+        self._stopping = threading.Event()
+        self._heartbeat = time.monotonic()
+        self._last_refresh = time.monotonic()
+        now = clock()
+        self._snapshot = Snapshot(0, now, self._entries(self.bank.view(), now))
+
+    # ------------------------------------------------------------- producers
+    def submit(self, message: Message, timeout: float | None = None) -> bool:
+        """Queue a message; blocks up to ``timeout`` (None: until there is room). False if still full."""
+        try:
+            self._queue.put(message, timeout=timeout)
+        except queue.Full:
+            return False
+        return True
+
+    @property
+    def queue_depth(self) -> int:
+        return self._queue.qsize()
+
+    @property
+    def snapshot(self) -> Snapshot:
+        """The latest snapshot (replaced, never mutated)."""
+        return self._snapshot
+
+    # ------------------------------------------------------------- lifecycle
+    def start(self) -> None:
+        """Start the engine thread."""
+        if self._thread is not None:
+            raise RuntimeError("engine already started")
+        self._thread = threading.Thread(target=self._run, name="rwls-engine", daemon=True)
+        self._thread.start()
+
+    def stop(self, timeout: float = 10.0) -> None:
+        """Apply what is queued, then stop the thread (bounded by ``timeout``)."""
+        self._stopping.set()
+        if self._thread is not None:
+            with contextlib.suppress(queue.Full):
+                self._queue.put(None, timeout=timeout)     # wake the thread
+            self._thread.join(timeout)
+
+    def alive(self, max_silence: float = 5.0) -> bool:
+        """The thread runs and its loop went round within ``max_silence`` seconds."""
+        return (self._thread is not None and self._thread.is_alive()
+                and time.monotonic() - self._heartbeat < max_silence)
+
+    def drain(self, timeout: float = 10.0) -> bool:
+        """Wait until everything queued so far is applied (tests, shutdown). False on timeout."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self._queue.unfinished_tasks == 0:
+                return True
+            time.sleep(0.002)
+        return False
+
+    # ---------------------------------------------------------------- thread
+    def _run(self) -> None:
+        while True:
+            self._heartbeat = time.monotonic()
+            try:
+                first = self._queue.get(timeout=0.25)
+            except queue.Empty:
+                if self._stopping.is_set():
+                    return
+                if time.monotonic() - self._last_refresh >= 1.0:
+                    self._last_refresh = time.monotonic()
+                    self._refresh_quality()
+                continue
+            batch: list[Message] = []
+            if first is not None:
+                batch.append(first)
+            else:
+                self._queue.task_done()
+            deadline = time.monotonic() + self._max_wait
+            while len(batch) < self._max_batch:
+                remaining = deadline - time.monotonic()
+                try:
+                    item = self._queue.get(timeout=remaining) if remaining > 0 else self._queue.get_nowait()
+                except queue.Empty:
+                    break
+                if item is None:
+                    self._queue.task_done()
+                    continue
+                batch.append(item)
+            if batch:
+                try:
+                    self._process(batch)
+                except Exception:          # the loop must outlive any bug in one batch
+                    log.exception("engine batch failed; %d messages dead-lettered", len(batch))
+                    for message in batch:
+                        self._refuse(message, "internal_error", "engine failed on this batch", None)
+                finally:
+                    for _ in batch:
+                        self._queue.task_done()
+            if self._stopping.is_set() and self._queue.empty():
+                return
+
+    def _refuse(self, message: Message, reason: str, detail: str, index: int | None) -> None:
+        self.stats.reject(reason)
+        if self._dead_letter is None:
+            return
+        letter = DeadLetter(reason, detail, message.channel, message.topic, message.source, index, message.payload)
+        try:
+            self._dead_letter(letter)
+        except Exception:
+            self.stats.dead_letter_failures += 1
+            log.exception("dead-letter delivery failed reason=%s channel=%s", reason, message.channel)
+
+    def _process(self, batch: list[Message]) -> None:
+        started = time.perf_counter()
+        samples: list[Sample] = []
+        origins: list[tuple[Message, int | None, DecodedSample]] = []
+        pending_seq: dict[str, int] = {}
+        for message in batch:
+            self.stats.messages += 1
+            if message.channel is None or message.channel not in self.bank:
+                self._refuse(message, "unknown_channel", "no channel for this topic or id", None)
+                continue
+            decoded, rejections = decode_payload(message.payload, max_bytes=self._max_payload,
+                                                 input_names=self._inputs[message.channel])
+            for rejection in rejections:
+                self._refuse(message, rejection.reason, rejection.detail, rejection.index)
+            single = len(decoded) == 1 and not rejections
+            for k, sample in enumerate(decoded):
+                index = None if single else k
+                if sample.seq is not None:
+                    last = pending_seq.get(message.channel, self._last_seq.get(message.channel))
+                    if last is not None and sample.seq <= last:
+                        reason = "duplicate_seq" if sample.seq == last else "out_of_order_seq"
+                        self._refuse(message, reason, f"seq {sample.seq} after {last}", index)
+                        continue
+                    pending_seq[message.channel] = sample.seq
+                samples.append(Sample(message.channel, sample.y, sample.inputs, sample.t, sample.sigma,
+                                      sample.weight))
+                origins.append((message, index, sample))
+        outcomes = self.bank.apply(samples)
+        touched: set[str] = set()
+        for outcome, (message, index, decoded) in zip(outcomes, origins, strict=True):
+            cid = message.channel
+            if cid is None:          # never: such messages were refused before decoding
+                continue
+            if outcome.status == "rejected":
+                self._refuse(message, outcome.reason, f"refused by channel {cid}", index)
+                continue
+            if decoded.seq is not None:
+                self._last_seq[cid] = max(decoded.seq, self._last_seq.get(cid, decoded.seq))
+            if outcome.status == "applied":
+                self.stats.samples_applied += 1
+                self._updated_at[cid] = message.received
+            else:
+                self.stats.samples_warmup += 1
+            touched.add(cid)
+        for message, _, _ in origins:
+            if message.channel is not None:
+                touched.add(message.channel)       # rejection counters changed too
+        if touched:
+            self._publish(sorted(touched))
+        elapsed = time.perf_counter() - started
+        self.stats.batches += 1
+        self.stats.last_batch_seconds = elapsed
+        self.stats.batch_seconds_total += elapsed
+
+    # ------------------------------------------------------------- snapshots
+    def _entries(self, views: Mapping[str, ChannelView], now: float) -> dict[str, ChannelEntry]:
+        entries = {}
+        for cid, view in views.items():
+            updated_at = self._updated_at.get(cid)
+            quality, reason = channel_quality(view, updated_at, now, self._stale_after)
+            entries[cid] = ChannelEntry(view, quality, reason, updated_at, _fragment(view, quality, reason, updated_at))
+        return entries
+
+    def _publish(self, channels: list[str]) -> None:
+        now = self._clock()
+        entries = dict(self._snapshot.channels)
+        entries.update(self._entries(self.bank.view(channels), now))
+        self._snapshot = Snapshot(self._snapshot.version + 1, now, entries)
+
+    def _refresh_quality(self) -> None:
+        """Re-judge staleness while idle; publish only when some channel's quality changed."""
+        now = self._clock()
+        changed = []
+        for cid, entry in self._snapshot.channels.items():
+            quality, reason = channel_quality(entry.view, entry.updated_at, now, self._stale_after)
+            if (quality, reason) != (entry.quality, entry.quality_reason):
+                changed.append(cid)
+        if changed:
+            self._publish(changed)

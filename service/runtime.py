@@ -1,0 +1,128 @@
+"""One running rwls process: the engine, MQTT ingest and the lock that makes it the only ingest owner.
+
+Several API worker processes would each subscribe and apply every sample, so
+the process takes an exclusive lock on ``<store.path>/ingest.lock``: a second
+process on the same data directory stops with a clear message instead.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import logging
+import os
+import time
+from pathlib import Path
+from typing import IO
+
+from service.config import RwlsConfig
+from service.engine import DeadLetter, Engine, Message
+from service.ingest import BrokerSettings, MqttIngest
+
+__all__ = ["AlreadyRunning", "Runtime", "broker_settings"]
+
+log = logging.getLogger(__name__)
+
+
+class AlreadyRunning(RuntimeError):
+    """Another process owns ingest for this data directory."""
+
+
+def broker_settings(config: RwlsConfig) -> BrokerSettings:
+    """The ``[broker]`` table as connection settings."""
+    broker = config.broker
+    return BrokerSettings(
+        host=broker.host, port=broker.port, client_id=broker.client_id, tls=broker.tls,
+        username=broker.username or None, password=broker.password.get_secret_value() or None,
+        ca_file=broker.ca_file or None, cert_file=broker.cert_file or None, key_file=broker.key_file or None,
+        qos=broker.qos, keepalive=broker.keepalive, dead_letter_topic=broker.dead_letter_topic,
+        reconnect_min_delay=broker.reconnect_min_delay, reconnect_max_delay=broker.reconnect_max_delay,
+        protocol=broker.protocol)
+
+
+class Runtime:
+    """Engine plus (optionally) MQTT ingest for a validated configuration.
+
+    Parameters
+    ----------
+    config : the whole configuration
+    mqtt : subscribe to the channel topics (needs every channel to have a topic)
+    """
+
+    def __init__(self, config: RwlsConfig, *, mqtt: bool = True) -> None:
+        self.config = config
+        self.topics = config.require_topics() if mqtt else {}     # topic -> channel
+        self.engine = Engine(
+            {cid: ch.settings() for cid, ch in config.channels.items()},
+            queue_size=config.engine.queue_size, max_batch=config.engine.max_batch,
+            max_wait=config.engine.max_wait_ms / 1000.0, max_payload_bytes=config.broker.max_payload_bytes,
+            dead_letter=self._dead_letter)
+        self.ingest = (MqttIngest(broker_settings(config), self.topics,
+                                  self._from_mqtt) if mqtt else None)
+        self.started_at = time.time()
+        self._lock: IO[str] | None = None
+
+    # ------------------------------------------------------------- lifecycle
+    def start(self) -> None:
+        """Lock the data directory, start the engine, then ingest."""
+        self._take_lock()
+        self.engine.start()
+        if self.ingest is not None:
+            self.ingest.start()
+
+    def stop(self) -> None:
+        """Stop ingest first (nothing new arrives), then let the engine apply what is queued."""
+        if self.ingest is not None:
+            self.ingest.stop()
+        self.engine.stop()
+        self._release_lock()
+
+    def _take_lock(self) -> None:
+        directory = Path(self.config.store.path)
+        directory.mkdir(parents=True, exist_ok=True)
+        handle = (directory / "ingest.lock").open("a+")
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            handle.close()
+            raise AlreadyRunning(
+                f"another rwls process owns ingest for {directory}: run the API as one process "
+                f"(one uvicorn worker); several would each apply every sample") from None
+        handle.seek(0)
+        handle.truncate()
+        handle.write(f"{os.getpid()}\n")
+        handle.flush()
+        self._lock = handle
+
+    def _release_lock(self) -> None:
+        if self._lock is not None:
+            fcntl.flock(self._lock, fcntl.LOCK_UN)
+            self._lock.close()
+            self._lock = None
+
+    # ------------------------------------------------------------- handovers
+    def _from_mqtt(self, message: Message) -> bool:
+        # Blocks while the engine queue is full: back-pressure onto the broker.
+        return self.engine.submit(message, timeout=None)
+
+    def submit_http(self, channel: str | None, payload: bytes) -> bool:
+        """Queue an HTTP-posted payload without waiting; False when the queue is full."""
+        return self.engine.submit(Message(channel, payload, "http"), timeout=0.0)
+
+    def _dead_letter(self, letter: DeadLetter) -> None:
+        log.info("sample refused reason=%s channel=%s source=%s", letter.reason, letter.channel, letter.source)
+        if self.ingest is not None:
+            self.ingest.publish_dead_letter(letter)
+
+    # ----------------------------------------------------------------- status
+    def readiness(self) -> dict[str, object]:
+        """What ``/ready`` reports; ``ready`` is True when every part is up."""
+        engine_alive = self.engine.alive()
+        depth = self.engine.queue_depth
+        broker = None if self.ingest is None else {
+            "connected": self.ingest.connected, "thread_alive": self.ingest.alive(),
+            "protocol": self.ingest.protocol, "reconnects": self.ingest.reconnects}
+        broker_ok = self.ingest is None or (self.ingest.connected and self.ingest.alive())
+        return {"ready": bool(engine_alive and broker_ok and depth < self.config.engine.queue_size),
+                "engine_alive": engine_alive, "queue_depth": depth,
+                "queue_capacity": self.config.engine.queue_size, "broker": broker,
+                "snapshot_age_seconds": max(0.0, time.time() - self.engine.snapshot.created_at)}
