@@ -20,11 +20,11 @@ demo: $(STAMP)
 replay-demo: $(STAMP)
 	$(VENV)/bin/rwls replay examples/larkspur_sub7.csv --config examples/larkspur_sub7.toml
 
-## test: every test layer (unit, property, reference, slow robustness runs)
+## test: every test layer (unit, property, reference, long runs, integration against MQTT on 127.0.0.1)
 test: $(STAMP)
-	$(PY) -m pytest tests/unit tests/property tests/reference -q
+	$(PY) -m pytest tests/unit tests/property tests/reference tests/integration -q
 
-## test-fast: the offline layers without the long robustness runs
+## test-fast: the offline layers (no broker) without the long robustness runs
 test-fast: $(STAMP)
 	$(PY) -m pytest -q -m "not slow"
 

@@ -113,6 +113,7 @@ class Sample:
     t: float | None = None
     sigma: float | None = None
     weight: float | None = None
+    seq: int | None = None
 
 
 @dataclass
@@ -134,12 +135,17 @@ class Prepared:
     weight: float
 
 
-def check_sample(settings: ChannelSettings, sample: Sample, last_t: float | None) -> str | None:
+def check_sample(settings: ChannelSettings, sample: Sample, last_t: float | None,
+                 last_seq: int | None = None) -> str | None:
     """The reason a sample is refused before any regressor is built, or None.
 
-    Order: non-finite values, sigma and weight signs, time ordering, time
-    required by a half-life in seconds, inputs present.
+    Order: sequence number (a redelivered or replayed message), non-finite
+    values, sigma and weight signs, time ordering, time required by a half-life
+    in seconds, inputs present. ``last_t`` and ``last_seq`` belong to the last
+    accepted sample, so a refused sample never blocks the ones after it.
     """
+    if sample.seq is not None and last_seq is not None and sample.seq <= last_seq:
+        return "duplicate_seq" if sample.seq == last_seq else "out_of_order_seq"
     values = [sample.y, *sample.inputs.values()]
     if sample.sigma is not None:
         values.append(sample.sigma)

@@ -90,6 +90,7 @@ class _Lane:
         self.index = index
         self.counters = ChannelCounters()
         self.last_t: float | None = None
+        self.last_seq: int | None = None
         self.last_tracked_t: float | None = None
 
     def reject(self, reason: str) -> SampleOutcome:
@@ -98,7 +99,7 @@ class _Lane:
 
     def prepare(self, sample: Sample) -> Prepared | SampleOutcome:
         """Checks, regressor and weight; an outcome when the sample goes no further."""
-        reason = check_sample(self.settings, sample, self.last_t)
+        reason = check_sample(self.settings, sample, self.last_t, self.last_seq)
         if reason is not None:
             return self.reject(reason)
         try:
@@ -123,6 +124,8 @@ class _Lane:
             self.noise_builder.push(sample.inputs, sample.y)
         if sample.t is not None:
             self.last_t = sample.t
+        if sample.seq is not None:
+            self.last_seq = sample.seq
 
     def elapsed(self, t: float | None) -> float | None:
         """Seconds since the last tracked sample, for a half-life in seconds (None: first)."""

@@ -6,8 +6,9 @@ blocks MQTT, which stops acknowledging and lets the broker hold the messages,
 and makes HTTP answer 503); readers get an immutable :class:`Snapshot` that the
 engine replaces after each batch, so no reader ever holds a lock on numpy state.
 
-Per message: decode (``service.payload``), per-channel ``seq`` de-duplication,
-then the samples of a micro-batch go to :meth:`ChannelBank.apply` together.
+Per message: decode (``service.payload``); then the samples of a micro-batch
+go to :meth:`ChannelBank.apply` together, which also refuses a ``seq`` or ``t``
+that does not advance the channel's (redeliveries, replays).
 Every refused message or sample is counted by reason and handed to the
 dead-letter callback with that reason; nothing is dropped silently.
 """
@@ -26,7 +27,7 @@ from dataclasses import dataclass, field
 
 from estimator.channel import ChannelSettings, Sample
 from estimator.channel_bank import ChannelBank, ChannelView
-from service.payload import DecodedSample, decode_payload
+from service.payload import decode_payload
 
 __all__ = ["ChannelEntry", "DeadLetter", "Engine", "EngineStats", "Message", "Snapshot", "channel_quality"]
 
@@ -162,7 +163,6 @@ class Engine:
         self._dead_letter = dead_letter
         self._stale_after = stale_after
         self._clock = clock
-        self._last_seq: dict[str, int] = {}
         self._updated_at: dict[str, float] = {}
         self.stats = EngineStats()
         self._thread: threading.Thread | None = None
@@ -276,8 +276,7 @@ class Engine:
     def _process(self, batch: list[Message]) -> None:
         started = time.perf_counter()
         samples: list[Sample] = []
-        origins: list[tuple[Message, int | None, DecodedSample]] = []
-        pending_seq: dict[str, int] = {}
+        origins: list[tuple[Message, int | None]] = []     # message and batch position of each sample
         for message in batch:
             self.stats.messages += 1
             if message.channel is None or message.channel not in self.bank:
@@ -287,37 +286,26 @@ class Engine:
                                                  input_names=self._inputs[message.channel])
             for rejection in rejections:
                 self._refuse(message, rejection.reason, rejection.detail, rejection.index)
-            single = len(decoded) == 1 and not rejections
-            for k, sample in enumerate(decoded):
-                index = None if single else k
-                if sample.seq is not None:
-                    last = pending_seq.get(message.channel, self._last_seq.get(message.channel))
-                    if last is not None and sample.seq <= last:
-                        reason = "duplicate_seq" if sample.seq == last else "out_of_order_seq"
-                        self._refuse(message, reason, f"seq {sample.seq} after {last}", index)
-                        continue
-                    pending_seq[message.channel] = sample.seq
+            for sample in decoded:
                 samples.append(Sample(message.channel, sample.y, sample.inputs, sample.t, sample.sigma,
-                                      sample.weight))
-                origins.append((message, index, sample))
+                                      sample.weight, sample.seq))
+                origins.append((message, sample.index))
         outcomes = self.bank.apply(samples)
         touched: set[str] = set()
-        for outcome, (message, index, decoded) in zip(outcomes, origins, strict=True):
+        for outcome, (message, index) in zip(outcomes, origins, strict=True):
             cid = message.channel
             if cid is None:          # never: such messages were refused before decoding
                 continue
             if outcome.status == "rejected":
                 self._refuse(message, outcome.reason, f"refused by channel {cid}", index)
                 continue
-            if decoded.seq is not None:
-                self._last_seq[cid] = max(decoded.seq, self._last_seq.get(cid, decoded.seq))
             if outcome.status == "applied":
                 self.stats.samples_applied += 1
                 self._updated_at[cid] = message.received
             else:
                 self.stats.samples_warmup += 1
             touched.add(cid)
-        for message, _, _ in origins:
+        for message, _ in origins:
             if message.channel is not None:
                 touched.add(message.channel)       # rejection counters changed too
         if touched:

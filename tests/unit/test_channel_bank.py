@@ -120,3 +120,16 @@ def test_view_reports_every_channel_with_its_settings() -> None:
 def test_empty_configuration_is_refused() -> None:
     with pytest.raises(ValueError, match="at least one channel"):
         ChannelBank({})
+
+
+def test_sequence_numbers_refuse_redeliveries_but_a_refused_sample_blocks_nothing() -> None:
+    bank = ChannelBank({"a": ChannelSettings(terms=("1",))})
+    outcomes = bank.apply([
+        Sample("a", 1.0, {}, 1.0, seq=1),
+        Sample("a", 1.0, {}, 2.0, seq=1),              # redelivered
+        Sample("a", 1.0, {}, 0.5, seq=9),              # refused for its time: seq 9 is not taken
+        Sample("a", 1.0, {}, 3.0, seq=2),
+        Sample("a", 1.0, {}, 4.0, seq=0),              # older
+    ])
+    assert [o.reason or o.status for o in outcomes] == ["applied", "duplicate_seq", "out_of_order", "applied",
+                                                         "out_of_order_seq"]
