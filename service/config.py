@@ -17,10 +17,9 @@ import math
 import os
 import re
 import tomllib
-import types
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Literal, Union, get_args, get_origin
+from typing import Literal
 from urllib.parse import urlsplit
 
 from pydantic import (
@@ -36,6 +35,7 @@ from pydantic import (
 
 from estimator.channel import ChannelSettings, WeightRule
 from estimator.regressors import RegressorSpec
+from service.config_env import apply_environment
 
 __all__ = [
     "BrokerConfig",
@@ -50,7 +50,6 @@ __all__ = [
 ]
 
 _CHANNEL_ID = re.compile(r"^[A-Za-z0-9_.-]{1,128}$")
-_ENV_PREFIX = "RWLS_"
 _BROKER_SCHEMES = {"mqtt": (1883, False), "mqtts": (8883, True)}
 _TOPIC_MAX_BYTES = 65535  # MQTT strings carry a two-byte length prefix
 
@@ -360,88 +359,6 @@ class RwlsConfig(_Strict):
         return owners
 
 
-def _is_text(annotation: object) -> bool:
-    if annotation in (str, SecretStr):
-        return True
-    if get_origin(annotation) in (Union, types.UnionType):
-        return any(_is_text(arg) for arg in get_args(annotation))
-    return False
-
-
-def _wants_text(path: tuple[str, ...]) -> bool:
-    """Whether the key at ``path`` holds text (so ``RWLS_BROKER__PASSWORD=1234`` stays a string)."""
-    annotation: object = RwlsConfig
-    levels = iter(path)
-    for name in levels:
-        if not (isinstance(annotation, type) and issubclass(annotation, BaseModel)):
-            return False
-        field = annotation.model_fields.get(name)
-        if field is None:
-            return False
-        annotation = field.annotation
-        if get_origin(annotation) is dict:
-            if next(levels, None) is None:  # the dict itself, not one of its entries
-                return False
-            annotation = get_args(annotation)[1]
-    return _is_text(annotation)
-
-
-def _env_value(text: str, text_key: bool) -> object:
-    # A newline could smuggle a second TOML key in; such a value is taken as text.
-    if "\n" not in text and "\r" not in text:
-        try:
-            value = tomllib.loads(f"value = {text}")["value"]
-        except tomllib.TOMLDecodeError:
-            pass
-        else:
-            if not text_key or isinstance(value, str):
-                return value
-    return text
-
-
-def _env_path(name: str) -> tuple[str, ...] | None:
-    """The key path ``RWLS_A__B`` names, ``("a", "b")``; ``None`` when a level is empty."""
-    levels = name[len(_ENV_PREFIX):].split("__")
-    if not all(levels):
-        return None
-    path = [level.lower() for level in levels]
-    if path[0] == "channels" and len(levels) > 1:
-        path[1] = levels[1]  # channel ids are case-sensitive
-    return tuple(path)
-
-
-def _apply_environment(data: dict[str, object], environ: Mapping[str, str]
-                       ) -> tuple[dict[str, object], dict[tuple[str, ...], str]]:
-    """``data`` with every ``RWLS_`` variable applied (a copy), and which variable set which key.
-
-    Variables apply in name order, so ``RWLS_BROKER`` (a whole table) comes before
-    ``RWLS_BROKER__URL``, which then overrides one key in it.
-    """
-    merged = dict(data)
-    sources: dict[tuple[str, ...], str] = {}
-    problems: list[str] = []
-    for name in sorted(n for n in environ if n.startswith(_ENV_PREFIX)):
-        path = _env_path(name)
-        if path is None:
-            problems.append(f"{name}: empty key level; separate levels with exactly two underscores")
-            continue
-        table = merged
-        for depth, level in enumerate(path[:-1]):
-            inner = table.get(level, {})
-            if not isinstance(inner, dict):
-                problems.append(f"{'.'.join(path[:depth + 1])}: not a table, so {name} cannot set a key in it")
-                break
-            copied: dict[str, object] = dict(inner)  # so the caller's document is left as it was
-            table[level] = copied
-            table = copied
-        else:
-            table[path[-1]] = _env_value(environ[name], _wants_text(path))
-            sources[path] = name
-    if problems:
-        raise ConfigError(problems)
-    return merged, sources
-
-
 def _explain(error: ValidationError, sources: Mapping[tuple[str, ...], str] | None = None) -> list[str]:
     # Only pydantic's message is used, never its ``input``: that could be the password.
     problems = []
@@ -510,5 +427,7 @@ def load_config(path: str | Path | None, environ: Mapping[str, str] | None = Non
             data = tomllib.loads(text)
         except tomllib.TOMLDecodeError as exc:
             raise ConfigError([f"{path}: TOML syntax error: {exc}"]) from None
-    merged, sources = _apply_environment(data, os.environ if environ is None else environ)
+    merged, sources, problems = apply_environment(data, os.environ if environ is None else environ, RwlsConfig)
+    if problems:
+        raise ConfigError(problems)
     return _validate(merged, sources)
