@@ -71,7 +71,7 @@ class _EngineCollector(Collector):
         yield CounterMetricFamily("rwls_samples_warmup", "Samples that only filled lag buffers",
                                   value=stats.samples_warmup)
         rejections = CounterMetricFamily("rwls_rejections", "Refused messages or samples", labels=["reason"])
-        for reason, count in sorted(stats.rejected.items()):
+        for reason, count in sorted(self._runtime.rejections().items()):
             rejections.add_metric([reason], count)
         yield rejections
         yield CounterMetricFamily("rwls_dead_letter_failures", "Dead letters the broker did not take",
@@ -156,7 +156,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
              response_class=Response)
     def snapshot(request: Request) -> Response:
         snap = runtime.engine.snapshot
-        etag = f'W/"{snap.version}"'
+        etag = f'W/"{runtime.started_at!r}-{snap.version}"'   # versions restart with the process
         if request.headers.get("if-none-match") == etag:
             return Response(status_code=304, headers={"ETag": etag})
         if snapshot_cache["version"] != snap.version:
@@ -171,21 +171,27 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
               summary="Ingest samples over HTTP (the MQTT payload contract, same validation)")
     async def post_samples(channel_id: str, request: Request) -> dict[str, object] | JSONResponse:
         if channel_id not in runtime.engine.bank:
+            runtime.refuse_http("unknown_channel")
             return not_found("unknown channel")
         declared = request.headers.get("content-length")
-        if declared is not None and declared.isdigit() and int(declared) > max_payload:
+        # ASCII digits only ("²" passes isdigit); 12 leading digits bound int() and are already > 16 MiB.
+        if declared is not None and declared.isascii() and declared.isdigit() and int(declared[:12]) > max_payload:
+            runtime.refuse_http("too_large")
             return JSONResponse({"detail": "payload too large"}, status_code=413)
         body = b""
         async for chunk in request.stream():
             body += chunk
             if len(body) > max_payload:
+                runtime.refuse_http("too_large")
                 return JSONResponse({"detail": "payload too large"}, status_code=413)
         inputs = runtime.engine.bank.settings(channel_id).input_names
         decoded, rejections = decode_payload(body, max_bytes=max_payload, input_names=inputs)
+        if not decoded and rejections and rejections[0].index is None:
+            # Refused as a whole: the client hears why; nothing for the engine to do.
+            runtime.refuse_http(rejections[0].reason)
+            return JSONResponse({"detail": rejections[0].reason}, status_code=400)
         if not runtime.submit_http(channel_id, body):
             return JSONResponse({"detail": "busy, retry later"}, status_code=503, headers={"Retry-After": "1"})
-        if not decoded and rejections and rejections[0].index is None:
-            return JSONResponse({"detail": rejections[0].reason}, status_code=400)
         return {"queued": len(decoded),
                 "rejected": [{"index": r.index, "reason": r.reason} for r in rejections]}
 

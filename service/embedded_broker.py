@@ -7,7 +7,8 @@ its own with its own event loop, listening on 127.0.0.1 and a free port chosen b
         client.connect(broker.host, broker.port)
         ...                                   # stop() on leaving: clients are disconnected, thread joined
 
-What it supports (checked by ``tests/integration/test_brokers.py`` with paho-mqtt 2.x):
+What it supports (QoS 1 round trips, persistent sessions and retained messages are checked with paho-mqtt
+2.x by ``tests/integration/test_brokers.py``):
 
 - MQTT 3.1.1 over plain TCP, QoS 0, 1 and 2, retained messages, wills, ``+``/``#`` wildcards;
 - persistent sessions (``clean_session=False`` with a fixed client id): subscriptions are kept and QoS 1/2
@@ -24,6 +25,10 @@ What it does not support, or does differently from Mosquitto (do not use it wher
   (there is no ``persistence`` like Mosquitto's). Use a private Mosquitto for broker-restart tests.
 - No limit on queued messages per offline client (Mosquitto's ``max_queued_messages``), so it never drops
   them silently either, and memory grows with the backlog.
+- QoS 1/2 towards a subscriber is weaker than Mosquitto's: a message whose PUBACK has not come back
+  within 5 s is given up, neither resent nor kept for the session's next connection. amqtt may also log
+  "Received PUBACK for unknown pending message" when a PUBACK overtakes its own bookkeeping; that message
+  was delivered, and the sending task waits out those 5 s.
 - Messages are delivered at the subscription's QoS even when they were published at a lower QoS (MQTT
   says the minimum of the two).
 - Two amqtt 0.12.1 faults with retained messages are worked around by overriding private methods of its
@@ -88,6 +93,24 @@ class _Broker(Broker):
     def __init__(self, *args: Any, **kwargs: Any) -> None:
         super().__init__(*args, **kwargs)
         self._connecting: set[str] = set()
+        self.open_writers: set[asyncio.StreamWriter] = set()
+
+    async def stream_connected(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter,
+                               listener_name: str) -> None:
+        # amqtt can leave a connection's transport open (a peer that resets mid-write, a shutdown that times
+        # out); close it when its handler ends, and let stop() abort whatever is still open.
+        self.open_writers.add(writer)
+        try:
+            await super().stream_connected(reader, writer, listener_name)
+        finally:
+            self.open_writers.discard(writer)
+            if not writer.is_closing():
+                writer.transport.abort()
+
+    def abort_connections(self) -> None:
+        for writer in list(self.open_writers):
+            writer.transport.abort()
+        self.open_writers.clear()
 
     async def _publish_session_retained_messages(self, session: Session) -> None:
         # Called once per CONNECT, right before the pass of fix 1; _client_message_loop follows that pass.
@@ -234,8 +257,8 @@ class EmbeddedBroker:
         self._stop_request = asyncio.Event()
         broker = _Broker(self._config(), loop=self._loop)
         await broker.start()
+        server = broker._servers[_LISTENER].instance  # amqtt keeps the asyncio.Server there
         try:
-            server = broker._servers[_LISTENER].instance  # amqtt keeps the asyncio.Server there
             sockets = getattr(server, "sockets", None) or ()
             if not sockets:
                 raise EmbeddedBrokerError("the embedded broker has no listening socket")
@@ -243,10 +266,15 @@ class EmbeddedBroker:
             self._ready.set()
             await self._stop_request.wait()
         finally:
+            server.close()  # no new connections while shutting down
             try:
-                await asyncio.wait_for(broker.shutdown(), timeout=max(1.0, self._stop_timeout - 2.0))
+                await asyncio.wait_for(broker.shutdown(), timeout=max(1.0, self._stop_timeout / 2))
             except TimeoutError:
-                _log.warning("embedded MQTT broker did not shut down cleanly within the timeout")
+                _log.warning("embedded MQTT broker did not shut down cleanly within %.1f s; aborting its "
+                             "connections", max(1.0, self._stop_timeout / 2))
+            finally:
+                broker.abort_connections()
+                await asyncio.sleep(0)  # let the aborted transports close their sockets
 
     def _request_stop(self) -> None:
         loop, stop_request = self._loop, self._stop_request

@@ -10,7 +10,9 @@ from __future__ import annotations
 import fcntl
 import logging
 import os
+import threading
 import time
+from collections import Counter
 from pathlib import Path
 from typing import IO
 
@@ -60,6 +62,10 @@ class Runtime:
                                   self._from_mqtt) if mqtt else None)
         self.started_at = time.time()
         self._lock: IO[str] | None = None
+        # HTTP requests refused before they reach the queue (404, 413): counted here,
+        # under a lock, since handlers run on several threads.
+        self._http_refusals: Counter[str] = Counter()
+        self._http_refusals_lock = threading.Lock()
 
     # ------------------------------------------------------------- lifecycle
     def start(self) -> None:
@@ -107,6 +113,18 @@ class Runtime:
     def submit_http(self, channel: str | None, payload: bytes) -> bool:
         """Queue an HTTP-posted payload without waiting; False when the queue is full."""
         return self.engine.submit(Message(channel, payload, "http"), timeout=0.0)
+
+    def refuse_http(self, reason: str) -> None:
+        """Count an HTTP request refused before the engine saw it."""
+        with self._http_refusals_lock:
+            self._http_refusals[reason] += 1
+
+    def rejections(self) -> dict[str, int]:
+        """Refusals by reason: the engine's and the HTTP handlers' together."""
+        with self._http_refusals_lock:
+            total = Counter(self._http_refusals)
+        total.update(self.engine.stats.rejected)
+        return dict(total)
 
     def _dead_letter(self, letter: DeadLetter) -> None:
         log.info("sample refused reason=%s channel=%s source=%s", letter.reason, letter.channel, letter.source)

@@ -80,6 +80,8 @@ def mqtt_broker(tmp_path_factory: pytest.TempPathFactory) -> Iterator[BrokerInfo
         pytest.fail("RWLS_TEST_BROKER=private but no mosquitto binary was found")
 
     if _in_ci():
+        if choice == "embedded":
+            pytest.fail("RWLS_TEST_BROKER=embedded is refused with CI=true: CI tests against a real Mosquitto")
         pytest.fail(
             "CI=true needs a real Mosquitto: nothing answers MQTT on 127.0.0.1:1883 and no `mosquitto` binary "
             "is on PATH (install Debian's mosquitto package, or start it in .ci/run)")

@@ -89,7 +89,7 @@ def free_port() -> int:
 # a raw MQTT CONNECT probe (no paho thread, no callbacks)
 
 
-def _connect_packet(client_id: str, keepalive: int = 5) -> bytes:
+def connect_packet(client_id: str, keepalive: int = 5) -> bytes:
     cid = client_id.encode()
     variable = b"\x00\x04MQTT" + bytes([4, 0x02]) + struct.pack("!H", keepalive)  # 3.1.1, clean session
     payload = struct.pack("!H", len(cid)) + cid
@@ -105,7 +105,7 @@ def probe_mqtt(host: str = LOOPBACK, port: int = 1883, timeout: float = 2.0) -> 
     try:
         with socket.create_connection((host, port), timeout=timeout) as sock:
             sock.settimeout(timeout)
-            sock.sendall(_connect_packet(unique_client_id("probe")))
+            sock.sendall(connect_packet(unique_client_id("probe")))
             reply = b""
             deadline = time.monotonic() + timeout
             while len(reply) < 4 and time.monotonic() < deadline:
@@ -260,7 +260,7 @@ class PrivateMosquitto:
         if self.running:
             raise RuntimeError(f"private mosquitto already running (pid {self.pid})")
         with self.log_path.open("ab") as log:
-            self._proc = subprocess.Popen(  # noqa: S603 - a fixed binary and a config file we wrote
+            self._proc = subprocess.Popen(  # a fixed binary and a config file we wrote
                 [self.binary, "-c", str(self.config_path)],
                 stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
             )

@@ -3,6 +3,8 @@ keeps its queued QoS 1 messages across a restart of a private Mosquitto."""
 
 from __future__ import annotations
 
+import socket
+import struct
 import threading
 import time
 from collections.abc import Callable
@@ -15,6 +17,7 @@ from tests.integration.mqtt_support import (
     BrokerInfo,
     Collector,
     PrivateMosquitto,
+    connect_packet,
     new_client,
     probe_mqtt,
     publish_and_wait,
@@ -165,6 +168,26 @@ def test_embedded_broker_lifecycle_errors() -> None:
     finally:
         broker.stop()
     broker.stop()  # twice is fine
+
+
+def test_embedded_broker_stops_in_bounded_time_with_a_stuck_subscriber(client_id: Callable[[str], str]) -> None:
+    broker = EmbeddedBroker(stop_timeout=10)
+    broker.start()
+    try:
+        with socket.create_connection((broker.host, broker.port), timeout=5) as stuck:
+            stuck.sendall(connect_packet(client_id("stuck")))
+            assert stuck.recv(4) == b"\x20\x02\x00\x00"
+            topic = b"stuck/#"
+            body = struct.pack("!H", 1) + struct.pack("!H", len(topic)) + topic + b"\x01"
+            stuck.sendall(bytes([0x82, len(body)]) + body)  # SUBSCRIBE at QoS 1, then never read again
+            assert stuck.recv(5) == b"\x90\x03\x00\x01\x01"
+            publish_and_wait(broker, [("stuck/x", b"x" * 10_000)] * 300, qos=1, timeout=30)
+            t0 = time.monotonic()
+            broker.stop()
+            assert time.monotonic() - t0 < 10
+    finally:
+        broker.stop()
+    assert not broker.running
 
 
 # -- a private Mosquitto across a restart ----------------------------------------------------------------
