@@ -22,9 +22,9 @@ from tests.benchmarks._common import PlainRLSBankSoA, print_header, print_table,
 
 pytestmark = pytest.mark.benchmark
 
-# The attributes the issue names. Those a given version does not have are
-# reported as absent; arrays it has beyond these are counted and listed too.
-NAMED_STATE = ("_A", "_sqrt_lambda", "_lambda", "_floor", "_sqrt_floor_row", "_has_floor",
+# The bank's state arrays. Those a given version does not have are reported as
+# absent; arrays it has beyond these are counted and listed too.
+NAMED_STATE = ("_A", "_sqrt_lambda", "_lambda", "_limit", "_inv_limit", "_has_limit",
                "_n_eff", "_n_eff_sq", "_count", "_all_channels")
 SIZES = ((4, 10_000), (2, 10_000), (8, 10_000), (4, 1_000), (4, 100_000))
 KIB = 1024

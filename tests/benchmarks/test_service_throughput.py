@@ -108,7 +108,8 @@ PROFILE_LATENCY_SECONDS = 3.0         # paced run under cProfile
 BROKER_LIMITS = ("max_queued_messages 1000000", "max_inflight_messages 0")
 SESSION_EXPIRY = 3600                 # seconds, the bare subscriber's session for the backlog drain
 RUN_TIMEOUT = 120.0                   # seconds, any one run
-STALL = 5.0                           # seconds without progress once nothing more is coming: stop waiting
+STALL = 20.0                          # seconds without progress once nothing more is coming: stop waiting
+RAW_STALL = 3.0                       # the same for a bare subscriber (QoS 0 may really lose messages)
 POLL = 0.002                          # seconds between counter polls
 
 GOAL_RATIO = 0.80
@@ -120,6 +121,8 @@ GOAL_SNAPSHOT = 0.050
 # ----------------------------------------------------------------- environment
 def _header(what: str, broker: str) -> None:
     print_header(what)
+    load = ", ".join(f"{x:.2f}" for x in os.getloadavg())
+    print(f"   load average now {load} (other work on this machine shares its {os.cpu_count()} CPUs)")
     print(f"   paho-mqtt {paho.mqtt.__version__} | fastapi {fastapi.__version__} | uvicorn {uvicorn.__version__} | "
           f"httpx {httpx.__version__} | broker: {broker}")
 
@@ -241,10 +244,11 @@ def _check_publisher(result: dict[str, Any], messages: int) -> None:
 
 
 def _watch(progress: Callable[[], int], target: int, more_coming: Callable[[], bool],
-           on_poll: Callable[[], None] | None = None) -> float | None:
+           on_poll: Callable[[], None] | None = None, stall: float = STALL) -> float | None:
     """Poll ``progress()`` until it reaches ``target``; the perf_counter time it did, or None.
 
-    Bounded by RUN_TIMEOUT, and by STALL seconds without progress once ``more_coming()`` is False.
+    Bounded by RUN_TIMEOUT, and by ``stall`` seconds without progress once ``more_coming()`` is False (a
+    micro-batch of many batch payloads can take seconds before its first sample counts).
     """
     seen, moved = 0, time.monotonic()
     end = moved + RUN_TIMEOUT
@@ -257,7 +261,7 @@ def _watch(progress: Callable[[], int], target: int, more_coming: Callable[[], b
             return now
         if value > seen:
             seen, moved = value, time.monotonic()
-        elif not more_coming() and time.monotonic() - moved > STALL:
+        elif not more_coming() and time.monotonic() - moved > stall:
             return None
         time.sleep(POLL)
     return None
@@ -361,10 +365,10 @@ def _raw_live(broker: Broker, qos: int, protocol: int = mqtt.MQTTv5) -> dict[str
     try:
         cpu0, broker0 = _thread_cpu(subscriber.native_id), _process_cpu(broker.pid)
         with _publisher(broker.port, prefix, messages=RAW_MESSAGES, qos=qos) as proc:
-            _watch(lambda: subscriber.count, RAW_MESSAGES, _running(proc))
+            _watch(lambda: subscriber.count, RAW_MESSAGES, _running(proc), stall=RAW_STALL)
             published = _finish(proc)
         if subscriber.count < published.get("published", 0):     # QoS 0 may lose: wait (bounded), then count
-            _watch(lambda: subscriber.count, published["published"], _nothing_more)
+            _watch(lambda: subscriber.count, published["published"], _nothing_more, stall=RAW_STALL)
         cpu1, broker1 = _thread_cpu(subscriber.native_id), _process_cpu(broker.pid)
     finally:
         subscriber.stop()
@@ -388,7 +392,7 @@ def _raw_drain(broker: Broker) -> dict[str, Any]:
     subscriber.start(subscribe=False, resume=True)
     try:
         cpu0 = _thread_cpu(subscriber.native_id)
-        _watch(lambda: subscriber.count, published.get("published", 0), _nothing_more)
+        _watch(lambda: subscriber.count, published.get("published", 0), _nothing_more, stall=RAW_STALL)
         cpu1, broker1 = _thread_cpu(subscriber.native_id), _process_cpu(broker.pid)
     finally:
         subscriber.stop()
@@ -406,7 +410,7 @@ def _raw_latency(broker: Broker) -> dict[str, Any]:
     subscriber.start()
     try:
         with _publisher(broker.port, prefix, messages=messages, rate=LATENCY_RATE, wall=True) as proc:
-            _watch(lambda: subscriber.count, messages, _running(proc))
+            _watch(lambda: subscriber.count, messages, _running(proc), stall=RAW_STALL)
             published = _finish(proc)
     finally:
         subscriber.stop()

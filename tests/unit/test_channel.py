@@ -12,7 +12,7 @@ from estimator.channel_bank import ChannelBank
 from estimator.rwls import RecursiveWLSBank
 
 
-class ChannelPipeline:
+class OneChannel:
     """One channel of a ChannelBank, with the single-channel call shape these tests read best in."""
 
     def __init__(self, settings: ChannelSettings) -> None:
@@ -26,7 +26,7 @@ class ChannelPipeline:
         return self.bank_of_channels.apply_one(Sample("c", y, inputs, **kwargs))
 
 
-def _state_arrays(pipeline: ChannelPipeline) -> list[np.ndarray]:
+def _state_arrays(pipeline: OneChannel) -> list[np.ndarray]:
     bank = pipeline.estimator.state()
     tracker = pipeline.tracker.state()
     arrays = [bank.factor, bank.effective_count, bank.effective_count_sq, bank.sample_count]
@@ -40,7 +40,7 @@ def _same(a: list[np.ndarray], b: list[np.ndarray]) -> bool:
 
 def test_unit_weighting_is_the_bank_with_unit_weights_bit_for_bit() -> None:
     rng = np.random.default_rng(1)
-    pipeline = ChannelPipeline(ChannelSettings(terms=("1", "u", "u^2"), forgetting_factor=0.99))
+    pipeline = OneChannel(ChannelSettings(terms=("1", "u", "u^2"), forgetting_factor=0.99))
     bank = RecursiveWLSBank(1, 3, 0.99)
     for _ in range(300):
         u = float(rng.normal())
@@ -54,7 +54,7 @@ def test_unit_weighting_is_the_bank_with_unit_weights_bit_for_bit() -> None:
 
 
 def test_sample_weighting_uses_sigma_then_weight_and_rejects_neither() -> None:
-    pipeline = ChannelPipeline(ChannelSettings(terms=("1",), weighting="sample"))
+    pipeline = OneChannel(ChannelSettings(terms=("1",), weighting="sample"))
     assert pipeline.apply({}, 1.0, sigma=0.5).weight == 4.0          # w = 1 / sigma^2
     assert pipeline.apply({}, 1.0, weight=3.0).weight == 3.0
     assert pipeline.apply({}, 1.0, sigma=0.5, weight=3.0).weight == 4.0   # sigma wins
@@ -70,7 +70,7 @@ def test_sample_weighting_uses_sigma_then_weight_and_rejects_neither() -> None:
 def test_tracked_weight_is_the_inverse_variance_known_before_the_sample() -> None:
     rng = np.random.default_rng(2)
     settings = ChannelSettings(terms=("1", "u"), weighting="tracked", initial_sigma=2.0, noise_warmup=5)
-    pipeline = ChannelPipeline(settings)
+    pipeline = OneChannel(settings)
     for k in range(200):
         before = pipeline.tracker.variance_one(0)
         u = float(rng.normal())
@@ -81,7 +81,7 @@ def test_tracked_weight_is_the_inverse_variance_known_before_the_sample() -> Non
 
 def test_weight_rules_multiply_inside_the_band_only() -> None:
     rule = WeightRule(input="u", low=1.0, high=2.0, factor=4.0)
-    pipeline = ChannelPipeline(ChannelSettings(terms=("1", "u"), weight_rules=(rule,)))
+    pipeline = OneChannel(ChannelSettings(terms=("1", "u"), weight_rules=(rule,)))
     assert pipeline.apply({"u": 1.5}, 1.0).weight == 4.0
     assert pipeline.apply({"u": 2.0}, 1.0).weight == 4.0     # bounds are inclusive
     assert pipeline.apply({"u": 2.5}, 1.0).weight == 1.0
@@ -96,7 +96,7 @@ def test_weight_rules_multiply_inside_the_band_only() -> None:
 ])
 def test_rejected_sample_leaves_every_array_and_lag_untouched(inputs: dict, y: float, kwargs: dict,
                                                               reason: str) -> None:
-    pipeline = ChannelPipeline(ChannelSettings(terms=("1", "u", "y[-1]"), forgetting_factor=0.98,
+    pipeline = OneChannel(ChannelSettings(terms=("1", "u", "y[-1]"), forgetting_factor=0.98,
                                                weighting="tracked"))
     rng = np.random.default_rng(3)
     for k in range(50):
@@ -111,7 +111,7 @@ def test_rejected_sample_leaves_every_array_and_lag_untouched(inputs: dict, y: f
 
 
 def test_arx_channel_reports_warmup_until_its_lags_fill() -> None:
-    pipeline = ChannelPipeline(ChannelSettings(terms=("1", "y[-2]", "u[-1]")))
+    pipeline = OneChannel(ChannelSettings(terms=("1", "y[-2]", "u[-1]")))
     statuses = [pipeline.apply({"u": float(k)}, float(k) * 0.5).status for k in range(4)]
     assert statuses == ["warmup", "warmup", "applied", "applied"]
     assert (pipeline.counters.warmup, pipeline.counters.applied) == (2, 2)
@@ -120,7 +120,7 @@ def test_arx_channel_reports_warmup_until_its_lags_fill() -> None:
 def test_operating_point_model_supplies_the_tracked_weight_once_warm() -> None:
     rng = np.random.default_rng(4)
     settings = ChannelSettings(terms=("1", "load"), weighting="tracked", noise_model_terms=("1", "load"))
-    pipeline = ChannelPipeline(settings)
+    pipeline = OneChannel(settings)
     for _ in range(3000):
         load = float(rng.uniform(0.0, 3.0))
         sigma = math.exp(0.5 * (-2.0 + 0.8 * load))   # ln sigma^2 = -2 + 0.8 load (invented)
