@@ -30,6 +30,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from functools import cached_property
 
 from estimator.regressors import RegressorSpec
 
@@ -81,9 +82,9 @@ class ChannelSettings:
         if not (math.isfinite(self.initial_sigma) and self.initial_sigma > 0.0):
             raise ValueError(f"initial_sigma must be finite and > 0, got {self.initial_sigma}")
 
-    @property
+    @cached_property
     def input_names(self) -> tuple[str, ...]:
-        """Every input the channel reads: terms, rules and operating-point terms."""
+        """Every input the channel reads: terms, rules and operating-point terms (worked out once)."""
         names = set(RegressorSpec(self.terms).input_names)
         names.update(rule.input for rule in self.weight_rules)
         if self.noise_model_terms:

@@ -129,6 +129,11 @@ def _simulate(args: argparse.Namespace) -> int:
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``rwls`` console script; returns the exit status."""
     args = _parser().parse_args(argv)
+    if args.command in ("serve", "demo"):
+        # paho's network thread and the engine share one interpreter: a shorter switch
+        # interval (default 5 ms) hands the GIL to paho sooner, which halves the time a
+        # message waits before on_message at high rates (measured in tests/benchmarks).
+        sys.setswitchinterval(0.0005)
     level = logging.INFO if args.command in ("serve", "demo") else logging.WARNING
     logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     try:

@@ -297,8 +297,8 @@ class StoreConfig(_StrictValues):
 class EngineConfig(_StrictValues):
     """``[engine]``: the bounded ingest queue and its micro-batches."""
 
-    queue_size: int = Field(default=100_000, ge=1, description="samples")
-    max_batch: int = Field(default=5000, ge=1, description="samples per micro-batch")
+    queue_size: int = Field(default=100_000, ge=1, description="messages (a batch payload is one)")
+    max_batch: int = Field(default=5000, ge=1, description="messages per micro-batch")
     max_wait_ms: float = Field(default=5.0, ge=0.0, le=60_000.0, allow_inf_nan=False,
                                description="how long a micro-batch waits to fill")
 

@@ -4,24 +4,26 @@ Everything talks to a private Mosquitto started for this module on a free
 127.0.0.1 port (config in a temporary folder: listener on 127.0.0.1 only,
 anonymous, persistence off, ``max_queued_messages 1000000`` and
 ``max_inflight_messages 0`` set on purpose, so a subscriber that falls behind
-is queued for rather than silently dropped at the default limit of 1000). It
-is stopped by PID at the end. Load comes from ``_publisher.py`` in a separate
-process (paho, at most 1000 QoS 1 messages in flight, every return code
-checked; it reports what it published).
+is queued for rather than silently dropped at the default limit of 1000; the
+config is printed). It is stopped by PID at the end. Load comes from
+``_publisher.py`` in a separate process (paho, at most 1000 QoS 1 messages in
+flight, every return code checked; it reports what it published).
 
 Measured in one run, each service figure printed beside the raw paho figure:
 
 1. a bare paho subscriber (``loop_start`` thread, ``on_message`` only counts):
-   messages/s at QoS 1 and QoS 0 while the publisher runs, and the drain of a
-   backlog queued at the broker for its persistent session (the subscriber's
-   own ceiling, not the publisher's); drops (published - received);
+   messages/s at QoS 1 (MQTT 5 and 3.1.1) and QoS 0 while the publisher runs,
+   and the drain of a backlog the broker queued for its persistent session
+   (the subscriber's own ceiling, not the publisher's); drops (published -
+   received);
 2. the service (``Runtime``: MQTT ingest + engine, 1000 channels ``["1", "u"]``)
    fed one sample per message, live and as a backlog drain: samples/s from the
    first message handed over by paho to the last sample applied, and its ratio
    to the raw QoS 1 rate measured the same way;
-3. the same with ``{"samples": [...]}`` payloads of 100 samples;
-4. latency from publish to visible, paced: the publisher puts its
-   ``time.time()`` into ``t``; a separate process polls the real
+3. the same, live, with ``{"samples": [...]}`` payloads of 100 samples;
+4. latency from publish to visible, paced at 5000 samples/s (the goal) and
+   2000/s (contrast): the publisher puts its ``time.time()`` into ``t``; a
+   separate process (``_snapshot_poller.py``) polls the real
    ``/api/v1/snapshot`` (uvicorn on a loopback port, in a thread of the
    service's process) and takes response time - ``t`` for every channel whose
    ``t`` changed;
@@ -29,12 +31,14 @@ Measured in one run, each service figure printed beside the raw paho figure:
    snapshot version) and warm (cached body), through real HTTP and TestClient,
    beside the same stack serving a ready body of the same size.
 
-Counts are asserted (nothing lost at QoS 1, every sample applied or counted as
-rejected); times never are. A missed goal is followed by a cProfile of the
-service's engine and paho threads (CPU time of the thread,
-``time.thread_time``) listing the functions that take the time.
+Beside the rates: CPU per message of the paho thread and per sample of the
+engine thread (``/proc`` schedstat), and how busy the whole machine was with
+other work during each test (other sessions share its CPUs). Counts are
+asserted (nothing lost at QoS 1, every sample applied or counted as rejected);
+times never are. A missed goal is followed by a cProfile of the service's
+engine and paho threads (CPU time of the thread, ``time.thread_time``) listing
+the functions that take the time.
 """
-
 from __future__ import annotations
 
 import contextlib
@@ -119,12 +123,39 @@ GOAL_SNAPSHOT = 0.050
 
 
 # ----------------------------------------------------------------- environment
-def _header(what: str, broker: str) -> None:
+def _header(what: str, broker: str, usage: MachineUsage | None = None) -> None:
     print_header(what)
-    load = ", ".join(f"{x:.2f}" for x in os.getloadavg())
-    print(f"   load average now {load} (other work on this machine shares its {os.cpu_count()} CPUs)")
+    if usage is not None:
+        print(f"   {usage.line()}")
     print(f"   paho-mqtt {paho.mqtt.__version__} | fastapi {fastapi.__version__} | uvicorn {uvicorn.__version__} | "
           f"httpx {httpx.__version__} | broker: {broker}")
+
+
+class MachineUsage:
+    """CPU seconds the whole machine was busy (``/proc/stat``) against those of this benchmark's processes.
+
+    Ours: this process, its waited-for children (publisher, poller) and the broker. The rest is other work
+    sharing the machine, which slows the figures down.
+    """
+
+    def __init__(self, broker_pid: int | None = None) -> None:
+        self._broker_pid = broker_pid
+        self._start = self._read()
+
+    def _read(self) -> tuple[float, float, float, float]:
+        fields = [int(x) for x in Path("/proc/stat").read_text().splitlines()[0].split()[1:9]]
+        tick = os.sysconf("SC_CLK_TCK")
+        busy = (fields[0] + fields[1] + fields[2] + fields[5] + fields[6] + fields[7]) / tick
+        total = busy + (fields[3] + fields[4]) / tick
+        times = os.times()
+        broker = _process_cpu(self._broker_pid) if self._broker_pid is not None else 0.0
+        return busy, total, times.user + times.system + times.children_user + times.children_system, broker
+
+    def line(self) -> str:
+        busy, total, ours, broker = (b - a for a, b in zip(self._start, self._read(), strict=True))
+        mine = ours + (broker if math.isfinite(broker) else 0.0)
+        return (f"machine during this test: {busy:.1f} of {total:.1f} CPU-s busy ({os.cpu_count()} CPUs); this "
+                f"benchmark's processes {mine:.1f}, other work about {max(busy - mine, 0.0):.1f} (tick resolution)")
 
 
 def _thread_cpu(native_id: int | None) -> float:
@@ -435,9 +466,11 @@ class RawFigures:
 @pytest.fixture(scope="module")
 def raw(broker: Broker) -> RawFigures:
     """The bare paho subscriber's figures, measured once per run and printed beside every service figure."""
+    usage = MachineUsage(broker.pid)
     figures = RawFigures(_raw_live(broker, 1), _raw_live(broker, 0), _raw_live(broker, 1, mqtt.MQTTv311),
                          _raw_drain(broker), _raw_latency(broker))
-    _header(f"raw paho receive rate: {RAW_MESSAGES:,} one-sample messages over {CHANNELS:,} topics", broker.description)
+    _header(f"raw paho receive rate: {RAW_MESSAGES:,} one-sample messages over {CHANNELS:,} topics", broker.description,
+            usage)
     print("   bare paho 2.x subscriber (loop_start thread, on_message only counts); publisher in a separate process, "
           f"at most {MAX_IN_FLIGHT} in flight. rate = received / (last - first arrival). live: received while the "
           "publisher runs (bounded by the publisher too); backlog drain: all messages published while the subscriber "
@@ -708,10 +741,12 @@ def test_raw_paho_receive_rate(raw: RawFigures) -> None:
 
 
 def test_service_ingest_rate(broker: Broker, raw: RawFigures, tmp_path: Path) -> None:
+    usage = MachineUsage(broker.pid)
     single = _service_live(broker, tmp_path, messages=SERVICE_MESSAGES, batch=1)
     drained = _service_drain(broker, tmp_path, messages=SERVICE_MESSAGES)
     batched = _service_live(broker, tmp_path, messages=BATCH_MESSAGES, batch=BATCH_SIZE)
-    _header(f"service ingest (Runtime: MQTT ingest + engine), {CHANNELS:,} channels, QoS 1", broker.description)
+    _header(f"service ingest (Runtime: MQTT ingest + engine), {CHANNELS:,} channels, QoS 1", broker.description,
+            usage)
     print(_engine_line(_config(tmp_path / "shown", CHANNELS, port=broker.port, prefix="shown")))
     print("   samples/s = samples / (first message handed over by paho -> last sample applied), engine counters polled "
           f"every {POLL * 1e3:.0f} ms; ratio = that over the raw paho QoS 1 msg/s measured the same way (live beside "
@@ -867,11 +902,12 @@ def _latency_run(broker: Broker, store: Path, rate: float, seconds: float, *, ht
 
 
 def test_latency_publish_to_snapshot(broker: Broker, raw: RawFigures, tmp_path: Path) -> None:
+    usage = MachineUsage(broker.pid)
     main = _latency_run(broker, tmp_path, LATENCY_RATE, LATENCY_SECONDS)
     light = _latency_run(broker, tmp_path, CONTRAST_RATE, CONTRAST_SECONDS)
     _header(f"latency publish -> visible, paced over {CHANNELS:,} channels, QoS 1: {LATENCY_RATE:,.0f} samples/s for "
             f"{LATENCY_SECONDS:.0f} s (the goal) and {CONTRAST_RATE:,.0f}/s for {CONTRAST_SECONDS:.0f} s (contrast)",
-            broker.description)
+            broker.description, usage)
     print(_engine_line(main["config"]))
     print("   method: the publisher (separate process) sets t = its time.time() just before publish; latency = "
           "observation time - t, same machine clock.")
@@ -963,6 +999,7 @@ def _test_client(app: fastapi.FastAPI) -> Any:
 
 
 def test_snapshot_get_10000_channels(tmp_path: Path) -> None:
+    usage = MachineUsage()
     built = time.perf_counter()
     config = _config(tmp_path / "snapshot", SNAPSHOT_CHANNELS)
     runtime = Runtime(config, mqtt=False)
@@ -1005,7 +1042,7 @@ def test_snapshot_get_10000_channels(tmp_path: Path) -> None:
     finally:
         runtime.stop()
 
-    _header(f"GET /api/v1/snapshot with {SNAPSHOT_CHANNELS:,} channels, {SNAPSHOT_CALLS} calls each", "not used")
+    _header(f"GET /api/v1/snapshot with {SNAPSHOT_CHANNELS:,} channels, {SNAPSHOT_CALLS} calls each", "not used", usage)
     print(f"   setup: config + engine for {SNAPSHOT_CHANNELS:,} channels {build_seconds:.2f} s; 5 samples per channel "
           f"applied in {feed_seconds:.2f} s; qualities {qualities}; joining the {SNAPSHOT_CHANNELS:,} cached "
           f"fragments in-process {join_seconds * 1e3:.1f} ms")
