@@ -156,6 +156,8 @@ def _parse_int(text: str) -> int | float:
 
 def _too_deep(text: str, limit: int) -> bool:
     """True when brackets outside string literals nest deeper than ``limit`` (one pass, no recursion)."""
+    if text.count("[") + text.count("{") <= limit:
+        return False          # too few brackets to nest that deep: skip the scan (the usual sample)
     depth = 0
     for match in _TOKENS.finditer(text):
         char = match.group()[0]
