@@ -233,9 +233,7 @@ class Engine:
             try:
                 first = self._queue.get(timeout=0.25)
             except queue.Empty:
-                if self._pending:                     # left over from a batch under load
-                    self._publish(sorted(self._pending))
-                    self._pending.clear()
+                self._flush()                         # left over from a batch under load
                 if self._stopping.is_set():
                     return
                 if time.monotonic() - self._last_refresh >= 1.0:
@@ -269,7 +267,13 @@ class Engine:
                     for _ in batch:
                         self._queue.task_done()
             if self._stopping.is_set() and self._queue.empty():
+                self._flush()
                 return
+
+    def _flush(self) -> None:
+        if self._pending:
+            self._publish(sorted(self._pending))
+            self._pending.clear()
 
     def _refuse(self, message: Message, reason: str, detail: str, index: int | None) -> None:
         self.stats.reject(reason)
@@ -318,10 +322,8 @@ class Engine:
             if message.channel is not None:
                 touched.add(message.channel)       # rejection counters changed too
         self._pending.update(touched)
-        if self._pending and (self._queue.empty()
-                              or time.monotonic() - self._last_publish >= self._snapshot_interval):
-            self._publish(sorted(self._pending))
-            self._pending.clear()
+        if self._queue.empty() or time.monotonic() - self._last_publish >= self._snapshot_interval:
+            self._flush()
         elapsed = time.perf_counter() - started
         self.stats.batches += 1
         self.stats.last_batch_seconds = elapsed
