@@ -136,6 +136,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         sys.setswitchinterval(0.0005)
     level = logging.INFO if args.command in ("serve", "demo") else logging.WARNING
     logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    for chatty in ("amqtt", "transitions"):      # the embedded broker's state machine logs every step
+        logging.getLogger(chatty).setLevel(logging.WARNING)
     try:
         if args.command == "check-config":
             config = load_config(args.config)
