@@ -49,7 +49,7 @@ FloatArray = NDArray[np.float64]
 
 @dataclass(frozen=True)
 class ChannelView:
-    """One channel's state for readers (copies; NaN where unknown).
+    """One channel's state for readers (its arrays are fresh, never views of live state; NaN where unknown).
 
     Attributes
     ----------
@@ -83,6 +83,7 @@ class _Lane:
         self.channel = channel
         self.settings = settings
         self.spec = RegressorSpec(settings.terms)
+        self.terms = tuple(self.spec.names)
         self.builder = RegressorBuilder(self.spec)
         self.noise_builder = (RegressorBuilder(RegressorSpec(settings.noise_model_terms))
                               if settings.noise_model_terms else None)
@@ -293,33 +294,24 @@ class ChannelBank:
             members = [lane for lane in lanes if lane.group is group]
             if not members:
                 continue
-            idx = [lane.index for lane in members]
-            factor = group.bank.factor()[idx]
-            stats = bank_statistics(factor, group.bank.effective_count[idx], scale="known")
+            idx = np.array([lane.index for lane in members], dtype=np.intp)
+            stats = bank_statistics(group.bank.factor()[idx], group.bank.effective_count[idx], scale="known")
+            # Whole-group arrays first (one numpy call each), then one view per channel.
+            residual_var = stats.residual_sd ** 2
+            estimated = np.array([lane.settings.covariance_scale == "estimated" for lane in members])
+            cov = stats.unscaled_covariance * np.where(estimated, residual_var, 1.0)[:, None, None]
+            std = np.sqrt(np.clip(np.diagonal(cov, axis1=1, axis2=2), 0.0, None))
             variance = group.tracker.variance()[idx]
-            for k, lane in enumerate(members):
-                residual_var = float(stats.residual_sd[k]) ** 2
-                cov = stats.unscaled_covariance[k]
-                if lane.settings.covariance_scale == "estimated":
-                    cov = cov * residual_var
-                noise = float(variance[k])
+            noise = np.sqrt(np.where(variance >= 0.0, variance, np.nan)).tolist()
+            scalars = zip(stats.residual_sd.tolist(), stats.dof.tolist(), stats.effective_count.tolist(),
+                          stats.min_information.tolist(), stats.information_condition.tolist(),
+                          stats.identifiable.tolist(), noise, strict=True)
+            for k, (lane, (rsd, dof, n_eff, min_info, condition, ident, sigma)) in enumerate(
+                    zip(members, scalars, strict=True)):
                 views[lane.channel] = ChannelView(
-                    channel=lane.channel,
-                    terms=tuple(lane.spec.names),
-                    parameters=stats.parameters[k].copy(),
-                    std_errors=np.sqrt(np.clip(np.diagonal(cov), 0.0, None)),
-                    covariance=cov.copy(),
-                    residual_sd=float(stats.residual_sd[k]),
-                    dof=float(stats.dof[k]),
-                    noise_sigma=math.sqrt(noise) if math.isfinite(noise) and noise >= 0.0 else math.nan,
-                    effective_count=float(stats.effective_count[k]),
-                    min_information=float(stats.min_information[k]),
-                    information_condition=float(stats.information_condition[k]),
-                    identifiable=bool(stats.identifiable[k]),
-                    applied=lane.counters.applied,
-                    warmup=lane.counters.warmup,
-                    rejected=dict(lane.counters.rejected),
-                    last_t=lane.last_t,
-                    settings=lane.settings,
-                )
+                    channel=lane.channel, terms=lane.terms, parameters=stats.parameters[k], std_errors=std[k],
+                    covariance=cov[k], residual_sd=rsd, dof=dof, noise_sigma=sigma, effective_count=n_eff,
+                    min_information=min_info, information_condition=condition, identifiable=ident,
+                    applied=lane.counters.applied, warmup=lane.counters.warmup,
+                    rejected=dict(lane.counters.rejected), last_t=lane.last_t, settings=lane.settings)
         return {c: views[c] for c in wanted}
