@@ -190,7 +190,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             # Refused as a whole: the client hears why; nothing for the engine to do.
             runtime.refuse_http(rejections[0].reason)
             return JSONResponse({"detail": rejections[0].reason}, status_code=400)
-        if not runtime.submit_http(channel_id, body):
+        if not runtime.submit_http(channel_id, body, (decoded, rejections)):
             return JSONResponse({"detail": "busy, retry later"}, status_code=503, headers={"Retry-After": "1"})
         return {"queued": len(decoded),
                 "rejected": [{"index": r.index, "reason": r.reason} for r in rejections]}

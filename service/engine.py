@@ -28,7 +28,7 @@ from dataclasses import dataclass, field
 
 from estimator.channel import ChannelSettings, Sample
 from estimator.channel_bank import ChannelBank, ChannelView
-from service.payload import decode_payload
+from service.payload import DecodedSample, Rejection, decode_payload
 
 __all__ = ["ChannelEntry", "DeadLetter", "Engine", "EngineStats", "Message", "Snapshot", "channel_quality"]
 
@@ -39,13 +39,18 @@ CONDITION_LIMIT = 1e12          # information condition above which estimates ar
 
 @dataclass(frozen=True)
 class Message:
-    """One raw message for one channel (``channel`` None: its topic matched no channel)."""
+    """One raw message for one channel (``channel`` None: its topic matched no channel).
+
+    ``decoded`` carries the result of :func:`decode_payload` when the producer already
+    decoded the payload (HTTP does, to answer the client), so it is not done twice.
+    """
 
     channel: str | None
     payload: bytes
     source: str                  # "mqtt" or "http"
     topic: str | None = None
     received: float = field(default_factory=time.time)
+    decoded: tuple[list[DecodedSample], list[Rejection]] | None = None
 
 
 @dataclass(frozen=True)
@@ -307,8 +312,8 @@ class Engine:
             if message.channel is None or message.channel not in self.bank:
                 self._refuse(message, "unknown_channel", "no channel for this topic or id", None)
                 continue
-            decoded, rejections = decode_payload(message.payload, max_bytes=self._max_payload,
-                                                 input_names=self._inputs[message.channel])
+            decoded, rejections = message.decoded or decode_payload(
+                message.payload, max_bytes=self._max_payload, input_names=self._inputs[message.channel])
             for rejection in rejections:
                 self._refuse(message, rejection.reason, rejection.detail, rejection.index)
             for sample in decoded:

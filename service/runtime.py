@@ -19,6 +19,7 @@ from typing import IO
 from service.config import RwlsConfig
 from service.engine import DeadLetter, Engine, Message
 from service.ingest import BrokerSettings, MqttIngest
+from service.payload import DecodedSample, Rejection
 
 __all__ = ["AlreadyRunning", "Runtime", "broker_settings"]
 
@@ -110,9 +111,10 @@ class Runtime:
         # Blocks while the engine queue is full: back-pressure onto the broker.
         return self.engine.submit(message, timeout=None)
 
-    def submit_http(self, channel: str | None, payload: bytes) -> bool:
-        """Queue an HTTP-posted payload without waiting; False when the queue is full."""
-        return self.engine.submit(Message(channel, payload, "http"), timeout=0.0)
+    def submit_http(self, channel: str | None, payload: bytes,
+                    decoded: tuple[list[DecodedSample], list[Rejection]] | None = None) -> bool:
+        """Queue an HTTP-posted payload (and its decoding, if done) without waiting; False when full."""
+        return self.engine.submit(Message(channel, payload, "http", decoded=decoded), timeout=0.0)
 
     def refuse_http(self, reason: str) -> None:
         """Count an HTTP request refused before the engine saw it."""
