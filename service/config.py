@@ -220,6 +220,8 @@ class BrokerConfig(_StrictValues):
                                        description="seconds")
     protocol: Literal["auto", "5", "3.1.1"] = Field(
         default="auto", description="MQTT version; auto tries 5 and falls back to 3.1.1")
+    ingest: Literal["thread", "process"] = Field(
+        default="process", description="run the MQTT client in a thread of the service or in its own process")
 
     @field_validator("url")
     @classmethod

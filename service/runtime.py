@@ -19,6 +19,7 @@ from typing import IO
 from service.config import RwlsConfig
 from service.engine import DeadLetter, Engine, Message
 from service.ingest import BrokerSettings, MqttIngest
+from service.ingest_process import ProcessIngest
 from service.payload import DecodedSample, Rejection
 
 __all__ = ["AlreadyRunning", "Runtime", "broker_settings"]
@@ -59,8 +60,9 @@ class Runtime:
             queue_size=config.engine.queue_size, max_batch=config.engine.max_batch,
             max_wait=config.engine.max_wait_ms / 1000.0, max_payload_bytes=config.broker.max_payload_bytes,
             dead_letter=self._dead_letter)
-        self.ingest = (MqttIngest(broker_settings(config), self.topics,
-                                  self._from_mqtt) if mqtt else None)
+        ingest_kind = ProcessIngest if config.broker.ingest == "process" else MqttIngest
+        self.ingest: MqttIngest | ProcessIngest | None = (
+            ingest_kind(broker_settings(config), self.topics, self._from_mqtt) if mqtt else None)
         self.started_at = time.time()
         self._lock: IO[str] | None = None
         # HTTP requests refused before they reach the queue (404, 413): counted here,

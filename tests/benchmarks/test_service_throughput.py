@@ -553,7 +553,8 @@ class ThreadProfiles:
         self.ingest = cProfile.Profile(time.thread_time)
         self._wrap(runtime.engine, "_run", self.engine)
         if runtime.ingest is not None:
-            self._wrap(runtime.ingest, "_loop", self.ingest)
+            # In-process ingest: paho's loop; process ingest: the reader thread that feeds the engine.
+            self._wrap(runtime.ingest, "_loop" if hasattr(runtime.ingest, "_loop") else "_read", self.ingest)
 
     @staticmethod
     def _wrap(owner: object, name: str, profile: cProfile.Profile) -> None:
@@ -573,9 +574,12 @@ class Probe:
     """Thread CPU (paho, engine), process CPU, broker CPU and engine counters between two points of a run."""
 
     def __init__(self, runtime: Runtime, broker: Broker) -> None:
-        assert runtime.ingest is not None and runtime.ingest._thread is not None and runtime.engine._thread
+        # The ingest thread of this process: paho's own (thread ingest) or the reader of the
+        # ingest process's queue (process ingest; paho then runs in another process).
+        ingest_thread = getattr(runtime.ingest, "_thread", None) or getattr(runtime.ingest, "_reader", None)
+        assert ingest_thread is not None and runtime.engine._thread is not None
         self._runtime, self._broker = runtime, broker
-        self._threads = {"paho": runtime.ingest._thread.native_id, "engine": runtime.engine._thread.native_id}
+        self._threads = {"paho": ingest_thread.native_id, "engine": runtime.engine._thread.native_id}
         self.start = self._read()
         self.end = self.start
 

@@ -107,10 +107,12 @@ def _replay(tmp_path: Path, config: RwlsConfig, samples: list[tuple[str, dict[st
     return replay_file(data, config, show_progress=False).channels
 
 
+@pytest.mark.parametrize("ingest", ["process", "thread"])
 def test_parameters_over_mqtt_equal_replay_bit_for_bit(mqtt_broker: Any, unique_prefix: str,
                                                         client_id: Callable[[str], str], tmp_path: Path,
-                                                        start_runtime: Callable[[RwlsConfig], Runtime]) -> None:
-    config = _config(unique_prefix, mqtt_broker.port, client_id("rwls"), tmp_path / "store")
+                                                        start_runtime: Callable[[RwlsConfig], Runtime],
+                                                        ingest: str) -> None:
+    config = _config(unique_prefix, mqtt_broker.port, client_id("rwls"), tmp_path / "store", ingest=ingest)
     runtime = start_runtime(config)
     samples = _samples(seed=11, count=150)
     messages = []

@@ -1,0 +1,202 @@
+"""MQTT ingest in a child process, so paho's per-message Python work does not share the engine's GIL.
+
+The child runs an ordinary :class:`MqttIngest` whose hand-over collects
+``(channel, payload, topic, received)`` into lists shipped over a bounded
+inter-process queue (blocking when full: the same back-pressure onto the broker
+as in-process; one pickle per list keeps the service's share of the work small).
+A reader thread in the service process moves those into the engine queue.
+Dead letters go the other way, to be published by the child's MQTT client.
+Connection state is shared through a few ``multiprocessing.Value``s.
+
+The child is started with the ``spawn`` method (a fork of a process with
+running threads is unsafe) and stopped by its PID through a stop event, then
+terminated if it does not exit in time.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import multiprocessing as mp
+import queue
+import threading
+import time
+from collections.abc import Callable, Mapping
+from typing import Any
+
+from service.engine import DeadLetter, Message
+from service.ingest import BrokerSettings, MqttIngest
+
+__all__ = ["ProcessIngest"]
+
+log = logging.getLogger(__name__)
+
+HANDOVER_SIZE = 64              # lists of messages in flight between the processes, at most
+DEAD_LETTER_QUEUE = 10_000
+
+
+class _Batcher:
+    """Collects hand-overs in the child and ships them as lists (one pickle per list, not per message).
+
+    ``add`` blocks while ``limit`` messages wait (back-pressure onto paho, hence the broker);
+    a list leaves at the latest ``interval`` seconds after its first message.
+    """
+
+    def __init__(self, out: Any, limit: int = 2000, interval: float = 0.001) -> None:
+        self._out = out
+        self._limit = limit
+        self._interval = interval
+        self._items: list[tuple[str | None, bytes, str | None, float]] = []
+        self._cond = threading.Condition()
+        self._stop = False
+        self._thread = threading.Thread(target=self._ship, name="rwls-ingest-batcher", daemon=True)
+        self._thread.start()
+
+    def add(self, item: tuple[str | None, bytes, str | None, float]) -> None:
+        with self._cond:
+            while len(self._items) >= self._limit and not self._stop:
+                self._cond.wait(0.1)
+            self._items.append(item)
+            self._cond.notify_all()
+
+    def _ship(self) -> None:
+        while True:
+            with self._cond:
+                while not self._items and not self._stop:
+                    self._cond.wait(0.1)
+                if not self._items and self._stop:
+                    return
+            time.sleep(self._interval)          # let a few more arrive: fewer, larger lists
+            with self._cond:
+                items, self._items = self._items, []
+                self._cond.notify_all()
+            self._out.put(items)               # blocks while the service is behind
+
+    def close(self) -> None:
+        with self._cond:
+            self._stop = True
+            self._cond.notify_all()
+        self._thread.join(5.0)
+
+
+def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, dead: Any, stop: Any,
+           connected: Any, reconnects: Any, errors: Any, protocol: Any) -> None:
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s[ingest]: %(message)s")
+    batcher = _Batcher(out)
+
+    def hand_over(message: Message) -> bool:
+        batcher.add((message.channel, message.payload, message.topic, message.received))
+        return True
+
+    ingest = MqttIngest(settings, topics, hand_over)
+    ingest.start()
+    protocol.value = 5 if ingest.protocol == "5" else 4
+    while not stop.is_set():
+        connected.value = 1 if ingest.connected and ingest.alive() else 0
+        reconnects.value = ingest.reconnects
+        errors.value = ingest.callback_errors
+        try:
+            letter = dead.get(timeout=0.1)
+        except queue.Empty:
+            continue
+        try:
+            ingest.publish_dead_letter(letter)
+        except RuntimeError:
+            log.exception("dead letter not published")
+    ingest.stop()
+    batcher.close()
+
+
+class ProcessIngest:
+    """Same face as :class:`MqttIngest`, with the MQTT client in a child process."""
+
+    def __init__(self, settings: BrokerSettings, topics: Mapping[str, str],
+                 submit: Callable[[Message], bool]) -> None:
+        self.settings = settings
+        self._topics = dict(topics)
+        self._submit = submit
+        context = mp.get_context("spawn")
+        self._out = context.Queue(HANDOVER_SIZE)
+        self._dead = context.Queue(DEAD_LETTER_QUEUE)
+        self._stop = context.Event()
+        self._connected = context.Value("b", 0)
+        self._reconnects = context.Value("q", 0)
+        self._errors = context.Value("q", 0)
+        self._protocol = context.Value("b", 0)
+        self._process = context.Process(
+            target=_child, name="rwls-ingest", daemon=True,
+            args=(settings, self._topics, self._out, self._dead, self._stop, self._connected,
+                  self._reconnects, self._errors, self._protocol))
+        self._reader: threading.Thread | None = None
+        self._stopping = threading.Event()
+        self.received = 0
+
+    # ---------------------------------------------------------------- status
+    @property
+    def connected(self) -> bool:
+        return bool(self._connected.value)
+
+    @property
+    def protocol(self) -> str:
+        return {5: "5", 4: "3.1.1"}.get(self._protocol.value, "")
+
+    @property
+    def reconnects(self) -> int:
+        return int(self._reconnects.value)
+
+    @property
+    def callback_errors(self) -> int:
+        return int(self._errors.value)
+
+    def alive(self) -> bool:
+        return self._process.is_alive() and self._reader is not None and self._reader.is_alive()
+
+    def wait_connected(self, timeout: float) -> bool:
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self.connected:
+                return True
+            time.sleep(0.01)
+        return self.connected
+
+    # ------------------------------------------------------------- lifecycle
+    def start(self) -> None:
+        self._process.start()
+        self._reader = threading.Thread(target=self._read, name="rwls-ingest-reader", daemon=True)
+        self._reader.start()
+
+    def _read(self) -> None:
+        while not self._stopping.is_set() or not self._out.empty():
+            try:
+                items = self._out.get(timeout=0.1)
+            except queue.Empty:
+                if not self._process.is_alive() and self._out.empty():
+                    return
+                continue
+            except (EOFError, OSError):
+                return
+            for channel, payload, topic, received in items:
+                self.received += 1
+                self._submit(Message(channel, payload, "mqtt", topic, received))
+
+    def stop(self, timeout: float = 5.0) -> None:
+        """Stop the child (its client disconnects), then let the reader hand over what is left."""
+        self._stop.set()
+        self._process.join(timeout)
+        if self._process.is_alive():
+            self._process.terminate()          # our own child, by PID
+            self._process.join(timeout)
+        self._stopping.set()
+        if self._reader is not None:
+            self._reader.join(timeout)
+        for handle in (self._out, self._dead):
+            with contextlib.suppress(Exception):
+                handle.close()
+
+    # ----------------------------------------------------------- dead letters
+    def publish_dead_letter(self, letter: DeadLetter) -> None:
+        """Hand a refusal to the child for publishing (RuntimeError when its queue is full)."""
+        try:
+            self._dead.put_nowait(letter)
+        except queue.Full:
+            raise RuntimeError("dead-letter queue to the ingest process is full") from None
