@@ -81,7 +81,7 @@ def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
     from service.api import create_app
-    from service.runtime import AlreadyRunning, Runtime
+    from service.runtime import AlreadyRunning, Runtime, exit_on_signal
 
     config = load_config(args.config)
     runtime = Runtime(config)           # checks the topics (ConfigError by key)
@@ -99,6 +99,7 @@ def _serve(args: argparse.Namespace) -> int:
     app = create_app(runtime, manage_runtime=False)
     server = uvicorn.Server(uvicorn.Config(app, log_level=args.log_level, lifespan="on"))
     print(f"rwls: serving http://{host}:{sock.getsockname()[1]}/ ; {ADVISORY}", flush=True)
+    exit_on_signal()
     try:
         server.run(sockets=[sock])
     finally:

@@ -19,7 +19,7 @@ import uvicorn
 from service.api import ADVISORY, create_app
 from service.config import RwlsConfig, parse_config
 from service.embedded_broker import EmbeddedBroker
-from service.runtime import Runtime
+from service.runtime import Runtime, exit_on_signal
 from service.simulate import simulate
 
 __all__ = ["DEMO_CHANNELS_TOML", "demo_config", "run_demo"]
@@ -105,6 +105,7 @@ def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, 
     print(f"rwls demo: {ADVISORY}", flush=True)
     plant.start()
     timer.start()
+    exit_on_signal()
     try:
         server.run(sockets=[sock])
     finally:

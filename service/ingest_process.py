@@ -18,6 +18,7 @@ from __future__ import annotations
 import contextlib
 import logging
 import multiprocessing as mp
+import os
 import queue
 import threading
 import time
@@ -80,7 +81,7 @@ class _Batcher:
 
 
 def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, dead: Any, stop: Any,
-           connected: Any, reconnects: Any, errors: Any, protocol: Any) -> None:
+           connected: Any, reconnects: Any, errors: Any, protocol: Any, parent: int) -> None:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s[ingest]: %(message)s")
     batcher = _Batcher(out)
 
@@ -91,7 +92,8 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, dead: Any
     ingest = MqttIngest(settings, topics, hand_over)
     ingest.start()
     protocol.value = 5 if ingest.protocol == "5" else 4
-    while not stop.is_set():
+    # Also stop when the service process is gone (killed before it could stop us).
+    while not stop.is_set() and os.getppid() == parent:
         connected.value = 1 if ingest.connected and ingest.alive() else 0
         reconnects.value = ingest.reconnects
         errors.value = ingest.callback_errors
@@ -105,6 +107,7 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, dead: Any
             log.exception("dead letter not published")
     ingest.stop()
     batcher.close()
+    out.cancel_join_thread()      # the service may have stopped reading: never hang at exit on the pipe
 
 
 class ProcessIngest:
@@ -126,7 +129,7 @@ class ProcessIngest:
         self._process = context.Process(
             target=_child, name="rwls-ingest", daemon=True,
             args=(settings, self._topics, self._out, self._dead, self._stop, self._connected,
-                  self._reconnects, self._errors, self._protocol))
+                  self._reconnects, self._errors, self._protocol, os.getpid()))
         self._reader: threading.Thread | None = None
         self._stopping = threading.Event()
         self.received = 0

@@ -10,6 +10,7 @@ from __future__ import annotations
 import fcntl
 import logging
 import os
+import signal
 import threading
 import time
 from collections import Counter
@@ -22,9 +23,22 @@ from service.ingest import BrokerSettings, MqttIngest
 from service.ingest_process import ProcessIngest
 from service.payload import DecodedSample, Rejection
 
-__all__ = ["AlreadyRunning", "Runtime", "broker_settings"]
+__all__ = ["AlreadyRunning", "Runtime", "broker_settings", "exit_on_signal"]
 
 log = logging.getLogger(__name__)
+
+
+def exit_on_signal() -> None:
+    """Make SIGTERM raise SystemExit in the main thread.
+
+    uvicorn shuts down gracefully on SIGTERM and then re-raises the signal with
+    the handler it found; with the default handler the process would die there,
+    before ``Runtime.stop`` (and with it the ingest child process) could run.
+    """
+    def handler(signum: int, frame: object) -> None:
+        raise SystemExit(128 + signum)
+
+    signal.signal(signal.SIGTERM, handler)
 
 
 class AlreadyRunning(RuntimeError):
