@@ -301,7 +301,7 @@ class EngineConfig(_StrictValues):
 
     queue_size: int = Field(default=100_000, ge=1, description="messages (a batch payload is one)")
     max_batch: int = Field(default=5000, ge=1, description="messages per micro-batch")
-    max_wait_ms: float = Field(default=5.0, ge=0.0, le=60_000.0, allow_inf_nan=False,
+    max_wait_ms: float = Field(default=2.0, ge=0.0, le=60_000.0, allow_inf_nan=False,
                                description="how long a micro-batch waits to fill")
 
     @field_validator("max_batch")

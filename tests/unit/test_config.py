@@ -109,7 +109,7 @@ def test_every_service_section_has_documented_defaults() -> None:
     assert (broker.reconnect_min_delay, broker.reconnect_max_delay) == (0.5, 30.0)
     assert (config.http.host, config.http.port) == ("127.0.0.1", 8080)
     assert config.store.path == "rwls-data"
-    assert (config.engine.queue_size, config.engine.max_batch, config.engine.max_wait_ms) == (100_000, 5000, 5.0)
+    assert (config.engine.queue_size, config.engine.max_batch, config.engine.max_wait_ms) == (100_000, 5000, 2.0)
     assert config.channels["a"].topic is None
 
 
