@@ -295,7 +295,7 @@ class ChannelBank:
             if not members:
                 continue
             idx = np.array([lane.index for lane in members], dtype=np.intp)
-            stats = bank_statistics(group.bank.factor()[idx], group.bank.effective_count[idx], scale="known")
+            stats = bank_statistics(group.bank.factor(idx), group.bank.effective_count[idx], scale="known")
             # Whole-group arrays first (one numpy call each), then one view per channel.
             residual_var = stats.residual_sd ** 2
             estimated = np.array([lane.settings.covariance_scale == "estimated" for lane in members])

@@ -414,9 +414,14 @@ class RecursiveWLSBank:
         bank._count = state.sample_count.copy()
         return bank
 
-    def factor(self) -> FloatArray:
-        """Augmented factor ``[[R, q], [0, rho]]`` per channel, shape (K, n+1, n+1) (a copy)."""
-        return np.moveaxis(self._A, 2, 0).copy()
+    def factor(self, channels: ArrayLike | None = None) -> FloatArray:
+        """Augmented factor ``[[R, q], [0, rho]]`` per channel, shape (B, n+1, n+1) (a copy).
+
+        ``channels`` selects B channels (default all K) without copying the rest first.
+        """
+        if channels is None:
+            return np.moveaxis(self._A, 2, 0).copy()
+        return np.moveaxis(self._A[:, :, np.asarray(channels, dtype=np.intp)], 2, 0)
 
     def solution(self, channels: ArrayLike | None = None) -> tuple[FloatArray, NDArray[np.bool_]]:
         """Current estimates by back-substitution ``R theta = q``.

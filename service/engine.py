@@ -321,24 +321,18 @@ class Engine:
                                       sample.weight, sample.seq))
                 origins.append((message, sample.index))
         outcomes = self.bank.apply(samples)
-        touched: set[str] = set()
         for outcome, (message, index) in zip(outcomes, origins, strict=True):
             cid = message.channel
             if cid is None:          # never: such messages were refused before decoding
                 continue
+            self._pending.add(cid)   # applied, warm-up or refused: its view changed either way
             if outcome.status == "rejected":
                 self._refuse(message, outcome.reason, f"refused by channel {cid}", index)
-                continue
-            if outcome.status == "applied":
+            elif outcome.status == "applied":
                 self.stats.samples_applied += 1
                 self._updated_at[cid] = message.received
             else:
                 self.stats.samples_warmup += 1
-            touched.add(cid)
-        for message, _ in origins:
-            if message.channel is not None:
-                touched.add(message.channel)       # rejection counters changed too
-        self._pending.update(touched)
         if self._queue.empty() or time.monotonic() - self._last_publish >= self._snapshot_interval:
             self._flush()
         elapsed = time.perf_counter() - started
