@@ -44,18 +44,23 @@ class Workspace:
         for name in names:
             setattr(self, name, np.empty(capacity))
         self.empty = np.empty(capacity, dtype=bool)
+        self._views: dict[int, Workspace] = {}
 
     def view(self, b: int) -> Workspace:
-        """Buffers trimmed to ``b`` channels (views, no copies)."""
+        """Buffers trimmed to ``b`` channels (views, no copies; made once per size)."""
         if b > self.capacity:
             raise ValueError(f"batch of {b} exceeds workspace capacity {self.capacity}")
         if b == self.capacity:
             return self
-        trimmed = object.__new__(Workspace)
-        trimmed.capacity = b
-        for key, value in self.__dict__.items():
-            if isinstance(value, np.ndarray):
-                setattr(trimmed, key, value[..., :b])
+        trimmed = self._views.get(b)
+        if trimmed is None:
+            trimmed = object.__new__(Workspace)
+            trimmed.capacity = b
+            trimmed._views = {}
+            for key, value in self.__dict__.items():
+                if isinstance(value, np.ndarray):
+                    setattr(trimmed, key, value[..., :b])
+            self._views[b] = trimmed
         return trimmed
 
 
@@ -314,5 +319,6 @@ def scalar_step(A: list[list[float]], zs: list[float], y: float, weight: float, 
             rotate_rows_scalar(A, pseudo_row, None, first=j)
     if cos_product > 0.0:
         gamma = cos_product * cos_product
-        return alpha / (sw * cos_product), sl * sl * (1.0 - gamma) / gamma
+        # gamma underflows to 0 for a row far outside the data seen so far: leverage beyond any float.
+        return alpha / (sw * cos_product), (sl * sl * (1.0 - gamma) / gamma if gamma > 0.0 else math.inf)
     return math.nan, math.inf

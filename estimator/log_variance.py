@@ -183,7 +183,7 @@ class LogVarianceModel:
             Operating-point regressor rows.
         innovation, leverage : array_like, shape (B,)
         kappa : float or array_like, shape (B,)
-            As for :meth:`~estimator.variance.NoiseVarianceTracker.update`; NaN innovation or
+            As for :meth:`~estimator.variance.NoiseVarianceTracker.update`; non-finite innovation or
             infinite leverage skips the sample.
 
         Returns
@@ -198,8 +198,15 @@ class LogVarianceModel:
             finite; nothing is applied then.
         """
         idx, e, h, kap = _check_residuals(self.n_channels, channels, innovation, leverage, kappa)
-        z = self._check_z(z_op, e.shape[0])
-        used = ~np.isnan(e) & (h < np.inf)
+        return self.update_trusted(idx, self._check_z(z_op, e.shape[0]), e, h, kap)
+
+    def update_trusted(self, idx: IndexArray, z: FloatArray, e: FloatArray, h: FloatArray,
+                       kap: FloatArray) -> NDArray[np.bool_]:
+        """:meth:`update` without its checks, for a caller that made them (same arithmetic, same bits).
+
+        ``idx`` distinct channel indices; ``z`` finite float64 (B, m); ``e``, ``h``, ``kap`` (B,).
+        """
+        used = np.isfinite(e) & (h < np.inf)
         if not used.all():
             idx, e, h, kap, z = idx[used], e[used], h[used], kap[used], z[used]
         if idx.shape[0] == 0:
@@ -210,7 +217,7 @@ class LogVarianceModel:
         log_v = np.log(np.maximum(v, _TINY))
         # ln max(v, floor_ratio * exp(z^T beta)) = max(ln v, ln floor_ratio + z^T beta)
         target = np.maximum(log_v, np.where(predicts, self._log_floor_ratio + lp, -np.inf))
-        self._bank.update(z, target + _LOG_CHI2_BIAS, None, idx)
+        self._bank.update_trusted(z, target + _LOG_CHI2_BIAS, np.ones(idx.shape[0]), idx)
         self._count[idx] += 1
         return used
 
@@ -230,7 +237,7 @@ class LogVarianceModel:
         """
         e, h, kap = _check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
         z = self._check_z_one(z_op)
-        if math.isnan(e) or h == math.inf:
+        if not math.isfinite(e) or h == math.inf:
             return False
         v = e * e / (1.0 + kap * h)                  # (1)
         lp, identifiable = self._log_prediction_one(channel, z)

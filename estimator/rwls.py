@@ -276,8 +276,22 @@ class RecursiveWLSBank:
                 raise RejectedSample("bad_channel", f"channels must be integers, got dtype {given.dtype}")
             given = given.astype(np.intp, copy=False)
         self._check_batch(zz, yy, ww, given)
-        idx = self._all_channels if given is None else given
+        return self._step(None if full else given, zz, yy, ww)
 
+    def update_trusted(self, z: FloatArray, y: FloatArray, weight: FloatArray,
+                       channels: NDArray[np.intp]) -> UpdateResult:
+        """:meth:`update` without its checks, for a caller that made them for a whole micro-batch.
+
+        The caller guarantees: float64 arrays ``z`` (B, n), ``y`` and ``weight`` (B,),
+        every value finite, every weight > 0, ``channels`` distinct indices in range.
+        Same arithmetic as :meth:`update`, so the same bits.
+        """
+        return self._step(channels, z, y, weight)
+
+    def _step(self, given: NDArray[np.intp] | None, zz: FloatArray, yy: FloatArray,
+              ww: FloatArray) -> UpdateResult:
+        full = given is None
+        idx = self._all_channels if given is None else given
         b = idx.shape[0]
         ws = self._workspace.view(b) if b <= self._workspace.capacity else Workspace(self.n_params, b)
         A = self._A if full else self._A[:, :, idx]
@@ -482,13 +496,14 @@ def _innovation(alpha: FloatArray, cos_product: FloatArray, sw: FloatArray,
                 w: FloatArray, sl: FloatArray) -> UpdateResult:
     """e = alpha / (sqrt(w) prod(cos)); w z^T P z = lambda (1 - gamma) / gamma, gamma = prod(cos)^2."""
     ok = cos_product > 0.0
-    if ok.all():
-        gamma = cos_product * cos_product
-        innovation = alpha / (sw * cos_product)
-        leverage = sl * sl * (1.0 - gamma) / gamma
-    else:
-        cp = np.where(ok, cos_product, 1.0)
-        gamma = cp * cp
-        innovation = np.where(ok, alpha / (sw * cp), np.nan)
-        leverage = np.where(ok, sl * sl * (1.0 - gamma) / gamma, np.inf)
+    with np.errstate(divide="ignore"):      # gamma underflows to 0: leverage inf, as in the scalar twin
+        if ok.all():
+            gamma = cos_product * cos_product
+            innovation = alpha / (sw * cos_product)
+            leverage = sl * sl * (1.0 - gamma) / gamma
+        else:
+            cp = np.where(ok, cos_product, 1.0)
+            gamma = cp * cp
+            innovation = np.where(ok, alpha / (sw * cp), np.nan)
+            leverage = np.where(ok, sl * sl * (1.0 - gamma) / gamma, np.inf)
     return UpdateResult(innovation=innovation, leverage=leverage, weight=w.copy())

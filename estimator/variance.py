@@ -101,8 +101,6 @@ def _check_residuals(n_channels: int, channels: ArrayLike | None, innovation: Ar
             raise ValueError(f"channels must be in 0..{n_channels - 1}, got {bad}")
         if np.unique(idx).shape[0] != b:
             raise ValueError("channels must be distinct in one vectorised update; apply repeats in order")
-    if np.isinf(e).any():
-        raise ValueError("innovation must be finite, or NaN while not identifiable; got inf")
     h = np.asarray(leverage, dtype=np.float64)
     if h.shape != (b,):
         raise ValueError(f"leverage must have shape ({b},), got {h.shape}")
@@ -121,8 +119,6 @@ def _check_residual_one(n_channels: int, channel: int, innovation: float, levera
     if isinstance(channel, bool) or not isinstance(channel, int | np.integer) or not 0 <= channel < n_channels:
         raise ValueError(f"channel must be an integer in 0..{n_channels - 1}, got {channel!r}")
     e, h, kap = float(innovation), float(leverage), float(kappa)
-    if math.isinf(e):
-        raise ValueError(f"innovation must be finite, or NaN while not identifiable; got {e}")
     if not h >= 0.0:
         raise ValueError(f"leverage must be >= 0 (inf while not identifiable), got {h}")
     if not (math.isfinite(kap) and kap > 0.0):
@@ -276,7 +272,8 @@ class NoiseVarianceTracker:
             Channel indices, each at most once; None means ``arange(K)``.
         innovation, leverage : array_like, shape (B,)
             From the bank's :class:`~estimator.rwls.UpdateResult`. A sample with
-            NaN innovation or infinite leverage is skipped (not counted).
+            A non-finite innovation (NaN, or inf after an overflow)
+            or infinite leverage is skipped (not counted).
         kappa : float or array_like, shape (B,)
             The bank's ``kappa(channels)`` read before that update; 1 when lambda = 1.
         elapsed : float or array_like, shape (B,), optional
@@ -297,8 +294,16 @@ class NoiseVarianceTracker:
             applied then.
         """
         idx, e, h, kap = _check_residuals(self.n_channels, channels, innovation, leverage, kappa)
-        dt = self._check_elapsed(elapsed, idx)
-        used = ~np.isnan(e) & (h < np.inf)
+        return self.update_trusted(idx, e, h, kap, self._check_elapsed(elapsed, idx))
+
+    def update_trusted(self, idx: IndexArray, e: FloatArray, h: FloatArray, kap: FloatArray,
+                       dt: FloatArray | None) -> NDArray[np.bool_]:
+        """:meth:`update` without its checks, for a caller that made them (same arithmetic, same bits).
+
+        ``idx`` distinct channel indices; ``e``, ``h``, ``kap`` float64 of shape (B,) in their
+        domains; ``dt`` > 0 (inf when unknown) exactly when ``time_based``, else None.
+        """
+        used = np.isfinite(e) & (h < np.inf)
         if not used.all():
             idx, e, h, kap = idx[used], e[used], h[used], kap[used]
             dt = None if dt is None else dt[used]
@@ -353,7 +358,7 @@ class NoiseVarianceTracker:
                 raise ValueError(f"elapsed must be > 0 seconds (inf when unknown), got {dt}")
         elif elapsed is not None:
             raise ValueError(f"elapsed is only accepted when time_based=True, got {elapsed!r}")
-        if math.isnan(e) or h == math.inf:
+        if not math.isfinite(e) or h == math.inf:
             return False
         v = e * e / (1.0 + kap * h)                  # (1)
         s = float(self._S[channel])
@@ -385,6 +390,11 @@ class NoiseVarianceTracker:
         """Noise variance per channel, shape (K,); NaN before ``warmup`` tracked samples."""
         ready = self._count >= self.warmup
         return np.where(ready, self._S / np.where(ready, self._C, 1.0) / self._factor, np.nan)
+
+    def variance_of(self, idx: IndexArray) -> FloatArray:
+        """:meth:`variance` of the channels ``idx`` only, shape (B,) (same bits)."""
+        ready = self._count[idx] >= self.warmup
+        return np.where(ready, self._S[idx] / np.where(ready, self._C[idx], 1.0) / self._factor, np.nan)
 
     def variance_one(self, channel: int) -> float:
         """Scalar twin of :meth:`variance` for one channel."""

@@ -405,7 +405,6 @@ def test_tracker_rejects_bad_arguments(kwargs, match):
 
 @pytest.mark.parametrize(("args", "match"), [
     ((None, [1.0, 1.0], [0.1, 0.1], 1.0), "innovation"),                 # B != K without channels
-    (([0, 1], [1.0, np.inf], [0.1, 0.1], 1.0), "innovation"),
     (([0, 1], [[1.0, 1.0]], [0.1, 0.1], 1.0), "innovation"),
     (([0, 1], [1.0, 1.0], [0.1, -0.1], 1.0), "leverage"),
     (([0, 1], [1.0, 1.0], [0.1, np.nan], 1.0), "leverage"),
@@ -426,10 +425,23 @@ def test_update_rejects_bad_arguments_and_keeps_state(args, match):
     assert _same_state(before, tracker.state())
 
 
+def test_infinite_innovation_is_skipped_by_both_paths():
+    # An overflowed innovation carries no usable information: skipped like a NaN, never raised.
+    vector = NoiseVarianceTracker(2, warmup=1)
+    scalar = NoiseVarianceTracker(2, warmup=1)
+    vector.update(None, [1.0, 2.0], [0.1, 0.1], 1.0)
+    for ch, e in enumerate([1.0, 2.0]):
+        scalar.update_one(ch, e, 0.1, 1.0)
+    before = vector.state()
+    assert vector.update([0, 1], [np.inf, -np.inf], [0.1, 0.1], 1.0).tolist() == [False, False]
+    assert scalar.update_one(0, math.inf, 0.1, 1.0) is False
+    assert _same_state(before, vector.state())
+    assert _same_state(before, scalar.state())
+
+
 @pytest.mark.parametrize(("args", "match"), [
     ((3, 1.0, 0.1, 1.0), "channel"),
     ((True, 1.0, 0.1, 1.0), "channel"),
-    ((0, math.inf, 0.1, 1.0), "innovation"),
     ((0, 1.0, -0.5, 1.0), "leverage"),
     ((0, 1.0, 0.1, -1.0), "kappa"),
     ((0, 1.0, 0.1, 1.0), "elapsed"),          # missing for a time-based tracker
