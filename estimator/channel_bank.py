@@ -11,8 +11,8 @@ touches each channel at most once and is one vectorised step per group.
 For each sample of a round, in this order (see :mod:`estimator.channel`):
 checks, regressor, weight from the tracker state before the sample, the
 recursive update, the tracker and operating-point model, the lag buffers.
-A group that has a single sample in a round takes the scalar paths, which
-produce the same bits as the vectorised ones; the result of a micro-batch
+A group with fewer than ``tuning.vector_min`` samples in a round takes the scalar
+paths, which produce the same bits as the vectorised ones; the result of a micro-batch
 therefore does not depend on how samples were split into batches, and
 ``rwls replay`` (one sample at a time) equals the live service.
 """
@@ -36,9 +36,11 @@ from estimator.channel import (
     check_sample,
     sample_weight,
 )
+from estimator.column_rounds import PathTuning, apply_group_columns
 from estimator.log_variance import LogVarianceModel
 from estimator.regressors import NotUsable, RegressorBuilder, RegressorSpec
 from estimator.rwls import RecursiveWLSBank, RejectedSample
+from estimator.sample_columns import ColumnsOutcome, SampleColumns
 from estimator.statistics import bank_statistics
 from estimator.variance import NoiseVarianceTracker
 
@@ -87,8 +89,12 @@ class _Lane:
         self.builder = RegressorBuilder(self.spec)
         self.noise_builder = (RegressorBuilder(RegressorSpec(settings.noise_model_terms))
                               if settings.noise_model_terms else None)
+        self.builders = [b for b in (self.builder, self.noise_builder) if b is not None]
         self.group = group
         self.index = index
+        # Lanes with the same key share one regressor block in the column path.
+        self.terms_key = (settings.terms, settings.noise_model_terms, settings.input_names)
+        self.input_name_set = frozenset(settings.input_names)
         self.counters = ChannelCounters()
         self.last_t: float | None = None
         self.last_seq: int | None = None
@@ -138,7 +144,8 @@ class _Lane:
 class _Group:
     """Channels of one estimator shape: a bank, a tracker and an optional operating-point model."""
 
-    def __init__(self, members: list[tuple[str, ChannelSettings]]) -> None:
+    def __init__(self, members: list[tuple[str, ChannelSettings]], tuning: PathTuning) -> None:
+        self.tuning = tuning
         first = members[0][1]
         k = len(members)
         n = len(first.terms)
@@ -163,8 +170,8 @@ class _Group:
 
     def update(self, items: list[tuple[_Lane, Prepared]]) -> list[SampleOutcome]:
         """One recursive step for samples of distinct channels of this group."""
-        if len(items) == 1:
-            return [self._update_one(*items[0])]
+        if len(items) < self.tuning.vector_min:
+            return [self._update_one(lane, p) for lane, p in items]
         idx = np.array([lane.index for lane, _ in items], dtype=np.intp)
         Z = np.array([p.z for _, p in items], dtype=np.float64)
         y = np.array([p.sample.y for _, p in items], dtype=np.float64)
@@ -228,15 +235,19 @@ class ChannelBank:
     Parameters
     ----------
     channels : mapping of channel id to :class:`ChannelSettings`
+    tuning : PathTuning, optional
+        When the vectorised paths take over from the scalar ones (speed only;
+        every choice gives the same bits).
     """
 
-    def __init__(self, channels: Mapping[str, ChannelSettings]) -> None:
+    def __init__(self, channels: Mapping[str, ChannelSettings], tuning: PathTuning | None = None) -> None:
+        tuning = PathTuning() if tuning is None else tuning
         if not channels:
             raise ValueError("channels must name at least one channel")
         shapes: dict[tuple[object, ...], list[tuple[str, ChannelSettings]]] = {}
         for cid, settings in channels.items():
             shapes.setdefault(_shape_key(settings), []).append((cid, settings))
-        self._groups = [_Group(members) for members in shapes.values()]
+        self._groups = [_Group(members, tuning) for members in shapes.values()]
         self._lanes: dict[str, _Lane] = {lane.channel: lane for g in self._groups for lane in g.lanes}
         self.channel_ids: tuple[str, ...] = tuple(channels)
 
@@ -284,6 +295,46 @@ class ChannelBank:
                 for (_, _, pos), outcome in zip(items, results, strict=True):
                     outcomes[pos] = outcome
         return [o if o is not None else SampleOutcome("rejected", "internal") for o in outcomes]
+
+    def apply_columns(self, columns: Mapping[str, SampleColumns]) -> dict[str, ColumnsOutcome]:
+        """Apply each channel's columns in order: the same state and outcomes as :meth:`apply`.
+
+        Channels whose columns pass every check in whole-array form run in
+        vectorised rounds (:mod:`estimator.column_rounds`); the others, and
+        any remainder, take :meth:`apply`, which finds each refusal's reason.
+        Samples of an unknown channel are rejected ``unknown_channel``.
+        """
+        outcomes: dict[str, ColumnsOutcome] = {}
+        by_group: dict[int, list[tuple[_Lane, SampleColumns]]] = {}
+        for cid, cols in columns.items():
+            lane = self._lanes.get(cid)
+            if lane is None:
+                outcomes[cid] = ColumnsOutcome(rejected=[(k, "unknown_channel") for k in range(len(cols))])
+            else:
+                by_group.setdefault(id(lane.group), []).append((lane, cols))
+        leftovers: list[tuple[_Lane, SampleColumns, int]] = []
+        for entries in by_group.values():
+            done, rest = apply_group_columns(entries[0][0].group, entries)
+            outcomes.update(done)
+            leftovers.extend(rest)
+        if not leftovers:
+            return outcomes
+        samples: list[Sample] = []
+        places: list[tuple[str, int]] = []
+        for lane, cols, start in leftovers:
+            for pos, sample in enumerate(cols.samples(lane.channel, start), start):
+                samples.append(sample)
+                places.append((lane.channel, pos))
+        for (cid, pos), outcome in zip(places, self.apply(samples), strict=True):
+            result = outcomes.setdefault(cid, ColumnsOutcome())
+            if outcome.status == "applied":
+                result.applied += 1
+                result.last_applied = pos
+            elif outcome.status == "warmup":
+                result.warmup += 1
+            else:
+                result.rejected.append((pos, outcome.reason))
+        return outcomes
 
     def view(self, channels: Sequence[str] | None = None) -> dict[str, ChannelView]:
         """Statistics of the given channels (default all), computed per group in one batch."""

@@ -248,6 +248,69 @@ class RegressorBuilder:
         self._outputs.append(float(y))
         self._accepted += 1
 
+    @property
+    def lagged_inputs(self) -> tuple[str, ...]:
+        """Inputs whose past values the buffers keep."""
+        return tuple(self._inputs)
+
+    @property
+    def keeps_history(self) -> bool:
+        """Whether rows depend on past samples beyond the last output (lags of inputs or y[-2] and older)."""
+        return bool(self._inputs) or self.spec.output_lag > 1
+
+    def push_count(self, count: int, last_output: float) -> None:
+        """:meth:`push_many` for a builder that does not :attr:`keeps_history`: only the last output is kept."""
+        if self.keeps_history:
+            raise ValueError("push_count needs a builder without lag history; use push_many")
+        self._outputs.append(float(last_output))
+        self._accepted += count
+
+    @property
+    def accepted(self) -> int:
+        """Samples pushed so far."""
+        return self._accepted
+
+    def rows(self, inputs: Mapping[str, NDArray[np.float64]], y: NDArray[np.float64]
+             ) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
+        """Regressor rows of the next L samples at once, as if each were accepted in turn.
+
+        Parameters
+        ----------
+        inputs : mapping of name to ndarray, shape (L,)
+            Every name in the spec's ``input_names``.
+        y : ndarray, shape (L,)
+
+        Returns
+        -------
+        Z : ndarray, shape (L, n)
+            Row i is what :meth:`row` gives for sample i after samples 0..i-1 were
+            pushed (same arithmetic, same bits); zeros in lagged factors where
+            ``usable`` is False.
+        usable : ndarray of bool, shape (L,)
+            False while the lags are not filled.
+        """
+        lag = self.spec.warmup
+        if lag == 0:
+            Z, usable = self.spec.block(inputs, y)
+            return Z, usable
+        # Prefix the history in the lag buffers; a value the buffers do not hold is never read.
+        count = y.shape[0]
+        extended = {}
+        for name in self.spec.input_names:
+            held = list(self._inputs.get(name, ()))[-lag:]
+            extended[name] = np.concatenate([np.zeros(lag - len(held)), held, inputs[name]])
+        held_y = list(self._outputs)[-lag:]
+        Z, _ = self.spec.block(extended, np.concatenate([np.zeros(lag - len(held_y)), held_y, y]))
+        usable = np.arange(count) >= lag - self._accepted
+        return Z[lag:], usable
+
+    def push_many(self, inputs: Mapping[str, NDArray[np.float64]], y: NDArray[np.float64]) -> None:
+        """:meth:`push` for each of L accepted samples, in order (arrays of shape (L,))."""
+        for name, buffer in self._inputs.items():
+            buffer.extend(inputs[name][-(buffer.maxlen or 1):].tolist())
+        self._outputs.extend(y[-(self._outputs.maxlen or 1):].tolist())
+        self._accepted += y.shape[0]
+
     def state(self) -> dict[str, object]:
         """Lag buffers and count, as plain lists (for checkpoints)."""
         return {"accepted": self._accepted, "outputs": list(self._outputs),
