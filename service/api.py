@@ -23,10 +23,10 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.engine import ChannelEntry
 from service.payload import decode_payload
 from service.reports import channel_report, finite_or_null
 from service.runtime import Runtime
+from service.snapshot import ChannelEntry
 
 __all__ = ["ADVISORY", "create_app"]
 

@@ -7,34 +7,37 @@ and makes HTTP answer 503); readers get an immutable :class:`Snapshot` that the
 engine replaces after a batch (at once when the queue runs empty, at most every
 ``snapshot_interval`` under load), so no reader ever holds a lock on numpy state.
 
-Per message: decode (``service.payload``); then the samples of a micro-batch
-go to :meth:`ChannelBank.apply` together, which also refuses a ``seq`` or ``t``
-that does not advance the channel's (redeliveries, replays).
+Per message: decode into columns (``service.payload_columns`` for a plain
+message, else the exact ``service.payload``); then every channel's columns of
+a micro-batch go to :meth:`ChannelBank.apply_columns` together, which also
+refuses a ``seq`` or ``t`` that does not advance the channel's (redeliveries,
+replays).
 Every refused message or sample is counted by reason and handed to the
 dead-letter callback with that reason; nothing is dropped silently.
 """
 
 from __future__ import annotations
 
+import bisect
 import contextlib
 import json
 import logging
-import math
 import queue
 import threading
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 
-from estimator.channel import ChannelSettings, Sample
+from estimator.channel import ChannelSettings
 from estimator.channel_bank import ChannelBank, ChannelView
+from estimator.sample_columns import SampleColumns
 from service.payload import DecodedSample, Rejection, decode_payload
+from service.payload_columns import decode_columns
+from service.snapshot import ChannelEntry, FragmentWriter, Snapshot, channel_quality
 
-__all__ = ["ChannelEntry", "DeadLetter", "Engine", "EngineStats", "Message", "Snapshot", "channel_quality"]
+__all__ = ["DeadLetter", "Engine", "EngineStats", "Message"]
 
 log = logging.getLogger(__name__)
-
-CONDITION_LIMIT = 1e12          # information condition above which estimates are only Uncertain
 
 
 @dataclass(frozen=True)
@@ -74,26 +77,6 @@ class DeadLetter:
         return json.dumps(body).encode()
 
 
-@dataclass(frozen=True)
-class ChannelEntry:
-    """What readers see of one channel."""
-
-    view: ChannelView
-    quality: str                 # "Good", "Uncertain" or "Bad" (OPC UA quality families)
-    quality_reason: str
-    updated_at: float | None     # wall-clock time of the last applied sample
-    fragment: bytes              # its member of the flat /snapshot document
-
-
-@dataclass(frozen=True)
-class Snapshot:
-    """An immutable picture of every channel, replaced after each batch."""
-
-    version: int
-    created_at: float
-    channels: Mapping[str, ChannelEntry]
-
-
 @dataclass
 class EngineStats:
     """Counters the engine thread writes and the metrics endpoint reads."""
@@ -111,47 +94,29 @@ class EngineStats:
         self.rejected[reason] = self.rejected.get(reason, 0) + 1
 
 
-def channel_quality(view: ChannelView, updated_at: float | None, now: float,
-                    stale_after: float) -> tuple[str, str]:
-    """Quality family and reason (OPC UA Good / Uncertain / Bad) of a channel's estimates."""
-    if view.applied == 0:
-        return "Bad", "no_data"
-    if not view.identifiable or not all(math.isfinite(v) for v in view.parameters):
-        return "Bad", "not_identifiable"
-    if updated_at is not None and now - updated_at > stale_after:
-        return "Uncertain", "stale"
-    if not view.dof >= 1.0:
-        return "Uncertain", "warming_up"
-    if not view.information_condition <= CONDITION_LIMIT:
-        return "Uncertain", "low_excitation"
-    return "Good", ""
+@dataclass(frozen=True)
+class _Origin:
+    """The message a run of a channel's samples came from, and their indexes in it (None: a single sample)."""
+
+    message: Message
+    indexes: Sequence[int | None] | None
 
 
-def _json_number(value: float | None) -> str:
-    """A float as JSON text: ``repr`` is JSON's number syntax; NaN, infinity and None are null."""
-    return repr(float(value)) if value is not None and math.isfinite(value) else "null"
+class _Origins:
+    """Where each of a channel's samples in a micro-batch came from (runs of samples, one per message)."""
 
+    def __init__(self, first: _Origin) -> None:
+        self._starts = [0]
+        self._origins = [first]
 
-def _fragment(view: ChannelView, quality: str, reason: str, updated_at: float | None) -> bytes:
-    """``"<id>": {...}``, the channel's member of the flat /snapshot document.
+    def add(self, start: int, origin: _Origin) -> None:
+        self._starts.append(start)
+        self._origins.append(origin)
 
-    Written by hand rather than through ``json.dumps``: it runs for every touched
-    channel on every snapshot, and this is several times faster.
-    """
-    good = quality != "Bad"
-    names = [json.dumps(term) for term in view.terms]
-    parameters = view.parameters.tolist() if good else [None] * len(names)
-    std_errors = view.std_errors.tolist() if good else [None] * len(names)
-
-    def members(values: list[float | None]) -> str:
-        return ", ".join(f"{n}: {_json_number(v)}" for n, v in zip(names, values, strict=True))
-
-    return (f'{json.dumps(view.channel)}:{{"quality": "{quality}", "quality_reason": "{reason}", '
-            f'"updated_at": {_json_number(updated_at)}, "t": {_json_number(view.last_t)}, '
-            f'"samples": {view.applied}, "rejected": {sum(view.rejected.values())}, '
-            f'"parameters": {{{members(parameters)}}}, "std_errors": {{{members(std_errors)}}}, '
-            f'"noise_sigma": {_json_number(view.noise_sigma)}, '
-            f'"residual_sd": {_json_number(view.residual_sd if good else None)}}}').encode()
+    def locate(self, position: int) -> tuple[Message, int | None]:
+        k = bisect.bisect_right(self._starts, position) - 1
+        origin = self._origins[k]
+        return origin.message, None if origin.indexes is None else origin.indexes[position - self._starts[k]]
 
 
 class Engine:
@@ -187,6 +152,7 @@ class Engine:
         self._last_publish = 0.0
         self._clock = clock
         self._updated_at: dict[str, float] = {}
+        self._fragments = FragmentWriter()
         self.stats = EngineStats()
         self._thread: threading.Thread | None = None
         self._stopping = threading.Event()
@@ -303,36 +269,55 @@ class Engine:
             self.stats.dead_letter_failures += 1
             log.exception("dead-letter delivery failed reason=%s channel=%s", reason, message.channel)
 
+    def _decode(self, message: Message, cid: str) -> tuple[SampleColumns, _Origin] | None:
+        """A message's samples as columns: the short path when it vouches, else the exact decoder."""
+        names = self._inputs[cid]
+        fast = None if message.decoded is not None else decode_columns(
+            message.payload, input_names=names, max_bytes=self._max_payload)
+        if fast is not None:
+            columns, is_batch = fast
+            return columns, _Origin(message, None if not is_batch else range(len(columns)))
+        decoded, rejections = message.decoded or decode_payload(
+            message.payload, max_bytes=self._max_payload, input_names=names)
+        for rejection in rejections:
+            self._refuse(message, rejection.reason, rejection.detail, rejection.index)
+        if not decoded:
+            return None
+        columns = SampleColumns()
+        for sample in decoded:
+            columns.append(sample.y, sample.inputs, sample.t, sample.sigma, sample.weight, sample.seq)
+        return columns, _Origin(message, [sample.index for sample in decoded])
+
     def _process(self, batch: list[Message]) -> None:
         started = time.perf_counter()
-        samples: list[Sample] = []
-        origins: list[tuple[Message, int | None]] = []     # message and batch position of each sample
+        columns: dict[str, SampleColumns] = {}
+        origins: dict[str, _Origins] = {}      # where each channel's samples came from
         for message in batch:
             self.stats.messages += 1
-            if message.channel is None or message.channel not in self.bank:
+            cid = message.channel
+            if cid is None or cid not in self.bank:
                 self._refuse(message, "unknown_channel", "no channel for this topic or id", None)
                 continue
-            decoded, rejections = message.decoded or decode_payload(
-                message.payload, max_bytes=self._max_payload, input_names=self._inputs[message.channel])
-            for rejection in rejections:
-                self._refuse(message, rejection.reason, rejection.detail, rejection.index)
-            for sample in decoded:
-                samples.append(Sample(message.channel, sample.y, sample.inputs, sample.t, sample.sigma,
-                                      sample.weight, sample.seq))
-                origins.append((message, sample.index))
-        outcomes = self.bank.apply(samples)
-        for outcome, (message, index) in zip(outcomes, origins, strict=True):
-            cid = message.channel
-            if cid is None:          # never: such messages were refused before decoding
+            decoded = self._decode(message, cid)
+            if decoded is None:
                 continue
-            self._pending.add(cid)   # applied, warm-up or refused: its view changed either way
-            if outcome.status == "rejected":
-                self._refuse(message, outcome.reason, f"refused by channel {cid}", index)
-            elif outcome.status == "applied":
-                self.stats.samples_applied += 1
-                self._updated_at[cid] = message.received
+            more, origin = decoded
+            if cid in columns:
+                origins[cid].add(len(columns[cid]), origin)
+                columns[cid].extend(more)
             else:
-                self.stats.samples_warmup += 1
+                columns[cid] = more
+                origins[cid] = _Origins(origin)
+        for cid, outcome in self.bank.apply_columns(columns).items():
+            self._pending.add(cid)      # applied, warm-up or refused: its view changed either way
+            self.stats.samples_applied += outcome.applied
+            self.stats.samples_warmup += outcome.warmup
+            where = origins[cid]
+            if outcome.last_applied is not None:
+                self._updated_at[cid] = where.locate(outcome.last_applied)[0].received
+            for position, reason in outcome.rejected:
+                message, index = where.locate(position)
+                self._refuse(message, reason, f"refused by channel {cid}", index)
         if self._queue.empty() or time.monotonic() - self._last_publish >= self._snapshot_interval:
             self._flush()
         elapsed = time.perf_counter() - started
@@ -346,7 +331,8 @@ class Engine:
         for cid, view in views.items():
             updated_at = self._updated_at.get(cid)
             quality, reason = channel_quality(view, updated_at, now, self._stale_after)
-            entries[cid] = ChannelEntry(view, quality, reason, updated_at, _fragment(view, quality, reason, updated_at))
+            entries[cid] = ChannelEntry(view, quality, reason, updated_at,
+                                        self._fragments.write(view, quality, reason, updated_at))
         return entries
 
     def _publish(self, channels: list[str]) -> None:
