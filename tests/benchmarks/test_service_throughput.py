@@ -97,7 +97,7 @@ CHANNELS = 1_000
 RAW_MESSAGES = 50_000                 # per raw run
 SERVICE_MESSAGES = 50_000             # one sample each
 BATCH_SIZE = 100                      # samples per batch payload
-BATCH_MESSAGES = 2_000                # 200,000 samples
+BATCH_MESSAGES = 6_000                # 600,000 samples: a few seconds at the goal rate
 LATENCY_RATE = 5_000.0                # samples (= messages) per second, paced by the publisher
 LATENCY_SECONDS = 10.0
 RAW_LATENCY_SECONDS = 5.0
