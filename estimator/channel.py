@@ -32,6 +32,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from functools import cached_property
 
+from estimator.detectors import DetectorSettings
 from estimator.regressors import RegressorSpec
 
 __all__ = ["ChannelCounters", "ChannelSettings", "Prepared", "Sample", "SampleOutcome", "WeightRule",
@@ -73,6 +74,7 @@ class ChannelSettings:
     initial_sigma: float = 1.0
     noise_model_terms: tuple[str, ...] = ()
     noise_model_forgetting_factor: float = 0.999
+    detectors: DetectorSettings = field(default_factory=DetectorSettings)
 
     def __post_init__(self) -> None:
         if self.weighting not in WEIGHTINGS:

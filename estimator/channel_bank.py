@@ -19,32 +19,22 @@ therefore does not depend on how samples were split into batches, and
 
 from __future__ import annotations
 
-import math
 from collections import deque
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.channel import (
-    ChannelCounters,
-    ChannelSettings,
-    Prepared,
-    Sample,
-    SampleOutcome,
-    check_sample,
-    sample_weight,
-)
+from estimator.baseline import Baseline
+from estimator.channel import ChannelSettings, Prepared, Sample, SampleOutcome
+from estimator.channel_group import _Group, _Lane, shape_key
 from estimator.column_rounds import PathTuning, apply_group_columns
-from estimator.log_variance import LogVarianceModel
-from estimator.regressors import NotUsable, RegressorBuilder, RegressorSpec
-from estimator.rwls import RecursiveWLSBank, RejectedSample
+from estimator.detectors import KINDS, ConditionEvent
 from estimator.sample_columns import ColumnsOutcome, SampleColumns
 from estimator.statistics import bank_statistics
-from estimator.variance import NoiseVarianceTracker
 
-__all__ = ["ChannelBank", "ChannelView"]
+__all__ = ["ChannelBank", "ChannelEvent", "ChannelView", "DetectorReading"]
 
 FloatArray = NDArray[np.float64]
 
@@ -76,157 +66,27 @@ class ChannelView:
     rejected: dict[str, int]
     last_t: float | None
     settings: ChannelSettings
+    baseline: Baseline | None = None
+    detectors: Mapping[str, DetectorReading] = field(default_factory=dict)
+    commissioned: int = 0                 # samples applied since the start or the last reset
 
 
-class _Lane:
-    """Per-channel scalar state: lag buffers, ordering, counters."""
+@dataclass(frozen=True)
+class DetectorReading:
+    """One detector of one channel: latest statistic, its limit, and whether its alarm condition is active."""
 
-    def __init__(self, channel: str, settings: ChannelSettings, group: _Group, index: int) -> None:
-        self.channel = channel
-        self.settings = settings
-        self.spec = RegressorSpec(settings.terms)
-        self.terms = tuple(self.spec.names)
-        self.builder = RegressorBuilder(self.spec)
-        self.noise_builder = (RegressorBuilder(RegressorSpec(settings.noise_model_terms))
-                              if settings.noise_model_terms else None)
-        self.builders = [b for b in (self.builder, self.noise_builder) if b is not None]
-        self.group = group
-        self.index = index
-        # Lanes with the same key share one regressor block in the column path.
-        self.terms_key = (settings.terms, settings.noise_model_terms, settings.input_names)
-        self.input_name_set = frozenset(settings.input_names)
-        self.counters = ChannelCounters()
-        self.last_t: float | None = None
-        self.last_seq: int | None = None
-        self.last_tracked_t: float | None = None
-
-    def reject(self, reason: str) -> SampleOutcome:
-        self.counters.rejected[reason] = self.counters.rejected.get(reason, 0) + 1
-        return SampleOutcome("rejected", reason)
-
-    def prepare(self, sample: Sample) -> Prepared | SampleOutcome:
-        """Checks, regressor and weight; an outcome when the sample goes no further."""
-        reason = check_sample(self.settings, sample, self.last_t, self.last_seq)
-        if reason is not None:
-            return self.reject(reason)
-        try:
-            z = self.builder.row(sample.inputs)
-            z_noise = self.noise_builder.row(sample.inputs) if self.noise_builder is not None else None
-        except NotUsable as exc:
-            if exc.reason != "lags_not_filled":
-                return self.reject(exc.reason)
-            self.accept(sample)
-            self.counters.warmup += 1
-            return SampleOutcome("warmup")
-        w = sample_weight(self.settings, sample, self.group.variance_before(self.index, z_noise))
-        if w is None:
-            return self.reject("missing_weight")
-        if not (math.isfinite(w) and w > 0.0):
-            return self.reject("bad_weight")
-        return Prepared(sample, z, z_noise, w)
-
-    def accept(self, sample: Sample) -> None:
-        self.builder.push(sample.inputs, sample.y)
-        if self.noise_builder is not None:
-            self.noise_builder.push(sample.inputs, sample.y)
-        if sample.t is not None:
-            self.last_t = sample.t
-        if sample.seq is not None:
-            self.last_seq = sample.seq
-
-    def elapsed(self, t: float | None) -> float | None:
-        """Seconds since the last tracked sample, for a half-life in seconds (None: first)."""
-        if not self.settings.noise_half_life_in_seconds or self.last_tracked_t is None or t is None:
-            return None
-        return t - self.last_tracked_t
+    statistic: float
+    limit: float
+    active: bool
 
 
-class _Group:
-    """Channels of one estimator shape: a bank, a tracker and an optional operating-point model."""
+@dataclass(frozen=True)
+class ChannelEvent:
+    """Something the detectors said about a channel: a condition changed, or a new baseline is in force."""
 
-    def __init__(self, members: list[tuple[str, ChannelSettings]], tuning: PathTuning) -> None:
-        self.tuning = tuning
-        first = members[0][1]
-        k = len(members)
-        n = len(first.terms)
-        self.time_based = first.noise_half_life_in_seconds
-        self.bank = RecursiveWLSBank(k, n, [s.forgetting_factor for _, s in members],
-                                     np.array([[s.covariance_limit] * n for _, s in members]))
-        self.tracker = NoiseVarianceTracker(k, [s.noise_half_life for _, s in members],
-                                            time_based=self.time_based, robust=first.noise_robust,
-                                            warmup=first.noise_warmup)
-        m = len(first.noise_model_terms)
-        self.model = (LogVarianceModel(k, m, [s.noise_model_forgetting_factor for _, s in members])
-                      if m else None)
-        self.lanes = [_Lane(cid, s, self, i) for i, (cid, s) in enumerate(members)]
-
-    def variance_before(self, index: int, z_noise: list[float] | None) -> float:
-        """Noise variance known before the next sample of a channel: the model's, else the tracker's."""
-        if self.model is not None and z_noise is not None:
-            variance = self.model.variance_one(index, z_noise)
-            if math.isfinite(variance):
-                return variance
-        return self.tracker.variance_one(index)
-
-    def update(self, items: list[tuple[_Lane, Prepared]]) -> list[SampleOutcome]:
-        """One recursive step for samples of distinct channels of this group."""
-        if len(items) < self.tuning.vector_min:
-            return [self._update_one(lane, p) for lane, p in items]
-        idx = np.array([lane.index for lane, _ in items], dtype=np.intp)
-        Z = np.array([p.z for _, p in items], dtype=np.float64)
-        y = np.array([p.sample.y for _, p in items], dtype=np.float64)
-        w = np.array([p.weight for _, p in items], dtype=np.float64)
-        kappa = self.bank.kappa(idx)
-        try:
-            result = self.bank.update(Z, y, w, idx)
-        except RejectedSample:
-            # Some row overflowed (e.g. a power of a huge input): apply one by one
-            # so only the offending samples are refused.
-            return [self._update_one(lane, p) for lane, p in items]
-        elapsed = None
-        if self.time_based:
-            elapsed = np.array([_or_inf(lane.elapsed(p.sample.t)) for lane, p in items])
-        tracked = self.tracker.update(idx, result.innovation, result.leverage, kappa, elapsed)
-        if self.model is not None:
-            Zop = np.array([p.z_noise for _, p in items], dtype=np.float64)
-            self.model.update(idx, Zop, result.innovation, result.leverage, kappa)
-        outcomes = []
-        for k, (lane, p) in enumerate(items):
-            if tracked[k] and p.sample.t is not None:
-                lane.last_tracked_t = p.sample.t
-            outcomes.append(self._applied(lane, p, float(result.innovation[k]), float(result.leverage[k])))
-        return outcomes
-
-    def _update_one(self, lane: _Lane, p: Prepared) -> SampleOutcome:
-        i = lane.index
-        kappa = self.bank.kappa_one(i)
-        try:
-            innovation, leverage = self.bank.update_one(i, p.z, p.sample.y, p.weight)
-        except RejectedSample as exc:
-            return lane.reject(exc.reason)
-        elapsed = _or_inf(lane.elapsed(p.sample.t)) if self.time_based else None
-        if self.tracker.update_one(i, innovation, leverage, kappa, elapsed) and p.sample.t is not None:
-            lane.last_tracked_t = p.sample.t
-        if self.model is not None and p.z_noise is not None:
-            self.model.update_one(i, p.z_noise, innovation, leverage, kappa)
-        return self._applied(lane, p, innovation, leverage)
-
-    @staticmethod
-    def _applied(lane: _Lane, p: Prepared, innovation: float, leverage: float) -> SampleOutcome:
-        lane.accept(p.sample)
-        lane.counters.applied += 1
-        return SampleOutcome("applied", innovation=innovation, leverage=leverage, weight=p.weight,
-                             regressor=p.z)
-
-
-def _or_inf(elapsed: float | None) -> float:
-    # The tracker takes inf for "no previous tracked sample": the new one then carries full weight.
-    return math.inf if elapsed is None else elapsed
-
-
-def _shape_key(settings: ChannelSettings) -> tuple[object, ...]:
-    return (len(settings.terms), settings.noise_half_life_in_seconds, settings.noise_robust,
-            settings.noise_warmup, len(settings.noise_model_terms))
+    channel: str
+    condition: ConditionEvent | None = None
+    baseline: Baseline | None = None
 
 
 class ChannelBank:
@@ -246,7 +106,7 @@ class ChannelBank:
             raise ValueError("channels must name at least one channel")
         shapes: dict[tuple[object, ...], list[tuple[str, ChannelSettings]]] = {}
         for cid, settings in channels.items():
-            shapes.setdefault(_shape_key(settings), []).append((cid, settings))
+            shapes.setdefault(shape_key(settings), []).append((cid, settings))
         self._groups = [_Group(members, tuning) for members in shapes.values()]
         self._lanes: dict[str, _Lane] = {lane.channel: lane for g in self._groups for lane in g.lanes}
         self.channel_ids: tuple[str, ...] = tuple(channels)
@@ -256,6 +116,57 @@ class ChannelBank:
 
     def settings(self, channel: str) -> ChannelSettings:
         return self._lanes[channel].settings
+
+    # -------------------------------------------------------- baselines, events
+    def take_events(self) -> list[ChannelEvent]:
+        """Condition changes and new baselines since the last call (per channel in the order they happened)."""
+        events: list[ChannelEvent] = []
+        for group in self._groups:
+            conditions, baselines = group.watch.take()
+            events += [ChannelEvent(group.lanes[b.index].channel, baseline=b.baseline) for b in baselines]
+            events += [ChannelEvent(group.lanes[c.index].channel, condition=c) for c in conditions]
+        return events
+
+    def baselines(self, channel: str) -> list[Baseline]:
+        """Every baseline of a channel, oldest first (the last is in force unless the channel was reset)."""
+        lane = self._lanes[channel]
+        return list(lane.group.watch.histories[lane.index].versions)
+
+    def learn_baseline(self, channel: str, t: float | None = None, note: str = "") -> Baseline | None:
+        """A new baseline from the channel's current estimates; None while they cannot be judged."""
+        lane = self._lanes[channel]
+        return lane.group.watch.learn(lane.index, t, "learned",
+                                      samples=int(lane.group.watch.commissioned[lane.index]), note=note)
+
+    def set_baseline(self, channel: str, parameters: Sequence[float], *, noise_sigma: float,
+                     covariance: Sequence[Sequence[float]] | None = None, source: str = "engineer",
+                     t: float | None = None, note: str = "") -> Baseline:
+        """Put a given baseline in force (an engineer's calibration, or ``rwls fit`` output)."""
+        lane = self._lanes[channel]
+        watch = lane.group.watch
+        n = len(lane.terms)
+        cov = np.zeros((n, n)) if covariance is None else np.asarray(covariance, dtype=np.float64)
+        baseline = Baseline(watch.histories[lane.index].next_version, source, np.asarray(parameters, dtype=float),
+                            cov, float(noise_sigma), None, t, 0, note)
+        watch.set(lane.index, baseline)
+        return baseline
+
+    def reset(self, channel: str, t: float | None = None) -> None:
+        """Start the channel's estimator afresh: no baseline in force, commissioning again.
+
+        Ordering is kept (a redelivered sample is still refused), and so are the counts and the
+        baseline history.
+        """
+        lane = self._lanes[channel]
+        group = lane.group
+        group.bank.reset_channel(lane.index)
+        group.tracker.reset_channel(lane.index)
+        if group.model is not None:
+            group.model.reset_channel(lane.index)
+        for builder in lane.builders:
+            builder.clear()
+        lane.last_tracked_t = None
+        group.watch.restart(lane.index, t)
 
     def apply_one(self, sample: Sample) -> SampleOutcome:
         """Apply one sample (scalar paths); an unknown channel is rejected ``unknown_channel``."""
@@ -357,12 +268,20 @@ class ChannelBank:
             scalars = zip(stats.residual_sd.tolist(), stats.dof.tolist(), stats.effective_count.tolist(),
                           stats.min_information.tolist(), stats.information_condition.tolist(),
                           stats.identifiable.tolist(), noise, strict=True)
+            watch = group.watch
             for k, (lane, (rsd, dof, n_eff, min_info, condition, ident, sigma)) in enumerate(
                     zip(members, scalars, strict=True)):
+                i = lane.index
+                statistics, limits, active = (watch.detectors.statistics(i), watch.detectors.limits(i),
+                                              watch.detectors.active(i))
+                baseline = watch.histories[i].current if watch.detectors.has_baseline[i] else None
                 views[lane.channel] = ChannelView(
                     channel=lane.channel, terms=lane.terms, parameters=stats.parameters[k], std_errors=std[k],
                     covariance=cov[k], residual_sd=rsd, dof=dof, noise_sigma=sigma, effective_count=n_eff,
                     min_information=min_info, information_condition=condition, identifiable=ident,
                     applied=lane.counters.applied, warmup=lane.counters.warmup,
-                    rejected=dict(lane.counters.rejected), last_t=lane.last_t, settings=lane.settings)
+                    rejected=dict(lane.counters.rejected), last_t=lane.last_t, settings=lane.settings,
+                    baseline=baseline, commissioned=int(watch.commissioned[i]),
+                    detectors={kind: DetectorReading(statistics[kind], limits[kind], active[kind])
+                               for kind in KINDS})
         return {c: views[c] for c in wanted}

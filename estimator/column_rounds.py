@@ -15,7 +15,7 @@ A channel whose columns would meet any refusal is not touched here: it goes
 whole to the exact path, which finds the reasons. The others run in rounds,
 round r taking the r-th fitted sample of every channel that has one, through
 the same vectorised steps as the exact path (weights from the tracker state
-before the sample; update; tracker; operating-point model). Small work is
+before the sample; update; tracker; operating-point model; detectors). Small work is
 left to the exact path, which is as fast there: a group with fewer than
 ``column_min_samples`` samples or ``vector_min`` channels, and the last
 rounds once fewer than ``vector_min`` channels still have samples (:class:`PathTuning`). Elementwise IEEE
@@ -38,7 +38,7 @@ from numpy.typing import NDArray
 from estimator.sample_columns import ColumnsOutcome, SampleColumns
 
 if TYPE_CHECKING:
-    from estimator.channel_bank import _Group, _Lane
+    from estimator.channel_group import _Group, _Lane
 
 __all__ = ["PathTuning", "apply_group_columns"]
 
@@ -229,12 +229,16 @@ class _Prepared:
         self.initial_variance = np.array([lane.settings.initial_sigma ** 2 for lane, _ in entries])
         w = np.ones(total)
         sample_lanes = np.array([x == "sample" for x in weighting], dtype=bool)
+        self.declared = np.full(total, np.nan)          # declared_variance() of each sample
         if sample_lanes.any():
             on = sample_lanes[self.lane_of]
             s = self.sigma.values
             with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
                 from_sigma = 1.0 / (s * s)
             w = np.where(on & self.sigma.given, from_sigma, np.where(on, self.weight.values, w))
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                self.declared = np.where(on & self.sigma.given, s * s,
+                                         np.where(on & self.weight.given, 1.0 / self.weight.values, np.nan))
             missing = on & ~self.sigma.given & ~self.weight.given          # missing_weight
             self.refused |= _per_lane_any(missing, self.starts)
         # Application rules, padded to the longest list (an absent rule is never in band).
@@ -341,6 +345,9 @@ def _run_rounds(group: _Group, prep: _Prepared, runnable: NDArray[np.intp]) -> N
                 sel, rows, idx, z, y, w = (a[usable] for a in (sel, rows, idx, z, y, w))
                 if sel.shape[0] == 0:
                     continue
+        z_op = prep.Z_op[rows] if prep.Z_op is not None else None
+        declared = prep.declared[rows]
+        v_now = group.watch.variance_now(idx, z_op, declared)        # before the sample, as in the exact path
         kappa = group.bank.kappa(idx)
         result = group.bank.update_trusted(z, y, w, idx)
         elapsed = None
@@ -348,10 +355,11 @@ def _run_rounds(group: _Group, prep: _Prepared, runnable: NDArray[np.intp]) -> N
             elapsed = prep.t.values[rows] - last_tracked[sel]
             elapsed[np.isnan(elapsed)] = np.inf            # no earlier tracked sample
         used = group.tracker.update_trusted(idx, result.innovation, result.leverage, kappa, elapsed)
-        if group.model is not None and prep.Z_op is not None:
-            group.model.update_trusted(idx, prep.Z_op[rows], result.innovation, result.leverage, kappa)
+        if group.model is not None and z_op is not None:
+            group.model.update_trusted(idx, z_op, result.innovation, result.leverage, kappa)
         t = prep.t.values[rows]
         last_tracked[sel] = np.where(used & ~np.isnan(t), t, last_tracked[sel])
+        group.watch.after_round(idx, t, result.innovation, result.leverage, kappa, v_now, declared, z_op)
     for k, value in zip(lanes.tolist(), last_tracked.tolist(), strict=True):
         prep.lanes[k].last_tracked_t = None if value != value else value
     result_done = np.empty_like(done)

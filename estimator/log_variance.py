@@ -248,6 +248,11 @@ class LogVarianceModel:
         self._count[channel] += 1
         return True
 
+    def reset_channel(self, channel: int) -> None:
+        """Forget channel ``channel``'s operating-point model."""
+        self._bank.reset_channel(channel)
+        self._count[channel] = 0
+
     # ------------------------------------------------------------------ reads
     def variance(self, channels: ArrayLike | None, z_op: ArrayLike) -> FloatArray:
         """Predicted noise variance ``exp(z_op^T beta)``, shape (B,).

@@ -311,6 +311,13 @@ class RegressorBuilder:
         self._outputs.extend(y[-(self._outputs.maxlen or 1):].tolist())
         self._accepted += y.shape[0]
 
+    def clear(self) -> None:
+        """Empty the lag buffers (a restart: lags fill again)."""
+        for buffer in self._inputs.values():
+            buffer.clear()
+        self._outputs.clear()
+        self._accepted = 0
+
     def state(self) -> dict[str, object]:
         """Lag buffers and count, as plain lists (for checkpoints)."""
         return {"accepted": self._accepted, "outputs": list(self._outputs),

@@ -403,6 +403,13 @@ class RecursiveWLSBank:
         self._count[channel] = count
         return result
 
+    def reset_channel(self, channel: int) -> None:
+        """Forget everything channel ``channel`` has learned (a diffuse start again)."""
+        self._A[:, :, channel] = 0.0
+        self._n_eff[channel] = 0.0
+        self._n_eff_sq[channel] = 0.0
+        self._count[channel] = 0
+
     # ------------------------------------------------------------------ reads
     def state(self) -> BankState:
         """Copy of every array (channel-first factor); see :class:`BankState`."""

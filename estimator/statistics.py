@@ -24,9 +24,12 @@ from statistics import NormalDist
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-__all__ = ["ChannelStatistics", "bank_statistics", "student_t_quantile"]
+__all__ = ["CONDITION_LIMIT", "ChannelStatistics", "bank_statistics", "student_t_quantile"]
 
 FloatArray = NDArray[np.float64]
+
+CONDITION_LIMIT = 1e12
+"""Information condition above which the estimates are too poorly excited to judge (quality Uncertain)."""
 
 
 @dataclass(frozen=True)
@@ -102,7 +105,7 @@ def bank_statistics(factor: ArrayLike, effective_count: ArrayLike,
     cov = P * residual_var[:, None, None] if scale == "estimated" else P.copy()
     singular = np.linalg.svd(safe_R, compute_uv=False)
     s_max, s_min = singular[:, 0], singular[:, -1]
-    with np.errstate(divide="ignore"):
+    with np.errstate(divide="ignore", over="ignore"):       # inf: no usable excitation
         condition = np.where(s_min > 0.0, (s_max / np.where(s_min > 0.0, s_min, 1.0)) ** 2, np.inf)
     bad = ~identifiable
     theta[bad] = np.nan

@@ -385,6 +385,12 @@ class NoiseVarianceTracker:
         self._count[channel] = count + 1
         return True
 
+    def reset_channel(self, channel: int) -> None:
+        """Forget channel ``channel``'s noise estimate."""
+        self._S[channel] = 0.0
+        self._C[channel] = 0.0
+        self._count[channel] = 0
+
     # ------------------------------------------------------------------ reads
     def variance(self) -> FloatArray:
         """Noise variance per channel, shape (K,); NaN before ``warmup`` tracked samples."""

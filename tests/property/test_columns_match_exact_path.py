@@ -18,26 +18,31 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from estimator.channel import ChannelSettings, Sample, WeightRule
-from estimator.channel_bank import ChannelBank
+from estimator.channel_bank import ChannelBank, ChannelEvent
 from estimator.column_rounds import PathTuning
+from estimator.detectors import ConditionTiming, DetectorSettings
 from estimator.sample_columns import SampleColumns
 
 PROPERTY_SETTINGS = settings(max_examples=60, deadline=None, derandomize=True, database=None)
 
+# Touchy detectors that learn their baseline early, so conditions come and go within a short stream.
+WATCH = DetectorSettings(commissioning_samples=12, noise_ratio=1.3, variance_h=2.0, offset_k=0.2, offset_h=1.5,
+                         drift_alpha=0.2, drift_every=3,
+                         timing=(("offset", ConditionTiming(0.3, 15.0, 25.0)), ("drift", ConditionTiming(0.5))))
 PLANT = {
-    "lin": ChannelSettings(terms=("1", "u"), forgetting_factor=0.99, covariance_limit=5.0),
+    "lin": ChannelSettings(terms=("1", "u"), forgetting_factor=0.99, covariance_limit=5.0, detectors=WATCH),
     "lin_tracked": ChannelSettings(terms=("1", "u"), forgetting_factor=0.999, weighting="tracked",
-                                   initial_sigma=0.5, noise_warmup=3),
+                                   initial_sigma=0.5, noise_warmup=3, detectors=WATCH),
     "lin_rules": ChannelSettings(terms=("u", "1"), weighting="tracked", noise_warmup=2,
                                  weight_rules=(WeightRule("u", -0.5, 0.5, 3.0), WeightRule("u", 0.0, 2.0, 0.5))),
     "lin_sample": ChannelSettings(terms=("1", "u"), weighting="sample",
-                                  weight_rules=(WeightRule("u", -1.0, 0.0, 2.0),)),
+                                  weight_rules=(WeightRule("u", -1.0, 0.0, 2.0),), detectors=WATCH),
     "quad": ChannelSettings(terms=("1", "u", "u^2"), forgetting_factor=0.995),
     "arx": ChannelSettings(terms=("1", "y[-1]", "u[-2]"), forgetting_factor=0.999, weighting="tracked",
-                           noise_model_terms=("1", "u"), noise_warmup=2),
+                           noise_model_terms=("1", "u"), noise_warmup=2, detectors=WATCH),
     "arx_plain": ChannelSettings(terms=("y[-2]", "u", "1")),
     "timed": ChannelSettings(terms=("1", "u"), weighting="tracked", noise_half_life=30.0,
-                             noise_half_life_in_seconds=True, noise_robust=True, noise_warmup=2),
+                             noise_half_life_in_seconds=True, noise_robust=True, noise_warmup=2, detectors=WATCH),
 }
 
 FAULTS = ("nan_y", "missing_input", "repeat_seq", "backward_seq", "repeat_t", "backward_t", "no_t",
@@ -110,6 +115,12 @@ def _state(bank: ChannelBank) -> list[object]:
         if group.model is not None:
             model = group.model.state()
             out += [model.bank.factor, model.bank.sample_count]
+        out += group.watch.detectors.arrays()
+        out.append(group.watch.commissioned)
+        for history in group.watch.histories:
+            for b in history.versions:
+                out += [b.version, b.source, b.parameters, b.covariance, b.noise_sigma, b.t, b.samples,
+                        b.noise_model if b.noise_model is not None else np.zeros(0)]
         for lane in group.lanes:
             out += [lane.channel, lane.counters.applied, lane.counters.warmup, sorted(lane.counters.rejected.items()),
                     lane.last_t, lane.last_seq, lane.last_tracked_t, lane.builder.state(),
@@ -156,7 +167,15 @@ def test_columns_give_the_bits_and_outcomes_of_the_exact_path(
             assert result.rejected == [(k, o.reason) for k, o in enumerate(mine) if o.status == "rejected"]
             applied = [k for k, o in enumerate(mine) if o.status == "applied"]
             assert result.last_applied == (applied[-1] if applied else None)
+        assert _by_channel(exact.take_events()) == _by_channel(columnar.take_events())
     assert _equal(_state(exact), _state(columnar))
+
+
+def _by_channel(events: list[ChannelEvent]) -> dict[str, list[str]]:
+    out: dict[str, list[str]] = {}
+    for event in events:
+        out.setdefault(event.channel, []).append(repr(event))       # repr: NaN compares equal as text
+    return out
 
 
 def test_clean_columns_take_the_vectorised_rounds() -> None:

@@ -1,0 +1,210 @@
+"""A group of channels of one estimator shape, and each channel's scalar state (lanes).
+
+A group shares one :class:`RecursiveWLSBank`, one :class:`NoiseVarianceTracker`,
+an optional :class:`LogVarianceModel` and a :class:`GroupWatch` (detectors,
+baselines); a lane holds what is per channel and scalar: settings, lag
+buffers, ordering, counters. :meth:`_Group.update` is one round of the exact
+path (see :mod:`estimator.channel_bank`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numpy.typing import NDArray
+
+from estimator.channel import (
+    ChannelCounters,
+    ChannelSettings,
+    Prepared,
+    Sample,
+    SampleOutcome,
+    check_sample,
+    sample_weight,
+)
+from estimator.column_rounds import PathTuning
+from estimator.group_watch import GroupWatch
+from estimator.log_variance import LogVarianceModel
+from estimator.regressors import NotUsable, RegressorBuilder, RegressorSpec
+from estimator.rwls import RecursiveWLSBank, RejectedSample
+from estimator.variance import NoiseVarianceTracker
+
+__all__ = ["declared_variance", "shape_key"]
+
+
+class _Lane:
+    """Per-channel scalar state: lag buffers, ordering, counters."""
+
+    def __init__(self, channel: str, settings: ChannelSettings, group: _Group, index: int) -> None:
+        self.channel = channel
+        self.settings = settings
+        self.spec = RegressorSpec(settings.terms)
+        self.terms = tuple(self.spec.names)
+        self.builder = RegressorBuilder(self.spec)
+        self.noise_builder = (RegressorBuilder(RegressorSpec(settings.noise_model_terms))
+                              if settings.noise_model_terms else None)
+        self.builders = [b for b in (self.builder, self.noise_builder) if b is not None]
+        self.group = group
+        self.index = index
+        # Lanes with the same key share one regressor block in the column path.
+        self.terms_key = (settings.terms, settings.noise_model_terms, settings.input_names)
+        self.input_name_set = frozenset(settings.input_names)
+        self.counters = ChannelCounters()
+        self.last_t: float | None = None
+        self.last_seq: int | None = None
+        self.last_tracked_t: float | None = None
+
+    def reject(self, reason: str) -> SampleOutcome:
+        self.counters.rejected[reason] = self.counters.rejected.get(reason, 0) + 1
+        return SampleOutcome("rejected", reason)
+
+    def prepare(self, sample: Sample) -> Prepared | SampleOutcome:
+        """Checks, regressor and weight; an outcome when the sample goes no further."""
+        reason = check_sample(self.settings, sample, self.last_t, self.last_seq)
+        if reason is not None:
+            return self.reject(reason)
+        try:
+            z = self.builder.row(sample.inputs)
+            z_noise = self.noise_builder.row(sample.inputs) if self.noise_builder is not None else None
+        except NotUsable as exc:
+            if exc.reason != "lags_not_filled":
+                return self.reject(exc.reason)
+            self.accept(sample)
+            self.counters.warmup += 1
+            return SampleOutcome("warmup")
+        w = sample_weight(self.settings, sample, self.group.variance_before(self.index, z_noise))
+        if w is None:
+            return self.reject("missing_weight")
+        if not (math.isfinite(w) and w > 0.0):
+            return self.reject("bad_weight")
+        return Prepared(sample, z, z_noise, w)
+
+    def accept(self, sample: Sample) -> None:
+        self.builder.push(sample.inputs, sample.y)
+        if self.noise_builder is not None:
+            self.noise_builder.push(sample.inputs, sample.y)
+        if sample.t is not None:
+            self.last_t = sample.t
+        if sample.seq is not None:
+            self.last_seq = sample.seq
+
+    def elapsed(self, t: float | None) -> float | None:
+        """Seconds since the last tracked sample, for a half-life in seconds (None: first)."""
+        if not self.settings.noise_half_life_in_seconds or self.last_tracked_t is None or t is None:
+            return None
+        return t - self.last_tracked_t
+
+
+class _Group:
+    """Channels of one estimator shape: a bank, a tracker and an optional operating-point model."""
+
+    def __init__(self, members: list[tuple[str, ChannelSettings]], tuning: PathTuning) -> None:
+        self.tuning = tuning
+        first = members[0][1]
+        k = len(members)
+        n = len(first.terms)
+        self.time_based = first.noise_half_life_in_seconds
+        self.bank = RecursiveWLSBank(k, n, [s.forgetting_factor for _, s in members],
+                                     np.array([[s.covariance_limit] * n for _, s in members]))
+        self.tracker = NoiseVarianceTracker(k, [s.noise_half_life for _, s in members],
+                                            time_based=self.time_based, robust=first.noise_robust,
+                                            warmup=first.noise_warmup)
+        m = len(first.noise_model_terms)
+        self.model = (LogVarianceModel(k, m, [s.noise_model_forgetting_factor for _, s in members])
+                      if m else None)
+        self.lanes = [_Lane(cid, s, self, i) for i, (cid, s) in enumerate(members)]
+        self.watch = GroupWatch([s for _, s in members], self.bank, self.tracker, self.model)
+
+    def variance_before(self, index: int, z_noise: list[float] | None) -> float:
+        """Noise variance known before the next sample of a channel: the model's, else the tracker's."""
+        if self.model is not None and z_noise is not None:
+            variance = self.model.variance_one(index, z_noise)
+            if math.isfinite(variance):
+                return variance
+        return self.tracker.variance_one(index)
+
+    def update(self, items: list[tuple[_Lane, Prepared]]) -> list[SampleOutcome]:
+        """One round for samples of distinct channels of this group: update, tracker, model, detectors."""
+        idx = np.array([lane.index for lane, _ in items], dtype=np.intp)
+        z_op = np.array([p.z_noise for _, p in items], dtype=np.float64) if self.model is not None else None
+        declared = np.array([declared_variance(lane.settings, p.sample) for lane, p in items])
+        v_now = self.watch.variance_now(idx, z_op, declared)      # before this sample, as its weight
+        kappa = self.bank.kappa(idx)
+        outcomes = self._recursion(items, idx, kappa)
+        applied = np.array([o.status == "applied" for o in outcomes], dtype=bool)
+        if applied.any():
+            t = np.array([math.nan if p.sample.t is None else p.sample.t for _, p in items])
+            e = np.array([o.innovation for o in outcomes])
+            h = np.array([o.leverage for o in outcomes])
+            self.watch.after_round(idx[applied], t[applied], e[applied], h[applied], kappa[applied],
+                                   v_now[applied], declared[applied],
+                                   None if z_op is None else z_op[applied])
+        return outcomes
+
+    def _recursion(self, items: list[tuple[_Lane, Prepared]], idx: NDArray[np.intp], kappa: NDArray[np.float64]
+                   ) -> list[SampleOutcome]:
+        if len(items) < self.tuning.vector_min:
+            return [self._update_one(lane, p) for lane, p in items]
+        Z = np.array([p.z for _, p in items], dtype=np.float64)
+        y = np.array([p.sample.y for _, p in items], dtype=np.float64)
+        w = np.array([p.weight for _, p in items], dtype=np.float64)
+        try:
+            result = self.bank.update(Z, y, w, idx)
+        except RejectedSample:
+            # Some row overflowed (e.g. a power of a huge input): apply one by one
+            # so only the offending samples are refused.
+            return [self._update_one(lane, p) for lane, p in items]
+        elapsed = None
+        if self.time_based:
+            elapsed = np.array([_or_inf(lane.elapsed(p.sample.t)) for lane, p in items])
+        tracked = self.tracker.update(idx, result.innovation, result.leverage, kappa, elapsed)
+        if self.model is not None:
+            Zop = np.array([p.z_noise for _, p in items], dtype=np.float64)
+            self.model.update(idx, Zop, result.innovation, result.leverage, kappa)
+        outcomes = []
+        for k, (lane, p) in enumerate(items):
+            if tracked[k] and p.sample.t is not None:
+                lane.last_tracked_t = p.sample.t
+            outcomes.append(self._applied(lane, p, float(result.innovation[k]), float(result.leverage[k])))
+        return outcomes
+
+    def _update_one(self, lane: _Lane, p: Prepared) -> SampleOutcome:
+        i = lane.index
+        kappa = self.bank.kappa_one(i)
+        try:
+            innovation, leverage = self.bank.update_one(i, p.z, p.sample.y, p.weight)
+        except RejectedSample as exc:
+            return lane.reject(exc.reason)
+        elapsed = _or_inf(lane.elapsed(p.sample.t)) if self.time_based else None
+        if self.tracker.update_one(i, innovation, leverage, kappa, elapsed) and p.sample.t is not None:
+            lane.last_tracked_t = p.sample.t
+        if self.model is not None and p.z_noise is not None:
+            self.model.update_one(i, p.z_noise, innovation, leverage, kappa)
+        return self._applied(lane, p, innovation, leverage)
+
+    @staticmethod
+    def _applied(lane: _Lane, p: Prepared, innovation: float, leverage: float) -> SampleOutcome:
+        lane.accept(p.sample)
+        lane.counters.applied += 1
+        return SampleOutcome("applied", innovation=innovation, leverage=leverage, weight=p.weight,
+                             regressor=p.z)
+
+
+def declared_variance(settings: ChannelSettings, sample: Sample) -> float:
+    """The noise variance a sample declares under ``sample`` weighting (``sigma^2`` or ``1 / weight``), else NaN."""
+    if settings.weighting != "sample":
+        return math.nan
+    if sample.sigma is not None:
+        return sample.sigma * sample.sigma
+    return 1.0 / sample.weight if sample.weight is not None else math.nan
+
+
+def _or_inf(elapsed: float | None) -> float:
+    # The tracker takes inf for "no previous tracked sample": the new one then carries full weight.
+    return math.inf if elapsed is None else elapsed
+
+
+def shape_key(settings: ChannelSettings) -> tuple[object, ...]:
+    return (len(settings.terms), settings.noise_half_life_in_seconds, settings.noise_robust,
+            settings.noise_warmup, len(settings.noise_model_terms))

@@ -1,0 +1,410 @@
+"""Drift detectors, vectorised over channels: noise level, variance increase, offset step, parameter drift.
+
+Each applied sample brings its innovation ``e``, its leverage ``h = w z^T P z``
+and the bank's ``kappa`` (see :mod:`estimator.rwls`); the innovation's
+variance is about ``V (1 + kappa h)`` with ``V`` the sample's noise variance.
+Two normalisations of the innovation are used:
+
+* ``eps_now = e / sqrt(V_now (1 + kappa h))`` with ``V_now`` the noise variance
+  tracked before the sample (no look-ahead): a mean shift in units of the
+  current noise, blind to a change of the noise level itself;
+* ``eps_ref = e / sqrt(V_ref (1 + kappa h))`` with ``V_ref`` the baseline's
+  noise variance (at the sample's operating point when the channel has a noise
+  model; the declared ``sigma^2`` or ``1 / weight`` under ``sample``
+  weighting): ~N(0, 1) while the noise is as commissioned.
+
+Detectors (statistics compared with limits; a channel without a baseline, or
+a sample the bank could not predict, leaves them untouched):
+
+``offset``
+    Two-sided tabular CUSUM on ``eps_now`` with reference value ``k`` and
+    decision interval ``h`` in sigma units (Page 1954; Montgomery, Introduction
+    to Statistical Quality Control, ch. 9): ``C+ = max(0, C+ + eps - k)``,
+    ``C- = max(0, C- - eps - k)``; statistic ``max(C+, C-)``.
+``variance``
+    One-sided CUSUM, tuned to a variance ratio ``rho`` (reference value from
+    :func:`estimator.run_length.variance_reference`), of ``d^2 / 2`` clipped at
+    ``clip^2``, where ``d`` is the difference of consecutive ``eps_ref``.
+    ``d^2 / 2`` is chi-square with one degree of freedom like ``eps^2`` while
+    the noise is as commissioned, but a level shift or a slow drift of the
+    mean (which a tracking estimator turns into a transient or a steady bias of
+    the innovations) leaves it almost untouched: the variance detector answers
+    the noise, the offset and drift detectors the mean. The clip keeps one
+    spike from raising it. Consecutive differences are correlated, so the
+    Markov-chain ARL of the unclipped iid chart is an approximation (the
+    fleet-budget code measures the factor by simulation).
+``noise_level``
+    The tracked sigma against ``min(noise_high, noise_ratio * baseline sigma)``.
+``drift``
+    ``d^2 = (theta - theta_ref)^T (C + C_ref)^-1 (theta - theta_ref)`` every
+    ``drift_every`` samples against the chi-square quantile with n degrees of
+    freedom at level ``1 - drift_alpha``; not judged (held) while the caller
+    says the channel is not identifiable or too poorly excited.
+
+Alarm conditions. Each statistic becomes a condition with hysteresis and
+delays: it turns active when the statistic has exceeded its limit for
+``on_delay`` seconds of sample time, and clears when it has stayed below
+``limit * (1 - deadband)`` for ``off_delay`` seconds. Samples without a time
+take effect at once. Every change is a :class:`ConditionEvent` with its
+evidence (statistic, limit, estimated onset: for a CUSUM the last time it was
+zero, the classical change-point estimate).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from estimator.baseline import Baseline
+from estimator.distributions import chi2_quantile
+from estimator.run_length import variance_reference
+
+__all__ = ["KINDS", "ConditionEvent", "ConditionTiming", "DetectorBank", "DetectorSettings"]
+
+FloatArray = NDArray[np.float64]
+IndexArray = NDArray[np.intp]
+
+KINDS = ("noise_level", "variance", "offset", "drift")
+
+
+@dataclass(frozen=True)
+class ConditionTiming:
+    """Hysteresis and delays of one alarm condition (``deadband`` a fraction of the limit, delays in seconds)."""
+
+    deadband: float = 0.1
+    on_delay: float = 0.0
+    off_delay: float = 0.0
+
+    def __post_init__(self) -> None:
+        if not 0.0 <= self.deadband < 1.0:
+            raise ValueError(f"deadband must be in [0, 1), got {self.deadband}")
+        for name in ("on_delay", "off_delay"):
+            value = getattr(self, name)
+            if not (math.isfinite(value) and value >= 0.0):
+                raise ValueError(f"{name} must be finite and >= 0 seconds, got {value}")
+
+
+@dataclass(frozen=True)
+class DetectorSettings:
+    """A channel's detector limits (see the module docstring); ``inf`` turns a limit off."""
+
+    commissioning_samples: int = 1000
+    noise_ratio: float = 2.0
+    noise_high: float = math.inf
+    variance_ratio: float = 2.0
+    variance_h: float = 30.0
+    variance_clip: float = 3.0
+    offset_k: float = 0.5
+    offset_h: float = 12.0
+    drift_alpha: float = 1e-6
+    drift_every: int = 25
+    timing: tuple[tuple[str, ConditionTiming], ...] = ()
+
+    def __post_init__(self) -> None:
+        if self.commissioning_samples < 0:
+            raise ValueError(f"commissioning_samples must be >= 0, got {self.commissioning_samples}")
+        for name in ("noise_ratio", "noise_high", "variance_h", "offset_h", "variance_clip"):
+            value = getattr(self, name)
+            if not value > 0.0:
+                raise ValueError(f"{name} must be > 0, got {value}")
+        if not (math.isfinite(self.variance_ratio) and self.variance_ratio > 1.0):
+            raise ValueError(f"variance_ratio must be finite and > 1, got {self.variance_ratio}")
+        if not (math.isfinite(self.offset_k) and self.offset_k >= 0.0):
+            raise ValueError(f"offset_k must be finite and >= 0, got {self.offset_k}")
+        if not 0.0 < self.drift_alpha < 1.0:
+            raise ValueError(f"drift_alpha must be in (0, 1), got {self.drift_alpha}")
+        if self.drift_every < 1:
+            raise ValueError(f"drift_every must be >= 1, got {self.drift_every}")
+        unknown = [kind for kind, _ in self.timing if kind not in KINDS]
+        if unknown:
+            raise ValueError(f"timing for unknown detector(s) {unknown}; known: {', '.join(KINDS)}")
+
+    def timing_of(self, kind: str) -> ConditionTiming:
+        return dict(self.timing).get(kind, ConditionTiming())
+
+
+@dataclass(frozen=True)
+class ConditionEvent:
+    """An alarm condition turned active or cleared."""
+
+    index: int               # channel index in the bank
+    kind: str
+    active: bool
+    t: float                 # sample time (NaN when unknown)
+    statistic: float
+    limit: float
+    onset: float             # estimated start of the change (sample time; NaN when unknown)
+
+
+# Columns of the per-channel detector state, one row per channel (one gather and one scatter per round).
+_UP, _DOWN, _VAR, _PREV, _ZUP, _ZDOWN, _ZVAR, _NOISE, _DRIFT = range(9)
+# Columns of the per-kind condition state.
+_ON, _OFF, _STAT, _ONSET = range(4)
+# Columns of the per-channel constants.
+_K, _H, _VK, _VH, _CLIP2, _RATIO, _HIGH, _SIGMA = range(8)
+
+
+class DetectorBank:
+    """The detectors and alarm conditions of K channels with n parameters.
+
+    Parameters
+    ----------
+    settings : sequence of DetectorSettings, one per channel
+    n_params : int
+        Parameters per channel (the drift test's degrees of freedom).
+    """
+
+    def __init__(self, settings: Sequence[DetectorSettings], n_params: int) -> None:
+        k = len(settings)
+        if k < 1:
+            raise ValueError("settings must list at least one channel")
+        self.n_channels = k
+        self.n_params = n_params
+        self.settings = tuple(settings)
+
+        def column(name: str) -> FloatArray:
+            return np.array([float(getattr(s, name)) for s in settings])
+
+        self._offset_k = column("offset_k")
+        self._offset_h = column("offset_h")
+        self._variance_k = np.array([variance_reference(s.variance_ratio) for s in settings])
+        self._variance_h = column("variance_h")
+        self._clip2 = column("variance_clip") ** 2
+        self._noise_ratio = column("noise_ratio")
+        self._noise_high = column("noise_high")
+        self._drift_limit = np.array([chi2_quantile(1.0 - s.drift_alpha, n_params) for s in settings])
+        self._drift_every = np.array([s.drift_every for s in settings], dtype=np.int64)
+
+        self.has_baseline = np.zeros(k, dtype=bool)
+        self._sigma_ref = np.full(k, np.nan)
+        self._theta_ref = np.zeros((k, n_params))
+        self._cov_ref = np.zeros((k, n_params, n_params))
+        self._beta_ref: FloatArray | None = None
+        self._state = np.full((k, 9), np.nan)
+        self._state[:, [_UP, _DOWN, _VAR]] = 0.0
+        self._since_drift = np.zeros(k, dtype=np.int64)
+        self._active = np.zeros((len(KINDS), k), dtype=bool)
+        self._conditions = np.full((len(KINDS), k, 4), np.nan)
+        self._timing = np.array([[[t.deadband, t.on_delay, t.off_delay]
+                                  for t in (s.timing_of(kind) for s in settings)] for kind in KINDS])
+        self._events: list[ConditionEvent] = []
+        self._pack()
+
+    def _pack(self) -> None:
+        """The per-channel constants side by side: one gather per round."""
+        self._constants = np.stack([self._offset_k, self._offset_h, self._variance_k, self._variance_h,
+                                    self._clip2, self._noise_ratio, self._noise_high, self._sigma_ref], axis=1)
+
+    # -------------------------------------------------------------- baselines
+    def set_baseline(self, channel: int, baseline: Baseline) -> None:
+        """Judge channel against ``baseline`` from now on: statistics restart, active conditions clear."""
+        if baseline.parameters.shape != (self.n_params,):
+            raise ValueError(f"baseline must have {self.n_params} parameters, got {baseline.parameters.shape[0]}")
+        self.has_baseline[channel] = True
+        self._sigma_ref[channel] = baseline.noise_sigma
+        self._constants[channel, _SIGMA] = baseline.noise_sigma
+        self._theta_ref[channel] = baseline.parameters
+        self._cov_ref[channel] = baseline.covariance
+        if baseline.noise_model is not None:
+            if self._beta_ref is None:
+                self._beta_ref = np.full((self.n_channels, baseline.noise_model.shape[0]), np.nan)
+            self._beta_ref[channel] = baseline.noise_model
+        elif self._beta_ref is not None:
+            self._beta_ref[channel] = np.nan
+        self._restart(channel, baseline.t)
+
+    def clear_baseline(self, channel: int, t: float | None = None) -> None:
+        """No reference any more (a reset): nothing is judged until a new baseline is set."""
+        self.has_baseline[channel] = False
+        self._sigma_ref[channel] = np.nan
+        self._constants[channel, _SIGMA] = np.nan
+        self._restart(channel, t)
+
+    def _restart(self, channel: int, t: float | None) -> None:
+        now = math.nan if t is None else t
+        row = self._state[channel]
+        row[:] = np.nan
+        row[[_UP, _DOWN, _VAR]] = 0.0
+        row[[_ZUP, _ZDOWN, _ZVAR]] = now
+        self._since_drift[channel] = 0
+        for q, kind in enumerate(KINDS):
+            if self._active[q, channel]:
+                self._events.append(ConditionEvent(channel, kind, False, now, math.nan, math.nan, math.nan))
+            self._active[q, channel] = False
+            self._conditions[q, channel] = np.nan
+
+    def reference_variance(self, idx: IndexArray, z_op: FloatArray | None) -> FloatArray:
+        """Baseline noise variance of each sample: at its operating point where the baseline has a model."""
+        variance = self._sigma_ref[idx] ** 2
+        if self._beta_ref is not None and z_op is not None:
+            beta = self._beta_ref[idx]
+            modelled = ~np.isnan(beta[:, 0])
+            if modelled.any():
+                log_v = z_op[:, 0] * beta[:, 0]
+                for j in range(1, beta.shape[1]):
+                    log_v = log_v + z_op[:, j] * beta[:, j]
+                variance = np.where(modelled, np.exp(np.minimum(log_v, 700.0)), variance)
+        return variance
+
+    # ------------------------------------------------------------------ steps
+    def step(self, idx: IndexArray, t: FloatArray, e: FloatArray, h: FloatArray, kappa: FloatArray,
+             v_now: FloatArray, v_ref: FloatArray, sigma: FloatArray) -> NDArray[np.bool_]:
+        """One sample for each of B distinct channels; returns which of them are due for a drift check.
+
+        Parameters
+        ----------
+        idx : (B,) channel indices
+        t : (B,) sample times (NaN when unknown)
+        e, h, kappa : (B,) innovation, leverage, the bank's kappa before the update
+        v_now : (B,) noise variance tracked before the sample (NaN when not known yet)
+        v_ref : (B,) the sample's baseline noise variance (:meth:`reference_variance`, or declared)
+        sigma : (B,) tracked noise sigma after the sample (NaN before warm-up)
+        """
+        ready = self.has_baseline[idx] & np.isfinite(e) & (h < np.inf)
+        if not ready.any():
+            return ready                                   # commissioning, or nothing predictable
+        s = self._state[idx]
+        p = self._constants[idx]
+        with np.errstate(all="ignore"):
+            spread = 1.0 + kappa * h
+            eps_now = e / np.sqrt(v_now * spread)
+            eps_ref = e / np.sqrt(v_ref * spread)
+            live = ready & np.isfinite(eps_now)
+            k = p[:, _K]
+            up = np.where(live, np.maximum(0.0, s[:, _UP] + eps_now - k), s[:, _UP])
+            down = np.where(live, np.maximum(0.0, s[:, _DOWN] - eps_now - k), s[:, _DOWN])
+            s[:, _ZUP] = np.where(live & (up == 0.0), t, s[:, _ZUP])
+            s[:, _ZDOWN] = np.where(live & (down == 0.0), t, s[:, _ZDOWN])
+            s[:, _UP] = up
+            s[:, _DOWN] = down
+
+            referenced = ready & np.isfinite(eps_ref)
+            paired = referenced & np.isfinite(s[:, _PREV])
+            d = eps_ref - s[:, _PREV]
+            x = np.minimum(0.5 * d * d, p[:, _CLIP2])
+            variance = np.where(paired, np.maximum(0.0, s[:, _VAR] + x - p[:, _VK]), s[:, _VAR])
+            s[:, _VAR] = variance
+            s[:, _ZVAR] = np.where(paired & (variance == 0.0), t, s[:, _ZVAR])
+            s[:, _PREV] = np.where(referenced, eps_ref, s[:, _PREV])
+            noise = np.where(self.has_baseline[idx], sigma, np.nan)
+            s[:, _NOISE] = noise
+            self._state[idx] = s
+            # noise_level, variance, offset judged together: rows in KINDS order.
+            b = idx.shape[0]
+            statistic, limit, onset = np.empty((3, b)), np.empty((3, b)), np.empty((3, b))
+            statistic[0] = noise
+            np.copyto(statistic[1], np.where(paired, variance, np.nan))
+            np.copyto(statistic[2], np.where(live, np.maximum(up, down), np.nan))
+            np.minimum(p[:, _HIGH], p[:, _RATIO] * p[:, _SIGMA], out=limit[0])
+            limit[1] = p[:, _VH]
+            limit[2] = p[:, _H]
+            onset[0] = np.nan
+            onset[1] = s[:, _ZVAR]
+            np.copyto(onset[2], np.where(up >= down, s[:, _ZUP], s[:, _ZDOWN]))
+            self._judge(slice(0, 3), idx, t, statistic, limit, onset)
+        since = self._since_drift[idx] + ready
+        due = ready & (since >= self._drift_every[idx])
+        self._since_drift[idx] = np.where(due, 0, since)
+        return due
+
+    def check_drift(self, idx: IndexArray, t: FloatArray, theta: FloatArray, covariance: FloatArray,
+                    judged: NDArray[np.bool_]) -> None:
+        """The drift test for channels ``idx``: theta (B, n), its covariance (B, n, n); ``judged`` False holds."""
+        delta = theta - self._theta_ref[idx]
+        total = covariance + self._cov_ref[idx]
+        d2 = np.full(idx.shape[0], np.nan)
+        ok = judged & np.isfinite(delta).all(axis=1) & np.isfinite(total).all(axis=(1, 2))
+        with np.errstate(all="ignore"):
+            if ok.any():
+                try:
+                    solved = np.linalg.solve(total[ok], delta[ok][:, :, None])[:, :, 0]
+                    d2[ok] = np.einsum("bi,bi->b", delta[ok], solved)
+                except np.linalg.LinAlgError:
+                    pass                                   # a singular covariance: not judged this time
+            d2 = np.where(np.isfinite(d2) & (d2 >= 0.0), d2, np.nan)
+            self._state[idx, _DRIFT] = np.where(np.isnan(d2), self._state[idx, _DRIFT], d2)
+            self._judge(slice(3, 4), idx, t, d2[None], self._drift_limit[idx][None], np.full((1, idx.shape[0]), np.nan))
+
+    def _judge(self, kinds: slice, idx: IndexArray, t: FloatArray, statistic: FloatArray, limit: FloatArray,
+               onset: FloatArray) -> None:
+        """Hysteresis and delays of the conditions ``KINDS[kinds]`` (module docstring), all at once.
+
+        ``statistic``, ``limit``, ``onset``: (Q, B), one row per kind; NaN statistics hold a condition
+        as it is, a NaN onset falls back to the time the statistic first exceeded its limit. Called
+        inside ``np.errstate(all="ignore")``: NaN comparisons are meant.
+        """
+        c = self._conditions[kinds][:, idx]                 # (Q, B, 4)
+        active = self._active[kinds][:, idx]                # (Q, B)
+        valid = ~np.isnan(statistic)
+        over = valid & (statistic > limit)
+        if not (over.any() or active.any()):
+            # The usual case: nothing over its limit, nothing active; only pending rises are cancelled.
+            c[..., _STAT] = np.where(valid, statistic, c[..., _STAT])
+            c[..., _ON] = np.where(valid, np.nan, c[..., _ON])
+            self._put(kinds, idx, c)
+            return
+        timing = self._timing[kinds][:, idx]                # (Q, B, 3)
+        deadband, on_delay, off_delay = timing[..., 0], timing[..., 1], timing[..., 2]
+        under = valid & (statistic < limit * (1.0 - deadband))
+        on_since = np.where(~active & over, np.where(np.isnan(c[..., _ON]), t, c[..., _ON]),
+                            np.where(~active & valid, np.nan, c[..., _ON]))
+        off_since = np.where(active & under, np.where(np.isnan(c[..., _OFF]), t, c[..., _OFF]),
+                             np.where(active & valid, np.nan, c[..., _OFF]))
+        # Unknown times (NaN) give no delay: ~(nan < delay) is True.
+        rise = ~active & over & ~(t - on_since < on_delay)
+        fall = active & under & ~(t - off_since < off_delay)
+        c[..., _ON] = np.where(rise, np.nan, on_since)
+        c[..., _OFF] = np.where(fall, np.nan, off_since)
+        c[..., _STAT] = np.where(valid, statistic, c[..., _STAT])
+        c[..., _ONSET] = np.where(rise, np.where(np.isnan(onset), on_since, onset), c[..., _ONSET])
+        self._put(kinds, idx, c)
+        first = kinds.start or 0
+        for q in range(c.shape[0]):
+            self._active[first + q, idx] = (active[q] | rise[q]) & ~fall[q]
+            for j in np.flatnonzero(rise[q] | fall[q]).tolist():
+                self._events.append(ConditionEvent(int(idx[j]), KINDS[first + q], bool(rise[q, j]), float(t[j]),
+                                                   float(statistic[q, j]), float(limit[q, j]),
+                                                   float(c[q, j, _ONSET])))
+
+    def _put(self, kinds: slice, idx: IndexArray, c: FloatArray) -> None:
+        first = kinds.start or 0
+        for q in range(c.shape[0]):
+            self._conditions[first + q, idx] = c[q]
+
+    # ------------------------------------------------------------------ reads
+    def take_events(self) -> list[ConditionEvent]:
+        """Condition changes since the last call, in the order they happened."""
+        events, self._events = self._events, []
+        return events
+
+    def limits(self, channel: int) -> dict[str, float]:
+        """Each detector's current limit for one channel."""
+        return {"noise_level": float(min(self._noise_high[channel],
+                                         self._noise_ratio[channel] * self._sigma_ref[channel])),
+                "variance": float(self._variance_h[channel]), "offset": float(self._offset_h[channel]),
+                "drift": float(self._drift_limit[channel])}
+
+    def statistics(self, channel: int) -> dict[str, float]:
+        """Each detector's latest statistic for one channel (NaN when not judged yet)."""
+        s = self._state[channel]
+        judged = bool(self.has_baseline[channel])
+        return {"noise_level": float(s[_NOISE]), "variance": float(s[_VAR]) if judged else math.nan,
+                "offset": float(max(s[_UP], s[_DOWN])) if judged else math.nan, "drift": float(s[_DRIFT])}
+
+    def active(self, channel: int) -> dict[str, bool]:
+        """Whether each detector's alarm condition is active for one channel."""
+        return {kind: bool(self._active[q, channel]) for q, kind in enumerate(KINDS)}
+
+    def onset(self, channel: int, kind: str) -> float:
+        """Estimated onset of an active condition (sample time; NaN when unknown)."""
+        return float(self._conditions[KINDS.index(kind), channel, _ONSET])
+
+    def arrays(self) -> list[NDArray[np.generic]]:
+        """Every state array (for checkpoints and tests)."""
+        return [self.has_baseline, self._sigma_ref, self._theta_ref, self._cov_ref, self._state,
+                self._since_drift, self._active, self._conditions,
+                *([self._beta_ref] if self._beta_ref is not None else [])]

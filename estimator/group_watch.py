@@ -1,0 +1,125 @@
+"""What a group of channels is judged against: baselines, commissioning, and the detectors after each round.
+
+Both application paths of :class:`~estimator.channel_bank.ChannelBank` call
+:meth:`GroupWatch.after_round` with the same arrays for every round, so the
+detectors see the same numbers whichever path ran (and give the same bits).
+
+Commissioning: a channel without a baseline learns one from its own estimates
+once it has applied ``commissioning_samples`` samples and is identifiable
+(parameters, their covariance, the tracked noise sigma, the operating-point
+model); 0 means never learn, wait for a baseline from ``rwls fit`` or an
+engineer.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from estimator.baseline import Baseline, BaselineHistory
+from estimator.channel import ChannelSettings
+from estimator.detectors import ConditionEvent, DetectorBank
+from estimator.log_variance import LogVarianceModel
+from estimator.rwls import RecursiveWLSBank
+from estimator.statistics import CONDITION_LIMIT, bank_statistics
+from estimator.variance import NoiseVarianceTracker
+
+__all__ = ["BaselineSet", "GroupWatch"]
+
+FloatArray = NDArray[np.float64]
+IndexArray = NDArray[np.intp]
+
+
+@dataclass(frozen=True)
+class BaselineSet:
+    """A channel's new baseline (learned, fitted or set by an engineer)."""
+
+    index: int
+    baseline: Baseline
+
+
+class GroupWatch:
+    """Detectors, baselines and commissioning counts of one group's K channels."""
+
+    def __init__(self, settings: Sequence[ChannelSettings], bank: RecursiveWLSBank,
+                 tracker: NoiseVarianceTracker, model: LogVarianceModel | None) -> None:
+        self.bank = bank
+        self.tracker = tracker
+        self.model = model
+        self.detectors = DetectorBank([s.detectors for s in settings], bank.n_params)
+        self.histories = [BaselineHistory() for _ in settings]
+        self._estimated = np.array([s.covariance_scale == "estimated" for s in settings])
+        self._target = np.array([s.detectors.commissioning_samples for s in settings], dtype=np.int64)
+        self.commissioned = np.zeros(len(settings), dtype=np.int64)   # samples since start or reset
+        self._notices: list[BaselineSet] = []
+
+    # ------------------------------------------------------------------ rounds
+    def variance_now(self, idx: IndexArray, z_op: FloatArray | None, declared: FloatArray) -> FloatArray:
+        """Noise variance of each sample known before it: declared, else the model's, else the tracker's."""
+        variance = self.tracker.variance_of(idx)
+        if self.model is not None and z_op is not None:
+            predicted = self.model.variance(idx, z_op)
+            variance = np.where(np.isfinite(predicted), predicted, variance)
+        return np.where(np.isnan(declared), variance, declared)
+
+    def after_round(self, idx: IndexArray, t: FloatArray, e: FloatArray, h: FloatArray, kappa: FloatArray,
+                    v_now: FloatArray, declared: FloatArray, z_op: FloatArray | None) -> None:
+        """The detectors for one applied sample of each channel ``idx`` (after bank, tracker and model)."""
+        sigma = np.sqrt(self.tracker.variance_of(idx))
+        v_ref = np.where(np.isnan(declared), self.detectors.reference_variance(idx, z_op), declared)
+        due = self.detectors.step(idx, t, e, h, kappa, v_now, v_ref, sigma)
+        if due.any():
+            theta, cov, judged = self._estimates(idx[due])
+            self.detectors.check_drift(idx[due], t[due], theta, cov, judged)
+        self.commissioned[idx] += 1
+        waiting = (self._target[idx] > 0) & ~self.detectors.has_baseline[idx] \
+            & (self.commissioned[idx] >= self._target[idx])
+        if waiting.any():
+            for j in np.flatnonzero(waiting).tolist():
+                self.learn(int(idx[j]), float(t[j]), "learned", samples=int(self.commissioned[idx[j]]))
+
+    def _estimates(self, idx: IndexArray) -> tuple[FloatArray, FloatArray, NDArray[np.bool_]]:
+        """theta (B, n), its covariance ``kappa P s^2`` (B, n, n) and whether it may be judged."""
+        stats = bank_statistics(self.bank.factor(idx), self.bank.effective_count[idx], scale="known")
+        scale = np.where(self._estimated[idx], stats.residual_sd ** 2, 1.0) * self.bank.kappa(idx)
+        cov = stats.unscaled_covariance * scale[:, None, None]
+        judged = stats.identifiable & (stats.dof >= 1.0) & (stats.information_condition <= CONDITION_LIMIT)
+        return stats.parameters, cov, judged
+
+    # -------------------------------------------------------------- baselines
+    def learn(self, channel: int, t: float | None, source: str, samples: int = 0, note: str = "") -> Baseline | None:
+        """A baseline from the channel's current estimates; None while they are not usable."""
+        theta, cov, judged = self._estimates(np.array([channel], dtype=np.intp))
+        variance = self.tracker.variance_one(channel)
+        sigma = math.sqrt(variance) if variance > 0.0 else math.nan
+        if not (judged[0] and math.isfinite(sigma)):
+            return None
+        beta = None
+        if self.model is not None:
+            coefficients = self.model.coefficients([channel])[0]
+            beta = coefficients if np.isfinite(coefficients).all() else None
+        baseline = Baseline(self.histories[channel].next_version, source, theta[0], cov[0], sigma, beta,
+                            None if t is None or math.isnan(t) else t, samples, note)
+        self.set(channel, baseline)
+        return baseline
+
+    def set(self, channel: int, baseline: Baseline) -> None:
+        """Put ``baseline`` in force (its version must be the next one)."""
+        self.histories[channel].add(baseline)
+        self.detectors.set_baseline(channel, baseline)
+        self._notices.append(BaselineSet(channel, baseline))
+
+    def restart(self, channel: int, t: float | None) -> None:
+        """After a reset: no baseline in force (the history stays), commissioning from zero."""
+        self.detectors.clear_baseline(channel, t)
+        self.commissioned[channel] = 0
+
+    def take(self) -> tuple[list[ConditionEvent], list[BaselineSet]]:
+        """Condition changes and new baselines since the last call."""
+        notices, self._notices = self._notices, []
+        return self.detectors.take_events(), notices
+
