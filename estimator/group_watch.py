@@ -6,9 +6,14 @@ detectors see the same numbers whichever path ran (and give the same bits).
 
 Commissioning: a channel without a baseline learns one from its own estimates
 once it has applied ``commissioning_samples`` samples and is identifiable
-(parameters, their covariance, the tracked noise sigma, the operating-point
-model); 0 means never learn, wait for a baseline from ``rwls fit`` or an
-engineer.
+(parameters, their covariance, the noise sigma, the operating-point model); 0
+means never learn, wait for a baseline from ``rwls fit`` or an engineer. The
+baseline sigma is the mean of ``e^2 / (1 + kappa h)`` over every predictable
+sample since the last baseline (or reset), not the tracker's exponentially
+weighted value: the variance detector is judged against it, and over a
+commissioning period of N samples its relative error is about
+``sqrt(2 / N)`` (4.5 % for N = 1000) rather than that of the tracker's
+shorter memory.
 """
 
 from __future__ import annotations
@@ -28,7 +33,9 @@ from estimator.rwls import RecursiveWLSBank
 from estimator.statistics import CONDITION_LIMIT, bank_statistics
 from estimator.variance import NoiseVarianceTracker
 
-__all__ = ["BaselineSet", "GroupWatch"]
+__all__ = ["MIN_SIGMA_SAMPLES", "BaselineSet", "GroupWatch"]
+
+MIN_SIGMA_SAMPLES = 30      # fewer samples since the last baseline: the tracker's sigma is taken instead
 
 FloatArray = NDArray[np.float64]
 IndexArray = NDArray[np.intp]
@@ -55,6 +62,8 @@ class GroupWatch:
         self._estimated = np.array([s.covariance_scale == "estimated" for s in settings])
         self._target = np.array([s.detectors.commissioning_samples for s in settings], dtype=np.int64)
         self.commissioned = np.zeros(len(settings), dtype=np.int64)   # samples since start or reset
+        self._square_sum = np.zeros(len(settings))      # sum of e^2 / (1 + kappa h) since the last baseline
+        self._square_count = np.zeros(len(settings), dtype=np.int64)
         self._notices: list[BaselineSet] = []
 
     # ------------------------------------------------------------------ rounds
@@ -70,6 +79,11 @@ class GroupWatch:
                     v_now: FloatArray, declared: FloatArray, z_op: FloatArray | None) -> None:
         """The detectors for one applied sample of each channel ``idx`` (after bank, tracker and model)."""
         sigma = np.sqrt(self.tracker.variance_of(idx))
+        with np.errstate(invalid="ignore", over="ignore"):
+            v = e * e / (1.0 + kappa * h)
+        counted = np.isfinite(v) & np.isnan(declared)
+        self._square_sum[idx] += np.where(counted, v, 0.0)
+        self._square_count[idx] += counted
         v_ref = np.where(np.isnan(declared), self.detectors.reference_variance(idx, z_op), declared)
         due = self.detectors.step(idx, t, e, h, kappa, v_now, v_ref, sigma)
         if due.any():
@@ -94,7 +108,9 @@ class GroupWatch:
     def learn(self, channel: int, t: float | None, source: str, samples: int = 0, note: str = "") -> Baseline | None:
         """A baseline from the channel's current estimates; None while they are not usable."""
         theta, cov, judged = self._estimates(np.array([channel], dtype=np.intp))
-        variance = self.tracker.variance_one(channel)
+        count = int(self._square_count[channel])
+        variance = (float(self._square_sum[channel]) / count if count >= MIN_SIGMA_SAMPLES
+                    else self.tracker.variance_one(channel))
         sigma = math.sqrt(variance) if variance > 0.0 else math.nan
         if not (judged[0] and math.isfinite(sigma)):
             return None
@@ -111,12 +127,16 @@ class GroupWatch:
         """Put ``baseline`` in force (its version must be the next one)."""
         self.histories[channel].add(baseline)
         self.detectors.set_baseline(channel, baseline)
+        self._square_sum[channel] = 0.0
+        self._square_count[channel] = 0
         self._notices.append(BaselineSet(channel, baseline))
 
     def restart(self, channel: int, t: float | None) -> None:
         """After a reset: no baseline in force (the history stays), commissioning from zero."""
         self.detectors.clear_baseline(channel, t)
         self.commissioned[channel] = 0
+        self._square_sum[channel] = 0.0
+        self._square_count[channel] = 0
 
     def take(self) -> tuple[list[ConditionEvent], list[BaselineSet]]:
         """Condition changes and new baselines since the last call."""

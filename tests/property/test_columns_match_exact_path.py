@@ -116,7 +116,7 @@ def _state(bank: ChannelBank) -> list[object]:
             model = group.model.state()
             out += [model.bank.factor, model.bank.sample_count]
         out += group.watch.detectors.arrays()
-        out.append(group.watch.commissioned)
+        out += [group.watch.commissioned, group.watch._square_sum, group.watch._square_count]
         for history in group.watch.histories:
             for b in history.versions:
                 out += [b.version, b.source, b.parameters, b.covariance, b.noise_sigma, b.t, b.samples,
