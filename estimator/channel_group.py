@@ -129,7 +129,6 @@ class _Group:
         idx = np.array([lane.index for lane, _ in items], dtype=np.intp)
         z_op = np.array([p.z_noise for _, p in items], dtype=np.float64) if self.model is not None else None
         declared = np.array([declared_variance(lane.settings, p.sample) for lane, p in items])
-        v_now = self.watch.variance_now(idx, z_op, declared)      # before this sample, as its weight
         kappa = self.bank.kappa(idx)
         outcomes = self._recursion(items, idx, kappa)
         applied = np.array([o.status == "applied" for o in outcomes], dtype=bool)
@@ -138,7 +137,7 @@ class _Group:
             e = np.array([o.innovation for o in outcomes])
             h = np.array([o.leverage for o in outcomes])
             self.watch.after_round(idx[applied], t[applied], e[applied], h[applied], kappa[applied],
-                                   v_now[applied], declared[applied],
+                                   declared[applied],
                                    None if z_op is None else z_op[applied])
         return outcomes
 

@@ -347,7 +347,6 @@ def _run_rounds(group: _Group, prep: _Prepared, runnable: NDArray[np.intp]) -> N
                     continue
         z_op = prep.Z_op[rows] if prep.Z_op is not None else None
         declared = prep.declared[rows]
-        v_now = group.watch.variance_now(idx, z_op, declared)        # before the sample, as in the exact path
         kappa = group.bank.kappa(idx)
         result = group.bank.update_trusted(z, y, w, idx)
         elapsed = None
@@ -359,7 +358,7 @@ def _run_rounds(group: _Group, prep: _Prepared, runnable: NDArray[np.intp]) -> N
             group.model.update_trusted(idx, z_op, result.innovation, result.leverage, kappa)
         t = prep.t.values[rows]
         last_tracked[sel] = np.where(used & ~np.isnan(t), t, last_tracked[sel])
-        group.watch.after_round(idx, t, result.innovation, result.leverage, kappa, v_now, declared, z_op)
+        group.watch.after_round(idx, t, result.innovation, result.leverage, kappa, declared, z_op)
     for k, value in zip(lanes.tolist(), last_tracked.tolist(), strict=True):
         prep.lanes[k].last_tracked_t = None if value != value else value
     result_done = np.empty_like(done)

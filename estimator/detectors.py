@@ -3,15 +3,21 @@
 Each applied sample brings its innovation ``e``, its leverage ``h = w z^T P z``
 and the bank's ``kappa`` (see :mod:`estimator.rwls`); the innovation's
 variance is about ``V (1 + kappa h)`` with ``V`` the sample's noise variance.
-Two normalisations of the innovation are used:
-
-* ``eps_now = e / sqrt(V_now (1 + kappa h))`` with ``V_now`` the noise variance
-  tracked before the sample (no look-ahead): a mean shift in units of the
-  current noise, blind to a change of the noise level itself;
-* ``eps_ref = e / sqrt(V_ref (1 + kappa h))`` with ``V_ref`` the baseline's
-  noise variance (at the sample's operating point when the channel has a noise
-  model; the declared ``sigma^2`` or ``1 / weight`` under ``sample``
-  weighting): ~N(0, 1) while the noise is as commissioned.
+The innovation is normalised by its baseline spread,
+``eps_ref = e / sqrt(V_ref (1 + kappa h))`` with ``V_ref`` the baseline's noise
+variance (at the sample's operating point when the channel has a noise model;
+the declared ``sigma^2`` or ``1 / weight`` under ``sample`` weighting):
+~N(0, 1) while the channel is as commissioned. ``d`` is the difference of
+consecutive ``eps_ref``; ``d^2 / 2`` is chi-square with one degree of freedom
+like ``eps^2`` while the noise is as commissioned, but a level shift or a slow
+drift of the mean (which a tracking estimator turns into a transient or a
+steady bias of the innovations) leaves it almost untouched. Two EWMAs of
+``d^2 / 2``, each clipped at ``clip^2`` times its own level so that one spike
+cannot lift it while a real rise still does, measure the noise relative to
+the baseline: ``D`` (half-life ``noise_half_life``) for the noise level, and a
+faster ``F`` (half-life ``offset_scale_half_life``) that scales the offset
+detector to the noise of the moment, ``eps_now = eps_ref / sqrt(F)`` (``F``
+before the sample: no look-ahead).
 
 Detectors (statistics compared with limits; a channel without a baseline, or
 a sample the bank could not predict, leaves them untouched):
@@ -20,25 +26,26 @@ a sample the bank could not predict, leaves them untouched):
     Two-sided tabular CUSUM on ``eps_now`` with reference value ``k`` and
     decision interval ``h`` in sigma units (Page 1954; Montgomery, Introduction
     to Statistical Quality Control, ch. 9): ``C+ = max(0, C+ + eps - k)``,
-    ``C- = max(0, C- - eps - k)``; statistic ``max(C+, C-)``. ``eps`` is clipped at
-    ``+-offset_clip`` first, so one gross outlier adds at most ``clip - k``
-    (with h = 12 a step needs four samples; a 4-sigma clip moves the in-control
-    ARL by less than the 6e-5 chance of a sample beyond it).
+    ``C- = max(0, C- - eps - k)``; statistic ``max(C+, C-)``. The defaults,
+    ``k = 1``, ``h = 7``, are tuned to steps of 2 sigma or more (found in about
+    8 samples; in-control ARL 2.9e6 by the Markov chain): a smaller persistent
+    offset, or the steady bias of a slow drift, is the drift test's to find.
+    ``eps`` is clipped at ``+-offset_clip`` first, so one gross outlier adds at
+    most ``clip - k`` (a 4-sigma clip moves the in-control ARL by less than the
+    6e-5 chance of a sample beyond it).
 ``variance``
     One-sided CUSUM, tuned to a variance ratio ``rho`` (reference value from
     :func:`estimator.run_length.variance_reference`), of ``d^2 / 2`` clipped at
-    ``clip^2``, where ``d`` is the difference of consecutive ``eps_ref`` (a
-    spike touches two differences: keep ``h > 2 (clip^2 - k)``).
-    ``d^2 / 2`` is chi-square with one degree of freedom like ``eps^2`` while
-    the noise is as commissioned, but a level shift or a slow drift of the
-    mean (which a tracking estimator turns into a transient or a steady bias of
-    the innovations) leaves it almost untouched: the variance detector answers
-    the noise, the offset and drift detectors the mean. The clip keeps one
-    spike from raising it. Consecutive differences are correlated, so the
+    ``clip^2`` (a spike touches two differences: keep ``h > 2 (clip^2 - k)``):
+    the variance detector answers the noise, the offset and drift detectors
+    the mean. Consecutive differences are correlated, so the
     Markov-chain ARL of the iid chart overstates the in-control ARL (measured
     by simulation: 6,800 samples against 38,800 at h = 30, k = 1.39).
 ``noise_level``
-    The tracked sigma against ``min(noise_high, noise_ratio * baseline sigma)``.
+    The noise sigma tracked from successive differences, ``sigma_base * sqrt(D)``,
+    against ``min(noise_high, noise_ratio * sigma_base)``. (The tracker that
+    makes the weights sees every innovation, including those of an estimator
+    still adapting to a step or a drift, which is not noise.)
 ``drift``
     ``d^2 = (theta - theta_ref)^T (C + C_ref)^-1 (theta - theta_ref)`` every
     ``drift_every`` samples against the chi-square quantile with n degrees of
@@ -57,7 +64,7 @@ zero, the classical change-point estimate).
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -100,10 +107,12 @@ class DetectorSettings:
     noise_ratio: float = 2.0
     noise_high: float = math.inf
     variance_ratio: float = 2.0
-    variance_h: float = 50.0
+    variance_h: float = 60.0
     variance_clip: float = 3.0
-    offset_k: float = 0.5
-    offset_h: float = 12.0
+    noise_half_life: float = 200.0
+    offset_scale_half_life: float = 100.0
+    offset_k: float = 1.0
+    offset_h: float = 8.0
     offset_clip: float = 4.0
     drift_alpha: float = 1e-6
     drift_every: int = 25
@@ -112,7 +121,8 @@ class DetectorSettings:
     def __post_init__(self) -> None:
         if self.commissioning_samples < 0:
             raise ValueError(f"commissioning_samples must be >= 0, got {self.commissioning_samples}")
-        for name in ("noise_ratio", "noise_high", "variance_h", "offset_h", "variance_clip", "offset_clip"):
+        for name in ("noise_ratio", "noise_high", "variance_h", "offset_h", "variance_clip", "offset_clip",
+                     "noise_half_life", "offset_scale_half_life"):
             value = getattr(self, name)
             if not value > 0.0:
                 raise ValueError(f"{name} must be > 0, got {value}")
@@ -146,11 +156,11 @@ class ConditionEvent:
 
 
 # Columns of the per-channel detector state, one row per channel (one gather and one scatter per round).
-_UP, _DOWN, _VAR, _PREV, _ZUP, _ZDOWN, _ZVAR, _NOISE, _DRIFT = range(9)
+_UP, _DOWN, _VAR, _PREV, _ZUP, _ZDOWN, _ZVAR, _NOISE, _DRIFT, _SCALE = range(10)
 # Columns of the per-kind condition state.
 _ON, _OFF, _STAT, _ONSET = range(4)
 # Columns of the per-channel constants.
-_K, _H, _VK, _VH, _CLIP2, _RATIO, _HIGH, _SIGMA, _CLIP = range(9)
+_K, _H, _VK, _VH, _CLIP2, _RATIO, _HIGH, _SIGMA, _CLIP, _ALPHA, _FAST = range(11)
 
 
 class DetectorBank:
@@ -190,7 +200,7 @@ class DetectorBank:
         self._theta_ref = np.zeros((k, n_params))
         self._cov_ref = np.zeros((k, n_params, n_params))
         self._beta_ref: FloatArray | None = None
-        self._state = np.full((k, 9), np.nan)
+        self._state = np.full((k, 10), np.nan)
         self._state[:, [_UP, _DOWN, _VAR]] = 0.0
         self._since_drift = np.zeros(k, dtype=np.int64)
         self._active = np.zeros((len(KINDS), k), dtype=bool)
@@ -198,13 +208,14 @@ class DetectorBank:
         self._timing = np.array([[[t.deadband, t.on_delay, t.off_delay]
                                   for t in (s.timing_of(kind) for s in settings)] for kind in KINDS])
         self._events: list[ConditionEvent] = []
-        self._pack()
+        self._pack(column)
 
-    def _pack(self) -> None:
+    def _pack(self, column: Callable[[str], FloatArray]) -> None:
         """The per-channel constants side by side: one gather per round."""
         self._constants = np.stack([self._offset_k, self._offset_h, self._variance_k, self._variance_h,
                                     self._clip2, self._noise_ratio, self._noise_high, self._sigma_ref,
-                                    self._offset_clip], axis=1)
+                                    self._offset_clip, -np.expm1(-math.log(2.0) / column("noise_half_life")),
+                                    -np.expm1(-math.log(2.0) / column("offset_scale_half_life"))], axis=1)
 
     # -------------------------------------------------------------- baselines
     def set_baseline(self, channel: int, baseline: Baseline) -> None:
@@ -237,6 +248,7 @@ class DetectorBank:
         row[:] = np.nan
         row[[_UP, _DOWN, _VAR]] = 0.0
         row[[_ZUP, _ZDOWN, _ZVAR]] = now
+        row[[_NOISE, _SCALE]] = 1.0 if self.has_baseline[channel] else np.nan    # D and F start at the baseline
         self._since_drift[channel] = 0
         for q, kind in enumerate(KINDS):
             if self._active[q, channel]:
@@ -259,7 +271,7 @@ class DetectorBank:
 
     # ------------------------------------------------------------------ steps
     def step(self, idx: IndexArray, t: FloatArray, e: FloatArray, h: FloatArray, kappa: FloatArray,
-             v_now: FloatArray, v_ref: FloatArray, sigma: FloatArray) -> NDArray[np.bool_]:
+             v_ref: FloatArray) -> NDArray[np.bool_]:
         """One sample for each of B distinct channels; returns which of them are due for a drift check.
 
         Parameters
@@ -267,9 +279,7 @@ class DetectorBank:
         idx : (B,) channel indices
         t : (B,) sample times (NaN when unknown)
         e, h, kappa : (B,) innovation, leverage, the bank's kappa before the update
-        v_now : (B,) noise variance tracked before the sample (NaN when not known yet)
         v_ref : (B,) the sample's baseline noise variance (:meth:`reference_variance`, or declared)
-        sigma : (B,) tracked noise sigma after the sample (NaN before warm-up)
         """
         ready = self.has_baseline[idx] & np.isfinite(e) & (h < np.inf)
         if not ready.any():
@@ -277,9 +287,8 @@ class DetectorBank:
         s = self._state[idx]
         p = self._constants[idx]
         with np.errstate(all="ignore"):
-            spread = 1.0 + kappa * h
-            eps_now = np.clip(e / np.sqrt(v_now * spread), -p[:, _CLIP], p[:, _CLIP])
-            eps_ref = e / np.sqrt(v_ref * spread)
+            eps_ref = e / np.sqrt(v_ref * (1.0 + kappa * h))
+            eps_now = np.clip(eps_ref / np.sqrt(s[:, _SCALE]), -p[:, _CLIP], p[:, _CLIP])
             live = ready & np.isfinite(eps_now)
             k = p[:, _K]
             up = np.where(live, np.maximum(0.0, s[:, _UP] + eps_now - k), s[:, _UP])
@@ -297,8 +306,13 @@ class DetectorBank:
             s[:, _VAR] = variance
             s[:, _ZVAR] = np.where(paired & (variance == 0.0), t, s[:, _ZVAR])
             s[:, _PREV] = np.where(referenced, eps_ref, s[:, _PREV])
-            noise = np.where(self.has_baseline[idx], sigma, np.nan)
-            s[:, _NOISE] = noise
+            alpha = p[:, _ALPHA]
+            half = 0.5 * d * d
+            for column, rate in ((_NOISE, alpha), (_SCALE, p[:, _FAST])):
+                level = s[:, column]                 # clipped relative to its own level (module docstring)
+                s[:, column] = np.where(paired, (1.0 - rate) * level + rate * np.minimum(half, p[:, _CLIP2] * level),
+                                        level)
+            noise = p[:, _SIGMA] * np.sqrt(s[:, _NOISE])
             self._state[idx] = s
             # noise_level, variance, offset judged together: rows in KINDS order.
             b = idx.shape[0]
@@ -399,7 +413,8 @@ class DetectorBank:
         """Each detector's latest statistic for one channel (NaN when not judged yet)."""
         s = self._state[channel]
         judged = bool(self.has_baseline[channel])
-        return {"noise_level": float(s[_NOISE]), "variance": float(s[_VAR]) if judged else math.nan,
+        noise = float(self._sigma_ref[channel] * math.sqrt(s[_NOISE]))
+        return {"noise_level": noise, "variance": float(s[_VAR]) if judged else math.nan,
                 "offset": float(max(s[_UP], s[_DOWN])) if judged else math.nan, "drift": float(s[_DRIFT])}
 
     def active(self, channel: int) -> dict[str, bool]:

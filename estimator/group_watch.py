@@ -13,7 +13,11 @@ sample since the last baseline (or reset), not the tracker's exponentially
 weighted value: the variance detector is judged against it, and over a
 commissioning period of N samples its relative error is about
 ``sqrt(2 / N)`` (4.5 % for N = 1000) rather than that of the tracker's
-shorter memory.
+shorter memory. A channel with an operating-point noise model has that
+model's coefficients in its baseline: those when commissioning ends, their
+intercept then calibrated on the next ``commissioning_samples / 2`` samples
+(the mean ratio of squared innovations to predictions), so its commissioning
+takes half as long again.
 """
 
 from __future__ import annotations
@@ -64,28 +68,38 @@ class GroupWatch:
         self.commissioned = np.zeros(len(settings), dtype=np.int64)   # samples since start or reset
         self._square_sum = np.zeros(len(settings))      # sum of e^2 / (1 + kappa h) since the last baseline
         self._square_count = np.zeros(len(settings), dtype=np.int64)
+        # Channels with an operating-point model: its coefficients when commissioning ended, and the
+        # squares over their prediction since, to calibrate its level before the baseline is set.
+        self._candidate = np.full((len(settings), model.n_terms), np.nan) if model is not None else None
+        self._ratio_sum = np.zeros(len(settings))
+        self._ratio_count = np.zeros(len(settings), dtype=np.int64)
+        self._intercept = [s.noise_model_terms.index("1") if "1" in s.noise_model_terms else None for s in settings]
         self._notices: list[BaselineSet] = []
 
     # ------------------------------------------------------------------ rounds
-    def variance_now(self, idx: IndexArray, z_op: FloatArray | None, declared: FloatArray) -> FloatArray:
-        """Noise variance of each sample known before it: declared, else the model's, else the tracker's."""
-        variance = self.tracker.variance_of(idx)
-        if self.model is not None and z_op is not None:
-            predicted = self.model.variance(idx, z_op)
-            variance = np.where(np.isfinite(predicted), predicted, variance)
-        return np.where(np.isnan(declared), variance, declared)
-
     def after_round(self, idx: IndexArray, t: FloatArray, e: FloatArray, h: FloatArray, kappa: FloatArray,
-                    v_now: FloatArray, declared: FloatArray, z_op: FloatArray | None) -> None:
+                    declared: FloatArray, z_op: FloatArray | None) -> None:
         """The detectors for one applied sample of each channel ``idx`` (after bank, tracker and model)."""
-        sigma = np.sqrt(self.tracker.variance_of(idx))
         with np.errstate(invalid="ignore", over="ignore"):
             v = e * e / (1.0 + kappa * h)
         counted = np.isfinite(v) & np.isnan(declared)
         self._square_sum[idx] += np.where(counted, v, 0.0)
         self._square_count[idx] += counted
+        if self._candidate is not None and z_op is not None:
+            calibrating = counted & ~np.isnan(self._candidate[idx, 0])
+            if calibrating.any():
+                chosen = idx[calibrating]
+                beta = self._candidate[chosen]
+                log_v = z_op[calibrating, 0] * beta[:, 0]
+                for j in range(1, beta.shape[1]):
+                    log_v = log_v + z_op[calibrating, j] * beta[:, j]
+                with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                    ratio = v[calibrating] / np.exp(log_v)
+                usable = np.isfinite(ratio)
+                self._ratio_sum[chosen] += np.where(usable, ratio, 0.0)
+                self._ratio_count[chosen] += usable
         v_ref = np.where(np.isnan(declared), self.detectors.reference_variance(idx, z_op), declared)
-        due = self.detectors.step(idx, t, e, h, kappa, v_now, v_ref, sigma)
+        due = self.detectors.step(idx, t, e, h, kappa, v_ref)
         if due.any():
             theta, cov, judged = self._estimates(idx[due])
             self.detectors.check_drift(idx[due], t[due], theta, cov, judged)
@@ -94,7 +108,24 @@ class GroupWatch:
             & (self.commissioned[idx] >= self._target[idx])
         if waiting.any():
             for j in np.flatnonzero(waiting).tolist():
-                self.learn(int(idx[j]), float(t[j]), "learned", samples=int(self.commissioned[idx[j]]))
+                i = int(idx[j])
+                if self._candidate is not None and not self._calibrated(i):
+                    continue
+                self.learn(i, float(t[j]), "learned", samples=int(self.commissioned[i]))
+
+    def _calibrated(self, channel: int) -> bool:
+        """Whether a model channel's level calibration is complete; starts it when commissioning ends."""
+        if self._candidate is None or self.model is None:
+            return True
+        if np.isnan(self._candidate[channel, 0]):
+            coefficients = self.model.coefficients([channel])[0]
+            if np.isfinite(coefficients).all() and self._intercept[channel] is not None:
+                self._candidate[channel] = coefficients
+                self._ratio_sum[channel] = 0.0
+                self._ratio_count[channel] = 0
+            return self._intercept[channel] is None             # nothing to calibrate without an intercept
+        needed = max(MIN_SIGMA_SAMPLES, int(self._target[channel]) // 2)
+        return bool(self._ratio_count[channel] >= needed)
 
     def _estimates(self, idx: IndexArray) -> tuple[FloatArray, FloatArray, NDArray[np.bool_]]:
         """theta (B, n), its covariance ``kappa P s^2`` (B, n, n) and whether it may be judged."""
@@ -115,8 +146,16 @@ class GroupWatch:
         if not (judged[0] and math.isfinite(sigma)):
             return None
         beta = None
-        if self.model is not None:
+        if self.model is not None and self._candidate is not None:
             coefficients = self.model.coefficients([channel])[0]
+            # The coefficients when commissioning ended, their level calibrated on the samples since
+            # (the intercept absorbs the mean ratio of squared innovations to predictions).
+            ratios, position = int(self._ratio_count[channel]), self._intercept[channel]
+            candidate = self._candidate[channel]
+            if ratios >= MIN_SIGMA_SAMPLES and position is not None and self._ratio_sum[channel] > 0.0 \
+                    and not np.isnan(candidate[0]):
+                coefficients = candidate.copy()
+                coefficients[position] += math.log(float(self._ratio_sum[channel]) / ratios)
             beta = coefficients if np.isfinite(coefficients).all() else None
         baseline = Baseline(self.histories[channel].next_version, source, theta[0], cov[0], sigma, beta,
                             None if t is None or math.isnan(t) else t, samples, note)
@@ -129,6 +168,10 @@ class GroupWatch:
         self.detectors.set_baseline(channel, baseline)
         self._square_sum[channel] = 0.0
         self._square_count[channel] = 0
+        self._ratio_sum[channel] = 0.0
+        self._ratio_count[channel] = 0
+        if self._candidate is not None:
+            self._candidate[channel] = np.nan
         self._notices.append(BaselineSet(channel, baseline))
 
     def restart(self, channel: int, t: float | None) -> None:
@@ -137,6 +180,10 @@ class GroupWatch:
         self.commissioned[channel] = 0
         self._square_sum[channel] = 0.0
         self._square_count[channel] = 0
+        self._ratio_sum[channel] = 0.0
+        self._ratio_count[channel] = 0
+        if self._candidate is not None:
+            self._candidate[channel] = np.nan
 
     def take(self) -> tuple[list[ConditionEvent], list[BaselineSet]]:
         """Condition changes and new baselines since the last call."""

@@ -26,11 +26,18 @@ def _feed(bank: DetectorBank, eps: list[float], t0: float = 1.0, channel: int = 
     """Normalised innovations with no leverage and unit variance, one per second from t0."""
     one = np.ones(1)
     for k, value in enumerate(eps):
-        bank.step(np.array([channel]), np.array([t0 + k]), np.array([value]), np.zeros(1), one, one, one, one)
+        bank.step(np.array([channel]), np.array([t0 + k]), np.array([value]), np.zeros(1), one, one)
+
+
+def _drift_at(bank: DetectorBank, t: float, d2: float) -> None:
+    """A drift check whose statistic is exactly ``d2`` (baseline at 0, covariance I, exact reference)."""
+    bank.check_drift(np.array([0]), np.array([t]), np.array([[math.sqrt(d2), 0.0]]), np.eye(2)[None],
+                     np.array([True]))
 
 
 def test_offset_cusum_follows_the_tabular_recursion_and_signals_past_h() -> None:
-    bank = _bank(DetectorSettings(offset_k=0.5, offset_h=4.0))
+    # A scale that never moves (half-life 1e15 samples): eps goes into the CUSUM as it is.
+    bank = _bank(DetectorSettings(offset_k=0.5, offset_h=4.0, offset_scale_half_life=1e15))
     eps = [0.2, 1.4, -0.3, 2.0, 1.5, 1.8, 0.9]
     up = down = 0.0
     for k, x in enumerate(eps):
@@ -62,39 +69,47 @@ def test_a_statistic_hovering_at_its_limit_does_not_chatter() -> None:
     # A statistic that wanders within a hair of its limit crosses it hundreds of times; with a 10 %
     # deadband the condition rises once and only clears after falling clearly below.
     rng = np.random.default_rng(5)
-    bank = _bank(DetectorSettings(noise_ratio=2.0, timing=(("noise_level", ConditionTiming(deadband=0.1)),)))
-    one = np.ones(1)
-    sigmas = 2.0 + rng.normal(0.0, 0.05, size=500)
-    crossings = int(np.count_nonzero(np.diff(np.sign(sigmas - 2.0)) != 0))
-    for k, sigma in enumerate(sigmas):
-        bank.step(np.array([0]), np.array([float(k)]), np.zeros(1), np.zeros(1), one, one, one,
-                  np.array([sigma]))
+    bank = _bank(DetectorSettings(drift_alpha=0.01, timing=(("drift", ConditionTiming(deadband=0.1)),)))
+    limit = chi2_quantile(0.99, 2)
+    values = limit * (1.0 + rng.normal(0.0, 0.02, size=500))
+    crossings = int(np.count_nonzero(np.diff(np.sign(values - limit)) != 0))
+    for k, value in enumerate(values):
+        _drift_at(bank, float(k), float(value))
     assert crossings > 100
-    assert [(e.active) for e in bank.take_events()] == [True]
-    for k in range(500, 503):                    # below limit * (1 - deadband) = 1.8: it clears
-        bank.step(np.array([0]), np.array([float(k)]), np.zeros(1), np.zeros(1), one, one, one, np.array([1.7]))
+    assert [e.active for e in bank.take_events()] == [True]
+    for k in range(500, 503):                    # below limit * (1 - deadband): it clears
+        _drift_at(bank, float(k), 0.85 * limit)
     assert [(e.active, e.t) for e in bank.take_events()] == [(False, 500.0)]
 
 
 def test_on_and_off_delays_hold_a_condition_back_by_sample_time() -> None:
     timing = ConditionTiming(deadband=0.0, on_delay=10.0, off_delay=5.0)
-    bank = _bank(DetectorSettings(noise_ratio=2.0, timing=(("noise_level", timing),)))
-    one = np.ones(1)
-
-    def at(t: float, sigma: float) -> None:
-        bank.step(np.array([0]), np.array([t]), np.zeros(1), np.zeros(1), one, one, one, np.array([sigma]))
-
+    bank = _bank(DetectorSettings(drift_alpha=0.01, timing=(("drift", timing),)))
+    high, low = 3.0 * chi2_quantile(0.99, 2), 0.1
     for t in range(0, 9):                         # 8 s above the limit: shorter than the on-delay
-        at(float(t), 3.0)
-    at(9.0, 1.0)
+        _drift_at(bank, float(t), high)
+    _drift_at(bank, 9.0, low)
     assert bank.take_events() == []
     for t in range(20, 31):                       # above from t = 20: active at t = 30
-        at(float(t), 3.0)
+        _drift_at(bank, float(t), high)
     events = bank.take_events()
     assert [(e.active, e.t, e.onset) for e in events] == [(True, 30.0, 20.0)]
     for t in range(31, 37):                       # below from 31: cleared once 5 s have passed, at 36
-        at(float(t), 1.0)
+        _drift_at(bank, float(t), low)
     assert [(e.active, e.t) for e in bank.take_events()] == [(False, 36.0)]
+
+
+def test_noise_level_follows_differences_not_a_shifted_mean() -> None:
+    # Doubled noise raises it; a mean shift of 5 sigma (what an adapting estimator's innovations look
+    # like after a step) barely moves it.
+    rng = np.random.default_rng(8)
+    shifted = _bank(DetectorSettings(noise_ratio=1.5, offset_h=math.inf))
+    _feed(shifted, list(5.0 + rng.normal(size=400)))
+    assert shifted.statistics(0)["noise_level"] < 1.3
+    noisy = _bank(DetectorSettings(noise_ratio=1.5))
+    _feed(noisy, list(2.0 * rng.normal(size=400)))
+    assert noisy.statistics(0)["noise_level"] == pytest.approx(2.0, rel=0.15)
+    assert ("noise_level", True) in [(e.kind, e.active) for e in noisy.take_events()]
 
 
 def test_without_a_baseline_nothing_is_judged() -> None:
