@@ -127,6 +127,13 @@ class ChannelBank:
             events += [ChannelEvent(group.lanes[c.index].channel, condition=c) for c in conditions]
         return events
 
+    def baseline_version(self, channel: str) -> int | None:
+        """Version of the baseline in force (None while commissioning)."""
+        lane = self._lanes[channel]
+        watch = lane.group.watch
+        current = watch.histories[lane.index].current
+        return current.version if current is not None and watch.detectors.has_baseline[lane.index] else None
+
     def baselines(self, channel: str) -> list[Baseline]:
         """Every baseline of a channel, oldest first (the last is in force unless the channel was reset)."""
         lane = self._lanes[channel]

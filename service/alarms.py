@@ -103,6 +103,13 @@ class JournalEntry:
     comment: str | None = None
     shelved_until: float | None = None
 
+    def to_dict(self) -> dict[str, object]:
+        """JSON-ready (non-finite numbers as None)."""
+        return {"seq": self.seq, "time": self.time, "alarm": self.alarm, "channel": self.channel, "kind": self.kind,
+                "action": self.action, "before": self.before, "after": self.after,
+                "evidence": _evidence_dict(self.evidence), "user": self.user, "comment": self.comment,
+                "shelved_until": self.shelved_until}
+
 
 @dataclass
 class Alarm:
@@ -122,6 +129,21 @@ class Alarm:
     def id(self) -> str:
         return f"{self.channel}:{self.kind}"
 
+    def to_dict(self) -> dict[str, object]:
+        """JSON-ready (non-finite numbers as None)."""
+        return {"id": self.id, "channel": self.channel, "kind": self.kind, "priority": self.priority,
+                "state": str(self.state), "active": self.active, "suppressed": self.suppressed,
+                "shelved_until": self.shelved_until, "since": self.since, "evidence": _evidence_dict(self.evidence)}
+
+
+def _finite(value: float | None) -> float | None:
+    return value if value is not None and math.isfinite(value) else None
+
+
+def _evidence_dict(evidence: Evidence) -> dict[str, object]:
+    return {"statistic": _finite(evidence.statistic), "limit": _finite(evidence.limit),
+            "onset": _finite(evidence.onset), "baseline": evidence.baseline, "t": _finite(evidence.t)}
+
 
 def _returning(alarm: Alarm) -> AlarmState:
     """Where an alarm goes when it leaves shelving, suppression or out-of-service."""
@@ -139,8 +161,10 @@ class AlarmBook:
         One alarm is made per channel and kind listed.
     """
 
-    def __init__(self, priorities: Mapping[str, Mapping[str, str]]) -> None:
+    def __init__(self, priorities: Mapping[str, Mapping[str, str]], journal_limit: int | None = None) -> None:
         self._alarms: dict[str, Alarm] = {}
+        self._journal_limit = journal_limit
+        self._seq = 0
         for channel, kinds in priorities.items():
             for kind, priority in kinds.items():
                 if kind not in ALARM_KINDS:
@@ -165,6 +189,16 @@ class AlarmBook:
     def alarms(self) -> list[Alarm]:
         """Copies of every alarm, in configuration order."""
         return [replace(a) for a in self._alarms.values()]
+
+    def entries(self, after: int = 0, limit: int = 100, channel: str | None = None) -> list[JournalEntry]:
+        """Journal entries with ``seq > after``, oldest first, at most ``limit`` (a copy)."""
+        found = []
+        for entry in list(self.journal):
+            if entry.seq > after and (channel is None or entry.channel == channel):
+                found.append(entry)
+                if len(found) >= limit:
+                    break
+        return found
 
     def listen(self, listener: Callable[[JournalEntry, Alarm], None]) -> None:
         """Call ``listener(entry, alarm)`` after every transition (on the caller's thread)."""
@@ -266,12 +300,16 @@ class AlarmBook:
     # ---------------------------------------------------------------- journal
     def _move(self, alarm: Alarm, after: AlarmState, now: float, action: str, *, user: str | None = None,
               comment: str | None = None, evidence: Evidence | None = None) -> JournalEntry:
-        entry = JournalEntry(len(self.journal) + 1, now, alarm.id, alarm.channel, alarm.kind, action,
+        self._seq += 1
+        entry = JournalEntry(self._seq, now, alarm.id, alarm.channel, alarm.kind, action,
                              str(alarm.state), str(after), alarm.evidence if evidence is None else evidence,
                              user, comment or None, alarm.shelved_until if after == AlarmState.SHELVED else None)
         alarm.state = after
         alarm.since = now
         self.journal.append(entry)
+        if self._journal_limit is not None and len(self.journal) > self._journal_limit + self._journal_limit // 10:
+            # Memory holds the newest entries; the durable store keeps them all.
+            del self.journal[: len(self.journal) - self._journal_limit]
         for listener in self._listeners:
             listener(entry, alarm)
         return entry

@@ -9,6 +9,7 @@ snapshot or hand a payload to the engine queue. Errors are short stable JSON
 
 from __future__ import annotations
 
+import asyncio
 import json
 import logging
 from collections.abc import AsyncIterator
@@ -23,10 +24,12 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from service.alarms import PRIORITIES, Alarm
+from service.api_alarms import add_alarm_routes
 from service.payload import decode_payload
 from service.reports import channel_report, finite_or_null
 from service.runtime import Runtime
-from service.snapshot import ChannelEntry
+from service.snapshot import ChannelEntry, Snapshot
 
 __all__ = ["ADVISORY", "create_app"]
 
@@ -37,14 +40,31 @@ ADVISORY = ("rwls is an advisory monitoring aid, not a safety instrumented funct
 PROMETHEUS_TEXT = "text/plain; version=0.0.4; charset=utf-8"
 
 
-def _summary(cid: str, entry: ChannelEntry) -> dict[str, object]:
+def _alarms_by_channel(snapshot: Snapshot) -> dict[str, list[Alarm]]:
+    by_channel: dict[str, list[Alarm]] = {}
+    for alarm in snapshot.alarms:
+        by_channel.setdefault(alarm.channel, []).append(alarm)
+    return by_channel
+
+
+def _alarm_summary(alarms: list[Alarm]) -> dict[str, object]:
+    """The states worth a glance: alarms not Normal, and the highest priority among the active."""
+    raised = [a for a in alarms if str(a.state) != "Normal"]
+    active = [a for a in alarms if a.active and str(a.state) in ("Unacknowledged", "Acknowledged")]
+    order = {p: k for k, p in enumerate(PRIORITIES)}
+    return {"raised": [{"kind": a.kind, "state": str(a.state), "priority": a.priority} for a in raised],
+            "unacknowledged": sum(str(a.state) in ("Unacknowledged", "Return-to-normal unacknowledged")
+                                  for a in alarms),
+            "highest_active": max((a.priority for a in active), key=order.__getitem__, default=None)}
+
+
+def _summary(cid: str, entry: ChannelEntry, alarms: list[Alarm]) -> dict[str, object]:
     return {"id": cid, "quality": entry.quality, "quality_reason": entry.quality_reason,
             "updated_at": entry.updated_at, "t": entry.view.last_t, "samples": entry.view.applied,
-            "rejected": sum(entry.view.rejected.values()),
-            "alarms": None}   # filled once the alarm subsystem exists
+            "rejected": sum(entry.view.rejected.values()), "alarms": _alarm_summary(alarms)}
 
 
-def _detail(entry: ChannelEntry, cid: str) -> dict[str, object]:
+def _detail(entry: ChannelEntry, cid: str, alarms: list[Alarm]) -> dict[str, object]:
     report = channel_report(entry.view)
     if entry.quality == "Bad":
         # Estimates of a Bad channel are not for use: null them rather than show numbers.
@@ -52,7 +72,7 @@ def _detail(entry: ChannelEntry, cid: str) -> dict[str, object]:
             report[key] = dict.fromkeys(report[key])  # type: ignore[arg-type]
         report["covariance"] = None
     report.update(id=cid, quality=entry.quality, quality_reason=entry.quality_reason,
-                  updated_at=entry.updated_at, t=entry.view.last_t, alarms=None)
+                  updated_at=entry.updated_at, t=entry.view.last_t, alarms=[a.to_dict() for a in alarms])
     return finite_or_null(report)  # type: ignore[return-value]
 
 
@@ -103,11 +123,13 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        runtime.events.bind(asyncio.get_running_loop())
         if manage_runtime:
             runtime.start()
         try:
             yield
         finally:
+            runtime.events.close()               # open event streams end; shutdown does not wait on them
             if manage_runtime:
                 runtime.stop()
 
@@ -143,14 +165,17 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
 
     @app.get("/api/v1/channels", summary="Every channel with its quality and last update")
     def channels() -> list[dict[str, object]]:
-        return [_summary(cid, entry) for cid, entry in runtime.engine.snapshot.channels.items()]
+        snap = runtime.engine.snapshot
+        alarms = _alarms_by_channel(snap)
+        return [_summary(cid, entry, alarms.get(cid, [])) for cid, entry in snap.channels.items()]
 
     @app.get("/api/v1/channels/{channel_id}", summary="One channel's full state", response_model=None)
     def channel(channel_id: str) -> dict[str, object] | JSONResponse:
-        entry = runtime.engine.snapshot.channels.get(channel_id)
+        snap = runtime.engine.snapshot
+        entry = snap.channels.get(channel_id)
         if entry is None:
             return not_found("unknown channel")
-        return _detail(entry, channel_id)
+        return _detail(entry, channel_id, _alarms_by_channel(snap).get(channel_id, []))
 
     @app.get("/api/v1/snapshot", summary="All channels, flat, in one call (for SCADA polling; ETag)",
              response_class=Response)
@@ -205,6 +230,8 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     def ready() -> dict[str, object] | JSONResponse:
         state = runtime.readiness()
         return finite_or_null(state) if state["ready"] else JSONResponse(finite_or_null(state), 503)  # type: ignore
+
+    add_alarm_routes(app, runtime)
 
     @app.get("/metrics", include_in_schema=False)
     def metrics() -> Response:

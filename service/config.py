@@ -35,7 +35,9 @@ from pydantic import (
 
 from estimator.channel import ChannelSettings, WeightRule
 from estimator.regressors import RegressorSpec
+from service.config_alarms import AlarmKindConfig, AlarmsConfig, DetectorConfig, check_alarm_kinds, default_priority
 from service.config_env import apply_environment
+from service.fleet_budget import BudgetThresholds, derive_thresholds
 
 __all__ = [
     "BrokerConfig",
@@ -156,6 +158,19 @@ class ChannelConfig(_Strict):
     covariance_scale: Literal["estimated", "known"] = "estimated"
     noise: NoiseConfig = Field(default_factory=NoiseConfig)
     topic: str | None = Field(default=None, description="MQTT topic of the channel's samples")
+    detectors: DetectorConfig = Field(default_factory=DetectorConfig)
+    alarms: dict[str, AlarmKindConfig] = Field(default_factory=dict, description="attributes per alarm kind")
+
+    @field_validator("alarms")
+    @classmethod
+    def _alarm_kinds(cls, value: dict[str, AlarmKindConfig]) -> dict[str, AlarmKindConfig]:
+        return check_alarm_kinds(value)
+
+    def priorities(self) -> dict[str, str]:
+        """Priority of each alarm kind of this channel (configured, else the kind's default)."""
+        return {kind: (self.alarms[kind].priority if kind in self.alarms and self.alarms[kind].priority
+                       else default_priority(kind)) for kind in ("noise_level", "variance", "offset", "drift",
+                                                                 "stale")}
 
     @field_validator("terms")
     @classmethod
@@ -175,9 +190,11 @@ class ChannelConfig(_Strict):
             raise ValueError(f"must be in (0, 1], got {value}")
         return value
 
-    def settings(self) -> ChannelSettings:
-        """The estimator-side settings of this channel."""
+    def settings(self, budget: BudgetThresholds | None = None) -> ChannelSettings:
+        """The estimator-side settings of this channel (detector thresholds from ``budget`` where not given)."""
         noise = self.noise
+        derived = None if budget is None else {"offset_h": budget.offset_h, "variance_h": budget.variance_h,
+                                               "drift_alpha": budget.drift_alpha}
         return ChannelSettings(
             terms=tuple(self.terms),
             forgetting_factor=self.forgetting_factor,
@@ -192,6 +209,7 @@ class ChannelConfig(_Strict):
             initial_sigma=noise.initial_sigma,
             noise_model_terms=tuple(noise.model_terms),
             noise_model_forgetting_factor=noise.model_forgetting_factor,
+            detectors=self.detectors.settings(self.alarms, derived),
         )
 
 
@@ -323,6 +341,19 @@ class RwlsConfig(_Strict):
     http: HttpConfig = Field(default_factory=HttpConfig)
     store: StoreConfig = Field(default_factory=StoreConfig)
     engine: EngineConfig = Field(default_factory=EngineConfig)
+    alarms: AlarmsConfig = Field(default_factory=AlarmsConfig)
+
+    def budget_thresholds(self) -> BudgetThresholds | None:
+        """The thresholds ``alarms.budget`` implies for this plant (None without a budget)."""
+        budget = self.alarms.budget
+        if budget is None:
+            return None
+        return derive_thresholds(budget.false_alarms, budget.per_seconds, budget.sample_period, len(self.channels))
+
+    def channel_settings(self) -> dict[str, ChannelSettings]:
+        """Every channel's estimator settings, with the fleet budget applied."""
+        budget = self.budget_thresholds()
+        return {cid: channel.settings(budget) for cid, channel in self.channels.items()}
 
     @field_validator("channels")
     @classmethod

@@ -19,6 +19,7 @@ dead-letter callback with that reason; nothing is dropped silently.
 from __future__ import annotations
 
 import bisect
+import concurrent.futures
 import contextlib
 import json
 import logging
@@ -27,15 +28,20 @@ import threading
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import TypeVar
 
 from estimator.channel import ChannelSettings
 from estimator.channel_bank import ChannelBank, ChannelView
 from estimator.sample_columns import SampleColumns
+from service.alarm_feed import AlarmFeed
+from service.alarms import Alarm, AlarmBook, JournalEntry
 from service.payload import DecodedSample, Rejection, decode_payload
 from service.payload_columns import decode_columns
 from service.snapshot import ChannelEntry, FragmentWriter, Snapshot, channel_quality
 
-__all__ = ["DeadLetter", "Engine", "EngineStats", "Message"]
+__all__ = ["Command", "DeadLetter", "Engine", "EngineBusy", "EngineStats", "Message"]
+
+T = TypeVar("T")
 
 log = logging.getLogger(__name__)
 
@@ -119,6 +125,18 @@ class _Origins:
         return origin.message, None if origin.indexes is None else origin.indexes[position - self._starts[k]]
 
 
+class EngineBusy(RuntimeError):
+    """The engine could not take or finish a command in time."""
+
+
+@dataclass
+class Command:
+    """Something to do on the engine thread (the single writer), with a future for its result."""
+
+    action: Callable[[Engine], object]
+    future: concurrent.futures.Future[object]
+
+
 class Engine:
     """Owns the ChannelBank; applies queued messages in micro-batches on its own thread.
 
@@ -130,16 +148,23 @@ class Engine:
     max_wait : seconds a micro-batch waits to fill after its first message
     max_payload_bytes : larger payloads are refused ``too_large``
     dead_letter : called on the engine thread for every refusal; must not block for long
-    stale_after : seconds without data after which a channel's quality is Uncertain
+    stale_after : seconds without data after which a channel's quality is Uncertain (and its stale alarm on)
     snapshot_interval : under load, a new snapshot at most this often (seconds); whenever the
         queue runs empty, at once. Refreshing costs tens of microseconds per touched channel.
+    alarms : the alarm book the engine keeps in step (detector events, design suppression, staleness)
     """
 
     def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
                  max_batch: int = 5000, max_wait: float = 0.005, max_payload_bytes: int = 65536,
                  dead_letter: Callable[[DeadLetter], None] | None = None, stale_after: float = 600.0,
-                 snapshot_interval: float = 0.002, clock: Callable[[], float] = time.time) -> None:
+                 snapshot_interval: float = 0.002, clock: Callable[[], float] = time.time,
+                 alarms: AlarmBook | None = None) -> None:
         self.bank = ChannelBank(channels)
+        self.alarms = alarms
+        self._feed = AlarmFeed(alarms, stale_after) if alarms is not None else None
+        self._alarms_changed = alarms is not None
+        if alarms is not None:
+            alarms.listen(self._on_transition)
         self._inputs = {cid: tuple(s.input_names) for cid, s in channels.items()}
         self._queue: queue.Queue[Message | None] = queue.Queue(maxsize=queue_size)
         self._max_batch = max_batch
@@ -169,6 +194,33 @@ class Engine:
         except queue.Full:
             return False
         return True
+
+    def command(self, action: Callable[[Engine], T], timeout: float = 10.0) -> T:
+        """Run ``action(engine)`` on the engine thread, in order with the samples queued before it.
+
+        Raises
+        ------
+        EngineBusy
+            The queue stayed full, or the engine did not answer within ``timeout``.
+        Exception
+            Whatever ``action`` raised.
+        """
+        future: concurrent.futures.Future[T] = concurrent.futures.Future()
+        try:
+            self._queue.put(Command(action, future), timeout=timeout)  # type: ignore[arg-type]
+        except queue.Full:
+            raise EngineBusy("engine queue full") from None
+        try:
+            return future.result(timeout)
+        except concurrent.futures.TimeoutError:
+            raise EngineBusy(f"engine did not answer within {timeout} s") from None
+
+    def _on_transition(self, entry: JournalEntry, alarm: Alarm) -> None:
+        self._alarms_changed = True
+
+    def touch(self, channel: str) -> None:
+        """Mark a channel for the next snapshot (a command changed it)."""
+        self._pending.add(channel)
 
     @property
     def queue_depth(self) -> int:
@@ -219,26 +271,9 @@ class Engine:
                 self._flush()                         # left over from a batch under load
                 if self._stopping.is_set():
                     return
-                if time.monotonic() - self._last_refresh >= 1.0:
-                    self._last_refresh = time.monotonic()
-                    self._refresh_quality()
+                self._tick()
                 continue
-            batch: list[Message] = []
-            if first is not None:
-                batch.append(first)
-            else:
-                self._queue.task_done()
-            deadline = time.monotonic() + self._max_wait
-            while len(batch) < self._max_batch:
-                remaining = deadline - time.monotonic()
-                try:
-                    item = self._queue.get(timeout=remaining) if remaining > 0 else self._queue.get_nowait()
-                except queue.Empty:
-                    break
-                if item is None:
-                    self._queue.task_done()
-                    continue
-                batch.append(item)
+            batch, command = self._collect(first)
             if batch:
                 try:
                     self._process(batch)
@@ -249,12 +284,59 @@ class Engine:
                 finally:
                     for _ in batch:
                         self._queue.task_done()
+            if command is not None:
+                self._execute(command)
+            self._tick()
             if self._stopping.is_set() and self._queue.empty():
                 self._flush()
                 return
 
+    def _collect(self, first: Message | Command | None) -> tuple[list[Message], Command | None]:
+        """A micro-batch: messages until full, ``max_wait`` passes, or a command (which runs after them)."""
+        batch: list[Message] = []
+        if isinstance(first, Command):
+            return batch, first
+        if first is not None:
+            batch.append(first)
+        else:
+            self._queue.task_done()
+        deadline = time.monotonic() + self._max_wait
+        while len(batch) < self._max_batch:
+            remaining = deadline - time.monotonic()
+            try:
+                item = self._queue.get(timeout=remaining) if remaining > 0 else self._queue.get_nowait()
+            except queue.Empty:
+                break
+            if item is None:
+                self._queue.task_done()
+                continue
+            if isinstance(item, Command):
+                return batch, item
+            batch.append(item)
+        return batch, None
+
+    def _execute(self, command: Command) -> None:
+        try:
+            command.future.set_result(command.action(self))
+        except Exception as exc:      # the caller gets it; the loop goes on
+            command.future.set_exception(exc)
+        finally:
+            self._queue.task_done()
+        self._flush()
+
+    def _tick(self) -> None:
+        """At most once a second: staleness, shelving expiry."""
+        if time.monotonic() - self._last_refresh < 1.0:
+            return
+        self._last_refresh = time.monotonic()
+        now = self._clock()
+        if self.alarms is not None:
+            self.alarms.expire(now)
+        self._refresh_quality()
+        self._flush()
+
     def _flush(self) -> None:
-        if self._pending:
+        if self._pending or self._alarms_changed:
             self._publish(sorted(self._pending))
             self._pending.clear()
 
@@ -318,6 +400,7 @@ class Engine:
             for position, reason in outcome.rejected:
                 message, index = where.locate(position)
                 self._refuse(message, reason, f"refused by channel {cid}", index)
+        self._take_events()
         if self._queue.empty() or time.monotonic() - self._last_publish >= self._snapshot_interval:
             self._flush()
         elapsed = time.perf_counter() - started
@@ -331,16 +414,30 @@ class Engine:
         for cid, view in views.items():
             updated_at = self._updated_at.get(cid)
             quality, reason = channel_quality(view, updated_at, now, self._stale_after)
-            entries[cid] = ChannelEntry(view, quality, reason, updated_at,
-                                        self._fragments.write(view, quality, reason, updated_at))
+            entry = ChannelEntry(view, quality, reason, updated_at,
+                                 self._fragments.write(view, quality, reason, updated_at))
+            entries[cid] = entry
+            if self._feed is not None:
+                self._feed.judge(cid, entry, now)
         return entries
+
+    def _take_events(self) -> None:
+        """Detector events of the last batch (or command) into the alarm book."""
+        events = self.bank.take_events()
+        if events and self._feed is not None:
+            channels = {e.channel for e in events}
+            self._feed.take(events, self._clock(), {c: self.bank.baseline_version(c) for c in channels})
 
     def _publish(self, channels: list[str]) -> None:
         self._last_publish = time.monotonic()
         now = self._clock()
         entries = dict(self._snapshot.channels)
         entries.update(self._entries(self.bank.view(channels), now))
-        self._snapshot = Snapshot(self._snapshot.version + 1, now, entries)
+        alarms = self._snapshot.alarms
+        if self._alarms_changed and self.alarms is not None:
+            self._alarms_changed = False
+            alarms = tuple(self.alarms.alarms())
+        self._snapshot = Snapshot(self._snapshot.version + 1, now, entries, alarms)
 
     def _refresh_quality(self) -> None:
         """Re-judge staleness while idle; publish only when some channel's quality changed."""

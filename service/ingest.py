@@ -232,18 +232,22 @@ class MqttIngest:
         self.received += 1
         self._submit(Message(self._topics.get(message.topic), bytes(message.payload), "mqtt", message.topic))
 
-    # ----------------------------------------------------------- dead letters
-    def publish_dead_letter(self, letter: DeadLetter) -> None:
-        """Publish a refusal to the dead-letter topic (call from the engine thread, never a callback).
+    # ------------------------------------------------------------ publishing
+    def publish(self, topic: str, payload: bytes, *, retain: bool = False) -> None:
+        """Publish at QoS 1 (call from the engine thread, never a callback); paho queues it while offline.
 
         Raises
         ------
         RuntimeError
-            paho refused the publish (outgoing queue full); the engine counts it.
+            paho refused the publish (outgoing queue full); the caller counts it.
         """
         client = self._client
         if client is None:
             raise RuntimeError("ingest not started")
-        info = client.publish(self.settings.dead_letter_topic, letter.to_json(), qos=1)
+        info = client.publish(topic, payload, qos=1, retain=retain)
         if info.rc not in (mqtt.MQTT_ERR_SUCCESS, mqtt.MQTT_ERR_NO_CONN):
-            raise RuntimeError(f"dead-letter publish refused: {mqtt.error_string(info.rc)}")
+            raise RuntimeError(f"publish to {topic} refused: {mqtt.error_string(info.rc)}")
+
+    def publish_dead_letter(self, letter: DeadLetter) -> None:
+        """Publish a refusal to the dead-letter topic (see :meth:`publish`)."""
+        self.publish(self.settings.dead_letter_topic, letter.to_json())

@@ -33,7 +33,7 @@ __all__ = ["ProcessIngest"]
 log = logging.getLogger(__name__)
 
 HANDOVER_SIZE = 64              # lists of messages in flight between the processes, at most
-DEAD_LETTER_QUEUE = 10_000
+OUTGOING_QUEUE = 10_000         # messages to publish (dead letters, alarms) waiting for the child
 
 
 class _Batcher:
@@ -80,7 +80,7 @@ class _Batcher:
         self._thread.join(5.0)
 
 
-def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, dead: Any, stop: Any,
+def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing: Any, stop: Any,
            connected: Any, reconnects: Any, errors: Any, protocol: Any, parent: int) -> None:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s[ingest]: %(message)s")
     batcher = _Batcher(out)
@@ -98,13 +98,13 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, dead: Any
         reconnects.value = ingest.reconnects
         errors.value = ingest.callback_errors
         try:
-            letter = dead.get(timeout=0.1)
+            topic, payload, retain = outgoing.get(timeout=0.1)
         except queue.Empty:
             continue
         try:
-            ingest.publish_dead_letter(letter)
+            ingest.publish(topic, payload, retain=retain)
         except RuntimeError:
-            log.exception("dead letter not published")
+            log.exception("not published: %s", topic)
     ingest.stop()
     batcher.close()
     out.cancel_join_thread()      # the service may have stopped reading: never hang at exit on the pipe
@@ -120,7 +120,7 @@ class ProcessIngest:
         self._submit = submit
         context = mp.get_context("spawn")
         self._out = context.Queue(HANDOVER_SIZE)
-        self._dead = context.Queue(DEAD_LETTER_QUEUE)
+        self._outgoing = context.Queue(OUTGOING_QUEUE)
         self._stop = context.Event()
         self._connected = context.Value("b", 0)
         self._reconnects = context.Value("q", 0)
@@ -128,7 +128,7 @@ class ProcessIngest:
         self._protocol = context.Value("b", 0)
         self._process = context.Process(
             target=_child, name="rwls-ingest", daemon=True,
-            args=(settings, self._topics, self._out, self._dead, self._stop, self._connected,
+            args=(settings, self._topics, self._out, self._outgoing, self._stop, self._connected,
                   self._reconnects, self._errors, self._protocol, os.getpid()))
         self._reader: threading.Thread | None = None
         self._stopping = threading.Event()
@@ -192,14 +192,18 @@ class ProcessIngest:
         self._stopping.set()
         if self._reader is not None:
             self._reader.join(timeout)
-        for handle in (self._out, self._dead):
+        for handle in (self._out, self._outgoing):
             with contextlib.suppress(Exception):
                 handle.close()
 
-    # ----------------------------------------------------------- dead letters
-    def publish_dead_letter(self, letter: DeadLetter) -> None:
-        """Hand a refusal to the child for publishing (RuntimeError when its queue is full)."""
+    # ------------------------------------------------------------ publishing
+    def publish(self, topic: str, payload: bytes, *, retain: bool = False) -> None:
+        """Hand a message to the child for publishing at QoS 1 (RuntimeError when its queue is full)."""
         try:
-            self._dead.put_nowait(letter)
+            self._outgoing.put_nowait((topic, payload, retain))
         except queue.Full:
-            raise RuntimeError("dead-letter queue to the ingest process is full") from None
+            raise RuntimeError("publish queue to the ingest process is full") from None
+
+    def publish_dead_letter(self, letter: DeadLetter) -> None:
+        """Publish a refusal to the dead-letter topic (see :meth:`publish`)."""
+        self.publish(self.settings.dead_letter_topic, letter.to_json())

@@ -23,6 +23,7 @@ from service.config import RwlsConfig
 from service.csvdata import BadRow, CsvSource
 from service.progress import Progress
 from service.reports import channel_report, finite_or_null
+from service.what_if import WhatIf
 
 __all__ = ["RunResult", "fit_file", "replay_file"]
 
@@ -59,9 +60,9 @@ def _note(result: RunResult, line: int, channel: str | None, reason: str, detail
 
 
 def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool | None,
-         on_applied: Callable[[str, list[float], float, float], None] | None = None
-         ) -> tuple[ChannelBank, RunResult]:
-    bank = ChannelBank({cid: ch.settings() for cid, ch in config.channels.items()})
+         on_applied: Callable[[str, list[float], float, float], None] | None = None,
+         what_if: WhatIf | None = None) -> tuple[ChannelBank, RunResult]:
+    bank = ChannelBank(config.channel_settings())
     inputs = {name for cid in bank.channel_ids for name in bank.settings(cid).input_names}
     only = bank.channel_ids[0] if len(bank.channel_ids) == 1 else None
     source = CsvSource(data, inputs, need_channel=only is None)
@@ -83,8 +84,11 @@ def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool |
         outcome = bank.apply_one(Sample(cid, row.y, row.inputs, row.t, row.sigma, row.weight))
         if outcome.status == "rejected":
             _note(result, row.line, cid, outcome.reason)
-        elif outcome.status == "applied" and on_applied is not None and outcome.regressor is not None:
-            on_applied(cid, outcome.regressor, row.y, outcome.weight)
+        elif outcome.status == "applied":
+            if on_applied is not None and outcome.regressor is not None:
+                on_applied(cid, outcome.regressor, row.y, outcome.weight)
+            if what_if is not None:
+                what_if.observe(bank, cid, row.t)
     progress.close()
     return bank, result
 
@@ -97,9 +101,10 @@ def replay_file(data: str | Path, config: RwlsConfig, show_progress: bool | None
     service.csvdata.CsvError
         The file cannot be used at all (bad rows never raise).
     """
-    bank, result = _run(data, config, "replay", show_progress)
+    what_if = WhatIf(config)
+    bank, result = _run(data, config, "replay", show_progress, what_if=what_if)
     for cid, view in bank.view().items():
-        result.channels[cid] = channel_report(view)
+        result.channels[cid] = {**channel_report(view), "alarms": what_if.transitions(cid)}
     return result
 
 

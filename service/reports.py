@@ -52,4 +52,20 @@ def channel_report(view: ChannelView) -> dict[str, object]:
         "effective_count": float(view.effective_count),
         "min_information": float(view.min_information),
         "information_condition": float(view.information_condition),
+        "commissioned": view.commissioned,
+        "baseline": _baseline(view),
+        "detectors": {kind: {"statistic": r.statistic, "limit": r.limit, "active": r.active}
+                      for kind, r in view.detectors.items()},
     }
+
+
+def _baseline(view: ChannelView) -> dict[str, object] | None:
+    b = view.baseline
+    if b is None:
+        return None
+    names = list(view.terms)
+    return {"version": b.version, "source": b.source,
+            "parameters": dict(zip(names, b.parameters.tolist(), strict=True)),
+            "std_errors": dict(zip(names, np.sqrt(np.clip(b.covariance.diagonal(), 0.0, None)).tolist(),
+                                   strict=True)),
+            "noise_sigma": b.noise_sigma, "t": b.t, "samples": b.samples, "note": b.note or None}

@@ -14,10 +14,10 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 from estimator.channel_bank import ChannelView
+from estimator.statistics import CONDITION_LIMIT
+from service.alarms import Alarm
 
 __all__ = ["CONDITION_LIMIT", "ChannelEntry", "FragmentWriter", "Snapshot", "channel_quality"]
-
-CONDITION_LIMIT = 1e12          # information condition above which estimates are only Uncertain
 
 
 @dataclass(frozen=True)
@@ -38,6 +38,7 @@ class Snapshot:
     version: int
     created_at: float
     channels: Mapping[str, ChannelEntry]
+    alarms: tuple[Alarm, ...] = ()        # copies of every alarm, when the engine keeps an alarm book
 
 
 def channel_quality(view: ChannelView, updated_at: float | None, now: float,

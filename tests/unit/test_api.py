@@ -37,6 +37,7 @@ CHANNELS: dict[str, dict[str, object]] = {
 }
 INPUTS = {"flow": ("u",), "flow.b": ("u",), "temp": ("v",), "o2": ("u",)}
 REPORT_FIELDS = {"terms", "parameters", "std_errors", "intervals_95", "covariance", "residual_sd", "noise_sigma",
+                 "commissioned", "baseline", "detectors", "alarms",
                  "samples", "rejected", "rejections", "warmup", "forgetting_factor", "weighting",
                  "covariance_scale", "effective_count", "min_information", "information_condition"}
 IDENTITY_FIELDS = {"id", "quality", "quality_reason", "updated_at", "t"}
@@ -205,8 +206,9 @@ def test_channel_detail_has_the_replay_report_fields_plus_identity(served: tuple
     replay_fields = set(replay_file(csv_path, runtime.config, show_progress=False).channels["temp"])
     assert replay_fields == REPORT_FIELDS
     detail = _strict_json(client.get("/api/v1/channels/temp").text)
-    # "alarms" is null until the alarm subsystem exists.
-    assert set(detail) == REPORT_FIELDS | IDENTITY_FIELDS | {"alarms"}
+    # replay lists the alarm transitions its detectors produced, the API the alarms' states now.
+    assert set(detail) == REPORT_FIELDS | IDENTITY_FIELDS
+    assert {a["kind"] for a in detail["alarms"]} == {"noise_level", "variance", "offset", "drift", "stale"}
     assert (detail["id"], detail["quality"], detail["quality_reason"]) == ("temp", "Good", "")
     assert detail["terms"] == ["1", "v"]
     assert set(detail["parameters"]) == set(detail["std_errors"]) == set(detail["intervals_95"]) == {"1", "v"}
@@ -249,7 +251,11 @@ def test_api_report_equals_replay_of_the_same_samples_bit_for_bit(make_runtime: 
         assert detail["quality"] == "Good", cid
         # Same samples, same order per channel, same arithmetic: exact equality, no tolerance.
         assert detail["parameters"] == replayed[cid]["parameters"], cid
-        assert {key: detail[key] for key in REPORT_FIELDS} == replayed[cid], cid
+        # "alarms": states now in the API, transitions in replay; both empty of raised alarms here.
+        same = REPORT_FIELDS - {"alarms"}
+        assert {key: detail[key] for key in same} == {key: replayed[cid][key] for key in same}, cid
+        assert replayed[cid]["alarms"] == [] and {a["state"] for a in detail["alarms"]} <= {
+            "Normal", "Suppressed by design"}, cid
 
 
 def test_no_response_carries_nan_or_infinity(served: tuple[Runtime, TestClient]) -> None:
@@ -617,9 +623,12 @@ def test_unknown_route_and_method_give_short_json(served: tuple[Runtime, TestCli
 def test_openapi_lists_the_endpoints_and_docs_serve_html(served: tuple[Runtime, TestClient]) -> None:
     _, client = served
     spec = _strict_json(client.get("/openapi.json").text)
-    assert spec["paths"].keys() == {"/api/v1/channels", "/api/v1/channels/{channel_id}",
-                                    "/api/v1/channels/{channel_id}/samples", "/api/v1/snapshot",
-                                    "/api/v1/health", "/api/v1/ready"}
+    assert spec["paths"].keys() == {
+        "/api/v1/channels", "/api/v1/channels/{channel_id}", "/api/v1/channels/{channel_id}/samples",
+        "/api/v1/snapshot", "/api/v1/health", "/api/v1/ready", "/api/v1/alarms", "/api/v1/alarms/journal",
+        *(f"/api/v1/alarms/{{alarm_id}}/{action}" for action in ("ack", "shelve", "unshelve", "remove", "restore")),
+        "/api/v1/channels/{channel_id}/baseline", "/api/v1/channels/{channel_id}/baselines",
+        "/api/v1/channels/{channel_id}/reset", "/api/v1/events"}
     assert set(spec["paths"]["/api/v1/channels/{channel_id}/samples"]) == {"post"}
     docs = client.get("/docs")
     assert docs.status_code == 200
