@@ -184,7 +184,9 @@ class Engine:
         self._heartbeat = time.monotonic()
         self._last_refresh = time.monotonic()
         now = clock()
-        self._snapshot = Snapshot(0, now, self._entries(self.bank.view(), now))
+        entries = self._entries(self.bank.view(), now)
+        self._snapshot = Snapshot(0, now, entries, tuple(alarms.alarms()) if alarms is not None else ())
+        self._alarms_changed = False
 
     # ------------------------------------------------------------- producers
     def submit(self, message: Message, timeout: float | None = None) -> bool:

@@ -72,8 +72,19 @@ class Runtime:
     def __init__(self, config: RwlsConfig, *, mqtt: bool = True) -> None:
         self.config = config
         self.topics = config.require_topics() if mqtt else {}     # topic -> channel
+        self.ingest: MqttIngest | ProcessIngest | None = None
         self.alarms = AlarmBook({cid: ch.priorities() for cid, ch in config.channels.items()},
                                 journal_limit=config.alarms.journal_limit)
+        # Where alarm transitions go (each listener runs on the engine thread and never blocks); listening
+        # before the engine exists, so its very first transitions (design suppression) go out too.
+        self.events = EventHub()
+        self.webhooks = WebhookSender([(h.url, h.timeout, h.retries) for h in config.alarms.webhooks])
+        self.alarm_topics = MqttAlarms(config.alarms.topic, self._publish) if mqtt else None
+        if self.alarm_topics is not None:
+            self.alarms.listen(self.alarm_topics)
+        if config.alarms.webhooks:
+            self.alarms.listen(self.webhooks)
+        self.alarms.listen(self.events)
         self.engine = Engine(
             config.channel_settings(),
             queue_size=config.engine.queue_size, max_batch=config.engine.max_batch,
@@ -81,20 +92,7 @@ class Runtime:
             snapshot_interval=config.engine.snapshot_interval_ms / 1000.0, dead_letter=self._dead_letter,
             stale_after=config.alarms.stale_after, alarms=self.alarms)
         ingest_kind = ProcessIngest if config.broker.ingest == "process" else MqttIngest
-        self.ingest: MqttIngest | ProcessIngest | None = (
-            ingest_kind(broker_settings(config), self.topics, self._from_mqtt) if mqtt else None)
-        # Where alarm transitions go (each listener runs on the engine thread and never blocks).
-        self.events = EventHub()
-        self.webhooks = WebhookSender([(h.url, h.timeout, h.retries) for h in config.alarms.webhooks])
-        self.alarm_topics: MqttAlarms | None = None
-        if self.ingest is not None:
-            ingest = self.ingest
-            self.alarm_topics = MqttAlarms(config.alarms.topic,
-                                           lambda topic, body, retain: ingest.publish(topic, body, retain=retain))
-            self.alarms.listen(self.alarm_topics)
-        if config.alarms.webhooks:
-            self.alarms.listen(self.webhooks)
-        self.alarms.listen(self.events)
+        self.ingest = ingest_kind(broker_settings(config), self.topics, self._from_mqtt) if mqtt else None
         self.started_at = time.time()
         self._lock: IO[str] | None = None
         # HTTP requests refused before they reach the queue (404, 413): counted here,
@@ -172,6 +170,12 @@ class Runtime:
             total = Counter(self._http_refusals)
         total.update(self.engine.stats.rejected)
         return dict(total)
+
+    def _publish(self, topic: str, payload: bytes, retain: bool) -> None:
+        # Before the ingest exists (the engine's first snapshot) nothing goes out: start() publishes
+        # every alarm's retained state once the client runs.
+        if self.ingest is not None:
+            self.ingest.publish(topic, payload, retain=retain)
 
     def _dead_letter(self, letter: DeadLetter) -> None:
         log.info("sample refused reason=%s channel=%s source=%s", letter.reason, letter.channel, letter.source)
