@@ -97,7 +97,8 @@ def _serve(args: argparse.Namespace) -> int:
         return 2
     # One process, one worker: the engine is the single writer (see service/runtime.py).
     app = create_app(runtime, manage_runtime=False)
-    server = uvicorn.Server(uvicorn.Config(app, log_level=args.log_level, lifespan="on"))
+    # Open event streams never end by themselves: shutdown waits at most 3 s for them.
+    server = uvicorn.Server(uvicorn.Config(app, log_level=args.log_level, lifespan="on", timeout_graceful_shutdown=3))
     print(f"rwls: serving http://{host}:{sock.getsockname()[1]}/ ; {ADVISORY}", flush=True)
     exit_on_signal()
     try:

@@ -82,7 +82,7 @@ def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, 
     sock = _bind(host, port)
     actual_port = sock.getsockname()[1]
     server = uvicorn.Server(uvicorn.Config(create_app(runtime, manage_runtime=False), log_level="warning",
-                                           lifespan="on"))
+                                           lifespan="on", timeout_graceful_shutdown=3))
     stop = threading.Event()
 
     def publish() -> None:

@@ -148,9 +148,10 @@ def test_event_stream_sends_the_alarms_then_each_transition_and_ends_when_the_se
         while not any(e.get("type") == "alarm" and e["alarm"]["kind"] == "offset" for e in events) \
                 and time.monotonic() < deadline:
             time.sleep(0.02)
-    started = time.monotonic()
-    reader.join(10.0)                                 # the service stopped: the stream ends by itself
-    assert not reader.is_alive() and time.monotonic() - started < 5.0
+        started = time.monotonic()
+        runtime.events.close()                        # what shutdown does first: the stream ends by itself
+        reader.join(10.0)
+        assert not reader.is_alive() and time.monotonic() - started < 5.0
     assert events[0]["type"] == "alarms" and len(events[0]["alarms"]) == 5
     offsets = [e for e in events if e.get("type") == "alarm" and e["alarm"]["kind"] == "offset"]
     assert offsets and offsets[-1]["entry"]["after"] == "Unacknowledged"
