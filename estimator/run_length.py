@@ -100,17 +100,26 @@ def threshold_for_arl(target: float, arl: Callable[[float], float], low: float =
                       high: float = 100.0) -> float:
     """Smallest decision interval h (to 0.1 %) whose in-control ``arl(h)`` reaches ``target``.
 
-    ``arl`` must increase with h (every CUSUM does). Raises ``ValueError``
-    when even ``high`` falls short.
+    ``arl`` must increase with h (every CUSUM does). The search doubles h from
+    ``low`` until the target is reached, then bisects, so ``arl`` is never asked
+    for a run length far beyond the target (where the Markov chain's linear
+    system is too ill-conditioned to trust). Raises ``ValueError`` when even
+    ``high`` falls short.
     """
     if not target > 1.0:
         raise ValueError(f"target must be > 1 sample, got {target}")
-    if arl(high) < target:
-        raise ValueError(f"no h <= {high} reaches an ARL of {target:.3g}")
-    while high - low > 1e-3 * high:
-        mid = 0.5 * (low + high)
+    top = low
+    while arl(top) < target:
+        low, top = top, top * 2.0
+        if top > high:
+            if arl(high) < target:
+                raise ValueError(f"no h <= {high} reaches an ARL of {target:.3g}")
+            top = high
+            break
+    while top - low > 1e-3 * top:
+        mid = 0.5 * (low + top)
         if arl(mid) >= target:
-            high = mid
+            top = mid
         else:
             low = mid
-    return high
+    return top

@@ -146,6 +146,9 @@ def main(argv: Sequence[str] | None = None) -> int:
             if args.serve:
                 config.require_topics()
             print(f"{args.config}: ok, {len(config.channels)} channel(s): {', '.join(config.channels)}")
+            budget = config.budget_thresholds()
+            if budget is not None:
+                print(f"false-alarm budget: {budget.explain()}")
             return 0
         if args.command == "serve":
             return _serve(args)

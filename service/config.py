@@ -343,6 +343,15 @@ class RwlsConfig(_Strict):
     engine: EngineConfig = Field(default_factory=EngineConfig)
     alarms: AlarmsConfig = Field(default_factory=AlarmsConfig)
 
+    @model_validator(mode="after")
+    def _budget(self) -> RwlsConfig:
+        if self.alarms.budget is not None:
+            try:
+                self.budget_thresholds()
+            except ValueError as exc:
+                raise ValueError(f"alarms.budget: {exc}") from None
+        return self
+
     def budget_thresholds(self) -> BudgetThresholds | None:
         """The thresholds ``alarms.budget`` implies for this plant (None without a budget)."""
         budget = self.alarms.budget

@@ -86,7 +86,7 @@ def derive_thresholds(false_alarms: float, per_seconds: float, sample_period: fl
     if arl0 <= 2.0:
         raise ValueError(f"a budget of {false_alarms:g} per {per_seconds:g} s over {channels} channels leaves an "
                          f"in-control ARL of {arl0:.3g} samples: loose enough that every sample may alarm")
-    offset_h = threshold_for_arl(arl0, lambda h: offset_arl(h, offset_k, states=200), high=60.0)
+    offset_h = threshold_for_arl(arl0, lambda h: offset_arl(h, offset_k, states=200))
     a, b = VARIANCE_FIT
     variance_h = max(2.0 * (9.0 - variance_reference(2.0)) + 1.0, (math.log(arl0) - a) / b)
     alpha = min(0.1, rate * sample_period * drift_every)
