@@ -37,7 +37,7 @@ noise = { half_life = 300, robust = true, initial_sigma = 0.2 }
 [channels."sub7.flow"]
 topic = "larkspur/sub7/flow"
 terms = ["1", "pump_speed", "pump_speed^2"]
-forgetting_factor = 0.998
+forgetting_factor = 0.995
 weighting = "unit"
 
 [channels."sub7.return_dp"]
@@ -46,6 +46,7 @@ terms = ["1", "ref_dp"]
 forgetting_factor = 0.995
 weighting = "unit"
 weight_rules = [{ input = "ref_dp", low = 44.0, high = 52.0, factor = 2.0 }]
+noise = { robust = true }
 
 [channels."sub7.stack_o2"]
 topic = "larkspur/sub7/stack_o2"

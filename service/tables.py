@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 from collections import Counter
+from datetime import UTC, datetime
 
 from service.replay import RunResult
 
@@ -14,6 +15,29 @@ def _num(value: object, digits: int = 6) -> str:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "-"
     return f"{value:.{digits}g}"
+
+
+def _when(item: dict[str, object]) -> str:
+    if "t" in item and isinstance(item["t"], float):
+        return datetime.fromtimestamp(item["t"], tz=UTC).strftime("%Y-%m-%d %H:%M")
+    return f"sample {item.get('sample')}"
+
+
+def _alarm_lines(ch: dict[str, object]) -> list[str]:
+    """The baseline and the alarm transitions the detectors would have produced (replay only)."""
+    lines = []
+    baseline = ch.get("baseline")
+    if isinstance(baseline, dict):
+        lines.append(f"  baseline v{baseline['version']} ({baseline['source']}, {baseline['samples']} samples), "
+                     f"noise sigma {_num(baseline['noise_sigma'])}")
+    alarms = ch.get("alarms")
+    if isinstance(alarms, list):
+        if not alarms:
+            lines.append("  alarms: none")
+        for item in alarms:
+            lines.append(f"  alarm {item['kind']:<11} {item['state']:<31} {_when(item)}   "
+                         f"statistic {_num(item['statistic'], 4)} limit {_num(item['limit'], 4)}")
+    return lines
 
 
 def render_text(result: RunResult, command: str) -> str:
@@ -38,6 +62,7 @@ def render_text(result: RunResult, command: str) -> str:
         if ch["rejections"]:
             reasons = ", ".join(f"{r} {n}" for r, n in ch["rejections"].items())  # type: ignore[union-attr]
             out.append(f"  rejected by reason: {reasons}")
+        out += _alarm_lines(ch)
         out.append("")
     if result.bad_rows or result.listed_problems:
         reasons = Counter(str(p["reason"]) for p in result.listed_problems)

@@ -155,3 +155,16 @@ def test_progress_bar_draws_only_when_enabled() -> None:
         bar.close()
     assert "50.0%" in shown.getvalue() and "1,000 rows" in shown.getvalue()
     assert hidden.getvalue() == ""     # StringIO is not a terminal
+
+
+def test_demo_channels_are_those_of_the_bundled_example() -> None:
+    # One plant: `rwls demo` (built in) and `examples/larkspur_sub7.toml` (replay) must not drift apart.
+    import tomllib
+
+    from service.config import load_config, parse_config
+    from service.demo import DEMO_CHANNELS_TOML
+
+    example = load_config(Path(__file__).resolve().parents[2] / "examples" / "larkspur_sub7.toml")
+    built_in = parse_config(tomllib.loads(DEMO_CHANNELS_TOML))
+    assert built_in.channel_settings() == example.channel_settings()
+    assert {c: ch.topic for c, ch in built_in.channels.items()} == {c: ch.topic for c, ch in example.channels.items()}
