@@ -34,8 +34,16 @@ from pydantic import (
 )
 
 from estimator.channel import ChannelSettings, WeightRule
+from estimator.channel_bank import ChannelBank
 from estimator.regressors import RegressorSpec
-from service.config_alarms import AlarmKindConfig, AlarmsConfig, DetectorConfig, check_alarm_kinds, default_priority
+from service.config_alarms import (
+    AlarmKindConfig,
+    AlarmsConfig,
+    BaselineConfig,
+    DetectorConfig,
+    check_alarm_kinds,
+    default_priority,
+)
 from service.config_env import apply_environment
 from service.fleet_budget import BudgetThresholds, derive_thresholds
 
@@ -160,6 +168,16 @@ class ChannelConfig(_Strict):
     topic: str | None = Field(default=None, description="MQTT topic of the channel's samples")
     detectors: DetectorConfig = Field(default_factory=DetectorConfig)
     alarms: dict[str, AlarmKindConfig] = Field(default_factory=dict, description="attributes per alarm kind")
+    baseline: BaselineConfig | None = Field(default=None, description="a baseline in force from the start")
+
+    @model_validator(mode="after")
+    def _baseline_terms(self) -> ChannelConfig:
+        if self.baseline is not None:
+            try:
+                self.baseline.values(RegressorSpec(self.terms).names)
+            except ValueError as exc:
+                raise ValueError(f"baseline: {exc}") from None
+        return self
 
     @field_validator("alarms")
     @classmethod
@@ -358,6 +376,14 @@ class RwlsConfig(_Strict):
         if budget is None:
             return None
         return derive_thresholds(budget.false_alarms, budget.per_seconds, budget.sample_period, len(self.channels))
+
+    def apply_baselines(self, bank: ChannelBank) -> None:
+        """Put every configured ``[channels.<id>.baseline]`` in force (at start, live and offline alike)."""
+        for cid, channel in self.channels.items():
+            if channel.baseline is not None:
+                values, covariance = channel.baseline.values(RegressorSpec(channel.terms).names)
+                bank.set_baseline(cid, values, noise_sigma=channel.baseline.noise_sigma, covariance=covariance,
+                                  source=channel.baseline.source, note="from the configuration")
 
     def channel_settings(self) -> dict[str, ChannelSettings]:
         """Every channel's estimator settings, with the fleet budget applied."""

@@ -29,7 +29,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 from estimator.detectors import KINDS, ConditionTiming, DetectorSettings
 from service.alarms import ALARM_KINDS
 
-__all__ = ["AlarmKindConfig", "AlarmsConfig", "BudgetConfig", "DetectorConfig", "WebhookConfig",
+__all__ = ["AlarmKindConfig", "AlarmsConfig", "BaselineConfig", "BudgetConfig", "DetectorConfig", "WebhookConfig",
            "default_priority"]
 
 _DEFAULT_PRIORITY = {"noise_level": "medium", "variance": "low", "offset": "high", "drift": "medium",
@@ -98,6 +98,35 @@ class DetectorConfig(_Strict):
             drift_alpha=self.drift.alpha if self.drift.alpha is not None else budget.get("drift_alpha",
                                                                                        defaults.drift_alpha),
             drift_every=self.drift.every, timing=timing)
+
+
+class BaselineConfig(_Strict):
+    """``[channels.<id>.baseline]``: a baseline in force from the start (``rwls fit`` output, a calibration)."""
+
+    parameters: dict[str, float]
+    noise_sigma: float = Field(gt=0.0, allow_inf_nan=False, description="engineering units")
+    std_errors: dict[str, float] | None = Field(default=None, description="of the parameters; none: exact")
+    source: Literal["fit", "engineer"] = "fit"
+
+    @field_validator("parameters", "std_errors")
+    @classmethod
+    def _finite(cls, value: dict[str, float] | None) -> dict[str, float] | None:
+        if value is not None and not all(math.isfinite(v) for v in value.values()):
+            raise ValueError("values must be finite")
+        return value
+
+    def values(self, terms: list[str]) -> tuple[list[float], list[list[float]]]:
+        """Parameters and a diagonal covariance in term order; ValueError when a term is missing or extra."""
+        names = set(terms)
+        for given in (self.parameters, self.std_errors or {}):
+            if given and set(given) != names:
+                raise ValueError(f"needs exactly the terms {', '.join(terms)}, got {', '.join(given)}")
+        errors = self.std_errors or dict.fromkeys(terms, 0.0)
+        if any(v < 0.0 for v in errors.values()):
+            raise ValueError("std_errors must be >= 0")
+        n = len(terms)
+        covariance = [[errors[terms[i]] ** 2 if i == j else 0.0 for j in range(n)] for i in range(n)]
+        return [self.parameters[t] for t in terms], covariance
 
 
 class AlarmKindConfig(_Strict):

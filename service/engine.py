@@ -152,14 +152,17 @@ class Engine:
     snapshot_interval : under load, a new snapshot at most this often (seconds); whenever the
         queue runs empty, at once. Refreshing costs tens of microseconds per touched channel.
     alarms : the alarm book the engine keeps in step (detector events, design suppression, staleness)
+    prepare : called with the new bank before anything else (configured baselines)
     """
 
     def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
                  max_batch: int = 5000, max_wait: float = 0.005, max_payload_bytes: int = 65536,
                  dead_letter: Callable[[DeadLetter], None] | None = None, stale_after: float = 600.0,
                  snapshot_interval: float = 0.002, clock: Callable[[], float] = time.time,
-                 alarms: AlarmBook | None = None) -> None:
+                 alarms: AlarmBook | None = None, prepare: Callable[[ChannelBank], None] | None = None) -> None:
         self.bank = ChannelBank(channels)
+        if prepare is not None:
+            prepare(self.bank)                 # e.g. baselines from the configuration, before the first snapshot
         self.alarms = alarms
         self._feed = AlarmFeed(alarms, stale_after) if alarms is not None else None
         self._alarms_changed = alarms is not None

@@ -34,6 +34,7 @@ log = logging.getLogger(__name__)
 
 HANDOVER_SIZE = 64              # lists of messages in flight between the processes, at most
 OUTGOING_QUEUE = 10_000         # messages to publish (dead letters, alarms) waiting for the child
+DRAIN_SECONDS = 2.0             # at stop, the child publishes what is still waiting for this long at most
 
 
 class _Batcher:
@@ -105,6 +106,15 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing:
             ingest.publish(topic, payload, retain=retain)
         except RuntimeError:
             log.exception("not published: %s", topic)
+    # What the service handed over before it stopped us still goes out (bounded: a full pipe cannot hold us).
+    deadline = time.monotonic() + DRAIN_SECONDS
+    while time.monotonic() < deadline:
+        try:
+            topic, payload, retain = outgoing.get(timeout=0.05)
+        except queue.Empty:
+            break
+        with contextlib.suppress(RuntimeError):
+            ingest.publish(topic, payload, retain=retain)
     ingest.stop()
     batcher.close()
     out.cancel_join_thread()      # the service may have stopped reading: never hang at exit on the pipe
@@ -120,7 +130,8 @@ class ProcessIngest:
         self._submit = submit
         context = mp.get_context("spawn")
         self._out = context.Queue(HANDOVER_SIZE)
-        self._outgoing = context.Queue(OUTGOING_QUEUE)
+        # Room for every alarm's retained state at start (five per channel) and then some.
+        self._outgoing = context.Queue(max(OUTGOING_QUEUE, 8 * len(self._topics)))
         self._stop = context.Event()
         self._connected = context.Value("b", 0)
         self._reconnects = context.Value("q", 0)
@@ -192,6 +203,8 @@ class ProcessIngest:
         self._stopping.set()
         if self._reader is not None:
             self._reader.join(timeout)
+        # The child is gone: whatever it did not take must not hold this process at exit.
+        self._outgoing.cancel_join_thread()
         for handle in (self._out, self._outgoing):
             with contextlib.suppress(Exception):
                 handle.close()

@@ -63,6 +63,7 @@ def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool |
          on_applied: Callable[[str, list[float], float, float], None] | None = None,
          what_if: WhatIf | None = None) -> tuple[ChannelBank, RunResult]:
     bank = ChannelBank(config.channel_settings())
+    config.apply_baselines(bank)
     inputs = {name for cid in bank.channel_ids for name in bank.settings(cid).input_names}
     only = bank.channel_ids[0] if len(bank.channel_ids) == 1 else None
     source = CsvSource(data, inputs, need_channel=only is None)

@@ -90,7 +90,7 @@ class Runtime:
             queue_size=config.engine.queue_size, max_batch=config.engine.max_batch,
             max_wait=config.engine.max_wait_ms / 1000.0, max_payload_bytes=config.broker.max_payload_bytes,
             snapshot_interval=config.engine.snapshot_interval_ms / 1000.0, dead_letter=self._dead_letter,
-            stale_after=config.alarms.stale_after, alarms=self.alarms)
+            stale_after=config.alarms.stale_after, alarms=self.alarms, prepare=config.apply_baselines)
         ingest_kind = ProcessIngest if config.broker.ingest == "process" else MqttIngest
         self.ingest = ingest_kind(broker_settings(config), self.topics, self._from_mqtt) if mqtt else None
         self.started_at = time.time()

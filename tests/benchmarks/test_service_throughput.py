@@ -488,7 +488,9 @@ def raw(broker: Broker) -> RawFigures:
 
 # -------------------------------------------------------------------- service
 def _config(store: Path, channels: int, *, port: int | None = None, prefix: str = "") -> RwlsConfig:
-    table: dict[str, Any] = {f"c{k}": {"terms": ["1", "u"]} for k in range(channels)}
+    # A baseline in force from the start (the publisher's y = 2 + 0.5 u): the detectors judge every sample.
+    baseline = {"parameters": {"1": 2.0, "u": 0.5}, "noise_sigma": 0.06}
+    table: dict[str, Any] = {f"c{k}": {"terms": ["1", "u"], "baseline": baseline} for k in range(channels)}
     data: dict[str, Any] = {"channels": table, "store": {"path": str(store)}}
     if port is not None:
         for k in range(channels):
@@ -501,7 +503,8 @@ def _config(store: Path, channels: int, *, port: int | None = None, prefix: str 
 def _engine_line(config: RwlsConfig) -> str:
     engine = config.engine
     return (f"   service: engine queue_size {engine.queue_size:,}, max_batch {engine.max_batch:,}, max_wait_ms "
-            f"{engine.max_wait_ms}; {len(config.channels):,} channels, terms ['1', 'u']; QoS {config.broker.qos}, "
+            f"{engine.max_wait_ms}; {len(config.channels):,} channels, terms ['1', 'u'], baselines from the start; "
+            f"QoS {config.broker.qos}, "
             f"MQTT protocol {config.broker.protocol} (auto picks 5 on Mosquitto 2)")
 
 

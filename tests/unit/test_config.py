@@ -352,3 +352,22 @@ def test_require_topics_reports_missing_and_duplicate_topics_together() -> None:
 def test_channel_topic_must_be_a_concrete_topic(topic: str) -> None:
     problem = _one_problem({"channels": {"flow": {**CHANNEL, "topic": topic}}})
     assert problem.startswith("channels.flow.topic: ")
+
+
+def test_a_configured_baseline_is_in_force_from_the_start_and_checked_against_the_terms() -> None:
+    from estimator.channel_bank import ChannelBank
+
+    table = {"terms": ["1", "u"], "baseline": {"parameters": {"1": 2.0, "u": 0.5}, "noise_sigma": 0.1,
+                                                "std_errors": {"1": 0.01, "u": 0.002}}}
+    config = parse_config({"channels": {"a": table}})
+    bank = ChannelBank(config.channel_settings())
+    config.apply_baselines(bank)
+    baseline = bank.view()["a"].baseline
+    assert baseline is not None and (baseline.version, baseline.source) == (1, "fit")
+    assert baseline.parameters.tolist() == [2.0, 0.5]
+    assert baseline.covariance.diagonal().tolist() == pytest.approx([1e-4, 4e-6])
+    with pytest.raises(ConfigError, match=r"channels\.a.*baseline: needs exactly the terms 1, u"):
+        parse_config({"channels": {"a": {**table, "baseline": {"parameters": {"1": 2.0}, "noise_sigma": 0.1}}}})
+    with pytest.raises(ConfigError, match=r"noise_sigma"):
+        parse_config({"channels": {"a": {**table, "baseline": {"parameters": {"1": 2.0, "u": 1.0},
+                                                                "noise_sigma": -1.0}}}})
