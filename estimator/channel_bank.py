@@ -22,6 +22,7 @@ from __future__ import annotations
 from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -71,8 +72,7 @@ class ChannelView:
     commissioned: int = 0                 # samples applied since the start or the last reset
 
 
-@dataclass(frozen=True)
-class DetectorReading:
+class DetectorReading(NamedTuple):
     """One detector of one channel: latest statistic, its limit, and whether its alarm condition is active."""
 
     statistic: float
@@ -276,11 +276,10 @@ class ChannelBank:
                           stats.min_information.tolist(), stats.information_condition.tolist(),
                           stats.identifiable.tolist(), noise, strict=True)
             watch = group.watch
+            readings = watch.detectors.readings(idx)         # per channel: statistics, limits, active
             for k, (lane, (rsd, dof, n_eff, min_info, condition, ident, sigma)) in enumerate(
                     zip(members, scalars, strict=True)):
                 i = lane.index
-                statistics, limits, active = (watch.detectors.statistics(i), watch.detectors.limits(i),
-                                              watch.detectors.active(i))
                 baseline = watch.histories[i].current if watch.detectors.has_baseline[i] else None
                 views[lane.channel] = ChannelView(
                     channel=lane.channel, terms=lane.terms, parameters=stats.parameters[k], std_errors=std[k],
@@ -289,6 +288,5 @@ class ChannelBank:
                     applied=lane.counters.applied, warmup=lane.counters.warmup,
                     rejected=dict(lane.counters.rejected), last_t=lane.last_t, settings=lane.settings,
                     baseline=baseline, commissioned=int(watch.commissioned[i]),
-                    detectors={kind: DetectorReading(statistics[kind], limits[kind], active[kind])
-                               for kind in KINDS})
+                    detectors=dict(zip(KINDS, map(DetectorReading, *readings[k]), strict=True)))
         return {c: views[c] for c in wanted}

@@ -417,6 +417,19 @@ class DetectorBank:
         return {"noise_level": noise, "variance": float(s[_VAR]) if judged else math.nan,
                 "offset": float(max(s[_UP], s[_DOWN])) if judged else math.nan, "drift": float(s[_DRIFT])}
 
+    def readings(self, idx: IndexArray) -> list[tuple[list[float], list[float], list[bool]]]:
+        """Per channel of ``idx``: (statistics, limits, active), each in KINDS order (whole arrays, then lists)."""
+        s = self._state[idx]
+        judged = self.has_baseline[idx]
+        sigma = self._sigma_ref[idx]
+        with np.errstate(invalid="ignore"):
+            statistics = np.stack([sigma * np.sqrt(s[:, _NOISE]), np.where(judged, s[:, _VAR], np.nan),
+                                   np.where(judged, np.maximum(s[:, _UP], s[:, _DOWN]), np.nan), s[:, _DRIFT]], axis=1)
+        limits = np.stack([np.minimum(self._noise_high[idx], self._noise_ratio[idx] * sigma), self._variance_h[idx],
+                           self._offset_h[idx], self._drift_limit[idx]], axis=1)
+        active = self._active[:, idx].T
+        return list(zip(statistics.tolist(), limits.tolist(), active.tolist(), strict=True))
+
     def active(self, channel: int) -> dict[str, bool]:
         """Whether each detector's alarm condition is active for one channel."""
         return {kind: bool(self._active[q, channel]) for q, kind in enumerate(KINDS)}

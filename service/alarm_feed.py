@@ -4,7 +4,7 @@
   (statistic, limit, onset, the baseline version in force, sample time);
 * a channel without a baseline (commissioning) has its detector alarms
   suppressed by design, and one too poorly excited to judge (quality reason
-  ``not_identifiable`` or ``low_excitation``) its drift alarm;
+  ``low_excitation``) its drift alarm;
 * a channel whose quality is ``stale`` (no data for ``alarms.stale_after``
   seconds) has its ``stale`` condition active.
 """
@@ -20,7 +20,9 @@ from service.snapshot import ChannelEntry
 
 __all__ = ["AlarmFeed"]
 
-_UNJUDGEABLE = frozenset({"not_identifiable", "low_excitation", "no_data"})
+# Held back by design only when excitation is lost; before the first samples (not identifiable yet, no data)
+# the detector holds its judgement anyway, and suppressing then would only churn the journal.
+_UNJUDGEABLE = frozenset({"low_excitation"})
 
 
 class AlarmFeed:

@@ -173,6 +173,8 @@ class AlarmBook:
                     raise ValueError(f"priority must be one of {', '.join(PRIORITIES)}, got {priority!r}")
                 alarm = Alarm(channel, kind, priority)
                 self._alarms[alarm.id] = alarm
+        # A copy of each alarm as of its last transition: readers get these, never the live objects.
+        self._views: dict[str, Alarm] = {key: replace(a) for key, a in self._alarms.items()}
         self.journal: list[JournalEntry] = []
         self._listeners: list[Callable[[JournalEntry, Alarm], None]] = []
 
@@ -187,8 +189,8 @@ class AlarmBook:
             raise AlarmRefused("unknown_alarm", f"no alarm {alarm_id!r}") from None
 
     def alarms(self) -> list[Alarm]:
-        """Copies of every alarm, in configuration order."""
-        return [replace(a) for a in self._alarms.values()]
+        """Every alarm as of its last transition, in configuration order (copies: do not modify)."""
+        return list(self._views.values())
 
     def entries(self, after: int = 0, limit: int = 100, channel: str | None = None) -> list[JournalEntry]:
         """Journal entries with ``seq > after``, oldest first, at most ``limit`` (a copy)."""
@@ -306,6 +308,7 @@ class AlarmBook:
                              user, comment or None, alarm.shelved_until if after == AlarmState.SHELVED else None)
         alarm.state = after
         alarm.since = now
+        self._views[alarm.id] = replace(alarm)
         self.journal.append(entry)
         if self._journal_limit is not None and len(self.journal) > self._journal_limit + self._journal_limit // 10:
             # Memory holds the newest entries; the durable store keeps them all.
