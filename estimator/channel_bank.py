@@ -32,6 +32,7 @@ from estimator.channel import ChannelSettings, Prepared, Sample, SampleOutcome
 from estimator.channel_group import _Group, _Lane, shape_key
 from estimator.column_rounds import PathTuning, apply_group_columns
 from estimator.detectors import KINDS, ConditionEvent
+from estimator.group_watch import WatchNotice
 from estimator.sample_columns import ColumnsOutcome, SampleColumns
 from estimator.statistics import bank_statistics
 
@@ -82,11 +83,16 @@ class DetectorReading(NamedTuple):
 
 @dataclass(frozen=True)
 class ChannelEvent:
-    """Something the detectors said about a channel: a condition changed, or a new baseline is in force."""
+    """Something the detectors said about a channel: a condition changed, or a notice (new baseline,
+    restart, the drift test's ability to judge)."""
 
     channel: str
     condition: ConditionEvent | None = None
-    baseline: Baseline | None = None
+    notice: WatchNotice | None = None
+
+    @property
+    def baseline(self) -> Baseline | None:
+        return self.notice.baseline if self.notice is not None else None
 
 
 class ChannelBank:
@@ -122,9 +128,10 @@ class ChannelBank:
         """Condition changes and new baselines since the last call (per channel in the order they happened)."""
         events: list[ChannelEvent] = []
         for group in self._groups:
-            conditions, baselines = group.watch.take()
-            events += [ChannelEvent(group.lanes[b.index].channel, baseline=b.baseline) for b in baselines]
-            events += [ChannelEvent(group.lanes[c.index].channel, condition=c) for c in conditions]
+            for item in group.watch.take():
+                channel = group.lanes[item.index].channel
+                events.append(ChannelEvent(channel, condition=item) if isinstance(item, ConditionEvent)
+                              else ChannelEvent(channel, notice=item))
         return events
 
     def baseline_version(self, channel: str) -> int | None:

@@ -207,7 +207,7 @@ class DetectorBank:
         self._conditions = np.full((len(KINDS), k, 4), np.nan)
         self._timing = np.array([[[t.deadband, t.on_delay, t.off_delay]
                                   for t in (s.timing_of(kind) for s in settings)] for kind in KINDS])
-        self._events: list[ConditionEvent] = []
+        self.sink: list[object] = []          # where condition events go (the owner may share its list)
         self._pack(column)
 
     def _pack(self, column: Callable[[str], FloatArray]) -> None:
@@ -252,7 +252,7 @@ class DetectorBank:
         self._since_drift[channel] = 0
         for q, kind in enumerate(KINDS):
             if self._active[q, channel]:
-                self._events.append(ConditionEvent(channel, kind, False, now, math.nan, math.nan, math.nan))
+                self.sink.append(ConditionEvent(channel, kind, False, now, math.nan, math.nan, math.nan))
             self._active[q, channel] = False
             self._conditions[q, channel] = np.nan
 
@@ -387,7 +387,7 @@ class DetectorBank:
         for q in range(c.shape[0]):
             self._active[first + q, idx] = (active[q] | rise[q]) & ~fall[q]
             for j in np.flatnonzero(rise[q] | fall[q]).tolist():
-                self._events.append(ConditionEvent(int(idx[j]), KINDS[first + q], bool(rise[q, j]), float(t[j]),
+                self.sink.append(ConditionEvent(int(idx[j]), KINDS[first + q], bool(rise[q, j]), float(t[j]),
                                                    float(statistic[q, j]), float(limit[q, j]),
                                                    float(c[q, j, _ONSET])))
 
@@ -399,7 +399,8 @@ class DetectorBank:
     # ------------------------------------------------------------------ reads
     def take_events(self) -> list[ConditionEvent]:
         """Condition changes since the last call, in the order they happened."""
-        events, self._events = self._events, []
+        events = [e for e in self.sink if isinstance(e, ConditionEvent)]
+        self.sink.clear()
         return events
 
     def limits(self, channel: int) -> dict[str, float]:

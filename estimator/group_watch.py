@@ -37,7 +37,7 @@ from estimator.rwls import RecursiveWLSBank
 from estimator.statistics import CONDITION_LIMIT, bank_statistics
 from estimator.variance import NoiseVarianceTracker
 
-__all__ = ["MIN_SIGMA_SAMPLES", "BaselineSet", "GroupWatch"]
+__all__ = ["MIN_SIGMA_SAMPLES", "GroupWatch", "WatchNotice"]
 
 MIN_SIGMA_SAMPLES = 30      # fewer samples since the last baseline: the tracker's sigma is taken instead
 
@@ -46,11 +46,18 @@ IndexArray = NDArray[np.intp]
 
 
 @dataclass(frozen=True)
-class BaselineSet:
-    """A channel's new baseline (learned, fitted or set by an engineer)."""
+class WatchNotice:
+    """What changed in how a channel is judged, in sample order with the detectors' condition events.
+
+    ``kind``: ``baseline`` (a new one in force), ``restart`` (a reset: none in force, commissioning
+    again) or ``judged`` (the drift test can, or can no longer, judge the estimates: ``judged`` says).
+    """
 
     index: int
-    baseline: Baseline
+    kind: str
+    t: float                        # sample time (NaN when unknown)
+    baseline: Baseline | None = None
+    judged: bool | None = None
 
 
 class GroupWatch:
@@ -74,7 +81,10 @@ class GroupWatch:
         self._ratio_sum = np.zeros(len(settings))
         self._ratio_count = np.zeros(len(settings), dtype=np.int64)
         self._intercept = [s.noise_model_terms.index("1") if "1" in s.noise_model_terms else None for s in settings]
-        self._notices: list[BaselineSet] = []
+        # Condition events and notices in one list, in the order they happened.
+        self._events: list[ConditionEvent | WatchNotice] = []
+        self.detectors.sink = self._events
+        self._judged = np.ones(len(settings), dtype=bool)             # could the drift test judge, last check
 
     # ------------------------------------------------------------------ rounds
     def after_round(self, idx: IndexArray, t: FloatArray, e: FloatArray, h: FloatArray, kappa: FloatArray,
@@ -101,8 +111,15 @@ class GroupWatch:
         v_ref = np.where(np.isnan(declared), self.detectors.reference_variance(idx, z_op), declared)
         due = self.detectors.step(idx, t, e, h, kappa, v_ref)
         if due.any():
-            theta, cov, judged = self._estimates(idx[due])
-            self.detectors.check_drift(idx[due], t[due], theta, cov, judged)
+            checked = idx[due]
+            theta, cov, judged = self._estimates(checked)
+            flipped = judged != self._judged[checked]
+            if flipped.any():
+                for j in np.flatnonzero(flipped).tolist():
+                    self._events.append(WatchNotice(int(checked[j]), "judged", float(t[due][j]),
+                                                    judged=bool(judged[j])))
+                self._judged[checked] = judged
+            self.detectors.check_drift(checked, t[due], theta, cov, judged)
         self.commissioned[idx] += 1
         waiting = (self._target[idx] > 0) & ~self.detectors.has_baseline[idx] \
             & (self.commissioned[idx] >= self._target[idx])
@@ -172,7 +189,8 @@ class GroupWatch:
         self._ratio_count[channel] = 0
         if self._candidate is not None:
             self._candidate[channel] = np.nan
-        self._notices.append(BaselineSet(channel, baseline))
+        self._events.append(WatchNotice(channel, "baseline", math.nan if baseline.t is None else baseline.t,
+                                        baseline=baseline))
 
     def restart(self, channel: int, t: float | None) -> None:
         """After a reset: no baseline in force (the history stays), commissioning from zero."""
@@ -184,9 +202,12 @@ class GroupWatch:
         self._ratio_count[channel] = 0
         if self._candidate is not None:
             self._candidate[channel] = np.nan
+        self._judged[channel] = True
+        self._events.append(WatchNotice(channel, "restart", math.nan if t is None else t))
 
-    def take(self) -> tuple[list[ConditionEvent], list[BaselineSet]]:
-        """Condition changes and new baselines since the last call."""
-        notices, self._notices = self._notices, []
-        return self.detectors.take_events(), notices
+    def take(self) -> list[ConditionEvent | WatchNotice]:
+        """Condition changes and notices since the last call, in order."""
+        events = list(self._events)
+        self._events.clear()
+        return events
 

@@ -1,12 +1,19 @@
-"""From the bank's detector events and each channel's quality to the alarm book (engine thread only).
+"""From the bank's detector events to the alarm book (engine thread only).
+
+Everything here follows the samples, in their order, so a run replayed from
+a checkpoint and its input log journals exactly the transitions the
+uninterrupted run journaled (with the same times: a transition's time is its
+sample's, when the sample has one):
 
 * a condition change becomes :meth:`AlarmBook.condition`, with its evidence
   (statistic, limit, onset, the baseline version in force, sample time);
-* a channel without a baseline (commissioning) has its detector alarms
-  suppressed by design, and one too poorly excited to judge (quality reason
-  ``low_excitation``) its drift alarm;
-* a channel whose quality is ``stale`` (no data for ``alarms.stale_after``
-  seconds) has its ``stale`` condition active.
+* a channel without a baseline (commissioning, or after a reset) has its
+  detector alarms suppressed by design; a new baseline releases them;
+* when the drift test can no longer judge the estimates (too poorly excited,
+  not identifiable), the drift alarm is suppressed by design until it can.
+
+The one judgement made on the wall clock is staleness (no data for
+``alarms.stale_after`` seconds): :meth:`judge` at each snapshot.
 """
 
 from __future__ import annotations
@@ -20,9 +27,7 @@ from service.snapshot import ChannelEntry
 
 __all__ = ["AlarmFeed"]
 
-# Held back by design only when excitation is lost; before the first samples (not identifiable yet, no data)
-# the detector holds its judgement anyway, and suppressing then would only churn the journal.
-_UNJUDGEABLE = frozenset({"low_excitation"})
+_DETECTORS = [k for k in KINDS if k != "drift"]
 
 
 class AlarmFeed:
@@ -31,36 +36,50 @@ class AlarmFeed:
     def __init__(self, book: AlarmBook, stale_after: float) -> None:
         self.book = book
         self._stale_after = stale_after
-        self._held: dict[str, tuple[bool, bool]] = {}      # channel -> (detectors held, drift held)
-        self._stale: dict[str, bool] = {}
+        self.stale: dict[str, bool] = {}
+        self.unjudged: set[str] = set()            # channels whose drift test cannot judge now
+
+    def hold_uncommissioned(self, channels: dict[str, bool], now: float) -> None:
+        """At a fresh start: suppress the detector alarms of every channel without a baseline (value False)."""
+        for channel, has_baseline in channels.items():
+            if not has_baseline:
+                self.book.suppress(channel, KINDS, True, now, "commissioning: no baseline yet")
 
     def take(self, events: list[ChannelEvent], now: float, baselines: dict[str, int | None]) -> None:
-        """Condition changes from :meth:`ChannelBank.take_events`; ``baselines`` maps channel -> version."""
+        """Events from :meth:`ChannelBank.take_events`, in order; ``baselines`` maps channel -> version."""
         for event in events:
-            condition = event.condition
-            if condition is None:
+            channel = event.channel
+            condition, notice = event.condition, event.notice
+            if condition is not None:
+                at = condition.t if math.isfinite(condition.t) else now
+                evidence = Evidence(condition.statistic, condition.limit,
+                                    None if math.isnan(condition.onset) else condition.onset,
+                                    baselines.get(channel), None if math.isnan(condition.t) else condition.t)
+                self.book.condition(channel, condition.kind, condition.active, at, evidence)
                 continue
-            evidence = Evidence(condition.statistic, condition.limit,
-                                None if math.isnan(condition.onset) else condition.onset,
-                                baselines.get(event.channel), None if math.isnan(condition.t) else condition.t)
-            self.book.condition(event.channel, condition.kind, condition.active, now, evidence)
+            if notice is None:
+                continue
+            at = notice.t if math.isfinite(notice.t) else now
+            if notice.kind == "baseline":
+                self.book.suppress(channel, _DETECTORS, False, at, f"baseline v{notice.baseline.version} in force"
+                                   if notice.baseline is not None else "baseline in force")
+                if channel not in self.unjudged:
+                    self.book.suppress(channel, ["drift"], False, at, "baseline in force")
+            elif notice.kind == "restart":
+                self.unjudged.discard(channel)
+                self.book.suppress(channel, KINDS, True, at, "reset: commissioning again")
+            elif notice.kind == "judged" and notice.judged is not None:
+                if notice.judged:
+                    self.unjudged.discard(channel)
+                else:
+                    self.unjudged.add(channel)
+                self.book.suppress(channel, ["drift"], not notice.judged, at,
+                                   "judged again" if notice.judged else "not judged: too little excitation")
 
     def judge(self, channel: str, entry: ChannelEntry, now: float) -> None:
-        """Design suppression and staleness from the channel's latest snapshot entry."""
-        commissioning = entry.view.baseline is None
-        drift_held = commissioning or entry.quality_reason in _UNJUDGEABLE
-        held = (commissioning, drift_held)
-        if self._held.get(channel) != held:
-            self._held[channel] = held
-            detectors = [k for k in KINDS if k != "drift"]
-            self.book.suppress(channel, detectors, commissioning, now,
-                               "commissioning: no baseline yet" if commissioning else "baseline in force")
-            self.book.suppress(channel, ["drift"], drift_held, now,
-                               "commissioning: no baseline yet" if commissioning else
-                               f"not judged: {entry.quality_reason}" if drift_held else "judged again")
+        """Staleness from the channel's latest snapshot entry (wall clock)."""
         stale = entry.quality_reason == "stale"
-        if self._stale.get(channel, False) != stale:
-            self._stale[channel] = stale
+        if self.stale.get(channel, False) != stale:
+            self.stale[channel] = stale
             silence = math.nan if entry.updated_at is None else now - entry.updated_at
-            self.book.condition(channel, "stale", stale, now,
-                                Evidence(silence, self._stale_after, t=entry.view.last_t))
+            self.book.condition(channel, "stale", stale, now, Evidence(silence, self._stale_after, t=entry.view.last_t))

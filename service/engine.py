@@ -168,6 +168,10 @@ class Engine:
         self._alarms_changed = alarms is not None
         if alarms is not None:
             alarms.listen(self._on_transition)
+        self.bank.take_events()                # the configured baselines: in force from the start, not news
+        if self._feed is not None:
+            self._feed.hold_uncommissioned({c: self.bank.baseline_version(c) is not None
+                                            for c in self.bank.channel_ids}, clock())
         self._inputs = {cid: tuple(s.input_names) for cid, s in channels.items()}
         self._queue: queue.Queue[Message | None] = queue.Queue(maxsize=queue_size)
         self._max_batch = max_batch
