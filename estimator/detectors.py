@@ -210,6 +210,10 @@ class DetectorBank:
         self.sink: list[object] = []          # where condition events go (the owner may share its list)
         self._pack(column)
 
+    def repack(self) -> None:
+        """After the arrays were loaded from a saved state: the packed copy of the reference sigma."""
+        self._constants[:, _SIGMA] = self._sigma_ref
+
     def _pack(self, column: Callable[[str], FloatArray]) -> None:
         """The per-channel constants side by side: one gather per round."""
         self._constants = np.stack([self._offset_k, self._offset_h, self._variance_k, self._variance_h,
@@ -234,6 +238,11 @@ class DetectorBank:
         elif self._beta_ref is not None:
             self._beta_ref[channel] = np.nan
         self._restart(channel, baseline.t)
+
+    def expect_model(self, n_terms: int) -> None:
+        """The channels have an operating-point noise model of ``n_terms`` terms (room for its baseline)."""
+        if self._beta_ref is None:
+            self._beta_ref = np.full((self.n_channels, n_terms), np.nan)
 
     def clear_baseline(self, channel: int, t: float | None = None) -> None:
         """No reference any more (a reset): nothing is judged until a new baseline is set."""

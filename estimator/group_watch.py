@@ -84,6 +84,8 @@ class GroupWatch:
         # Condition events and notices in one list, in the order they happened.
         self._events: list[ConditionEvent | WatchNotice] = []
         self.detectors.sink = self._events
+        if model is not None:
+            self.detectors.expect_model(model.n_terms)
         self._judged = np.ones(len(settings), dtype=bool)             # could the drift test judge, last check
 
     # ------------------------------------------------------------------ rounds

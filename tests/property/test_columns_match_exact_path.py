@@ -116,7 +116,7 @@ def _state(bank: ChannelBank) -> list[object]:
             model = group.model.state()
             out += [model.bank.factor, model.bank.sample_count]
         out += group.watch.detectors.arrays()
-        out += [group.watch.commissioned, group.watch._square_sum, group.watch._square_count,
+        out += [group.watch.commissioned, group.watch._judged, group.watch._square_sum, group.watch._square_count,
                 group.watch._ratio_sum, group.watch._ratio_count,
                 *([group.watch._candidate] if group.watch._candidate is not None else [])]
         for history in group.watch.histories:
