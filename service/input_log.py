@@ -16,6 +16,7 @@ is cut off at the last whole record when the log is opened.
 
 from __future__ import annotations
 
+import itertools
 import logging
 import os
 import struct
@@ -156,7 +157,7 @@ class InputLog:
         """Delete the segments whose records all have seq <= ``position``; returns how many."""
         segments = self._segments()
         removed = 0
-        for path, following in zip(segments, segments[1:], strict=False):
+        for path, following in itertools.pairwise(segments):
             next_first = int(following.name[len(_PREFIX):-len(_SUFFIX)])
             if next_first - 1 <= position:
                 path.unlink()
