@@ -120,7 +120,11 @@ class Store:
             raise StoreError(f"cannot open the store: {type(exc).__name__}") from None
         if self.is_sqlite:
             event.listen(self.engine, "connect", _sqlite_pragmas)
-        self.migrate()
+        try:
+            self.migrate()
+        except StoreError:
+            self.engine.dispose()
+            raise
 
     def close(self) -> None:
         self.engine.dispose()
