@@ -22,7 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from estimator.baseline import Baseline
 from service.alarms import AlarmRefused
-from service.engine import Engine, EngineBusy
+from service.engine import EngineBusy
 from service.reports import finite_or_null
 from service.runtime import Runtime
 
@@ -76,14 +76,17 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
     """Register the alarm, baseline, reset and event-stream routes."""
     book = runtime.alarms
 
-    def alarm_action(run: object) -> dict[str, object] | JSONResponse:
+    def alarm_action(op: str, alarm_id: str, body: _Body, **more: object) -> dict[str, object] | JSONResponse:
+        if alarm_id not in book:
+            return JSONResponse({"detail": "unknown_alarm", "message": f"no alarm {alarm_id!r}"}, status_code=404)
+        args = {"alarm": alarm_id, "user": body.user, "comment": body.comment, "time": time.time(), **more}
         try:
-            entry = runtime.engine.command(run)  # type: ignore[arg-type]
+            entry = runtime.engine.operate(op, args)
         except AlarmRefused as exc:
             return _refused(exc)
         except EngineBusy as exc:
             return _busy(exc)
-        return {"entry": entry.to_dict(), "alarm": book.get(entry.alarm).to_dict()}
+        return {"entry": entry, "alarm": book.get(alarm_id).to_dict()}
 
     @app.get("/api/v1/alarms", summary="Alarms (by default those not Normal), filtered and paged")
     def alarms(channel: str | None = None, kind: str | None = None, state: str | None = None,
@@ -104,26 +107,23 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
 
     @app.post("/api/v1/alarms/{alarm_id}/ack", summary="Acknowledge an alarm", response_model=None)
     def acknowledge(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
-        return alarm_action(lambda engine: book.acknowledge(alarm_id, body.user, time.time(), body.comment))
+        return alarm_action("acknowledge", alarm_id, body)
 
     @app.post("/api/v1/alarms/{alarm_id}/shelve", summary="Shelve an alarm for some minutes", response_model=None)
     def shelve(alarm_id: str, body: ShelveBody) -> dict[str, object] | JSONResponse:
-        def run(engine: Engine) -> object:
-            now = time.time()
-            return book.shelve(alarm_id, body.user, now, now + 60.0 * body.minutes, body.comment)
-        return alarm_action(run)
+        return alarm_action("shelve", alarm_id, body, until=time.time() + 60.0 * body.minutes)
 
     @app.post("/api/v1/alarms/{alarm_id}/unshelve", summary="End an alarm's shelving", response_model=None)
     def unshelve(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
-        return alarm_action(lambda engine: book.unshelve(alarm_id, body.user, time.time(), body.comment))
+        return alarm_action("unshelve", alarm_id, body)
 
     @app.post("/api/v1/alarms/{alarm_id}/remove", summary="Take an alarm out of service", response_model=None)
     def remove(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
-        return alarm_action(lambda engine: book.remove(alarm_id, body.user, time.time(), body.comment))
+        return alarm_action("remove", alarm_id, body)
 
     @app.post("/api/v1/alarms/{alarm_id}/restore", summary="Return an alarm to service", response_model=None)
     def restore(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
-        return alarm_action(lambda engine: book.restore(alarm_id, body.user, time.time(), body.comment))
+        return alarm_action("restore", alarm_id, body)
 
     @app.get("/api/v1/channels/{channel_id}/baselines", summary="Every baseline of a channel, oldest first",
              response_model=None)
@@ -146,6 +146,7 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
             return JSONResponse({"detail": "unknown channel"}, status_code=404)
         terms = entry.view.terms
         note = f"{body.user}: {body.comment}" if body.comment else body.user
+        args: dict[str, object] = {"channel": channel_id, "note": note}
         if body.action == "set":
             if body.parameters is None or body.noise_sigma is None or set(body.parameters) != set(terms):
                 return JSONResponse({"detail": "bad_baseline", "message": f"set needs noise_sigma and a value for "
@@ -153,25 +154,16 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
             values = [body.parameters[name] for name in terms]
             if not all(math.isfinite(v) for v in values):
                 return JSONResponse({"detail": "bad_baseline", "message": "values must be finite"}, 422)
-
-            def run(engine: Engine) -> Baseline | None:
-                made = engine.bank.set_baseline(channel_id, values, noise_sigma=body.noise_sigma or 1.0,
-                                                t=engine.bank.view([channel_id])[channel_id].last_t, note=note)
-                engine.touch(channel_id)
-                return made
-        else:
-            def run(engine: Engine) -> Baseline | None:
-                made = engine.bank.learn_baseline(channel_id, engine.bank.view([channel_id])[channel_id].last_t,
-                                                  note=note)
-                engine.touch(channel_id)
-                return made
+            args.update(parameters=values, noise_sigma=body.noise_sigma)
         try:
-            made = runtime.engine.command(run)
+            version = runtime.engine.operate("set_baseline" if body.action == "set" else "learn_baseline", args)
+            history = runtime.engine.command(lambda engine: engine.bank.baselines(channel_id))
         except EngineBusy as exc:
             return _busy(exc)
-        if made is None:
+        if version is None:
             return JSONResponse({"detail": "not_identifiable", "message": "the estimates cannot be judged yet"},
                                 status_code=409)
+        made = next(b for b in history if b.version == version)
         return {"baseline": baseline_json(made, terms)}
 
     @app.post("/api/v1/channels/{channel_id}/reset", response_model=None,
@@ -180,12 +172,8 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
         if channel_id not in runtime.engine.bank:
             return JSONResponse({"detail": "unknown channel"}, status_code=404)
 
-        def run(engine: Engine) -> None:
-            engine.bank.reset(channel_id, engine.bank.view([channel_id])[channel_id].last_t)
-            engine.touch(channel_id)
-
         try:
-            runtime.engine.command(run)
+            runtime.engine.operate("reset", {"channel": channel_id, "user": body.user, "comment": body.comment})
         except EngineBusy as exc:
             return _busy(exc)
         return {"reset": channel_id, "by": body.user}

@@ -35,6 +35,8 @@ from estimator.channel_bank import ChannelBank, ChannelView
 from estimator.sample_columns import SampleColumns
 from service.alarm_feed import AlarmFeed
 from service.alarms import Alarm, AlarmBook, JournalEntry
+from service.input_log import InputLog
+from service.operations import OPERATIONS
 from service.payload import DecodedSample, Rejection, decode_payload
 from service.payload_columns import decode_columns
 from service.snapshot import ChannelEntry, FragmentWriter, Snapshot, channel_quality
@@ -60,6 +62,8 @@ class Message:
     topic: str | None = None
     received: float = field(default_factory=time.time)
     decoded: tuple[list[DecodedSample], list[Rejection]] | None = None
+    ack: tuple[int, int] | None = None        # (connection, message id): acknowledge once in the synced log
+    durable: threading.Event | None = None    # set once the message is in the synced log (HTTP waits on it)
 
 
 @dataclass(frozen=True)
@@ -131,10 +135,16 @@ class EngineBusy(RuntimeError):
 
 @dataclass
 class Command:
-    """Something to do on the engine thread (the single writer), with a future for its result."""
+    """Something to do on the engine thread (the single writer), with a future for its result.
 
-    action: Callable[[Engine], object]
+    An operation (``op`` and ``args``, see :mod:`service.operations`) changes state and is written
+    to the input log first; a query (``action``) only reads and is not.
+    """
+
     future: concurrent.futures.Future[object]
+    action: Callable[[Engine], object] | None = None
+    op: str | None = None
+    args: dict[str, object] = field(default_factory=dict)
 
 
 class Engine:
@@ -153,14 +163,22 @@ class Engine:
         queue runs empty, at once. Refreshing costs tens of microseconds per touched channel.
     alarms : the alarm book the engine keeps in step (detector events, design suppression, staleness)
     prepare : called with the new bank before anything else (configured baselines)
+    input_log : every message and operation is written and synced here before it applies (recovery)
+    acknowledge : called with ``(connection, message id)`` of MQTT messages once they are in the synced log
     """
 
     def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
                  max_batch: int = 5000, max_wait: float = 0.005, max_payload_bytes: int = 65536,
                  dead_letter: Callable[[DeadLetter], None] | None = None, stale_after: float = 600.0,
                  snapshot_interval: float = 0.002, clock: Callable[[], float] = time.time,
-                 alarms: AlarmBook | None = None, prepare: Callable[[ChannelBank], None] | None = None) -> None:
+                 alarms: AlarmBook | None = None, prepare: Callable[[ChannelBank], None] | None = None,
+                 input_log: InputLog | None = None,
+                 acknowledge: Callable[[list[tuple[int, int]]], None] | None = None) -> None:
         self.bank = ChannelBank(channels)
+        self.log = input_log
+        self.acknowledge = acknowledge
+        self.position = input_log.last_seq if input_log is not None else 0   # last input-log seq applied
+        self.periodic: list[Callable[[], None]] = []         # run by the engine thread about once a second
         if prepare is not None:
             prepare(self.bank)                 # e.g. baselines from the configuration, before the first snapshot
         self.alarms = alarms
@@ -183,7 +201,7 @@ class Engine:
         self._pending: set[str] = set()          # channels changed since the last snapshot
         self._last_publish = 0.0
         self._clock = clock
-        self._updated_at: dict[str, float] = {}
+        self.updated_at: dict[str, float] = {}
         self._fragments = FragmentWriter()
         self.stats = EngineStats()
         self._thread: threading.Thread | None = None
@@ -205,7 +223,7 @@ class Engine:
         return True
 
     def command(self, action: Callable[[Engine], T], timeout: float = 10.0) -> T:
-        """Run ``action(engine)`` on the engine thread, in order with the samples queued before it.
+        """Run the read-only ``action(engine)`` on the engine thread, in order with the samples before it.
 
         Raises
         ------
@@ -214,13 +232,21 @@ class Engine:
         Exception
             Whatever ``action`` raised.
         """
-        future: concurrent.futures.Future[T] = concurrent.futures.Future()
+        return self._submit_command(Command(concurrent.futures.Future(), action=action), timeout)  # type: ignore
+
+    def operate(self, op: str, args: dict[str, object], timeout: float = 10.0) -> object:
+        """Run operation ``op`` (:mod:`service.operations`) on the engine thread, logged for recovery."""
+        if op not in OPERATIONS:
+            raise ValueError(f"unknown operation {op!r}")
+        return self._submit_command(Command(concurrent.futures.Future(), op=op, args=args), timeout)
+
+    def _submit_command(self, command: Command, timeout: float) -> object:
         try:
-            self._queue.put(Command(action, future), timeout=timeout)  # type: ignore[arg-type]
+            self._queue.put(command, timeout=timeout)  # type: ignore[arg-type]
         except queue.Full:
             raise EngineBusy("engine queue full") from None
         try:
-            return future.result(timeout)
+            return command.future.result(timeout)
         except concurrent.futures.TimeoutError:
             raise EngineBusy(f"engine did not answer within {timeout} s") from None
 
@@ -326,12 +352,26 @@ class Engine:
 
     def _execute(self, command: Command) -> None:
         try:
-            command.future.set_result(command.action(self))
+            if command.op is not None:
+                if self.log is not None:
+                    self.position = self.log.append([("o", (command.op, command.args))])
+                    self.log.sync()
+                result = self.run_operation(command.op, command.args)
+            else:
+                result = command.action(self) if command.action is not None else None
+            command.future.set_result(result)
         except Exception as exc:      # the caller gets it; the loop goes on
             command.future.set_exception(exc)
         finally:
             self._queue.task_done()
         self._flush()
+
+    def run_operation(self, op: str, args: dict[str, object]) -> object:
+        """Run an operation now (the engine thread, or recovery before it starts)."""
+        try:
+            return OPERATIONS[op](self, args)
+        finally:
+            self._take_events()
 
     def _tick(self) -> None:
         """At most once a second: staleness, shelving expiry."""
@@ -343,6 +383,11 @@ class Engine:
             self.alarms.expire(now)
         self._refresh_quality()
         self._flush()
+        for job in self.periodic:
+            try:
+                job()
+            except Exception:              # a failing checkpoint must not stop the samples
+                log.exception("periodic job failed")
 
     def _flush(self) -> None:
         if self._pending or self._alarms_changed:
@@ -379,8 +424,35 @@ class Engine:
             columns.append(sample.y, sample.inputs, sample.t, sample.sigma, sample.weight, sample.seq)
         return columns, _Origin(message, [sample.index for sample in decoded])
 
-    def _process(self, batch: list[Message]) -> None:
+    def _log_batch(self, batch: list[Message]) -> None:
+        """Into the input log, synced, before anything is applied; then acknowledge (MQTT) or release (HTTP)."""
+        if self.log is None:
+            return
+        self.position = self.log.append([("m", (m.channel, m.payload, m.source, m.topic, m.received))
+                                         for m in batch])
+        self.log.sync()
+        acks = [m.ack for m in batch if m.ack is not None]
+        if acks and self.acknowledge is not None:
+            try:
+                self.acknowledge(acks)
+            except Exception:            # the broker will redeliver; seq/t refuses the repeats
+                log.exception("acknowledgements not sent (%d)", len(acks))
+        for m in batch:
+            if m.durable is not None:
+                m.durable.set()
+
+    def replay(self, batch: list[Message]) -> None:
+        """Apply messages from the input log (recovery): not logged again, no dead letters sent again."""
+        dead_letter, self._dead_letter = self._dead_letter, None
+        try:
+            self._process(batch, logged=True)
+        finally:
+            self._dead_letter = dead_letter
+
+    def _process(self, batch: list[Message], logged: bool = False) -> None:
         started = time.perf_counter()
+        if not logged:
+            self._log_batch(batch)
         columns: dict[str, SampleColumns] = {}
         origins: dict[str, _Origins] = {}      # where each channel's samples came from
         for message in batch:
@@ -405,7 +477,7 @@ class Engine:
             self.stats.samples_warmup += outcome.warmup
             where = origins[cid]
             if outcome.last_applied is not None:
-                self._updated_at[cid] = where.locate(outcome.last_applied)[0].received
+                self.updated_at[cid] = where.locate(outcome.last_applied)[0].received
             for position, reason in outcome.rejected:
                 message, index = where.locate(position)
                 self._refuse(message, reason, f"refused by channel {cid}", index)
@@ -421,7 +493,7 @@ class Engine:
     def _entries(self, views: Mapping[str, ChannelView], now: float) -> dict[str, ChannelEntry]:
         entries = {}
         for cid, view in views.items():
-            updated_at = self._updated_at.get(cid)
+            updated_at = self.updated_at.get(cid)
             quality, reason = channel_quality(view, updated_at, now, self._stale_after)
             entry = ChannelEntry(view, quality, reason, updated_at,
                                  self._fragments.write(view, quality, reason, updated_at))

@@ -44,7 +44,7 @@ def test_a_refused_sample_inside_a_batch_is_dead_lettered_with_its_index() -> No
     engine._process([_message("a", {"samples": batch}, received=42.0)])
     assert [(d.reason, d.index, d.channel, d.topic) for d in letters] == [("out_of_order_seq", 10, "a", "plant/a")]
     assert engine.stats.samples_applied == len(good)
-    assert engine._updated_at["a"] == 42.0
+    assert engine.updated_at["a"] == 42.0
     expected = _reference({"a": good}).view(["a"])["a"]
     got = engine.bank.view(["a"])["a"]
     assert got.parameters.tobytes() == expected.parameters.tobytes()
@@ -61,7 +61,7 @@ def test_messages_of_one_channel_in_one_micro_batch_keep_their_order_and_origins
                      _message("b", single, 4.0)])
     assert [(d.reason, d.index, d.channel) for d in letters] == [("out_of_order", 1, "b")]
     assert engine.stats.samples_applied + engine.stats.samples_warmup == 7 + 1 + 2 + 1
-    assert engine._updated_at == {"a": 2.0, "b": 4.0}
+    assert engine.updated_at == {"a": 2.0, "b": 4.0}
     kept = [*first["samples"], {**second["samples"][0], "t": 1008.0}, second["samples"][2], single]
     expected = _reference({"b": kept}).view(["b"])["b"]
     got = engine.bank.view(["b"])["b"]
