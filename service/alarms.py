@@ -206,6 +206,33 @@ class AlarmBook:
         """Call ``listener(entry, alarm)`` after every transition (on the caller's thread)."""
         self._listeners.append(listener)
 
+    # ------------------------------------------------------------ checkpoints
+    def export(self) -> dict[str, object]:
+        """Every alarm's state and the journal's sequence counter (the journal itself goes to the store)."""
+        return {"seq": self._seq,
+                "alarms": [{"id": a.id, "state": str(a.state), "active": a.active, "suppressed": a.suppressed,
+                            "shelved_until": a.shelved_until, "since": a.since,
+                            "evidence": [a.evidence.statistic, a.evidence.limit, a.evidence.onset,
+                                         a.evidence.baseline, a.evidence.t]}
+                           for a in self._alarms.values()]}
+
+    def load(self, data: Mapping[str, object]) -> None:
+        """Take back what :meth:`export` gave (alarms no longer configured are left out)."""
+        self._seq = int(data["seq"])  # type: ignore[call-overload]
+        for saved in data["alarms"]:  # type: ignore[attr-defined]
+            alarm = self._alarms.get(saved["id"])
+            if alarm is None:
+                continue
+            alarm.state = AlarmState(saved["state"])
+            alarm.active = bool(saved["active"])
+            alarm.suppressed = bool(saved["suppressed"])
+            alarm.shelved_until = saved["shelved_until"]
+            alarm.since = saved["since"]
+            statistic, limit, onset, baseline, t = saved["evidence"]
+            alarm.evidence = Evidence(statistic, limit, onset, baseline, t)
+            self._views[alarm.id] = replace(alarm)
+        self.journal.clear()
+
     # -------------------------------------------------------------- conditions
     def condition(self, channel: str, kind: str, active: bool, now: float,
                   evidence: Evidence = Evidence()) -> JournalEntry | None:

@@ -102,8 +102,8 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
     @app.get("/api/v1/alarms/journal", summary="Alarm transitions with seq > after, oldest first")
     def journal(after: int = Query(default=0, ge=0), limit: int = Query(default=100, ge=1, le=10_000),
                 channel: str | None = None) -> dict[str, object]:
-        entries = book.entries(after, limit, channel)
-        return {"entries": [e.to_dict() for e in entries], "next": entries[-1].seq if entries else after}
+        entries = runtime.journal(after, limit, channel)
+        return {"entries": entries, "next": entries[-1]["seq"] if entries else after}
 
     @app.post("/api/v1/alarms/{alarm_id}/ack", summary="Acknowledge an alarm", response_model=None)
     def acknowledge(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:

@@ -327,9 +327,25 @@ class HttpConfig(_StrictValues):
 
 
 class StoreConfig(_StrictValues):
-    """``[store]``: where the service keeps its data."""
+    """``[store]``: where the service keeps its data.
+
+    ``path`` is the data directory (the input log, the ingest lock, and the SQLite store unless ``url``
+    names a PostgreSQL database: ``postgresql://user@host:5432/db``).
+    """
 
     path: str = Field(default="rwls-data", min_length=1)
+    url: str = Field(default="", description="postgresql://... for a shared store; empty: SQLite in path")
+    durable: bool = Field(default=True, description="input log, checkpoints and recovery (off: memory only)")
+    checkpoint_seconds: float = Field(default=30.0, gt=0.0, le=86400.0, allow_inf_nan=False)
+    history_step: float = Field(default=60.0, gt=0.0, allow_inf_nan=False, description="seconds between rows")
+    history_retention_days: float = Field(default=30.0, gt=0.0, allow_inf_nan=False)
+
+    @field_validator("url")
+    @classmethod
+    def _url(cls, value: str) -> str:
+        if value and not value.startswith(("postgresql://", "postgresql+psycopg://", "sqlite:///")):
+            raise ValueError("must be postgresql://user@host:port/database (or sqlite:///file)")
+        return value
 
 
 class EngineConfig(_StrictValues):

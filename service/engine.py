@@ -179,6 +179,8 @@ class Engine:
         self.acknowledge = acknowledge
         self.position = input_log.last_seq if input_log is not None else 0   # last input-log seq applied
         self.periodic: list[Callable[[], None]] = []         # run by the engine thread about once a second
+        # Called with the refreshed entries after each snapshot (history).
+        self.publish_hooks: list[Callable[[dict[str, ChannelEntry], float], None]] = []
         if prepare is not None:
             prepare(self.bank)                 # e.g. baselines from the configuration, before the first snapshot
         self.alarms = alarms
@@ -252,6 +254,23 @@ class Engine:
 
     def _on_transition(self, entry: JournalEntry, alarm: Alarm) -> None:
         self._alarms_changed = True
+
+    def feed_state(self) -> dict[str, object]:
+        """What the alarm feed remembers (for checkpoints)."""
+        if self._feed is None:
+            return {}
+        return {"stale": dict(self._feed.stale), "unjudged": sorted(self._feed.unjudged)}
+
+    def load_feed_state(self, state: dict[str, object]) -> None:
+        if self._feed is not None:
+            self._feed.stale = {str(k): bool(v) for k, v in dict(state.get("stale", {})).items()}  # type: ignore
+            self._feed.unjudged = set(state.get("unjudged", []))  # type: ignore[arg-type]
+
+    def flush_now(self) -> None:
+        """Take pending events and publish a snapshot now (after recovery, before the thread starts)."""
+        self._take_events()
+        self._pending.update(self.bank.channel_ids)
+        self._flush()
 
     def touch(self, channel: str) -> None:
         """Mark a channel for the next snapshot (a command changed it)."""
@@ -513,7 +532,10 @@ class Engine:
         self._last_publish = time.monotonic()
         now = self._clock()
         entries = dict(self._snapshot.channels)
-        entries.update(self._entries(self.bank.view(channels), now))
+        fresh = self._entries(self.bank.view(channels), now)
+        entries.update(fresh)
+        for hook in self.publish_hooks:
+            hook(fresh, now)
         alarms = self._snapshot.alarms
         if self._alarms_changed and self.alarms is not None:
             self._alarms_changed = False

@@ -63,12 +63,13 @@ class BrokerSettings:
     reconnect_min_delay: float = 0.5
     reconnect_max_delay: float = 30.0
     protocol: str = "auto"            # "auto", "5" or "3.1.1"
+    manual_ack: bool = False          # acknowledge QoS 1 messages only when told (once in the input log)
 
 
 def _client(settings: BrokerSettings, version: mqtt.MQTTProtocolVersion) -> mqtt.Client:
     v5 = version == mqtt.MQTTProtocolVersion.MQTTv5
     client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=settings.client_id, protocol=version,
-                         clean_session=None if v5 else False)
+                         clean_session=None if v5 else False, manual_ack=settings.manual_ack)
     if settings.username:
         client.username_pw_set(settings.username, settings.password or None)
     if settings.tls:
@@ -140,6 +141,7 @@ class MqttIngest:
         self.reconnects = 0
         self.callback_errors = 0
         self.received = 0
+        self.acknowledged = 0
 
     # ---------------------------------------------------------------- status
     @property
@@ -230,7 +232,22 @@ class MqttIngest:
 
     def _on_message(self, client: mqtt.Client, userdata: Any, message: mqtt.MQTTMessage) -> None:
         self.received += 1
-        self._submit(Message(self._topics.get(message.topic), bytes(message.payload), "mqtt", message.topic))
+        # Under manual acknowledgement a QoS 1 message carries (connection, mid) until the engine has it
+        # in its synced input log; a message of an older connection is not acknowledged (it is redelivered).
+        ack = (self.connects, message.mid) if self.settings.manual_ack and message.qos > 0 else None
+        self._submit(Message(self._topics.get(message.topic), bytes(message.payload), "mqtt", message.topic,
+                             ack=ack))
+
+    def ack(self, acks: list[tuple[int, int]]) -> None:
+        """Acknowledge QoS 1 messages of the current connection (those of an older one are redelivered)."""
+        client = self._client
+        if client is None:
+            return
+        current = self.connects
+        for connection, mid in acks:
+            if connection == current and self._connected.is_set():
+                client.ack(mid, 1)
+                self.acknowledged += 1
 
     # ------------------------------------------------------------ publishing
     def publish(self, topic: str, payload: bytes, *, retain: bool = False) -> None:

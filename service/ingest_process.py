@@ -81,13 +81,25 @@ class _Batcher:
         self._thread.join(5.0)
 
 
+def _carry_out(ingest: MqttIngest, item: tuple[Any, ...]) -> None:
+    """One request from the service: ``("publish", topic, payload, retain)`` or ``("ack", acks)``."""
+    try:
+        if item[0] == "ack":
+            ingest.ack(item[1])
+        else:
+            _, topic, payload, retain = item
+            ingest.publish(topic, payload, retain=retain)
+    except RuntimeError:
+        log.exception("request %s not carried out", item[0])
+
+
 def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing: Any, stop: Any,
            connected: Any, reconnects: Any, errors: Any, protocol: Any, parent: int) -> None:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s[ingest]: %(message)s")
     batcher = _Batcher(out)
 
     def hand_over(message: Message) -> bool:
-        batcher.add((message.channel, message.payload, message.topic, message.received))
+        batcher.add((message.channel, message.payload, message.topic, message.received, message.ack))
         return True
 
     ingest = MqttIngest(settings, topics, hand_over)
@@ -99,22 +111,18 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing:
         reconnects.value = ingest.reconnects
         errors.value = ingest.callback_errors
         try:
-            topic, payload, retain = outgoing.get(timeout=0.1)
+            item = outgoing.get(timeout=0.1)
         except queue.Empty:
             continue
-        try:
-            ingest.publish(topic, payload, retain=retain)
-        except RuntimeError:
-            log.exception("not published: %s", topic)
+        _carry_out(ingest, item)
     # What the service handed over before it stopped us still goes out (bounded: a full pipe cannot hold us).
     deadline = time.monotonic() + DRAIN_SECONDS
     while time.monotonic() < deadline:
         try:
-            topic, payload, retain = outgoing.get(timeout=0.05)
+            item = outgoing.get(timeout=0.05)
         except queue.Empty:
             break
-        with contextlib.suppress(RuntimeError):
-            ingest.publish(topic, payload, retain=retain)
+        _carry_out(ingest, item)
     ingest.stop()
     batcher.close()
     out.cancel_join_thread()      # the service may have stopped reading: never hang at exit on the pipe
@@ -189,9 +197,9 @@ class ProcessIngest:
                 continue
             except (EOFError, OSError):
                 return
-            for channel, payload, topic, received in items:
+            for channel, payload, topic, received, ack in items:
                 self.received += 1
-                self._submit(Message(channel, payload, "mqtt", topic, received))
+                self._submit(Message(channel, payload, "mqtt", topic, received, ack=ack))
 
     def stop(self, timeout: float = 5.0) -> None:
         """Stop the child (its client disconnects), then let the reader hand over what is left."""
@@ -213,9 +221,20 @@ class ProcessIngest:
     def publish(self, topic: str, payload: bytes, *, retain: bool = False) -> None:
         """Hand a message to the child for publishing at QoS 1 (RuntimeError when its queue is full)."""
         try:
-            self._outgoing.put_nowait((topic, payload, retain))
+            self._outgoing.put_nowait(("publish", topic, payload, retain))
         except queue.Full:
             raise RuntimeError("publish queue to the ingest process is full") from None
+        except ValueError:
+            raise RuntimeError("ingest process stopped") from None
+
+    def ack(self, acks: list[tuple[int, int]]) -> None:
+        """Have the child acknowledge these messages (RuntimeError when its queue is full)."""
+        try:
+            self._outgoing.put_nowait(("ack", acks))
+        except queue.Full:
+            raise RuntimeError("publish queue to the ingest process is full") from None
+        except ValueError:
+            raise RuntimeError("ingest process stopped") from None
 
     def publish_dead_letter(self, letter: DeadLetter) -> None:
         """Publish a refusal to the dead-letter topic (see :meth:`publish`)."""

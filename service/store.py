@@ -217,6 +217,10 @@ class Store:
             rows = conn.execute(query.order_by(history.c.time.desc()).limit(limit)).all()
         return [{"t": t, **json.loads(body)} for t, body in reversed(rows)]
 
+    def save_history(self, rows: Sequence[tuple[str, float, dict[str, Any]]]) -> None:
+        with self.engine.begin() as conn:
+            _add_history(conn, rows)
+
     def prune_history(self, before: float) -> int:
         with self.engine.begin() as conn:
             return int(conn.execute(delete(history).where(history.c.time < before)).rowcount or 0)

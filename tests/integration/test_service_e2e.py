@@ -220,6 +220,7 @@ def test_broker_restart_mid_stream_loses_no_sample(private_mosquitto: Callable[.
     publish_and_wait(broker, messages[2 * third:], qos=1, timeout=20.0)
     # A new subscriber with the same client id picks the session up.
     ingest = MqttIngest(runtime.ingest.settings, runtime.topics, runtime._from_mqtt)
+    runtime.ingest = ingest                     # acknowledgements (once in the input log) go to it
     ingest.start()
     try:
         assert ingest.wait_connected(15.0)

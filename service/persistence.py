@@ -1,0 +1,223 @@
+"""Checkpoints, recovery and history: the engine's state made durable, and taken back exactly after a crash.
+
+Recovery is exact because the state is a function of the inputs in order:
+
+1. every message and operation is written to the input log and synced before
+   it applies (and MQTT messages are acknowledged only then), so nothing the
+   broker stopped holding is lost;
+2. a checkpoint is the whole state (every array of the bank, the alarms, the
+   counters, per-channel ordering) as of one input-log position, written in
+   one transaction with the journal entries made since the last checkpoint;
+3. recovery loads the newest checkpoint that passes its checksum (else the
+   one before), applies the log's records after its position in their order
+   (the same arithmetic gives the same bits, and the same transitions get
+   the same journal numbers), then ingest resumes: the broker redelivers what
+   was not acknowledged, and per-channel ``seq``/``t`` refuses what the log
+   already held.
+
+Alarm notifications (MQTT, webhooks, the event stream) of the replayed part
+may go out a second time: at least once. The stale alarm follows the wall
+clock, not the inputs.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import logging
+import math
+import time
+import zipfile
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from estimator.bank_state import export_state, import_state
+from service.engine import EngineStats, Message
+from service.input_log import InputLog
+from service.snapshot import ChannelEntry
+from service.store import Store
+
+if TYPE_CHECKING:
+    from service.engine import Engine
+
+__all__ = ["CorruptCheckpoint", "Persistence", "decode_checkpoint", "encode_checkpoint"]
+
+log = logging.getLogger(__name__)
+
+REPLAY_BATCH = 2000
+_META = "__meta__"
+
+
+class CorruptCheckpoint(ValueError):
+    """A checkpoint body that does not decode (never raised for a good one)."""
+
+
+def encode_checkpoint(arrays: dict[str, np.ndarray], meta: dict[str, Any]) -> bytes:
+    """Arrays (exact, in .npy form) and the JSON-able rest in one .npz blob; no pickles."""
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays, **{_META: np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)})
+    return buffer.getvalue()
+
+
+def decode_checkpoint(body: bytes) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    try:
+        with np.load(io.BytesIO(body), allow_pickle=False) as data:
+            arrays = {name: data[name] for name in data.files}
+        meta = json.loads(arrays.pop(_META).tobytes())
+    except (ValueError, KeyError, OSError, EOFError, zipfile.BadZipFile) as exc:
+        raise CorruptCheckpoint(f"{type(exc).__name__}: {exc}") from None
+    return arrays, meta
+
+
+class Persistence:
+    """The store and the input log of one engine: checkpoints, recovery, history, the journal's durable part.
+
+    Parameters
+    ----------
+    checkpoint_seconds : a checkpoint at most this often (the engine's periodic job), and at stop
+    history_step : a history row per channel at most every this many seconds (sample time, else wall)
+    history_retention : rows older than this (seconds) are deleted
+    """
+
+    def __init__(self, store: Store, input_log: InputLog, *, checkpoint_seconds: float = 30.0,
+                 history_step: float = 60.0, history_retention: float = 30 * 86400.0) -> None:
+        self.store = store
+        self.log = input_log
+        self.checkpoint_seconds = checkpoint_seconds
+        self.history_step = history_step
+        self.history_retention = history_retention
+        self.persisted_seq = store.last_journal_seq()
+        self.last_checkpoint_at: float | None = store.latest_checkpoint_time()
+        self.last_checkpoint_seconds = math.nan
+        self.last_checkpoint_bytes = 0
+        self.checkpoints = 0
+        self._history_last: dict[str, float] = {}
+        self._history_rows: list[tuple[str, float, dict[str, Any]]] = []
+        self._last_prune = 0.0
+
+    # ------------------------------------------------------------ checkpoints
+    def state(self, engine: Engine) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+        arrays, bank_meta = export_state(engine.bank)
+        stats = engine.stats
+        meta = {"format": 1, "position": engine.position, "bank": bank_meta,
+                "engine": {"stats": {"messages": stats.messages, "samples_applied": stats.samples_applied,
+                                     "samples_warmup": stats.samples_warmup, "rejected": dict(stats.rejected),
+                                     "batches": stats.batches},
+                           "updated_at": dict(engine.updated_at)},
+                "alarms": engine.alarms.export() if engine.alarms is not None else None,
+                "feed": engine.feed_state()}
+        return arrays, meta
+
+    def checkpoint(self, engine: Engine) -> int:
+        """Write a checkpoint now (engine thread, or after it stopped); returns its size in bytes."""
+        started = time.perf_counter()
+        arrays, meta = self.state(engine)
+        body = encode_checkpoint(arrays, meta)
+        entries = [] if engine.alarms is None else [e.to_dict() for e in engine.alarms.journal
+                                                     if e.seq > self.persisted_seq]
+        rows, self._history_rows = self._history_rows, []
+        self.store.save(body, engine.position, entries, rows)
+        if entries:
+            self.persisted_seq = int(entries[-1]["seq"])
+        self.log.start_new_segment()
+        self.log.discard_through(engine.position)
+        self.last_checkpoint_at = time.time()
+        self.last_checkpoint_seconds = time.perf_counter() - started
+        self.last_checkpoint_bytes = len(body)
+        self.checkpoints += 1
+        return len(body)
+
+    def periodic(self, engine: Engine) -> None:
+        """The engine's once-a-second job: a checkpoint when one is due, history pruning now and then."""
+        now = time.time()
+        if self.last_checkpoint_at is None or now - self.last_checkpoint_at >= self.checkpoint_seconds:
+            self.checkpoint(engine)
+        if now - self._last_prune > 600.0:
+            self._last_prune = now
+            self.store.prune_history(now - self.history_retention)
+
+    # --------------------------------------------------------------- recovery
+    def recover(self, engine: Engine) -> dict[str, Any]:
+        """Load the newest good checkpoint and apply the input log after it (before the engine starts)."""
+        report: dict[str, Any] = {"checkpoint": None, "position": 0, "replayed": 0, "fresh_channels": []}
+        for checkpoint in self.store.checkpoints():
+            try:
+                arrays, meta = decode_checkpoint(checkpoint.body)
+                fresh = import_state(engine.bank, arrays, meta["bank"])
+                self._load_engine(engine, meta)
+            except (CorruptCheckpoint, ValueError, KeyError) as exc:
+                log.warning("checkpoint %d unusable (%s): trying the one before", checkpoint.id, exc)
+                continue
+            report.update(checkpoint=checkpoint.id, position=checkpoint.position, fresh_channels=fresh)
+            engine.position = checkpoint.position
+            break
+        batch: list[Message] = []
+        for seq, kind, fields in self.log.read_after(engine.position):
+            if kind == "m":
+                channel, payload, source, topic, received = fields
+                batch.append(Message(channel, bytes(payload), str(source), topic, float(received)))
+                if len(batch) >= REPLAY_BATCH:
+                    engine.replay(batch)
+                    batch = []
+            else:
+                if batch:
+                    engine.replay(batch)
+                    batch = []
+                name, args = fields
+                try:
+                    engine.run_operation(str(name), dict(args))
+                except Exception as exc:          # refused then, refused again now: the same outcome
+                    log.info("replayed operation %s refused again: %s", name, exc)
+            engine.position = seq
+            report["replayed"] += 1
+        if batch:
+            engine.replay(batch)
+        if report["checkpoint"] is not None or report["replayed"]:
+            engine.flush_now()
+        return report
+
+    @staticmethod
+    def _load_engine(engine: Engine, meta: dict[str, Any]) -> None:
+        saved = meta["engine"]
+        engine.stats = EngineStats(**saved["stats"])
+        engine.updated_at = {str(k): float(v) for k, v in saved["updated_at"].items()}
+        if engine.alarms is not None and meta.get("alarms") is not None:
+            engine.alarms.load(meta["alarms"])
+        engine.load_feed_state(meta.get("feed") or {})
+
+    # ---------------------------------------------------------------- history
+    def note(self, entries: dict[str, ChannelEntry], now: float) -> None:
+        """A history row for each refreshed channel whose last one is ``history_step`` old (publish hook)."""
+        for cid, entry in entries.items():
+            view = entry.view
+            if view.applied == 0:
+                continue
+            t = view.last_t if view.last_t is not None else now
+            if t - self._history_last.get(cid, -math.inf) < self.history_step:
+                continue
+            self._history_last[cid] = t
+            body = {"parameters": _finite(view.parameters.tolist()), "std_errors": _finite(view.std_errors.tolist()),
+                    "noise_sigma": _finite(view.noise_sigma), "residual_sd": _finite(view.residual_sd),
+                    "quality": entry.quality, "samples": view.applied,
+                    "detectors": {k: _finite(r.statistic) for k, r in view.detectors.items()}}
+            self._history_rows.append((cid, t, body))
+        if len(self._history_rows) >= 10_000:          # between checkpoints, do not let it pile up
+            rows, self._history_rows = self._history_rows, []
+            self.store.save_history(rows)
+
+    # ---------------------------------------------------------------- journal
+    def journal(self, engine: Engine, after: int, limit: int, channel: str | None) -> list[dict[str, Any]]:
+        """Entries with seq > after: the store's, then those not yet in a checkpoint."""
+        found = self.store.journal(after, limit, channel) if after < self.persisted_seq else []
+        if len(found) < limit and engine.alarms is not None:
+            start = max([after, self.persisted_seq, *(e["seq"] for e in found)])
+            found += [e.to_dict() for e in engine.alarms.entries(start, limit - len(found), channel)]
+        return found
+
+
+def _finite(value: Any) -> Any:
+    if isinstance(value, list):
+        return [_finite(v) for v in value]
+    return value if isinstance(value, float) and math.isfinite(value) else (None if isinstance(value, float)
+                                                                           else value)
