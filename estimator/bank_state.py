@@ -61,33 +61,53 @@ def _shape(group: _Group) -> list[int]:
     return [group.bank.n_params, group.model.n_terms if group.model is not None else 0]
 
 
+_SOURCES = ("learned", "fit", "engineer")
+
+
 def export_state(bank: ChannelBank) -> tuple[Arrays, dict[str, object]]:
-    """Copies of every array (keys ``g<k>.<name>``) and the rest as JSON-able data."""
+    """Copies of every array (keys ``g<k>.<name>``) and the rest as JSON-able data.
+
+    Per-channel scalars and baselines are arrays too, so the JSON part stays small: channel ids,
+    refusal counts of the channels that have any, notes, and the lag buffers of ARX channels.
+    """
     arrays: Arrays = {}
     groups = []
     for g, group in enumerate(bank._groups):
         for name, array in _group_arrays(group).items():
             arrays[f"g{g}.{name}"] = np.array(array, copy=True)
-        baselines: list[dict[str, object]] = []
-        params, covs, betas = [], [], []
-        for lane in group.lanes:
-            for b in group.watch.histories[lane.index].versions:
-                baselines.append({"lane": lane.index, "version": b.version, "source": b.source,
-                                  "noise_sigma": b.noise_sigma, "t": b.t, "samples": b.samples, "note": b.note,
-                                  "model": b.noise_model is not None})
-                params.append(b.parameters)
-                covs.append(b.covariance)
-                betas.append(b.noise_model if b.noise_model is not None else np.full(_shape(group)[1], np.nan))
+        lanes = group.lanes
+        arrays[f"g{g}.lane.counts"] = np.array([[lane.counters.applied, lane.counters.warmup] for lane in lanes],
+                                               dtype=np.int64)
+        arrays[f"g{g}.lane.times"] = np.array([[_nan(lane.last_t), _nan(lane.last_tracked_t)] for lane in lanes])
+        arrays[f"g{g}.lane.seq"] = np.array([[0 if lane.last_seq is None else lane.last_seq,
+                                              lane.last_seq is not None] for lane in lanes], dtype=np.int64)
+        # Builders without lag history keep only a count and the last output: arrays; the others, JSON.
+        simple = [[b.accepted, b.last_output] for lane in lanes for b in lane.builders]
+        arrays[f"g{g}.lane.builders"] = np.array(simple, dtype=np.float64).reshape(len(simple), 2)
+        history = {str(i): [b.state() if b.keeps_history else None for b in lane.builders]
+                   for i, lane in enumerate(lanes) if any(b.keeps_history for b in lane.builders)}
+        rejected = {str(i): lane.counters.rejected for i, lane in enumerate(lanes) if lane.counters.rejected}
         n, m = _shape(group)
-        arrays[f"g{g}.baselines.parameters"] = np.array(params).reshape(len(params), n)
-        arrays[f"g{g}.baselines.covariance"] = np.array(covs).reshape(len(covs), n, n)
-        arrays[f"g{g}.baselines.model"] = np.array(betas).reshape(len(betas), m)
-        lanes = [{"channel": lane.channel, "applied": lane.counters.applied, "warmup": lane.counters.warmup,
-                  "rejected": dict(lane.counters.rejected), "last_t": lane.last_t, "last_seq": lane.last_seq,
-                  "last_tracked_t": lane.last_tracked_t,
-                  "builders": [b.state() for b in lane.builders]} for lane in group.lanes]
-        groups.append({"shape": _shape(group), "lanes": lanes, "baselines": baselines})
-    return arrays, {"format": 1, "groups": groups}
+        rows = [(lane.index, b) for lane in lanes for b in group.watch.histories[lane.index].versions]
+        arrays[f"g{g}.baselines.parameters"] = np.array([b.parameters for _, b in rows]).reshape(len(rows), n)
+        arrays[f"g{g}.baselines.covariance"] = np.array([b.covariance for _, b in rows]).reshape(len(rows), n, n)
+        arrays[f"g{g}.baselines.model"] = np.array(
+            [b.noise_model if b.noise_model is not None else np.full(m, np.nan) for _, b in rows]).reshape(len(rows), m)
+        arrays[f"g{g}.baselines.scalars"] = np.array(
+            [[lane, b.version, _SOURCES.index(b.source), b.noise_sigma, _nan(b.t), b.samples, b.noise_model is not None]
+             for lane, b in rows], dtype=np.float64).reshape(len(rows), 7)
+        notes = {str(k): b.note for k, (_, b) in enumerate(rows) if b.note}
+        groups.append({"shape": _shape(group), "channels": [lane.channel for lane in lanes],
+                       "rejected": rejected, "builders": history, "notes": notes})
+    return arrays, {"format": 2, "groups": groups}
+
+
+def _nan(value: float | None) -> float:
+    return np.nan if value is None else float(value)
+
+
+def _none(value: float) -> float | None:
+    return None if value != value else float(value)
 
 
 def import_state(bank: ChannelBank, arrays: Arrays, meta: dict[str, Any]) -> list[str]:
@@ -98,12 +118,12 @@ def import_state(bank: ChannelBank, arrays: Arrays, meta: dict[str, Any]) -> lis
     ValueError
         The saved state is not one this code wrote (unknown format, missing arrays).
     """
-    if meta.get("format") != 1:
+    if meta.get("format") != 2:
         raise ValueError(f"unknown bank state format {meta.get('format')!r}")
     saved: dict[str, tuple[int, int]] = {}
     for g, info in enumerate(meta["groups"]):
-        for i, lane in enumerate(info["lanes"]):
-            saved[lane["channel"]] = (g, i)
+        for i, channel in enumerate(info["channels"]):
+            saved[channel] = (g, i)
     fresh: list[str] = []
     for group in bank._groups:
         targets = _group_arrays(group)
@@ -133,23 +153,32 @@ def import_state(bank: ChannelBank, arrays: Arrays, meta: dict[str, Any]) -> lis
 
 
 def _restore_lanes(group: _Group, info: dict[str, Any], arrays: Arrays, g: int, to_lane: dict[int, int]) -> None:
+    counts, times, seqs = arrays[f"g{g}.lane.counts"], arrays[f"g{g}.lane.times"], arrays[f"g{g}.lane.seq"]
+    simple = arrays[f"g{g}.lane.builders"]
+    width = len(group.lanes[0].builders)              # the same for every lane of a group
     for saved_index, lane_index in to_lane.items():
-        record = info["lanes"][saved_index]
         lane = group.lanes[lane_index]
-        lane.counters.applied = int(record["applied"])
-        lane.counters.warmup = int(record["warmup"])
-        lane.counters.rejected = {str(k): int(v) for k, v in record["rejected"].items()}
-        lane.last_t, lane.last_seq, lane.last_tracked_t = record["last_t"], record["last_seq"], record["last_tracked_t"]
-        for builder, state in zip(lane.builders, record["builders"], strict=True):
-            builder.restore(state)
+        lane.counters.applied, lane.counters.warmup = (int(v) for v in counts[saved_index])
+        lane.counters.rejected = {str(k): int(v) for k, v in info["rejected"].get(str(saved_index), {}).items()}
+        lane.last_t, lane.last_tracked_t = (_none(float(v)) for v in times[saved_index])
+        lane.last_seq = int(seqs[saved_index, 0]) if seqs[saved_index, 1] else None
+        full = info["builders"].get(str(saved_index))
+        for k, builder in enumerate(lane.builders):
+            if full is not None and full[k] is not None:
+                builder.restore(full[k])
+            else:
+                accepted, last_output = simple[saved_index * width + k]
+                builder.restore_simple(int(accepted), _none(float(last_output)))
         group.watch.histories[lane_index].versions.clear()
     params = arrays[f"g{g}.baselines.parameters"]
     covs = arrays[f"g{g}.baselines.covariance"]
     betas = arrays[f"g{g}.baselines.model"]
-    for row, b in enumerate(info["baselines"]):
-        lane_index = to_lane.get(int(b["lane"]))
+    scalars = arrays[f"g{g}.baselines.scalars"]
+    for row in range(scalars.shape[0]):
+        lane, version, source, sigma, t, samples, has_model = scalars[row]
+        lane_index = to_lane.get(int(lane))
         if lane_index is None:
             continue
         group.watch.histories[lane_index].add(Baseline(
-            int(b["version"]), str(b["source"]), params[row], covs[row], float(b["noise_sigma"]),
-            betas[row] if b["model"] else None, b["t"], int(b["samples"]), str(b["note"])))
+            int(version), _SOURCES[int(source)], params[row], covs[row], float(sigma),
+            betas[row] if has_model else None, _none(float(t)), int(samples), info["notes"].get(str(row), "")))

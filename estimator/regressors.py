@@ -318,6 +318,20 @@ class RegressorBuilder:
         self._outputs.clear()
         self._accepted = 0
 
+    @property
+    def last_output(self) -> float | None:
+        """The last output pushed (None before the first)."""
+        return self._outputs[-1] if self._outputs else None
+
+    def restore_simple(self, accepted: int, last_output: float | None) -> None:
+        """Load the state of a builder that does not :attr:`keeps_history`: a count and the last output."""
+        if self.keeps_history:
+            raise ValueError("this builder keeps lag history: use restore")
+        self._accepted = accepted
+        self._outputs.clear()
+        if last_output is not None:
+            self._outputs.append(last_output)
+
     def state(self) -> dict[str, object]:
         """Lag buffers and count, as plain lists (for checkpoints)."""
         return {"accepted": self._accepted, "outputs": list(self._outputs),

@@ -44,6 +44,8 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from enum import StrEnum
 
+import numpy as np
+
 __all__ = ["ALARM_KINDS", "PRIORITIES", "Alarm", "AlarmBook", "AlarmRefused", "AlarmState", "Evidence",
            "JournalEntry", "replay"]
 
@@ -145,6 +147,14 @@ def _evidence_dict(evidence: Evidence) -> dict[str, object]:
             "onset": _finite(evidence.onset), "baseline": evidence.baseline, "t": _finite(evidence.t)}
 
 
+def _nan(value: float | None) -> float:
+    return math.nan if value is None else float(value)
+
+
+def _none(value: float) -> float | None:
+    return None if math.isnan(value) else value
+
+
 def _returning(alarm: Alarm) -> AlarmState:
     """Where an alarm goes when it leaves shelving, suppression or out-of-service."""
     if alarm.suppressed:
@@ -207,29 +217,43 @@ class AlarmBook:
         self._listeners.append(listener)
 
     # ------------------------------------------------------------ checkpoints
-    def export(self) -> dict[str, object]:
-        """Every alarm's state and the journal's sequence counter (the journal itself goes to the store)."""
-        return {"seq": self._seq,
-                "alarms": [{"id": a.id, "state": str(a.state), "active": a.active, "suppressed": a.suppressed,
-                            "shelved_until": a.shelved_until, "since": a.since,
-                            "evidence": [a.evidence.statistic, a.evidence.limit, a.evidence.onset,
-                                         a.evidence.baseline, a.evidence.t]}
-                           for a in self._alarms.values()]}
+    def export(self) -> tuple[dict[str, np.ndarray], dict[str, object]]:
+        """Every alarm's state as arrays (in book order) and the ids and sequence counter as JSON-able data.
 
-    def load(self, data: Mapping[str, object]) -> None:
+        The journal itself goes to the store.
+        """
+        alarms = list(self._alarms.values())
+        states = list(AlarmState)
+        flags = np.array([[states.index(a.state), a.active, a.suppressed] for a in alarms], dtype=np.int8)
+        numbers = np.array([[_nan(a.shelved_until), _nan(a.since), a.evidence.statistic, a.evidence.limit,
+                             _nan(a.evidence.onset), _nan(a.evidence.baseline), _nan(a.evidence.t)] for a in alarms],
+                           dtype=np.float64).reshape(len(alarms), 7)
+        channels = list(dict.fromkeys(a.channel for a in alarms))
+        grid = [f"{c}:{k}" for c in channels for k in ALARM_KINDS]
+        ids = [a.id for a in alarms]
+        # Every channel with every kind, in order (the usual book): the channel list says it all.
+        return ({"alarms.flags": flags, "alarms.numbers": numbers},
+                {"seq": self._seq, "channels": channels, "ids": None if ids == grid else ids})
+
+    def load(self, arrays: Mapping[str, np.ndarray], meta: Mapping[str, object]) -> None:
         """Take back what :meth:`export` gave (alarms no longer configured are left out)."""
-        self._seq = int(data["seq"])  # type: ignore[call-overload]
-        for saved in data["alarms"]:  # type: ignore[attr-defined]
-            alarm = self._alarms.get(saved["id"])
+        self._seq = int(meta["seq"])  # type: ignore[call-overload]
+        channels: list[str] = list(meta["channels"])  # type: ignore[call-overload]
+        explicit = meta.get("ids")
+        ids = [f"{c}:{k}" for c in channels for k in ALARM_KINDS] if explicit is None else list(explicit)  # type: ignore
+        states = list(AlarmState)
+        flags, numbers = arrays["alarms.flags"], arrays["alarms.numbers"]
+        for row, alarm_id in enumerate(ids):
+            alarm = self._alarms.get(alarm_id)
             if alarm is None:
                 continue
-            alarm.state = AlarmState(saved["state"])
-            alarm.active = bool(saved["active"])
-            alarm.suppressed = bool(saved["suppressed"])
-            alarm.shelved_until = saved["shelved_until"]
-            alarm.since = saved["since"]
-            statistic, limit, onset, baseline, t = saved["evidence"]
-            alarm.evidence = Evidence(statistic, limit, onset, baseline, t)
+            state, active, suppressed = (int(v) for v in flags[row])
+            shelved, since, statistic, limit, onset, baseline, t = (float(v) for v in numbers[row])
+            alarm.state = states[state]
+            alarm.active, alarm.suppressed = bool(active), bool(suppressed)
+            alarm.shelved_until, alarm.since = _none(shelved), _none(since)
+            alarm.evidence = Evidence(statistic, limit, _none(onset), None if baseline != baseline else int(baseline),
+                                      _none(t))
             self._views[alarm.id] = replace(alarm)
         self.journal.clear()
 
