@@ -19,6 +19,7 @@ therefore does not depend on how samples were split into batches, and
 
 from __future__ import annotations
 
+import math
 from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -95,6 +96,11 @@ class ChannelEvent:
         return self.notice.baseline if self.notice is not None else None
 
 
+def _time_key(event: ChannelEvent) -> float:
+    t = event.condition.t if event.condition is not None else event.notice.t if event.notice is not None else math.nan
+    return t if t == t else math.inf
+
+
 class ChannelBank:
     """Every configured channel, updated sample by sample, vectorised across channels.
 
@@ -116,6 +122,7 @@ class ChannelBank:
         self._groups = [_Group(members, tuning) for members in shapes.values()]
         self._lanes: dict[str, _Lane] = {lane.channel: lane for g in self._groups for lane in g.lanes}
         self.channel_ids: tuple[str, ...] = tuple(channels)
+        self._order = {cid: k for k, cid in enumerate(self.channel_ids)}
 
     def __contains__(self, channel: object) -> bool:
         return channel in self._lanes
@@ -132,6 +139,10 @@ class ChannelBank:
                 channel = group.lanes[item.index].channel
                 events.append(ChannelEvent(channel, condition=item) if isinstance(item, ConditionEvent)
                               else ChannelEvent(channel, notice=item))
+        # Groups keep their own lists: in sample time, then channel order, the order does not depend on
+        # how samples were split into micro-batches (each channel's own events stay in order: sort is stable).
+        order = self._order
+        events.sort(key=lambda e: (_time_key(e), order[e.channel]))
         return events
 
     def baseline_version(self, channel: str) -> int | None:

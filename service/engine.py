@@ -177,7 +177,7 @@ class Engine:
         self.bank = ChannelBank(channels)
         self.log = input_log
         self.acknowledge = acknowledge
-        self.position = input_log.last_seq if input_log is not None else 0   # last input-log seq applied
+        self.position = 0                                     # last input-log seq applied
         self.periodic: list[Callable[[], None]] = []         # run by the engine thread about once a second
         # Called with the refreshed entries after each snapshot (history).
         self.publish_hooks: list[Callable[[dict[str, ChannelEntry], float], None]] = []

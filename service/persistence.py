@@ -37,7 +37,7 @@ from estimator.bank_state import export_state, import_state
 from service.engine import EngineStats, Message
 from service.input_log import InputLog
 from service.snapshot import ChannelEntry
-from service.store import Store
+from service.store import KEEP_CHECKPOINTS, Store
 
 if TYPE_CHECKING:
     from service.engine import Engine
@@ -94,6 +94,7 @@ class Persistence:
         self.last_checkpoint_bytes = 0
         self.checkpoints = 0
         self._handed_seq = self.persisted_seq            # journal entries already in a checkpoint on its way
+        self._positions = sorted(c.position for c in store.checkpoints())[-KEEP_CHECKPOINTS:]
         self._writer: threading.Thread | None = None
         self._history_last: dict[str, float] = {}
         self._history_rows: list[tuple[str, float, dict[str, Any]]] = []
@@ -142,7 +143,10 @@ class Persistence:
             try:
                 body = encode_checkpoint(arrays, meta)
                 self.store.save(body, position, entries, rows)
-                self.log.discard_through(position)
+                # The log is kept from the older of the two kept checkpoints on: should the newest fail
+                # its checksum, the one before still has every record after it.
+                self._positions = [*self._positions, position][-KEEP_CHECKPOINTS:]
+                self.log.discard_through(self._positions[0])
             except Exception:
                 log.exception("checkpoint at input %d failed; the input log still holds everything", position)
                 self._handed_seq = self.persisted_seq          # hand the entries again next time

@@ -139,7 +139,7 @@ class Runtime:
                                   history_step=store_config.history_step,
                                   history_retention=store_config.history_retention_days * 86400.0)
         self.engine.log = input_log
-        self.engine.position = input_log.last_seq
+        self.engine.position = 0                      # no checkpoint: every record of the log applies
         self.recovery = persistence.recover(self.engine)
         log.info("recovered: checkpoint %s at input %s, %s inputs replayed, channels afresh: %s",
                  self.recovery["checkpoint"], self.recovery["position"], self.recovery["replayed"],
