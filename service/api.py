@@ -16,7 +16,7 @@ from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from typing import Any
 
-from fastapi import FastAPI, Request
+from fastapi import FastAPI, Query, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 from prometheus_client import CollectorRegistry, generate_latest
@@ -176,6 +176,18 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
         if entry is None:
             return not_found("unknown channel")
         return _detail(entry, channel_id, _alarms_by_channel(snap).get(channel_id, []))
+
+    @app.get("/api/v1/channels/{channel_id}/history", response_model=None,
+             summary="A channel's parameters, sigma and detector statistics over time (downsampled)")
+    def history(channel_id: str, since: float | None = Query(default=None, allow_inf_nan=False),
+                until: float | None = Query(default=None, allow_inf_nan=False),
+                limit: int = Query(default=1000, ge=1, le=100_000)) -> dict[str, object] | JSONResponse:
+        entry = runtime.engine.snapshot.channels.get(channel_id)
+        if entry is None:
+            return not_found("unknown channel")
+        rows = runtime.history(channel_id, since, until, limit)
+        return {"channel": channel_id, "terms": list(entry.view.terms), "step": runtime.config.store.history_step,
+                "rows": rows}
 
     @app.get("/api/v1/snapshot", summary="All channels, flat, in one call (for SCADA polling; ETag)",
              response_class=Response)

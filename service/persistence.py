@@ -242,6 +242,13 @@ class Persistence:
             rows, self._history_rows = self._history_rows, []
             self.store.save_history(rows)
 
+    def history(self, channel: str, since: float | None, until: float | None, limit: int) -> list[dict[str, Any]]:
+        """The newest ``limit`` rows of a channel in [since, until], oldest first: stored, then pending."""
+        pending = [{"t": t, **body} for cid, t, body in list(self._history_rows)      # a copy: the engine appends
+                   if cid == channel and (since is None or t >= since) and (until is None or t <= until)]
+        stored = self.store.history(channel, since, until, limit) if len(pending) < limit else []
+        return (stored + pending)[-limit:]
+
     # ---------------------------------------------------------------- journal
     def journal(self, engine: Engine, after: int, limit: int, channel: str | None) -> list[dict[str, Any]]:
         """Entries with seq > after: the store's, then those not yet in a checkpoint."""

@@ -175,6 +175,12 @@ class Runtime:
             return self.persistence.journal(self.engine, after, limit, channel)
         return [e.to_dict() for e in self.alarms.entries(after, limit, channel)]
 
+    def history(self, channel: str, since: float | None, until: float | None, limit: int) -> list[dict[str, object]]:
+        """A channel's downsampled history (``store.history_step``); empty when the service keeps no store."""
+        if self.persistence is None:
+            return []
+        return self.persistence.history(channel, since, until, limit)
+
     def _take_lock(self) -> None:
         directory = Path(self.config.store.path)
         directory.mkdir(parents=True, exist_ok=True)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import itertools
 import json
 import math
 import warnings
@@ -545,6 +546,37 @@ def test_full_queue_is_503_with_retry_after_and_nothing_is_lost(make_runtime: Ca
             runtime.stop()
     assert runtime.engine.stats.samples_applied == 2
     assert runtime.engine.snapshot.channels["temp"].view.applied == 2
+
+
+# ---------------------------------------------------------------- history
+def test_history_is_downsampled_filtered_and_survives_a_restart(tmp_path: Path) -> None:
+    config = parse_config({"channels": CHANNELS, "store": {"path": str(tmp_path / "h"), "history_step": 600.0}})
+    history = _history(seed=5, n=120)                  # samples 60 s apart: two hours
+    runtime = Runtime(config, mqtt=False)
+    with _test_client(create_app(runtime)) as client:
+        _post_history(client, history, batch=4)
+        _drain(runtime)
+        live = _strict_json(client.get("/api/v1/channels/flow/history").text)
+        assert client.get("/api/v1/channels/nope/history").status_code == 404
+        assert client.get("/api/v1/channels/flow/history", params={"limit": 0}).status_code == 422
+    rows = live["rows"]
+    assert (live["channel"], live["terms"], live["step"]) == ("flow", ["1", "u", "u^2"], 600.0)
+    times = [row["t"] for row in rows]
+    assert len(rows) >= 5 and times == sorted(times)
+    assert all(b - a >= 600.0 for a, b in itertools.pairwise(times))
+    assert {"parameters", "std_errors", "noise_sigma", "residual_sd", "quality", "samples", "detectors"} <= set(rows[0])
+    assert [row["samples"] for row in rows] == sorted(row["samples"] for row in rows)
+    assert rows[-1]["parameters"] == pytest.approx([1.0, 0.6, 0.4], abs=0.2)
+
+    again = Runtime(config, mqtt=False)                # rows come back from the store after a restart
+    with _test_client(create_app(again)) as client:
+        stored = _strict_json(client.get("/api/v1/channels/flow/history").text)["rows"]
+        assert stored == rows
+        middle = _strict_json(client.get("/api/v1/channels/flow/history",
+                                         params={"since": times[1], "until": times[3]}).text)["rows"]
+        assert [row["t"] for row in middle] == times[1:4]
+        newest = _strict_json(client.get("/api/v1/channels/flow/history", params={"limit": 2}).text)["rows"]
+        assert [row["t"] for row in newest] == times[-2:]
 
 
 # -------------------------------------------------------- health, metrics
