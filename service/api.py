@@ -16,7 +16,7 @@ from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from typing import Any
 
-from fastapi import FastAPI, Query, Request
+from fastapi import Depends, FastAPI, Query, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 from prometheus_client import CollectorRegistry, generate_latest
@@ -26,6 +26,8 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.alarms import PRIORITIES, Alarm
 from service.api_alarms import add_alarm_routes
+from service.api_guard import add_guards
+from service.auth import Access, Principal
 from service.payload import decode_payload
 from service.reports import channel_report, finite_or_null
 from service.runtime import Runtime
@@ -139,6 +141,10 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     registry.register(_EngineCollector(runtime))
     snapshot_cache: dict[str, object] = {"version": -1, "body": b""}
     max_payload = runtime.config.broker.max_payload_bytes
+    access = Access(runtime.config.auth)
+    read = [Depends(access.needs("read"))]
+    source = Depends(access.needs("ingest"))
+    add_guards(app, runtime.config.http, access, exempt=lambda path: path.endswith("/samples"))
 
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> JSONResponse:
@@ -163,13 +169,14 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
                 "<p><a href=/docs>API documentation</a> &middot; <a href=/api/v1/channels>channels</a>"
                 " &middot; <a href=/api/v1/snapshot>snapshot</a> &middot; <a href=/metrics>metrics</a></p>")
 
-    @app.get("/api/v1/channels", summary="Every channel with its quality and last update")
+    @app.get("/api/v1/channels", dependencies=read, summary="Every channel with its quality and last update")
     def channels() -> list[dict[str, object]]:
         snap = runtime.engine.snapshot
         alarms = _alarms_by_channel(snap)
         return [_summary(cid, entry, alarms.get(cid, [])) for cid, entry in snap.channels.items()]
 
-    @app.get("/api/v1/channels/{channel_id}", summary="One channel's full state", response_model=None)
+    @app.get("/api/v1/channels/{channel_id}", dependencies=read, summary="One channel's full state",
+             response_model=None)
     def channel(channel_id: str) -> dict[str, object] | JSONResponse:
         snap = runtime.engine.snapshot
         entry = snap.channels.get(channel_id)
@@ -177,7 +184,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             return not_found("unknown channel")
         return _detail(entry, channel_id, _alarms_by_channel(snap).get(channel_id, []))
 
-    @app.get("/api/v1/channels/{channel_id}/history", response_model=None,
+    @app.get("/api/v1/channels/{channel_id}/history", response_model=None, dependencies=read,
              summary="A channel's parameters, sigma and detector statistics over time (downsampled)")
     def history(channel_id: str, since: float | None = Query(default=None, allow_inf_nan=False),
                 until: float | None = Query(default=None, allow_inf_nan=False),
@@ -189,7 +196,8 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
         return {"channel": channel_id, "terms": list(entry.view.terms), "step": runtime.config.store.history_step,
                 "rows": rows}
 
-    @app.get("/api/v1/snapshot", summary="All channels, flat, in one call (for SCADA polling; ETag)",
+    @app.get("/api/v1/snapshot", dependencies=read,
+             summary="All channels, flat, in one call (for SCADA polling; ETag)",
              response_class=Response)
     def snapshot(request: Request) -> Response:
         snap = runtime.engine.snapshot
@@ -206,7 +214,8 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
 
     @app.post("/api/v1/channels/{channel_id}/samples", status_code=202, response_model=None,
               summary="Ingest samples over HTTP (the MQTT payload contract, same validation)")
-    async def post_samples(channel_id: str, request: Request) -> dict[str, object] | JSONResponse:
+    async def post_samples(channel_id: str, request: Request,
+                           _who: Principal = source) -> dict[str, object] | JSONResponse:
         if channel_id not in runtime.engine.bank:
             runtime.refuse_http("unknown_channel")
             return not_found("unknown channel")
@@ -243,9 +252,9 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
         state = runtime.readiness()
         return finite_or_null(state) if state["ready"] else JSONResponse(finite_or_null(state), 503)  # type: ignore
 
-    add_alarm_routes(app, runtime)
+    add_alarm_routes(app, runtime, access)
 
-    @app.get("/metrics", include_in_schema=False)
+    @app.get("/metrics", dependencies=read, include_in_schema=False)
     def metrics() -> Response:
         return Response(generate_latest(registry), media_type=PROMETHEUS_TEXT)
 

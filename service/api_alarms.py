@@ -16,12 +16,13 @@ import time
 from collections.abc import AsyncIterator
 from typing import Literal
 
-from fastapi import FastAPI, Query, Request
+from fastapi import Depends, FastAPI, Query, Request
 from fastapi.responses import JSONResponse, StreamingResponse
 from pydantic import BaseModel, ConfigDict, Field
 
 from estimator.baseline import Baseline
 from service.alarms import AlarmRefused
+from service.auth import Access, Principal
 from service.engine import EngineBusy
 from service.reports import finite_or_null
 from service.runtime import Runtime
@@ -32,7 +33,8 @@ __all__ = ["add_alarm_routes", "baseline_json"]
 class _Body(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
-    user: str = Field(min_length=1, max_length=128, description="who acts (kept in the journal)")
+    user: str | None = Field(default=None, min_length=1, max_length=128,
+                             description="who acts, when the token is shared (journal: '<user> via <token name>')")
     comment: str = Field(default="", max_length=2000)
 
 
@@ -72,14 +74,23 @@ def _busy(exc: EngineBusy) -> JSONResponse:
                         headers={"Retry-After": "1"})
 
 
-def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
-    """Register the alarm, baseline, reset and event-stream routes."""
-    book = runtime.alarms
+def _actor(who: Principal, body: _Body) -> str:
+    """The journal's ``user``: the token's holder, and the person behind a shared token when given."""
+    return who.name if body.user is None or body.user == who.name else f"{body.user} via {who.name}"
 
-    def alarm_action(op: str, alarm_id: str, body: _Body, **more: object) -> dict[str, object] | JSONResponse:
+
+def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
+    """Register the alarm, baseline, reset and event-stream routes (reads, operate and configure checks)."""
+    book = runtime.alarms
+    read = [Depends(access.needs("read"))]
+    operator = Depends(access.needs("operate"))
+    engineer = Depends(access.needs("configure"))
+
+    def alarm_action(op: str, alarm_id: str, body: _Body, who: Principal,
+                     **more: object) -> dict[str, object] | JSONResponse:
         if alarm_id not in book:
             return JSONResponse({"detail": "unknown_alarm", "message": f"no alarm {alarm_id!r}"}, status_code=404)
-        args = {"alarm": alarm_id, "user": body.user, "comment": body.comment, "time": time.time(), **more}
+        args = {"alarm": alarm_id, "user": _actor(who, body), "comment": body.comment, "time": time.time(), **more}
         try:
             entry = runtime.engine.operate(op, args)
         except AlarmRefused as exc:
@@ -88,7 +99,7 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
             return _busy(exc)
         return {"entry": entry, "alarm": book.get(alarm_id).to_dict()}
 
-    @app.get("/api/v1/alarms", summary="Alarms (by default those not Normal), filtered and paged")
+    @app.get("/api/v1/alarms", dependencies=read, summary="Alarms (by default those not Normal), filtered and paged")
     def alarms(channel: str | None = None, kind: str | None = None, state: str | None = None,
                priority: str | None = None, include_normal: bool = False,
                limit: int = Query(default=100, ge=1, le=10_000),
@@ -99,33 +110,38 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
                   and (state is None or str(a.state) == state) and (priority is None or a.priority == priority)]
         return {"total": len(chosen), "offset": offset, "alarms": [a.to_dict() for a in chosen[offset:offset + limit]]}
 
-    @app.get("/api/v1/alarms/journal", summary="Alarm transitions with seq > after, oldest first")
+    @app.get("/api/v1/alarms/journal", dependencies=read, summary="Alarm transitions with seq > after, oldest first")
     def journal(after: int = Query(default=0, ge=0), limit: int = Query(default=100, ge=1, le=10_000),
                 channel: str | None = None) -> dict[str, object]:
         entries = runtime.journal(after, limit, channel)
         return {"entries": entries, "next": entries[-1]["seq"] if entries else after}
 
     @app.post("/api/v1/alarms/{alarm_id}/ack", summary="Acknowledge an alarm", response_model=None)
-    def acknowledge(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
-        return alarm_action("acknowledge", alarm_id, body)
+    def acknowledge(alarm_id: str, body: AckBody,
+                    who: Principal = operator) -> dict[str, object] | JSONResponse:
+        return alarm_action("acknowledge", alarm_id, body, who)
 
     @app.post("/api/v1/alarms/{alarm_id}/shelve", summary="Shelve an alarm for some minutes", response_model=None)
-    def shelve(alarm_id: str, body: ShelveBody) -> dict[str, object] | JSONResponse:
-        return alarm_action("shelve", alarm_id, body, until=time.time() + 60.0 * body.minutes)
+    def shelve(alarm_id: str, body: ShelveBody, who: Principal = operator) -> dict[str, object] | JSONResponse:
+        return alarm_action("shelve", alarm_id, body, who, until=time.time() + 60.0 * body.minutes)
 
     @app.post("/api/v1/alarms/{alarm_id}/unshelve", summary="End an alarm's shelving", response_model=None)
-    def unshelve(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
-        return alarm_action("unshelve", alarm_id, body)
+    def unshelve(alarm_id: str, body: AckBody,
+                 who: Principal = operator) -> dict[str, object] | JSONResponse:
+        return alarm_action("unshelve", alarm_id, body, who)
 
     @app.post("/api/v1/alarms/{alarm_id}/remove", summary="Take an alarm out of service", response_model=None)
-    def remove(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
-        return alarm_action("remove", alarm_id, body)
+    def remove(alarm_id: str, body: AckBody,
+               who: Principal = operator) -> dict[str, object] | JSONResponse:
+        return alarm_action("remove", alarm_id, body, who)
 
     @app.post("/api/v1/alarms/{alarm_id}/restore", summary="Return an alarm to service", response_model=None)
-    def restore(alarm_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
-        return alarm_action("restore", alarm_id, body)
+    def restore(alarm_id: str, body: AckBody,
+                who: Principal = operator) -> dict[str, object] | JSONResponse:
+        return alarm_action("restore", alarm_id, body, who)
 
-    @app.get("/api/v1/channels/{channel_id}/baselines", summary="Every baseline of a channel, oldest first",
+    @app.get("/api/v1/channels/{channel_id}/baselines", dependencies=read,
+             summary="Every baseline of a channel, oldest first",
              response_model=None)
     def baselines(channel_id: str) -> dict[str, object] | JSONResponse:
         entry = runtime.engine.snapshot.channels.get(channel_id)
@@ -140,12 +156,14 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
 
     @app.post("/api/v1/channels/{channel_id}/baseline", response_model=None,
               summary="Learn a new baseline now from the estimates, or set one (a calibration)")
-    def set_baseline(channel_id: str, body: BaselineBody) -> dict[str, object] | JSONResponse:
+    def set_baseline(channel_id: str, body: BaselineBody,
+                     who: Principal = engineer) -> dict[str, object] | JSONResponse:
         entry = runtime.engine.snapshot.channels.get(channel_id)
         if entry is None:
             return JSONResponse({"detail": "unknown channel"}, status_code=404)
         terms = entry.view.terms
-        note = f"{body.user}: {body.comment}" if body.comment else body.user
+        actor = _actor(who, body)
+        note = f"{actor}: {body.comment}" if body.comment else actor
         args: dict[str, object] = {"channel": channel_id, "note": note}
         if body.action == "set":
             if body.parameters is None or body.noise_sigma is None or set(body.parameters) != set(terms):
@@ -168,17 +186,18 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime) -> None:
 
     @app.post("/api/v1/channels/{channel_id}/reset", response_model=None,
               summary="Start the channel's estimator afresh (commissioning again; history kept)")
-    def reset(channel_id: str, body: AckBody) -> dict[str, object] | JSONResponse:
+    def reset(channel_id: str, body: AckBody, who: Principal = engineer) -> dict[str, object] | JSONResponse:
         if channel_id not in runtime.engine.bank:
             return JSONResponse({"detail": "unknown channel"}, status_code=404)
 
         try:
-            runtime.engine.operate("reset", {"channel": channel_id, "user": body.user, "comment": body.comment})
+            runtime.engine.operate("reset", {"channel": channel_id, "user": _actor(who, body),
+                                             "comment": body.comment})
         except EngineBusy as exc:
             return _busy(exc)
-        return {"reset": channel_id, "by": body.user}
+        return {"reset": channel_id, "by": _actor(who, body)}
 
-    @app.get("/api/v1/events", summary="Live alarm transitions (Server-Sent Events)",
+    @app.get("/api/v1/events", dependencies=read, summary="Live alarm transitions (Server-Sent Events)",
              response_class=StreamingResponse)
     async def events(request: Request) -> StreamingResponse:
         hub = runtime.events

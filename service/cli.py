@@ -1,4 +1,5 @@
-"""The ``rwls`` command line: ``serve``, ``demo``, ``simulate``, offline ``replay`` and ``fit``, ``check-config``.
+"""The ``rwls`` command line: ``serve``, ``demo``, ``simulate``, offline ``replay`` and ``fit``, ``check-config``,
+``token``.
 
 Exit status: 0 done, 1 the data file cannot be used, 2 bad usage or configuration.
 Bad rows never fail a run; they are counted and listed with their line numbers.
@@ -13,6 +14,7 @@ import sys
 from collections.abc import Sequence
 
 from service.config import ConfigError, RwlsConfig, load_config
+from service.config_auth import ROLES, TokenConfig
 from service.csvdata import CsvError
 from service.replay import RunResult, fit_file, replay_file
 from service.tables import render_text
@@ -56,6 +58,10 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--rate", type=float, default=100.0, help="plant samples per second, all channels")
     demo.add_argument("--data-dir", default="rwls-demo-data")
     demo.add_argument("--exit-after", type=float, metavar="SECONDS", help="stop by itself (smoke tests)")
+
+    token = sub.add_parser("token", help="make an API token: prints it once, and the [[auth.tokens]] entry to add")
+    token.add_argument("--name", required=True, help="its holder, as the alarm journal will record it")
+    token.add_argument("--role", required=True, choices=list(ROLES), help="what it may do (see README, Access)")
 
     simulate = sub.add_parser("simulate", help="publish the demo plant (Larkspur Valley, substation 7) to a broker")
     simulate.add_argument("--broker", default="mqtt://127.0.0.1:1883", help="mqtt://host:port")
@@ -128,6 +134,24 @@ def _simulate(args: argparse.Namespace) -> int:
     return 0 if stats.refused == 0 and stats.acknowledged == stats.published else 1
 
 
+def _token(args: argparse.Namespace) -> int:
+    from pydantic import ValidationError
+
+    from service.auth import new_token, token_digest
+
+    token = new_token()
+    try:
+        entry = TokenConfig(name=args.name, role=args.role, sha256=token_digest(token))
+    except ValidationError as exc:
+        print(f"rwls token: --name {exc.errors()[0]['msg'].removeprefix('Value error, ')}", file=sys.stderr)
+        return 2
+    print(token)
+    print(f"# Give the token above to its holder; it is shown only now. Add to the settings file:\n"
+          f"[[auth.tokens]]\nname = {json.dumps(entry.name)}\nrole = {json.dumps(entry.role)}\n"
+          f"sha256 = {json.dumps(entry.sha256)}", file=sys.stderr)
+    return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``rwls`` console script; returns the exit status."""
     args = _parser().parse_args(argv)
@@ -161,6 +185,8 @@ def main(argv: Sequence[str] | None = None) -> int:
                 return 0
         if args.command == "simulate":
             return _simulate(args)
+        if args.command == "token":
+            return _token(args)
         config = _with_forgetting(load_config(args.config), args.forgetting_factor)
         run = replay_file if args.command == "replay" else fit_file
         result: RunResult = run(args.data, config, show_progress=False if args.no_progress else None)

@@ -44,6 +44,7 @@ from service.config_alarms import (
     check_alarm_kinds,
     default_priority,
 )
+from service.config_auth import AuthConfig
 from service.config_env import apply_environment
 from service.fleet_budget import BudgetThresholds, derive_thresholds
 
@@ -324,6 +325,22 @@ class HttpConfig(_StrictValues):
 
     host: str = Field(default="127.0.0.1", min_length=1)
     port: int = Field(default=8080, ge=0, le=65535, description="0 picks a free port")
+    cors_origins: tuple[str, ...] = Field(default=(), description="origins allowed cross-site (none: CORS off)")
+    max_body_bytes: int = Field(default=65536, ge=1024, le=16 * 1024 * 1024,
+                                description="request bodies above this are refused (samples: broker.max_payload_bytes)")
+
+    @field_validator("cors_origins", mode="before")
+    @classmethod
+    def _as_tuple(cls, value: object) -> object:
+        return tuple(value) if isinstance(value, list) else value
+
+    @field_validator("cors_origins")
+    @classmethod
+    def _origins(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        for origin in value:
+            if origin == "*" or not origin.startswith(("http://", "https://")) or origin.rstrip("/") != origin:
+                raise ValueError(f"each origin is scheme://host[:port] (no '*', no path), got {origin!r}")
+        return value
 
 
 class StoreConfig(_StrictValues):
@@ -376,6 +393,7 @@ class RwlsConfig(_Strict):
     store: StoreConfig = Field(default_factory=StoreConfig)
     engine: EngineConfig = Field(default_factory=EngineConfig)
     alarms: AlarmsConfig = Field(default_factory=AlarmsConfig)
+    auth: AuthConfig = Field(default_factory=AuthConfig)
 
     @model_validator(mode="after")
     def _budget(self) -> RwlsConfig:

@@ -17,6 +17,7 @@ import tomllib
 import uvicorn
 
 from service.api import ADVISORY, create_app
+from service.auth import new_token, token_digest
 from service.config import RwlsConfig, parse_config
 from service.embedded_broker import EmbeddedBroker
 from service.runtime import Runtime, exit_on_signal
@@ -57,11 +58,14 @@ noise = { half_life = 500, model_terms = ["1", "load"], initial_sigma = 0.1 }
 '''
 
 
-def demo_config(broker_url: str, data_dir: str) -> RwlsConfig:
-    """The demo channels against a broker URL, with the store in ``data_dir``."""
+def demo_config(broker_url: str, data_dir: str, engineer_token: str | None = None) -> RwlsConfig:
+    """The demo channels against a broker URL, with the store in ``data_dir`` (and one engineer token)."""
     data = tomllib.loads(DEMO_CHANNELS_TOML)
     data["broker"] = {"url": broker_url, "client_id": "rwls-demo"}
     data["store"] = {"path": data_dir}
+    if engineer_token is not None:
+        data["auth"] = {"tokens": [{"name": "demo-engineer", "role": "engineer",
+                                    "sha256": token_digest(engineer_token)}]}
     return parse_config(data)
 
 
@@ -77,7 +81,8 @@ def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, 
     """Run the demo until Ctrl-C (or ``exit_after`` seconds); returns the exit status."""
     broker = EmbeddedBroker()
     broker.start()
-    config = demo_config(broker.url, data_dir)
+    token = new_token()                       # a fresh one each run: writes always need a token
+    config = demo_config(broker.url, data_dir, token)
     runtime = Runtime(config)
     runtime.start()
     sock = _bind(host, port)
@@ -103,6 +108,7 @@ def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, 
     print(f"rwls demo: service at http://{host}:{actual_port}/ (API docs /docs, snapshot /api/v1/snapshot)",
           flush=True)
     print(f"rwls demo: embedded MQTT broker at {broker.url}; plant publishing {rate:g} samples/s", flush=True)
+    print(f"rwls demo: engineer token for this run (Authorization: Bearer ...): {token}", flush=True)
     print(f"rwls demo: {ADVISORY}", flush=True)
     plant.start()
     timer.start()

@@ -21,6 +21,7 @@ from service.api import create_app
 from service.config import parse_config
 from service.replay import replay_file
 from service.runtime import AlreadyRunning, Runtime
+from tests.auth_tokens import auth_section, bearer
 
 if TYPE_CHECKING:
     from fastapi.testclient import TestClient
@@ -45,13 +46,14 @@ IDENTITY_FIELDS = {"id", "quality", "quality_reason", "updated_at", "t"}
 
 
 # ----------------------------------------------------------------- helpers
-def _test_client(app: FastAPI, **kwargs: Any) -> TestClient:
+def _test_client(app: FastAPI, role: str = "source", **kwargs: Any) -> TestClient:
+    """A client whose requests carry the test token of ``role`` (source: reads and posts samples)."""
     # Starlette 1.x warns once, at import, that its TestClient prefers httpx2 over httpx; the test
     # extra pins httpx, so that one deprecation is silenced here and nowhere else.
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=r"Using `httpx` with `starlette\.testclient` is deprecated")
         from fastapi.testclient import TestClient
-    return TestClient(app, **kwargs)
+    return TestClient(app, headers=bearer(role), **kwargs)
 
 
 def _no_constant(name: str) -> object:
@@ -151,7 +153,8 @@ def make_runtime(tmp_path: Path) -> Callable[..., Runtime]:
         if "queue_size" in engine:
             engine.setdefault("max_batch", engine["queue_size"])
         config = parse_config({"channels": CHANNELS, "store": {"path": str(tmp_path / name)},
-                               "broker": {"max_payload_bytes": MAX_PAYLOAD}, "engine": engine})
+                               "broker": {"max_payload_bytes": MAX_PAYLOAD}, "engine": engine,
+                               "auth": auth_section()})
         return Runtime(config, mqtt=False)
 
     return make
@@ -437,7 +440,9 @@ def _raw_post(app: FastAPI, path: str, headers: list[tuple[bytes, bytes]], body:
 def test_content_length_that_is_no_plain_number_is_never_a_server_error(
         make_runtime: Callable[..., Runtime], declared: str, status: int) -> None:
     app = create_app(make_runtime(), manage_runtime=False)     # never started: an accepted body just queues
-    answer = _raw_post(app, "/api/v1/channels/temp/samples", [(b"content-length", declared.encode("latin-1"))],
+    token = bearer("source")["Authorization"].encode()
+    answer = _raw_post(app, "/api/v1/channels/temp/samples",
+                       [(b"authorization", token), (b"content-length", declared.encode("latin-1"))],
                        b'{"y": 1.0, "u": {"v": 2.0}}')
     assert answer[0] == status, answer
 
@@ -550,7 +555,8 @@ def test_full_queue_is_503_with_retry_after_and_nothing_is_lost(make_runtime: Ca
 
 # ---------------------------------------------------------------- history
 def test_history_is_downsampled_filtered_and_survives_a_restart(tmp_path: Path) -> None:
-    config = parse_config({"channels": CHANNELS, "store": {"path": str(tmp_path / "h"), "history_step": 600.0}})
+    config = parse_config({"channels": CHANNELS, "store": {"path": str(tmp_path / "h"), "history_step": 600.0},
+                           "auth": auth_section()})
     history = _history(seed=5, n=120)                  # samples 60 s apart: two hours
     runtime = Runtime(config, mqtt=False)
     with _test_client(create_app(runtime)) as client:
@@ -657,6 +663,7 @@ def test_openapi_lists_the_endpoints_and_docs_serve_html(served: tuple[Runtime, 
     spec = _strict_json(client.get("/openapi.json").text)
     assert spec["paths"].keys() == {
         "/api/v1/channels", "/api/v1/channels/{channel_id}", "/api/v1/channels/{channel_id}/samples",
+        "/api/v1/channels/{channel_id}/history",
         "/api/v1/snapshot", "/api/v1/health", "/api/v1/ready", "/api/v1/alarms", "/api/v1/alarms/journal",
         *(f"/api/v1/alarms/{{alarm_id}}/{action}" for action in ("ack", "shelve", "unshelve", "remove", "restore")),
         "/api/v1/channels/{channel_id}/baseline", "/api/v1/channels/{channel_id}/baselines",
