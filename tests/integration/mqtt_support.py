@@ -134,6 +134,23 @@ def wait_for_mqtt(host: str, port: int, timeout: float, alive: Any = None) -> bo
     return False
 
 
+def wait_for_port(host: str, port: int, timeout: float, alive: Any = None) -> bool:
+    """Until ``host:port`` accepts a TCP connection (a TLS listener, which a plain CONNECT cannot probe)."""
+    if host not in _LOOPBACK_NAMES:
+        raise ValueError(f"integration tests only talk to loopback, not {host!r}")
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            with socket.create_connection((host, port), timeout=0.5):
+                return True
+        except OSError:
+            pass
+        if alive is not None and not alive():
+            return False
+        time.sleep(0.05)
+    return False
+
+
 # ---------------------------------------------------------------------------------------------------------
 # brokers
 
@@ -192,6 +209,8 @@ class PrivateMosquitto:
         persistence: bool = True,
         max_queued_messages: int | None = 100_000,
         extra_config: Iterable[str] = (),
+        allow_anonymous: bool = True,
+        tls: bool = False,
         start_timeout: float = 10.0,
         stop_timeout: float = 10.0,
     ) -> None:
@@ -202,6 +221,8 @@ class PrivateMosquitto:
         self.persistence = persistence
         self.max_queued_messages = max_queued_messages
         self.extra_config = list(extra_config)
+        self.allow_anonymous = allow_anonymous
+        self.tls = tls              # the listener speaks TLS: readiness is a TCP accept, not a plain CONNECT
         self.start_timeout = start_timeout
         self.stop_timeout = stop_timeout
         self.config_path = self.workdir / "mosquitto.conf"
@@ -212,7 +233,7 @@ class PrivateMosquitto:
 
     @property
     def url(self) -> str:
-        return f"mqtt://{self.host}:{self.port}"
+        return f"{'mqtts' if self.tls else 'mqtt'}://{self.host}:{self.port}"
 
     @property
     def pid(self) -> int | None:
@@ -226,7 +247,7 @@ class PrivateMosquitto:
         lines = [
             "# written by tests/integration/mqtt_support.py",
             f"listener {self.port} {LOOPBACK}",
-            "allow_anonymous true",
+            f"allow_anonymous {'true' if self.allow_anonymous else 'false'}",
             "log_dest stderr",
             "log_type error",
             "log_type warning",
@@ -264,7 +285,8 @@ class PrivateMosquitto:
                 [self.binary, "-c", str(self.config_path)],
                 stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
             )
-        if not wait_for_mqtt(self.host, self.port, self.start_timeout, alive=lambda: self.running):
+        wait = wait_for_port if self.tls else wait_for_mqtt
+        if not wait(self.host, self.port, self.start_timeout, alive=lambda: self.running):
             rc = self._proc.poll()
             self._terminate(signal.SIGKILL)
             raise RuntimeError(
