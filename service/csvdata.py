@@ -4,6 +4,13 @@ Layout: a header row, then one sample per row. Columns: ``y`` (required), one
 column per input name, optional ``t`` (epoch seconds or ISO 8601; naive times
 are UTC), optional ``sigma`` or ``weight``, optional ``channel`` (required when
 the configuration has several channels). Other columns are ignored.
+
+Numbers are plain ASCII decimals as ``float`` reads them (``1.5``, ``-2e-3``,
+``nan``, ``inf``); digit separators (``1_000``) and non-ASCII digits, which
+``float`` would also take, are refused as ``bad_number``. Non-finite values
+parse, so the channel can refuse them with its own reason. A UTF-8 byte order
+mark is skipped; undecodable bytes become U+FFFD and so a bad number; a field
+longer than :data:`MAX_FIELD_CHARS` makes its row a ``bad_row``.
 """
 
 from __future__ import annotations
@@ -17,6 +24,8 @@ from pathlib import Path
 __all__ = ["BadRow", "CsvError", "CsvRow", "CsvSource", "parse_time"]
 
 RESERVED = ("t", "y", "sigma", "weight", "channel")
+REASONS = frozenset({"bad_row", "bad_number", "missing_value", "bad_time"})
+MAX_FIELD_CHARS = 1 << 20                # the csv module's limit, raised from its default 131,072
 
 
 class CsvError(Exception):
@@ -55,13 +64,19 @@ def parse_time(text: str) -> float:
     """
     text = text.strip()
     try:
-        return float(text)
+        return _float(text)
     except ValueError:
         pass
     stamp = datetime.fromisoformat(text)
     if stamp.tzinfo is None:
         stamp = stamp.replace(tzinfo=UTC)
     return stamp.timestamp()
+
+
+def _float(text: str) -> float:
+    if not text.isascii() or "_" in text:
+        raise ValueError(f"not a plain decimal number: {text[:40]!r}")
+    return float(text)
 
 
 class _CountingLines:
@@ -101,10 +116,15 @@ class CsvSource:
         self.progress_chars = 0
 
     def __iter__(self) -> Iterator[CsvRow | BadRow]:
-        with self.path.open("r", encoding="utf-8", errors="replace", newline="") as handle:
+        if csv.field_size_limit() < MAX_FIELD_CHARS:
+            csv.field_size_limit(MAX_FIELD_CHARS)
+        with self.path.open("r", encoding="utf-8-sig", errors="replace", newline="") as handle:
             counter = _CountingLines(handle)
             reader = csv.reader(counter)
-            header = next(reader, None)
+            try:
+                header = next(reader, None)
+            except csv.Error as exc:
+                raise CsvError(f"{self.path}: unreadable header row: {exc}") from None
             if header is None:
                 raise CsvError(f"{self.path}: empty file, expected a header row")
             columns = {name.strip(): i for i, name in enumerate(header)}
@@ -114,7 +134,15 @@ class CsvSource:
             if missing:
                 raise CsvError(f"{self.path}: header lacks column(s): {', '.join(missing)}")
             width = len(header)
-            for fields in reader:
+            while True:
+                try:
+                    fields = next(reader)
+                except StopIteration:
+                    break
+                except csv.Error as exc:      # a field beyond the limit: that row only
+                    self.progress_chars = counter.chars
+                    yield BadRow(reader.line_num, "bad_row", str(exc)[:200])
+                    continue
                 self.progress_chars = counter.chars
                 if not fields or (len(fields) == 1 and not fields[0].strip()):
                     continue
@@ -131,7 +159,7 @@ class CsvSource:
 
         def number(name: str) -> float | None:
             text = cell(name)
-            return float(text) if text else None
+            return _float(text) if text else None
 
         try:
             y = number("y")
@@ -143,13 +171,13 @@ class CsvSource:
             sigma = number("sigma")
             weight = number("weight")
         except ValueError as exc:
-            return BadRow(line, "bad_number", str(exc))
+            return BadRow(line, "bad_number", str(exc)[:200])
         if y is None:
             return BadRow(line, "missing_value", "y is empty")
         t_text = cell("t")
         try:
             t = parse_time(t_text) if t_text else None
-        except ValueError:
-            return BadRow(line, "bad_time", f"cannot read time {t_text!r}")
+        except (ValueError, OverflowError):
+            return BadRow(line, "bad_time", f"cannot read time {t_text[:40]!r}")
         channel = cell("channel") or None
         return CsvRow(line, channel, t, y, inputs, sigma, weight)

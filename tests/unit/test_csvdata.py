@@ -4,9 +4,14 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
-from service.csvdata import BadRow, CsvError, CsvRow, CsvSource, parse_time
+from service.config import parse_config
+from service.csvdata import REASONS, BadRow, CsvError, CsvRow, CsvSource, parse_time
+from service.replay import replay_file
 
 
 def _rows(tmp_path: Path, text: str, inputs: tuple[str, ...] = ("u",), need_channel: bool = False) -> list:
@@ -60,3 +65,115 @@ def test_iso_8601_and_epoch_times() -> None:
     assert parse_time(" 1767225600.25 ") == 1767225600.25
     with pytest.raises(ValueError):
         parse_time("yesterday")
+
+
+# ------------------------------------------------------------- hostile files
+HEADER = b"t,y,u,sigma,channel\n"
+_CONFIG = parse_config({"channels": {"a": {"terms": ["1", "u"]}, "b": {"terms": ["1", "u"], "weighting": "sample"}}})
+_FUZZ = settings(max_examples=150, deadline=None, derandomize=True, database=None,
+                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+_CELLS = st.sampled_from(["", "1", "-2.5e3", "nan", "NaN", "-inf", "Infinity", "1e400", "1e-400", "1_0", "\u0661",
+                          "0x10", "\x00", '"', '""', "\r", "\n", ",", "a", "b", "\ufeff", "2026-01-01T00:00:00Z",
+                          "9999-12-31T23:59:59-23:59", "\udcff", "1" * 400])
+
+
+def _read_all(path: Path) -> list[CsvRow | BadRow]:
+    """Every row of the file; CsvError is the one exception a file may raise as a whole."""
+    try:
+        return list(CsvSource(path, ("u",), True))
+    except CsvError:
+        return []
+
+
+def _check_rows(rows: list[CsvRow | BadRow]) -> None:
+    for row in rows:
+        assert isinstance(row, CsvRow | BadRow)
+        if isinstance(row, BadRow):
+            assert row.reason in REASONS and len(row.detail) <= 200
+        assert row.line >= 2
+
+
+@given(data=st.binary(max_size=400), header=st.booleans())
+@_FUZZ
+def test_fuzz_random_bytes_never_raise_and_every_bad_row_has_a_reason(tmp_path: Path, data: bytes,
+                                                                      header: bool) -> None:
+    path = tmp_path / "fuzz.csv"
+    path.write_bytes((HEADER if header else b"") + data)
+    _check_rows(_read_all(path))
+    try:
+        result = replay_file(path, _CONFIG, show_progress=False)
+    except CsvError:
+        return
+    assert result.rows >= result.bad_rows
+
+
+@given(rows=st.lists(st.lists(_CELLS, min_size=1, max_size=7), max_size=12))
+@_FUZZ
+def test_fuzz_csv_shaped_text_never_raises(tmp_path: Path, rows: list[list[str]]) -> None:
+    path = tmp_path / "fuzz.csv"
+    text = "\n".join(",".join(cells) for cells in rows)
+    path.write_bytes(HEADER + text.encode("utf-8", "surrogatepass"))
+    _check_rows(_read_all(path))
+    result = replay_file(path, _CONFIG, show_progress=False)
+    assert sum(r["samples"] + r["warmup"] for r in result.channels.values()) <= result.rows - result.bad_rows
+
+
+@pytest.mark.parametrize(("cell", "outcome"), [
+    ("nan", "non_finite"), ("NaN", "non_finite"), ("-nan", "non_finite"), ("+NAN", "non_finite"),
+    ("inf", "non_finite"), ("-Infinity", "non_finite"), ("INF", "non_finite"), ("1e400", "non_finite"),
+    ("-1e400", "non_finite"), ("1e-400", "applied"), ("1_000", "bad_number"), ("\u0661\u0662", "bad_number"),
+    ("0x10", "bad_number"), ("1.5.2", "bad_number"), ("\ufffd", "bad_number"), ("1" * 5000, "non_finite"),
+])
+def test_every_spelling_of_a_number_is_read_or_refused_with_a_reason(tmp_path: Path, cell: str,
+                                                                      outcome: str) -> None:
+    path = tmp_path / "numbers.csv"
+    rows = "".join(f"{k},{1.0 + k},{0.1 * k}\n" for k in range(1, 4))       # three good rows first
+    path.write_text(f"t,y,u\n{rows}4,{cell},1\n5,2,{cell}\n", encoding="utf-8")
+    config = parse_config({"channels": {"a": {"terms": ["1", "u"]}}})
+    result = replay_file(path, config, show_progress=False)
+    noted = [n["reason"] for n in result.listed_problems]
+    if outcome == "applied":
+        assert noted == [] and result.channels["a"]["samples"] + result.channels["a"]["warmup"] == 5
+    else:
+        assert noted == [outcome, outcome]
+
+
+def test_a_utf8_byte_order_mark_is_skipped(tmp_path: Path) -> None:
+    path = tmp_path / "bom.csv"
+    path.write_bytes(b"\xef\xbb\xbfy,u\n1,2\n")
+    assert list(CsvSource(path, ("u",), False)) == [CsvRow(2, None, None, 1.0, {"u": 2.0}, None, None)]
+
+
+def test_ten_megabyte_field_is_one_bad_row_and_the_rows_after_it_are_read(tmp_path: Path) -> None:
+    path = tmp_path / "huge.csv"
+    with path.open("wb") as handle:
+        handle.write(b"y,u\n1,2\n1," + b"7" * (10 * 1024 * 1024) + b"\n3,4\n")
+    rows = list(CsvSource(path, ("u",), False))
+    assert [type(r).__name__ for r in rows] == ["CsvRow", "BadRow", "CsvRow"]
+    assert rows[1].reason == "bad_row" and "field limit" in rows[1].detail     # type: ignore[union-attr]
+
+
+@pytest.mark.slow
+def test_ten_megabytes_of_mixed_rows_replay_with_every_bad_row_counted(tmp_path: Path) -> None:
+    rng = np.random.default_rng(3)
+    path = tmp_path / "mixed.csv"
+    good = bad = 0
+    with path.open("wb") as handle:
+        handle.write(b"t,y,u,note\n")
+        k = 0
+        while handle.tell() < 10 * 1024 * 1024:
+            k += 1
+            if k % 4 == 0:
+                garbage = bytes(rng.integers(32, 256, size=60, dtype=np.uint8)).replace(b"\"", b" ")
+                handle.write(garbage + b"\n")         # no quote: a quoted field would run on over lines
+                bad += 1
+            else:
+                u = float(rng.normal())
+                handle.write(f"{k},{1.0 + 0.5 * u!r},{u!r},padding-to-make-the-file-larger-{k}\n".encode())
+                good += 1
+    config = parse_config({"channels": {"a": {"terms": ["1", "u"]}}})
+    result = replay_file(path, config, show_progress=False)
+    assert result.rows == good + bad
+    channel = result.channels["a"]
+    assert channel["samples"] + channel["warmup"] == good      # every good row applied, whatever came between
+    assert channel["parameters"]["u"] == pytest.approx(0.5, abs=1e-9)
