@@ -92,6 +92,8 @@ class _EngineCollector(Collector):
                                   value=stats.samples_applied)
         yield CounterMetricFamily("rwls_samples_warmup", "Samples that only filled lag buffers",
                                   value=stats.samples_warmup)
+        yield CounterMetricFamily("rwls_redelivered", "Broker redeliveries of messages already logged (not applied)",
+                                  value=stats.redelivered)
         rejections = CounterMetricFamily("rwls_rejections", "Refused messages or samples", labels=["reason"])
         for reason, count in sorted(self._runtime.rejections().items()):
             rejections.add_metric([reason], count)

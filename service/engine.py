@@ -39,6 +39,7 @@ from service.input_log import InputLog
 from service.operations import OPERATIONS
 from service.payload import DecodedSample, Rejection, decode_payload
 from service.payload_columns import decode_columns
+from service.redelivery import RecentlyLogged
 from service.snapshot import ChannelEntry, FragmentWriter, Snapshot, channel_quality
 
 __all__ = ["Command", "DeadLetter", "Engine", "EngineBusy", "EngineStats", "Message"]
@@ -64,6 +65,7 @@ class Message:
     decoded: tuple[list[DecodedSample], list[Rejection]] | None = None
     ack: tuple[int, int] | None = None        # (connection, message id): acknowledge once in the synced log
     durable: threading.Event | None = None    # set once the message is in the synced log (HTTP waits on it)
+    redelivered: bool = False                 # the broker's DUP flag: it may have sent this one before
 
 
 @dataclass(frozen=True)
@@ -99,6 +101,7 @@ class EngineStats:
     last_batch_seconds: float = 0.0
     batch_seconds_total: float = 0.0
     dead_letter_failures: int = 0
+    redelivered: int = 0            # broker redeliveries of messages already logged: acknowledged, not applied
 
     def reject(self, reason: str) -> None:
         self.rejected[reason] = self.rejected.get(reason, 0) + 1
@@ -178,6 +181,7 @@ class Engine:
         self.log = input_log
         self.acknowledge = acknowledge
         self.position = 0                                     # last input-log seq applied
+        self.recently_logged = RecentlyLogged()                # MQTT messages logged lately (redeliveries)
         self.periodic: list[Callable[[], None]] = []         # run by the engine thread about once a second
         # Called with the refreshed entries after each snapshot (history).
         self.publish_hooks: list[Callable[[dict[str, ChannelEntry], float], None]] = []
@@ -443,14 +447,32 @@ class Engine:
             columns.append(sample.y, sample.inputs, sample.t, sample.sigma, sample.weight, sample.seq)
         return columns, _Origin(message, [sample.index for sample in decoded])
 
-    def _log_batch(self, batch: list[Message]) -> None:
+    def _skip_redelivered(self, batch: list[Message]) -> tuple[list[Message], list[tuple[int, int]]]:
+        """The messages to log and apply, and the acknowledgements of redeliveries already logged."""
+        if not any(m.redelivered for m in batch):
+            return batch, []
+        kept: list[Message] = []
+        acks: list[tuple[int, int]] = []
+        for m in batch:
+            if m.redelivered and m.topic is not None and (m.topic, m.payload) in self.recently_logged:
+                self.stats.redelivered += 1
+                if m.ack is not None:
+                    acks.append(m.ack)
+            else:
+                kept.append(m)
+        return kept, acks
+
+    def _log_batch(self, batch: list[Message], acks: list[tuple[int, int]]) -> None:
         """Into the input log, synced, before anything is applied; then acknowledge (MQTT) or release (HTTP)."""
         if self.log is None:
             return
         self.position = self.log.append([("m", (m.channel, m.payload, m.source, m.topic, m.received))
                                          for m in batch])
         self.log.sync()
-        acks = [m.ack for m in batch if m.ack is not None]
+        for m in batch:
+            if m.source == "mqtt" and m.topic is not None:
+                self.recently_logged.add(m.topic, m.payload)
+        acks = acks + [m.ack for m in batch if m.ack is not None]
         if acks and self.acknowledge is not None:
             try:
                 self.acknowledge(acks)
@@ -471,7 +493,8 @@ class Engine:
     def _process(self, batch: list[Message], logged: bool = False) -> None:
         started = time.perf_counter()
         if not logged:
-            self._log_batch(batch)
+            batch, redelivery_acks = self._skip_redelivered(batch) if self.log is not None else (batch, [])
+            self._log_batch(batch, redelivery_acks)
         columns: dict[str, SampleColumns] = {}
         origins: dict[str, _Origins] = {}      # where each channel's samples came from
         for message in batch:

@@ -236,7 +236,7 @@ class MqttIngest:
         # in its synced input log; a message of an older connection is not acknowledged (it is redelivered).
         ack = (self.connects, message.mid) if self.settings.manual_ack and message.qos > 0 else None
         self._submit(Message(self._topics.get(message.topic), bytes(message.payload), "mqtt", message.topic,
-                             ack=ack))
+                             ack=ack, redelivered=bool(message.dup)))
 
     def ack(self, acks: list[tuple[int, int]]) -> None:
         """Acknowledge QoS 1 messages of the current connection (those of an older one are redelivered)."""

@@ -1,7 +1,7 @@
 """MQTT ingest in a child process, so paho's per-message Python work does not share the engine's GIL.
 
 The child runs an ordinary :class:`MqttIngest` whose hand-over collects
-``(channel, payload, topic, received)`` into lists shipped over a bounded
+``(channel, payload, topic, received, ack, redelivered)`` into lists shipped over a bounded
 inter-process queue (blocking when full: the same back-pressure onto the broker
 as in-process; one pickle per list keeps the service's share of the work small).
 A reader thread in the service process moves those into the engine queue.
@@ -99,7 +99,8 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing:
     batcher = _Batcher(out)
 
     def hand_over(message: Message) -> bool:
-        batcher.add((message.channel, message.payload, message.topic, message.received, message.ack))
+        batcher.add((message.channel, message.payload, message.topic, message.received, message.ack,
+                     message.redelivered))
         return True
 
     ingest = MqttIngest(settings, topics, hand_over)
@@ -197,9 +198,9 @@ class ProcessIngest:
                 continue
             except (EOFError, OSError):
                 return
-            for channel, payload, topic, received, ack in items:
+            for channel, payload, topic, received, ack, redelivered in items:
                 self.received += 1
-                self._submit(Message(channel, payload, "mqtt", topic, received, ack=ack))
+                self._submit(Message(channel, payload, "mqtt", topic, received, ack=ack, redelivered=redelivered))
 
     def stop(self, timeout: float = 5.0) -> None:
         """Stop the child (its client disconnects), then let the reader hand over what is left."""

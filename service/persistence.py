@@ -113,7 +113,7 @@ class Persistence:
         meta = {"format": 1, "position": engine.position, "bank": bank_meta, "channels": list(channels),
                 "engine": {"stats": {"messages": stats.messages, "samples_applied": stats.samples_applied,
                                      "samples_warmup": stats.samples_warmup, "rejected": dict(stats.rejected),
-                                     "batches": stats.batches}},
+                                     "batches": stats.batches, "redelivered": stats.redelivered}},
                 "alarms": alarms_meta, "feed": engine.feed_state()}
         return arrays, meta
 
@@ -188,14 +188,22 @@ class Persistence:
             engine.position = checkpoint.position
             break
         batch: list[Message] = []
-        for seq, kind, fields in self.log.read_after(engine.position):
+        # The whole kept log is read: records up to the checkpoint only teach the engine what it logged
+        # lately (a broker may redeliver those, see service/redelivery.py); the rest are applied.
+        for seq, kind, fields in self.log.read_after(0):
             if kind == "m":
                 channel, payload, source, topic, received = fields
+                if source == "mqtt" and topic is not None:
+                    engine.recently_logged.add(str(topic), bytes(payload))
+                if seq <= engine.position:
+                    continue
                 batch.append(Message(channel, bytes(payload), str(source), topic, float(received)))
                 if len(batch) >= REPLAY_BATCH:
                     engine.replay(batch)
                     batch = []
             else:
+                if seq <= engine.position:
+                    continue
                 if batch:
                     engine.replay(batch)
                     batch = []
