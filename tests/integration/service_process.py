@@ -155,6 +155,14 @@ class ServiceProcess:
         except urllib.error.HTTPError as exc:
             return json.loads(exc.read())
 
+    def metric(self, name: str, timeout: float = 5.0) -> float:
+        """One unlabelled sample of ``/metrics`` (Prometheus text format); KeyError when it is not there."""
+        with urllib.request.urlopen(self.url + "/metrics", timeout=timeout) as response:
+            for line in response.read().decode().splitlines():
+                if line.startswith(name + " "):
+                    return float(line.split()[1])
+        raise KeyError(name)
+
     def rss_bytes(self) -> int:
         """Resident memory of the service and its ingest child (from /proc)."""
         pid = self.pid

@@ -19,11 +19,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.config import parse_config
-from service.engine import Message
-from service.persistence import decode_checkpoint
-from service.runtime import Runtime
-from service.store import Store, store_url
+from tests.integration.final_state import assert_same_state, final_state, uninterrupted_state
 from tests.integration.mqtt_support import publish_and_wait
 from tests.integration.service_process import ServiceProcess
 
@@ -39,7 +35,6 @@ CHANNELS: dict[str, dict[str, Any]] = {
             "detectors": {"commissioning_samples": 40}},
     "lab": {"terms": ["1", "u"], "weighting": "sample", "detectors": {"commissioning_samples": 40}},
 }
-WALL_CLOCK = {"engine.updated_at"}        # when messages arrived: the wall clock, not the inputs
 
 
 def _stream(prefix: str) -> list[tuple[str, str, bytes]]:
@@ -70,32 +65,6 @@ def _settings(prefix: str, broker_port: int, client: str, data: Path, url: str) 
                        "reconnect_max_delay": 1.0},
             "store": {"path": str(data), "url": url, "checkpoint_seconds": 1.0},
             "alarms": {"topic": f"{prefix}/alarms"}}
-
-
-def _final(data: Path, url: str) -> tuple[dict[str, np.ndarray], dict[str, Any], list[dict[str, Any]]]:
-    """The newest checkpoint's arrays and meta, and the whole journal, read from the store."""
-    store = Store(store_url(url or str(data)))
-    try:
-        newest = store.checkpoints()[0]
-        arrays, meta = decode_checkpoint(newest.body)
-        return arrays, meta, store.journal(0, 100_000)
-    finally:
-        store.close()
-
-
-def _uninterrupted(settings: dict[str, Any], data: Path,
-                   stream: list[tuple[str, str, bytes]]) -> tuple[dict[str, np.ndarray], dict[str, Any], list[Any]]:
-    """The same stream into a service that never stops (in-process, same arithmetic), then its final state."""
-    config = parse_config({**settings, "store": {"path": str(data)}})
-    runtime = Runtime(config, mqtt=False)
-    runtime.start()
-    try:
-        for cid, topic, payload in stream:
-            assert runtime.engine.submit(Message(cid, payload, "mqtt", topic), timeout=10.0)
-        assert runtime.engine.drain(60.0)
-    finally:
-        runtime.stop()
-    return _final(data, "")
 
 
 def _applied(service: ServiceProcess) -> int:
@@ -129,22 +98,6 @@ def _wait_progress(service: ServiceProcess, step: int, timeout: float = 60.0) ->
             return applied
         time.sleep(0.05)
     raise AssertionError(f"no progress past {since} in {timeout} s; log:\n{service.log_tail()}")
-
-
-def _compare(crashed: tuple[Any, Any, Any], whole: tuple[Any, Any, Any]) -> None:
-    arrays_a, meta_a, journal_a = crashed
-    arrays_b, meta_b, journal_b = whole
-    assert arrays_a.keys() == arrays_b.keys()
-    for key in sorted(arrays_a.keys() - WALL_CLOCK):
-        assert arrays_a[key].dtype == arrays_b[key].dtype, key
-        assert arrays_a[key].tobytes() == arrays_b[key].tobytes(), key
-    assert meta_a["bank"] == meta_b["bank"]            # lane counters, lag buffers, baselines
-    assert meta_a["alarms"] == meta_b["alarms"]
-    # The journal, entry for entry and once each; start-up suppression is stamped with the wall clock.
-    def strip(entries: list[dict[str, Any]]) -> list[dict[str, Any]]:
-        return [{k: v for k, v in e.items() if not (k == "time" and e["action"] == "suppress")} for e in entries]
-    assert strip(journal_a) == strip(journal_b)
-    assert any(e["action"] == "condition_on" for e in journal_a)
 
 
 @pytest.mark.parametrize("backend", ["sqlite", "postgresql"])
@@ -200,12 +153,12 @@ def test_kill_9_at_random_moments_then_restart_reaches_the_uninterrupted_state(
     replayed = [int(line.split(" inputs replayed")[0].rsplit(" ", 1)[1])
                 for line in service.log_path.read_text().splitlines() if " inputs replayed" in line]
     assert len(replayed) == KILLS + 1
-    crashed = _final(tmp_path / "data", url)
+    crashed = final_state(tmp_path / "data", url)
     stats = crashed[1]["engine"]["stats"]
     # How much each start took from the input log and how many DUP redeliveries it recognised depend on
     # where the kill fell relative to a checkpoint and an acknowledgement: printed, not asserted.
     print(f"\n{backend}: {len(stream)} messages, kills after {before_kill} applied; inputs replayed from the "
           f"log at each start {replayed}; broker redeliveries recognised {stats['redelivered']}")
     assert stats["rejected"] == {}, stats                    # no redelivery taken for a plant's repeat
-    whole = _uninterrupted(settings, tmp_path / "whole", stream)
-    _compare(crashed, whole)
+    assert_same_state(crashed, uninterrupted_state(settings, tmp_path / "whole", stream))
+    assert any(e["action"] == "condition_on" for e in crashed[2])      # the offset step was journaled
