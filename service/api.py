@@ -120,6 +120,8 @@ class _EngineCollector(Collector):
                                       value=ingest.reconnects)
             yield CounterMetricFamily("rwls_mqtt_callback_errors", "Exceptions caught in MQTT callbacks",
                                       value=ingest.callback_errors)
+            yield CounterMetricFamily("rwls_publish_failures", "Publishes (dead letters, alarms) the MQTT client "
+                                      "refused after waiting out a full queue", value=ingest.publish_failures)
 
 
 def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:

@@ -42,6 +42,10 @@ log = logging.getLogger(__name__)
 
 SESSION_EXPIRY_SECONDS = 7 * 24 * 3600     # keep the session (and its queued QoS 1 messages) a week
 MAX_OUTGOING_QUEUE = 10_000                # dead letters waiting for the broker, at most
+# While connected, a full outgoing queue is waited out this long (seconds) before a publish fails:
+# refusals arriving faster than the broker takes their dead letters slow the engine down (and so,
+# through the acknowledgements, the broker), rather than losing dead letters.
+PUBLISH_WAIT = 10.0
 
 
 @dataclass(frozen=True)
@@ -142,6 +146,7 @@ class MqttIngest:
         self.callback_errors = 0
         self.received = 0
         self.acknowledged = 0
+        self.publish_failures = 0               # publishes paho refused (after waiting out a full queue)
 
     # ---------------------------------------------------------------- status
     @property
@@ -250,20 +255,30 @@ class MqttIngest:
                 self.acknowledged += 1
 
     # ------------------------------------------------------------ publishing
-    def publish(self, topic: str, payload: bytes, *, retain: bool = False) -> None:
+    def publish(self, topic: str, payload: bytes, *, retain: bool = False, wait: float = PUBLISH_WAIT) -> None:
         """Publish at QoS 1 (call from the engine thread, never a callback); paho queues it while offline.
+
+        A full outgoing queue while connected is waited out for up to ``wait`` seconds (see
+        ``PUBLISH_WAIT``); offline, a full queue fails at once (the outage could last hours).
 
         Raises
         ------
         RuntimeError
-            paho refused the publish (outgoing queue full); the caller counts it.
+            paho refused the publish; the caller counts it.
         """
         client = self._client
         if client is None:
             raise RuntimeError("ingest not started")
-        info = client.publish(topic, payload, qos=1, retain=retain)
-        if info.rc not in (mqtt.MQTT_ERR_SUCCESS, mqtt.MQTT_ERR_NO_CONN):
-            raise RuntimeError(f"publish to {topic} refused: {mqtt.error_string(info.rc)}")
+        deadline = time.monotonic() + wait
+        while True:
+            info = client.publish(topic, payload, qos=1, retain=retain)
+            if info.rc in (mqtt.MQTT_ERR_SUCCESS, mqtt.MQTT_ERR_NO_CONN):
+                return
+            if (info.rc != mqtt.MQTT_ERR_QUEUE_SIZE or not self._connected.is_set()
+                    or time.monotonic() >= deadline):
+                self.publish_failures += 1
+                raise RuntimeError(f"publish to {topic} refused: {mqtt.error_string(info.rc)}")
+            time.sleep(0.002)                  # paho's network thread frees room as PUBACKs arrive
 
     def publish_dead_letter(self, letter: DeadLetter) -> None:
         """Publish a refusal to the dead-letter topic (see :meth:`publish`)."""

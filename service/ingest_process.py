@@ -26,7 +26,7 @@ from collections.abc import Callable, Mapping
 from typing import Any
 
 from service.engine import DeadLetter, Message
-from service.ingest import BrokerSettings, MqttIngest
+from service.ingest import PUBLISH_WAIT, BrokerSettings, MqttIngest
 
 __all__ = ["ProcessIngest"]
 
@@ -81,20 +81,20 @@ class _Batcher:
         self._thread.join(5.0)
 
 
-def _carry_out(ingest: MqttIngest, item: tuple[Any, ...]) -> None:
+def _carry_out(ingest: MqttIngest, item: tuple[Any, ...], wait: float = PUBLISH_WAIT) -> None:
     """One request from the service: ``("publish", topic, payload, retain)`` or ``("ack", acks)``."""
     try:
         if item[0] == "ack":
             ingest.ack(item[1])
         else:
             _, topic, payload, retain = item
-            ingest.publish(topic, payload, retain=retain)
-    except RuntimeError:
-        log.exception("request %s not carried out", item[0])
+            ingest.publish(topic, payload, retain=retain, wait=wait)
+    except RuntimeError as exc:                  # counted in ingest.publish_failures
+        log.error("request %s not carried out: %s", item[0], exc)
 
 
 def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing: Any, stop: Any,
-           connected: Any, reconnects: Any, errors: Any, protocol: Any, parent: int) -> None:
+           connected: Any, reconnects: Any, errors: Any, protocol: Any, failures: Any, parent: int) -> None:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s[ingest]: %(message)s")
     batcher = _Batcher(out)
 
@@ -111,6 +111,7 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing:
         connected.value = 1 if ingest.connected and ingest.alive() else 0
         reconnects.value = ingest.reconnects
         errors.value = ingest.callback_errors
+        failures.value = ingest.publish_failures
         try:
             item = outgoing.get(timeout=0.1)
         except queue.Empty:
@@ -123,7 +124,7 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing:
             item = outgoing.get(timeout=0.05)
         except queue.Empty:
             break
-        _carry_out(ingest, item)
+        _carry_out(ingest, item, wait=max(0.0, deadline - time.monotonic()))
     ingest.stop()
     batcher.close()
     out.cancel_join_thread()      # the service may have stopped reading: never hang at exit on the pipe
@@ -146,10 +147,11 @@ class ProcessIngest:
         self._reconnects = context.Value("q", 0)
         self._errors = context.Value("q", 0)
         self._protocol = context.Value("b", 0)
+        self._failures = context.Value("q", 0)
         self._process = context.Process(
             target=_child, name="rwls-ingest", daemon=True,
             args=(settings, self._topics, self._out, self._outgoing, self._stop, self._connected,
-                  self._reconnects, self._errors, self._protocol, os.getpid()))
+                  self._reconnects, self._errors, self._protocol, self._failures, os.getpid()))
         self._reader: threading.Thread | None = None
         self._stopping = threading.Event()
         self.received = 0
@@ -170,6 +172,11 @@ class ProcessIngest:
     @property
     def callback_errors(self) -> int:
         return int(self._errors.value)
+
+    @property
+    def publish_failures(self) -> int:
+        """Publishes the child's paho refused, after waiting out a full queue (those lost in the child)."""
+        return int(self._failures.value)
 
     def alive(self) -> bool:
         return self._process.is_alive() and self._reader is not None and self._reader.is_alive()
@@ -220,18 +227,23 @@ class ProcessIngest:
 
     # ------------------------------------------------------------ publishing
     def publish(self, topic: str, payload: bytes, *, retain: bool = False) -> None:
-        """Hand a message to the child for publishing at QoS 1 (RuntimeError when its queue is full)."""
-        try:
-            self._outgoing.put_nowait(("publish", topic, payload, retain))
-        except queue.Full:
-            raise RuntimeError("publish queue to the ingest process is full") from None
-        except ValueError:
-            raise RuntimeError("ingest process stopped") from None
+        """Hand a message to the child for publishing at QoS 1.
+
+        A full queue to the child is waited out for up to ``PUBLISH_WAIT`` seconds (back-pressure, as
+        in :meth:`MqttIngest.publish`); RuntimeError after that, or when the child is gone.
+        """
+        self._put(("publish", topic, payload, retain))
 
     def ack(self, acks: list[tuple[int, int]]) -> None:
-        """Have the child acknowledge these messages (RuntimeError when its queue is full)."""
+        """Have the child acknowledge these messages (waits like :meth:`publish`; RuntimeError after)."""
+        self._put(("ack", acks))
+
+    def _put(self, item: tuple[Any, ...]) -> None:
+        # Before the child starts (recovery publishes alarm states) the queue holds what it is given.
+        if self._process.pid is not None and not self._process.is_alive():
+            raise RuntimeError("ingest process stopped")
         try:
-            self._outgoing.put_nowait(("ack", acks))
+            self._outgoing.put(item, timeout=PUBLISH_WAIT)
         except queue.Full:
             raise RuntimeError("publish queue to the ingest process is full") from None
         except ValueError:

@@ -26,6 +26,7 @@ from service.engine import DeadLetter, Engine, Message
 from service.ingest import BrokerSettings, MqttIngest
 from service.ingest_process import ProcessIngest
 from service.input_log import InputLog
+from service.log_throttle import LogThrottle
 from service.notify import EventHub, MqttAlarms, WebhookSender
 from service.payload import DecodedSample, Rejection
 from service.persistence import Persistence
@@ -108,6 +109,7 @@ class Runtime:
         # under a lock, since handlers run on several threads.
         self._http_refusals: Counter[str] = Counter()
         self._http_refusals_lock = threading.Lock()
+        self._refusal_log = LogThrottle(log)            # a flood of bad input is counted, not logged line by line
 
     # ------------------------------------------------------------- lifecycle
     def start(self) -> None:
@@ -233,7 +235,8 @@ class Runtime:
             self.ingest.publish(topic, payload, retain=retain)
 
     def _dead_letter(self, letter: DeadLetter) -> None:
-        log.info("sample refused reason=%s channel=%s source=%s", letter.reason, letter.channel, letter.source)
+        self._refusal_log.log(f"refusals ({letter.reason})", "sample refused reason=%s channel=%s source=%s",
+                              letter.reason, letter.channel, letter.source)
         if self.ingest is not None:
             self.ingest.publish_dead_letter(letter)
 
