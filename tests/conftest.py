@@ -1,8 +1,9 @@
-"""Shared test factories: synthetic regression data and a bit-exact comparison of bank states."""
+"""Shared test factories: synthetic regression data, a bit-exact comparison of bank states, a PostgreSQL database."""
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import os
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, fields
 
 import numpy as np
@@ -56,3 +57,31 @@ def _assert_same_state(actual: BankState, expected: BankState) -> None:
 def assert_same_state() -> Callable[[BankState, BankState], None]:
     """Assert every array of two :class:`BankState` snapshots is identical bit for bit (dtype, shape, bytes)."""
     return _assert_same_state
+
+
+POSTGRES_ADMIN = os.environ.get("RWLS_TEST_POSTGRES", "postgresql://postgres@127.0.0.1:5432/test")
+
+
+@pytest.fixture
+def postgres_url() -> Iterator[str]:
+    """A fresh PostgreSQL database on 127.0.0.1 for one test (dropped afterwards); skipped without a server
+    unless ``CI=true``, where a missing server fails the test."""
+    import uuid
+
+    import psycopg
+
+    name = f"rwls_test_{uuid.uuid4().hex[:12]}"
+    try:
+        admin = psycopg.connect(POSTGRES_ADMIN, autocommit=True, connect_timeout=5)
+    except psycopg.OperationalError as exc:
+        if os.environ.get("CI", "").strip().lower() == "true":
+            raise
+        pytest.skip(f"no PostgreSQL at {POSTGRES_ADMIN}: {exc}")
+    with admin:
+        admin.execute(f'CREATE DATABASE "{name}"')
+    base = POSTGRES_ADMIN.rsplit("/", 1)[0]
+    try:
+        yield f"{base}/{name}"
+    finally:
+        with psycopg.connect(POSTGRES_ADMIN, autocommit=True, connect_timeout=5) as admin:
+            admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')

@@ -133,31 +133,3 @@ def unique_prefix() -> str:
 def client_id() -> Callable[[str], str]:
     """``client_id(name)`` -> a unique MQTT client id (at most 23 characters) starting with ``name``."""
     return unique_client_id
-
-
-POSTGRES_ADMIN = os.environ.get("RWLS_TEST_POSTGRES", "postgresql://postgres@127.0.0.1:5432/test")
-
-
-@pytest.fixture
-def postgres_url() -> Iterator[str]:
-    """A fresh PostgreSQL database on 127.0.0.1 for one test (dropped afterwards); skipped without a server
-    unless ``CI=true``, where a missing server fails the test."""
-    import uuid
-
-    import psycopg
-
-    name = f"rwls_test_{uuid.uuid4().hex[:12]}"
-    try:
-        admin = psycopg.connect(POSTGRES_ADMIN, autocommit=True, connect_timeout=5)
-    except psycopg.OperationalError as exc:
-        if _in_ci():
-            raise
-        pytest.skip(f"no PostgreSQL at {POSTGRES_ADMIN}: {exc}")
-    with admin:
-        admin.execute(f'CREATE DATABASE "{name}"')
-    base = POSTGRES_ADMIN.rsplit("/", 1)[0]
-    try:
-        yield f"{base}/{name}"
-    finally:
-        with psycopg.connect(POSTGRES_ADMIN, autocommit=True, connect_timeout=5) as admin:
-            admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')

@@ -155,12 +155,16 @@ class ServiceProcess:
         except urllib.error.HTTPError as exc:
             return json.loads(exc.read())
 
-    def metric(self, name: str, timeout: float = 5.0) -> float:
-        """One unlabelled sample of ``/metrics`` (Prometheus text format); KeyError when it is not there."""
+    def metrics_text(self, timeout: float = 5.0) -> str:
+        """``/metrics`` as the service serves it (Prometheus text format)."""
         with urllib.request.urlopen(self.url + "/metrics", timeout=timeout) as response:
-            for line in response.read().decode().splitlines():
-                if line.startswith(name + " "):
-                    return float(line.split()[1])
+            return str(response.read().decode())
+
+    def metric(self, name: str, timeout: float = 5.0) -> float:
+        """One unlabelled sample of ``/metrics``; KeyError when it is not there."""
+        for line in self.metrics_text(timeout).splitlines():
+            if line.startswith(name + " "):
+                return float(line.split()[1])
         raise KeyError(name)
 
     def rss_bytes(self) -> int:

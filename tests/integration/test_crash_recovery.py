@@ -82,7 +82,12 @@ def _wait_all_applied(service: ServiceProcess, expected: int, timeout: float) ->
         if _applied(service) >= expected:
             return
         time.sleep(0.1)
-    raise AssertionError(f"{_applied(service)} of {expected} applied after {timeout} s; log:\n{service.log_tail()}")
+    try:
+        metrics = "\n".join(line for line in service.metrics_text().splitlines() if line.startswith("rwls_"))
+    except OSError as exc:
+        metrics = f"(no metrics: {exc})"
+    raise AssertionError(f"{_applied(service)} of {expected} applied after {timeout} s; metrics:\n{metrics}\n"
+                         f"log:\n{service.log_tail(200)}")
 
 
 def _wait_progress(service: ServiceProcess, step: int, timeout: float = 60.0) -> int:

@@ -130,7 +130,9 @@ def test_garbage_flood_leaves_the_clean_state_counts_every_refusal_and_stays_bou
         while _applied(service) < len(good) and time.monotonic() < deadline:
             time.sleep(0.1)
         elapsed = time.monotonic() - started
-        dead_letter_failures = service.metric("rwls_dead_letter_failures_total")
+        dead_letter_failures = (service.metric("rwls_dead_letter_failures_total")
+                                + service.metric("rwls_publish_failures_total"))
+        log_lines = len(service.log_path.read_text(errors="replace").splitlines())
         assert service.stop() == 143, service.log_tail()
     finally:
         service.kill()
@@ -142,10 +144,12 @@ def test_garbage_flood_leaves_the_clean_state_counts_every_refusal_and_stays_bou
     print(f"\n{len(published)} messages ({GARBAGE} garbage) in {elapsed:.1f} s "
           f"({len(published) / elapsed:,.0f}/s end to end); refused {sum(stats['rejected'].values())}, "
           f"dead letters {len(letters)} (failed {dead_letter_failures:.0f}); service RSS MiB at each {CHUNK}: "
-          f"{[round(r / 2**20) for r in rss]}; growth over the second half {growth / 2**20:.1f} MiB")
+          f"{[round(r / 2**20) for r in rss]}; growth over the second half {growth / 2**20:.1f} MiB; "
+          f"{log_lines} log lines")
     assert stats["rejected"] == dict(expected)              # each kind refused for its reason, each counted
     assert stats["samples_applied"] + stats["samples_warmup"] == len(good)
     assert dead_letter_failures == 0
+    assert log_lines < 1_000                                # refusals are counted, not logged one by one
     assert len(letters) == GARBAGE                          # every refusal dead-lettered once ...
     reasons = Counter(json.loads(m.payload)["reason"] for m in letters)
     assert reasons == expected                              # ... with its reason
