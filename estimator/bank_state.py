@@ -78,7 +78,10 @@ def export_state(bank: ChannelBank) -> tuple[Arrays, dict[str, object]]:
         lanes = group.lanes
         arrays[f"g{g}.lane.counts"] = np.array([[lane.counters.applied, lane.counters.warmup] for lane in lanes],
                                                dtype=np.int64)
-        arrays[f"g{g}.lane.times"] = np.array([[_nan(lane.last_t), _nan(lane.last_tracked_t)] for lane in lanes])
+        nan = np.nan          # inline None -> NaN: this runs on the engine thread for every lane at a checkpoint
+        arrays[f"g{g}.lane.times"] = np.array(
+            [(nan if lane.last_t is None else lane.last_t, nan if lane.last_tracked_t is None else lane.last_tracked_t)
+             for lane in lanes], dtype=np.float64).reshape(len(lanes), 2)
         arrays[f"g{g}.lane.seq"] = np.array([[0 if lane.last_seq is None else lane.last_seq,
                                               lane.last_seq is not None] for lane in lanes], dtype=np.int64)
         # Builders without lag history keep only a count and the last output: arrays; the others, JSON.

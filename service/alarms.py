@@ -66,6 +66,7 @@ class AlarmState(StrEnum):
 _IN_SERVICE = frozenset({AlarmState.NORMAL, AlarmState.UNACKNOWLEDGED, AlarmState.ACKNOWLEDGED,
                          AlarmState.RETURNED_UNACKNOWLEDGED})
 _SET_ASIDE = frozenset({AlarmState.SHELVED, AlarmState.SUPPRESSED, AlarmState.OUT_OF_SERVICE})
+_STATE_INDEX = {state: k for k, state in enumerate(AlarmState)}      # a checkpoint's code for each state
 
 
 class AlarmRefused(Exception):
@@ -147,10 +148,6 @@ def _evidence_dict(evidence: Evidence) -> dict[str, object]:
             "onset": _finite(evidence.onset), "baseline": evidence.baseline, "t": _finite(evidence.t)}
 
 
-def _nan(value: float | None) -> float:
-    return math.nan if value is None else float(value)
-
-
 def _none(value: float) -> float | None:
     return None if math.isnan(value) else value
 
@@ -223,11 +220,15 @@ class AlarmBook:
         The journal itself goes to the store.
         """
         alarms = list(self._alarms.values())
-        states = list(AlarmState)
-        flags = np.array([[states.index(a.state), a.active, a.suppressed] for a in alarms], dtype=np.int8)
-        numbers = np.array([[_nan(a.shelved_until), _nan(a.since), a.evidence.statistic, a.evidence.limit,
-                             _nan(a.evidence.onset), _nan(a.evidence.baseline), _nan(a.evidence.t)] for a in alarms],
-                           dtype=np.float64).reshape(len(alarms), 7)
+        state_index = _STATE_INDEX
+        flags = np.array([(state_index[a.state], a.active, a.suppressed) for a in alarms],
+                         dtype=np.int8).reshape(len(alarms), 3)
+        # Inline None -> NaN: this runs on the engine thread for every alarm at each checkpoint.
+        nan = math.nan
+        numbers = np.array([(nan if a.shelved_until is None else a.shelved_until, nan if a.since is None else a.since,
+                             e.statistic, e.limit, nan if e.onset is None else e.onset,
+                             nan if e.baseline is None else e.baseline, nan if e.t is None else e.t)
+                            for a in alarms for e in (a.evidence,)], dtype=np.float64).reshape(len(alarms), 7)
         channels = list(dict.fromkeys(a.channel for a in alarms))
         grid = [f"{c}:{k}" for c in channels for k in ALARM_KINDS]
         ids = [a.id for a in alarms]
