@@ -122,7 +122,7 @@ class Persistence:
 
         The state is copied and the input log starts a new segment here; encoding and the store's
         transaction run on a writer thread unless ``wait`` (at stop), so the engine pauses only for
-        the copy (about 16 ms per 1,000 channels with their alarms, measured in tests/benchmarks/test_checkpoint_cost.py).
+        the copy (about 16 ms per 1,000 channels with their alarms; tests/benchmarks/test_checkpoint_cost.py).
         """
         if self._writer is not None and self._writer.is_alive():
             if not wait:
