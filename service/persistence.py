@@ -78,7 +78,7 @@ class Persistence:
     ----------
     checkpoint_seconds : a checkpoint at most this often (the engine's periodic job), and at stop
     history_step : a history row per channel at most every this many seconds (sample time, else wall)
-    history_retention : rows older than this (seconds) are deleted
+    history_retention : rows older than this (seconds) before the newest row are deleted
     """
 
     def __init__(self, store: Store, input_log: InputLog, *, checkpoint_seconds: float = 30.0,
@@ -168,9 +168,12 @@ class Persistence:
         now = time.time()
         if self.last_checkpoint_at is None or now - self.last_checkpoint_at >= self.checkpoint_seconds:
             self.checkpoint(engine, wait=False)
-        if now - self._last_prune > 600.0:
+        newest = max(self._history_last.values(), default=None)
+        if newest is not None and now - self._last_prune > 600.0:
+            # Retention counts in the rows' own time (sample time): a replayed or compressed-time plant
+            # keeps its last history_retention of history, whatever the wall clock says.
             self._last_prune = now
-            self.store.prune_history(now - self.history_retention)
+            self.store.prune_history(newest - self.history_retention)
 
     # --------------------------------------------------------------- recovery
     def recover(self, engine: Engine) -> dict[str, Any]:
@@ -244,7 +247,9 @@ class Persistence:
             body = {"parameters": _finite(view.parameters.tolist()), "std_errors": _finite(view.std_errors.tolist()),
                     "noise_sigma": _finite(view.noise_sigma), "residual_sd": _finite(view.residual_sd),
                     "quality": entry.quality, "samples": view.applied,
-                    "detectors": {k: _finite(r.statistic) for k, r in view.detectors.items()}}
+                    "detectors": {k: _finite(r.statistic) for k, r in view.detectors.items()},
+                    "limits": {k: _finite(r.limit) for k, r in view.detectors.items()},
+                    "residual": _finite(view.last_innovation), "residual_spread": _finite(view.last_spread)}
             self._history_rows.append((cid, t, body))
         if len(self._history_rows) >= 10_000:          # between checkpoints, do not let it pile up
             rows, self._history_rows = self._history_rows, []

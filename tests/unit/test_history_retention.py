@@ -1,0 +1,53 @@
+"""History retention counts in sample time: old-dated data (a replay, a plant clock in the past) keeps its rows."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+from service.config import parse_config
+from service.engine import Message
+from service.runtime import Runtime
+
+T0 = 1_704_067_200.0          # 2024-01-01: long before the wall clock of any test run
+DAY = 86400.0
+
+
+def _runtime(data: Path) -> Runtime:
+    config = parse_config({"channels": {"a": {"topic": "t/a", "terms": ["1", "u"]}},
+                           "store": {"path": str(data), "history_step": 3600.0, "history_retention_days": 2.0}})
+    return Runtime(config, mqtt=False)
+
+
+def _feed(runtime: Runtime, start: int, days: float) -> int:
+    k = start
+    for hour in range(int(days * 24)):
+        body = {"t": T0 + hour * 3600.0 + start * 3600.0, "y": 1.0 + 0.5 * (k % 5) + 0.01 * (k % 3), "u": {"u": k % 5},
+                "seq": k}
+        assert runtime.engine.submit(Message("a", json.dumps(body).encode(), "mqtt", "t/a"), timeout=5.0)
+        assert runtime.engine.drain(5.0)           # one batch per sample: one history row per hour
+        k += 1
+    return k
+
+
+def test_rows_dated_long_before_the_wall_clock_are_kept_and_only_those_past_retention_go(tmp_path: Path) -> None:
+    runtime = _runtime(tmp_path)
+    runtime.start()
+    try:
+        persistence = runtime.persistence
+        assert persistence is not None
+        k = _feed(runtime, 0, 1.0)                                      # one day of hourly rows
+        runtime.engine.command(lambda engine: persistence.periodic(engine))
+        runtime.engine.command(lambda engine: persistence.checkpoint(engine))
+        first_day = runtime.history("a", None, None, 10_000)
+        assert len(first_day) == 24                                     # nothing pruned: within 2 days of the newest
+        persistence._last_prune = 0.0                                   # the next periodic job prunes again
+        _feed(runtime, k, 3.0)                                          # three more days
+        runtime.engine.command(lambda engine: persistence.checkpoint(engine))
+        runtime.engine.command(lambda engine: persistence.periodic(engine))
+        rows = runtime.history("a", None, None, 10_000)
+    finally:
+        runtime.stop()
+    newest = max(r["t"] for r in rows)
+    assert min(r["t"] for r in rows) >= newest - 2.0 * DAY             # older than retention: gone
+    assert len(rows) >= 2 * 24                                          # the last two days: kept
