@@ -31,6 +31,8 @@ Arrays = dict[str, NDArray[Any]]
 
 # Arrays whose channel axis is the last one (the factors, structure of arrays); the others have it first.
 _CHANNEL_LAST = ("bank.A", "model.A")
+# Arrays a state saved by an earlier version may lack: they keep their fresh value (display only).
+_ADDED_LATER = frozenset({"watch.last_innovation", "watch.last_spread"})
 
 
 def _group_arrays(group: _Group) -> Arrays:
@@ -41,6 +43,7 @@ def _group_arrays(group: _Group) -> Arrays:
         "watch.commissioned": watch.commissioned, "watch.square_sum": watch._square_sum,
         "watch.square_count": watch._square_count, "watch.ratio_sum": watch._ratio_sum,
         "watch.ratio_count": watch._ratio_count, "watch.judged": watch._judged,
+        "watch.last_innovation": watch.last_innovation, "watch.last_spread": watch.last_spread,
         "det.has_baseline": det.has_baseline, "det.sigma_ref": det._sigma_ref, "det.theta_ref": det._theta_ref,
         "det.cov_ref": det._cov_ref, "det.state": det._state, "det.since_drift": det._since_drift,
         "det.active": det._active.T, "det.conditions": det._conditions.transpose(1, 0, 2),
@@ -144,6 +147,8 @@ def import_state(bank: ChannelBank, arrays: Arrays, meta: dict[str, Any]) -> lis
             for name, target in targets.items():
                 key = f"g{g}.{name}"
                 if key not in arrays:
+                    if name in _ADDED_LATER:
+                        continue
                     raise ValueError(f"saved state lacks {key}")
                 source = arrays[key]
                 if name in _CHANNEL_LAST:

@@ -72,6 +72,8 @@ class ChannelView:
     baseline: Baseline | None = None
     detectors: Mapping[str, DetectorReading] = field(default_factory=dict)
     commissioned: int = 0                 # samples applied since the start or the last reset
+    last_innovation: float = math.nan     # the newest applied sample's innovation (prediction error)
+    last_spread: float = math.nan         # its predicted standard deviation, sqrt(sigma^2 (1 + kappa z^T P z))
 
 
 class DetectorReading(NamedTuple):
@@ -306,5 +308,6 @@ class ChannelBank:
                     applied=lane.counters.applied, warmup=lane.counters.warmup,
                     rejected=dict(lane.counters.rejected), last_t=lane.last_t, settings=lane.settings,
                     baseline=baseline, commissioned=int(watch.commissioned[i]),
-                    detectors=dict(zip(KINDS, map(DetectorReading, *readings[k]), strict=True)))
+                    detectors=dict(zip(KINDS, map(DetectorReading, *readings[k]), strict=True)),
+                    last_innovation=float(watch.last_innovation[i]), last_spread=float(watch.last_spread[i]))
         return {c: views[c] for c in wanted}

@@ -87,6 +87,10 @@ class GroupWatch:
         if model is not None:
             self.detectors.expect_model(model.n_terms)
         self._judged = np.ones(len(settings), dtype=bool)             # could the drift test judge, last check
+        # The last applied sample's innovation (before its update) and the standard deviation predicted
+        # for it, sqrt(sigma^2 (1 + kappa z^T P z)): what a trend of residuals shows.
+        self.last_innovation = np.full(len(settings), np.nan)
+        self.last_spread = np.full(len(settings), np.nan)
 
     # ------------------------------------------------------------------ rounds
     def after_round(self, idx: IndexArray, t: FloatArray, e: FloatArray, h: FloatArray, kappa: FloatArray,
@@ -111,6 +115,11 @@ class GroupWatch:
                 self._ratio_sum[chosen] += np.where(usable, ratio, 0.0)
                 self._ratio_count[chosen] += usable
         v_ref = np.where(np.isnan(declared), self.detectors.reference_variance(idx, z_op), declared)
+        self.last_innovation[idx] = e
+        # Its spread at the noise of the moment: declared, else tracked (NaN while the tracker warms up).
+        v_now = np.where(np.isnan(declared), self.tracker.variance_of(idx), declared)
+        with np.errstate(invalid="ignore", over="ignore"):
+            self.last_spread[idx] = np.sqrt(v_now * (1.0 + kappa * h))
         due = self.detectors.step(idx, t, e, h, kappa, v_ref)
         if due.any():
             checked = idx[due]
@@ -205,6 +214,8 @@ class GroupWatch:
         if self._candidate is not None:
             self._candidate[channel] = np.nan
         self._judged[channel] = True
+        self.last_innovation[channel] = np.nan
+        self.last_spread[channel] = np.nan
         self._events.append(WatchNotice(channel, "restart", math.nan if t is None else t))
 
     def take(self) -> list[ConditionEvent | WatchNotice]:
