@@ -259,6 +259,10 @@ class Engine:
     def _on_transition(self, entry: JournalEntry, alarm: Alarm) -> None:
         self._alarms_changed = True
 
+    def alarms_reloaded(self) -> None:
+        """The alarm book was loaded from a checkpoint: the next snapshot carries its alarms, not the old ones."""
+        self._alarms_changed = True
+
     def feed_state(self) -> dict[str, object]:
         """What the alarm feed remembers (for checkpoints)."""
         if self._feed is None:

@@ -231,6 +231,7 @@ class Persistence:
                                                           strict=True) if c in known and t == t}
         if engine.alarms is not None and meta.get("alarms") is not None:
             engine.alarms.load(arrays, meta["alarms"])
+            engine.alarms_reloaded()
         engine.load_feed_state(meta.get("feed") or {})
 
     # ---------------------------------------------------------------- history
