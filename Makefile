@@ -20,9 +20,10 @@ demo: $(STAMP)
 replay-demo: $(STAMP)
 	$(VENV)/bin/rwls replay examples/larkspur_sub7.csv --config examples/larkspur_sub7.toml
 
-## test: every test layer (unit, property, reference, long runs, integration against MQTT on 127.0.0.1)
+## test: every test layer (unit, property, reference, long runs, integration against MQTT and PostgreSQL on
+## 127.0.0.1, the dashboard in headless Chromium)
 test: $(STAMP)
-	$(PY) -m pytest tests/unit tests/property tests/reference tests/integration -q
+	$(PY) -m pytest tests/unit tests/property tests/reference tests/integration tests/browser -q
 
 ## test-fast: the offline layers (no broker) without the long robustness runs
 test-fast: $(STAMP)

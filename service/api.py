@@ -18,7 +18,7 @@ from typing import Any
 
 from fastapi import Depends, FastAPI, Query, Request
 from fastapi.exceptions import RequestValidationError
-from fastapi.responses import HTMLResponse, JSONResponse, Response
+from fastapi.responses import JSONResponse, Response
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
@@ -26,6 +26,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.alarms import PRIORITIES, Alarm
 from service.api_alarms import add_alarm_routes
+from service.api_dashboard import add_dashboard
 from service.api_guard import add_guards
 from service.auth import Access, Principal
 from service.payload import decode_payload
@@ -166,12 +167,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     def not_found(what: str) -> JSONResponse:
         return JSONResponse({"detail": what}, status_code=404)
 
-    @app.get("/", response_class=HTMLResponse, include_in_schema=False)
-    def index() -> str:
-        return ("<!doctype html><html lang=en><meta charset=utf-8><title>rwls</title>"
-                f"<p><strong>Advisory use only.</strong> {ADVISORY}</p>"
-                "<p><a href=/docs>API documentation</a> &middot; <a href=/api/v1/channels>channels</a>"
-                " &middot; <a href=/api/v1/snapshot>snapshot</a> &middot; <a href=/metrics>metrics</a></p>")
+    add_dashboard(app, ADVISORY)
 
     @app.get("/api/v1/channels", dependencies=read, summary="Every channel with its quality and last update")
     def channels() -> list[dict[str, object]]:

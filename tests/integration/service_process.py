@@ -58,8 +58,10 @@ def toml_text(data: Mapping[str, Any], _path: tuple[str, ...] = ()) -> str:
 class ServiceProcess:
     """One ``rwls serve`` at a time under ``workdir``; :meth:`start` again after :meth:`kill` or :meth:`stop`."""
 
-    def __init__(self, config: Mapping[str, Any], workdir: Path, *, start_timeout: float = 30.0) -> None:
+    def __init__(self, config: Mapping[str, Any], workdir: Path, *, start_timeout: float = 30.0,
+                 port: int = 0) -> None:
         self.workdir = Path(workdir)
+        self.port = port                              # 0: a free one at each start
         self.workdir.mkdir(parents=True, exist_ok=True)
         self.config_path = self.workdir / "rwls.toml"
         self.config_path.write_text(toml_text(config))
@@ -80,7 +82,7 @@ class ServiceProcess:
         with self.log_path.open("a") as log:
             self._proc = subprocess.Popen(  # our own interpreter and module, our own config file
                 [sys.executable, "-m", "service.cli", "serve", "-c", str(self.config_path),
-                 "--host", LOOPBACK, "--port", "0"],
+                 "--host", LOOPBACK, "--port", str(self.port)],
                 stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=log, text=True, env=env)
         found: list[str] = []
         proc = self._proc
