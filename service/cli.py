@@ -10,13 +10,16 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import math
 import sys
 from collections.abc import Sequence
+from pathlib import Path
 
 from service.config import ConfigError, RwlsConfig, load_config
 from service.config_auth import ROLES, TokenConfig
 from service.csvdata import CsvError
 from service.replay import RunResult, fit_file, replay_file
+from service.replay_trace import ReplayTrace
 from service.tables import render_text
 
 __all__ = ["main"]
@@ -41,6 +44,13 @@ def _parser() -> argparse.ArgumentParser:
         cmd.add_argument("--forgetting-factor", type=float, metavar="LAMBDA",
                          help="override every channel's forgetting factor, to compare settings")
         cmd.add_argument("--no-progress", action="store_true", help="never show the progress bar")
+        if name == "replay":
+            cmd.add_argument("--report", metavar="OUT.html",
+                             help="also write a commissioning report: plots per channel, alarms, OLS against WLS")
+            cmd.add_argument("--offset-h", type=float, metavar="H", help="override every offset CUSUM threshold")
+            cmd.add_argument("--variance-h", type=float, metavar="H", help="override every variance CUSUM threshold")
+            cmd.add_argument("--drift-alpha", type=float, metavar="ALPHA",
+                             help="override every drift test's level per check")
 
     check = sub.add_parser("check-config", help="validate a configuration file and explain errors by key")
     check.add_argument("config", help="TOML file")
@@ -70,6 +80,41 @@ def _parser() -> argparse.ArgumentParser:
     simulate.add_argument("--samples", type=int, help="samples per channel (default: until Ctrl-C)")
     simulate.add_argument("--seed", type=int, default=7)
     return parser
+
+
+def _with_thresholds(config: RwlsConfig, args: argparse.Namespace) -> tuple[RwlsConfig, dict[str, float]]:
+    """The detector threshold overrides of ``replay`` applied to every channel, and which were given."""
+    given = {name: value for name, value in (("offset_h", args.offset_h), ("variance_h", args.variance_h),
+                                              ("drift_alpha", args.drift_alpha)) if value is not None}
+    problems = [f"--{name.replace('_', '-')}: must be positive, got {value}" for name, value in given.items()
+                if not (math.isfinite(value) and value > 0.0)]
+    if "drift_alpha" in given and not given["drift_alpha"] < 1.0:
+        problems.append(f"--drift-alpha: must be below 1, got {given['drift_alpha']}")
+    if problems:
+        raise ConfigError(problems)
+    channels = {}
+    for cid, ch in config.channels.items():
+        d = ch.detectors
+        d = d.model_copy(update={
+            "offset": d.offset.model_copy(update={"h": given.get("offset_h", d.offset.h)}),
+            "variance": d.variance.model_copy(update={"h": given.get("variance_h", d.variance.h)}),
+            "drift": d.drift.model_copy(update={"alpha": given.get("drift_alpha", d.drift.alpha)})})
+        channels[cid] = ch.model_copy(update={"detectors": d})
+    return config.model_copy(update={"channels": channels}), given
+
+
+def _write_report(result: RunResult, trace: ReplayTrace, args: argparse.Namespace,
+                  overrides: dict[str, float]) -> None:
+    from service.commissioning_report import build_report  # matplotlib only when a report is asked for
+
+    def progress(channel: str) -> None:
+        if not args.no_progress and sys.stderr.isatty():
+            print(f"rwls replay: report, channel {channel}", file=sys.stderr)
+
+    page = build_report(result, trace, data=args.data, config=args.config, advisory=ADVISORY,
+                        overrides=overrides, progress=progress)
+    Path(args.report).write_text(page, encoding="utf-8")
+    print(f"rwls replay: report written to {args.report}", file=sys.stderr)
 
 
 def _with_forgetting(config: RwlsConfig, value: float | None) -> RwlsConfig:
@@ -188,8 +233,17 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.command == "token":
             return _token(args)
         config = _with_forgetting(load_config(args.config), args.forgetting_factor)
-        run = replay_file if args.command == "replay" else fit_file
-        result: RunResult = run(args.data, config, show_progress=False if args.no_progress else None)
+        show = False if args.no_progress else None
+        if args.command == "replay":
+            config, overrides = _with_thresholds(config, args)
+            if args.forgetting_factor is not None:
+                overrides = {"forgetting_factor": args.forgetting_factor, **overrides}
+            trace = ReplayTrace() if args.report else None
+            result: RunResult = replay_file(args.data, config, show_progress=show, trace=trace)
+            if trace is not None:
+                _write_report(result, trace, args, overrides)
+        else:
+            result = fit_file(args.data, config, show_progress=show)
     except ConfigError as exc:
         print("configuration error:", file=sys.stderr)
         for problem in exc.problems:

@@ -22,6 +22,7 @@ from estimator.channel_bank import ChannelBank
 from service.config import RwlsConfig
 from service.csvdata import BadRow, CsvSource
 from service.progress import Progress
+from service.replay_trace import ReplayTrace
 from service.reports import channel_report, finite_or_null
 from service.what_if import WhatIf
 
@@ -61,7 +62,7 @@ def _note(result: RunResult, line: int, channel: str | None, reason: str, detail
 
 def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool | None,
          on_applied: Callable[[str, list[float], float, float], None] | None = None,
-         what_if: WhatIf | None = None) -> tuple[ChannelBank, RunResult]:
+         what_if: WhatIf | None = None, trace: ReplayTrace | None = None) -> tuple[ChannelBank, RunResult]:
     bank = ChannelBank(config.channel_settings())
     config.apply_baselines(bank)
     inputs = {name for cid in bank.channel_ids for name in bank.settings(cid).input_names}
@@ -90,12 +91,18 @@ def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool |
                 on_applied(cid, outcome.regressor, row.y, outcome.weight)
             if what_if is not None:
                 what_if.observe(bank, cid, row.t)
+            if trace is not None and outcome.regressor is not None:
+                trace.row(cid, outcome.regressor, row.y, outcome.weight)
+                trace.observe(bank, cid, row.t)
     progress.close()
     return bank, result
 
 
-def replay_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = None) -> RunResult:
+def replay_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = None,
+                trace: ReplayTrace | None = None) -> RunResult:
     """Run a CSV history through the recursive estimator of every configured channel.
+
+    With ``trace``, each channel's trajectory and applied rows are recorded there (the report's data).
 
     Raises
     ------
@@ -103,7 +110,7 @@ def replay_file(data: str | Path, config: RwlsConfig, show_progress: bool | None
         The file cannot be used at all (bad rows never raise).
     """
     what_if = WhatIf(config)
-    bank, result = _run(data, config, "replay", show_progress, what_if=what_if)
+    bank, result = _run(data, config, "replay", show_progress, what_if=what_if, trace=trace)
     for cid, view in bank.view().items():
         result.channels[cid] = {**channel_report(view), "alarms": what_if.transitions(cid)}
     return result
