@@ -18,7 +18,7 @@ def test_the_trajectory_is_thinned_to_a_bound_keeping_every_stride_th_sample() -
     channel = trace.channels["a"]
     # At 16 points the trace halves and keeps every second sample after: 1000 samples end at stride 128.
     assert 8 <= len(channel.t) < 16 and channel.stride == 128
-    assert channel.t == [float(64 * i) for i in range(len(channel.t))]     # every stride-th sample, from the first
+    assert channel.t == [float(128 * i) for i in range(len(channel.t))]     # every stride-th sample, from the first
     assert all(len(v) == len(channel.t) for v in (channel.parameters, channel.noise_sigma, channel.innovation,
                                                   *channel.statistics.values(), *channel.limits.values()))
     assert len(channel.Z) == len(channel.y) == len(channel.weight) == 1000     # the rows are all kept
