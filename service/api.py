@@ -10,11 +10,12 @@ snapshot or hand a payload to the engine queue. Errors are short stable JSON
 from __future__ import annotations
 
 import asyncio
+import hashlib
 import json
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
-from typing import Any
+from typing import Any, Literal
 
 from fastapi import Depends, FastAPI, Query, Request
 from fastapi.exceptions import RequestValidationError
@@ -169,15 +170,42 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
 
     add_dashboard(app, ADVISORY)
 
+    fleet = runtime.fleet
+
+    def passed_on(request: Request) -> dict[str, str]:
+        """The headers a read passes to another replica: the caller's token, nothing else."""
+        token = request.headers.get("authorization")
+        return {"Accept": "application/json", **({"Authorization": token} if token else {})}
+
+    def elsewhere(request: Request, channel_id: str) -> Response | None:
+        """A read of a channel another replica owns: fetched from it, or a 307 to it (None: ours)."""
+        if fleet is None or not fleet.is_remote(channel_id):
+            return None
+        index = fleet.owner(channel_id)
+        target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
+        if fleet.reads == "redirect":
+            return Response(status_code=307, headers={"Location": fleet.url(index, target)})
+        answer = fleet.fetch(index, target, passed_on(request))
+        if answer is None:
+            return JSONResponse({"detail": "replica_unreachable", "replica": index}, status_code=503,
+                                headers={"Retry-After": "5"})
+        return Response(answer.body, status_code=answer.status, media_type=answer.content_type or None)
+
     @app.get("/api/v1/channels", dependencies=read, summary="Every channel with its quality and last update")
-    def channels() -> list[dict[str, object]]:
+    def channels(request: Request, scope: Literal["fleet", "local"] = "fleet") -> list[dict[str, object]]:
         snap = runtime.engine.snapshot
         alarms = _alarms_by_channel(snap)
-        return [_summary(cid, entry, alarms.get(cid, [])) for cid, entry in snap.channels.items()]
+        local = [_summary(cid, entry, alarms.get(cid, [])) for cid, entry in snap.channels.items()]
+        if fleet is None or scope == "local":
+            return local
+        return fleet.channel_list(local, passed_on(request))
 
     @app.get("/api/v1/channels/{channel_id}", dependencies=read, summary="One channel's full state",
              response_model=None)
-    def channel(channel_id: str) -> dict[str, object] | JSONResponse:
+    def channel(channel_id: str, request: Request) -> dict[str, object] | Response:
+        remote = elsewhere(request, channel_id)
+        if remote is not None:
+            return remote
         snap = runtime.engine.snapshot
         entry = snap.channels.get(channel_id)
         if entry is None:
@@ -186,9 +214,12 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
 
     @app.get("/api/v1/channels/{channel_id}/history", response_model=None, dependencies=read,
              summary="A channel's parameters, sigma and detector statistics over time (downsampled)")
-    def history(channel_id: str, since: float | None = Query(default=None, allow_inf_nan=False),
+    def history(channel_id: str, request: Request, since: float | None = Query(default=None, allow_inf_nan=False),
                 until: float | None = Query(default=None, allow_inf_nan=False),
-                limit: int = Query(default=1000, ge=1, le=100_000)) -> dict[str, object] | JSONResponse:
+                limit: int = Query(default=1000, ge=1, le=100_000)) -> dict[str, object] | Response:
+        remote = elsewhere(request, channel_id)
+        if remote is not None:
+            return remote
         entry = runtime.engine.snapshot.channels.get(channel_id)
         if entry is None:
             return not_found("unknown channel")
@@ -199,16 +230,23 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     @app.get("/api/v1/snapshot", dependencies=read,
              summary="All channels, flat, in one call (for SCADA polling; ETag)",
              response_class=Response)
-    def snapshot(request: Request) -> Response:
+    def snapshot(request: Request, scope: Literal["fleet", "local"] = "fleet") -> Response:
         snap = runtime.engine.snapshot
-        etag = f'W/"{runtime.started_at!r}-{snap.version}"'   # versions restart with the process
-        if request.headers.get("if-none-match") == etag:
-            return Response(status_code=304, headers={"ETag": etag})
         if snapshot_cache["version"] != snap.version:
             fragments = b",".join(entry.fragment for entry in snap.channels.values())
             head = json.dumps({"version": snap.version, "created_at": snap.created_at})[:-1].encode()
             snapshot_cache["body"] = head + b', "channels": {' + fragments + b"}}"
             snapshot_cache["version"] = snap.version
+        if fleet is not None and scope == "fleet":
+            whole = json.dumps(fleet.snapshot(json.loads(snapshot_cache["body"]),  # type: ignore[arg-type]
+                                              passed_on(request)), allow_nan=False).encode()
+            etag = f'W/"fleet-{hashlib.blake2b(whole, digest_size=12).hexdigest()}"'
+            if request.headers.get("if-none-match") == etag:
+                return Response(status_code=304, headers={"ETag": etag})
+            return Response(whole, media_type="application/json", headers={"ETag": etag, "Cache-Control": "no-cache"})
+        etag = f'W/"{runtime.started_at!r}-{snap.version}"'   # versions restart with the process
+        if request.headers.get("if-none-match") == etag:
+            return Response(status_code=304, headers={"ETag": etag})
         return Response(snapshot_cache["body"], media_type="application/json",  # type: ignore[arg-type]
                         headers={"ETag": etag, "Cache-Control": "no-cache"})
 

@@ -61,6 +61,8 @@ def _parser() -> argparse.ArgumentParser:
     serve.add_argument("--host", help="override http.host")
     serve.add_argument("--port", type=int, help="override http.port (0: a free port)")
     serve.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    serve.add_argument("--shard", metavar="K/N", help="override fleet.shard: own the channels whose stable hash "
+                                                      "mod N is K (auto/N: K from the host name's -<ordinal>)")
 
     demo = sub.add_parser("demo", help="embedded broker + simulated plant + service, on a free or given port")
     demo.add_argument("--host", default="127.0.0.1")
@@ -135,7 +137,9 @@ def _serve(args: argparse.Namespace) -> int:
     from service.runtime import AlreadyRunning, Runtime, exit_on_signal
 
     config = load_config(args.config)
-    runtime = Runtime(config)           # checks the topics (ConfigError by key)
+    if args.shard:
+        config = config.model_copy(update={"fleet": config.fleet.model_copy(update={"shard": args.shard})})
+    runtime = Runtime(config)           # checks the topics and the shard (ConfigError by key)
     host = args.host or config.http.host
     port = config.http.port if args.port is None else args.port
     sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)

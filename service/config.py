@@ -356,6 +356,9 @@ class StoreConfig(_StrictValues):
     checkpoint_seconds: float = Field(default=30.0, gt=0.0, le=86400.0, allow_inf_nan=False)
     history_step: float = Field(default=60.0, gt=0.0, allow_inf_nan=False, description="seconds between rows")
     history_retention_days: float = Field(default=30.0, gt=0.0, allow_inf_nan=False)
+    schema_name: str = Field(default="", pattern=r"^([a-z_][a-z0-9_]{0,62})?$",
+                             description="PostgreSQL schema of this replica's tables; empty: the default, "
+                                         "or rwls_shard_K_of_N when sharded")
 
     @field_validator("url")
     @classmethod
@@ -363,6 +366,34 @@ class StoreConfig(_StrictValues):
         if value and not value.startswith(("postgresql://", "postgresql+psycopg://", "sqlite:///")):
             raise ValueError("must be postgresql://user@host:port/database (or sqlite:///file)")
         return value
+
+
+class FleetConfig(_StrictValues):
+    """``[fleet]``: this replica's share of the channels, and where the other replicas answer.
+
+    ``shard`` is ``"K/N"`` (or ``"auto/N"``: K from the StatefulSet ordinal at the end of the host name);
+    empty: one replica owns every channel. ``replicas`` lists every replica's base URL by index
+    (``http://rwls-0.rwls:8080``, ...), for reads of channels owned elsewhere and the fleet snapshot.
+    """
+
+    shard: str = Field(default="", description="K/N or auto/N; empty: not sharded")
+    replicas: tuple[str, ...] = Field(default=(), description="base URL of every replica, by index")
+    reads: Literal["proxy", "redirect"] = Field(
+        default="proxy", description="a read of another replica's channel: fetched for the caller, or 307")
+    peer_timeout: float = Field(default=2.0, gt=0.0, le=60.0, allow_inf_nan=False, description="seconds")
+
+    @field_validator("replicas", mode="before")
+    @classmethod
+    def _as_tuple(cls, value: object) -> object:
+        return tuple(value) if isinstance(value, list) else value
+
+    @field_validator("replicas")
+    @classmethod
+    def _urls(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        for url in value:
+            if not url.startswith(("http://", "https://")):
+                raise ValueError(f"each replica URL must start with http:// or https://, got {url!r}")
+        return tuple(url.rstrip("/") for url in value)
 
 
 class EngineConfig(_StrictValues):
@@ -394,6 +425,7 @@ class RwlsConfig(_Strict):
     engine: EngineConfig = Field(default_factory=EngineConfig)
     alarms: AlarmsConfig = Field(default_factory=AlarmsConfig)
     auth: AuthConfig = Field(default_factory=AuthConfig)
+    fleet: FleetConfig = Field(default_factory=FleetConfig)
 
     @model_validator(mode="after")
     def _budget(self) -> RwlsConfig:

@@ -23,6 +23,7 @@ import numpy as np
 from service.alarms import AlarmBook
 from service.config import RwlsConfig
 from service.engine import DeadLetter, Engine, Message
+from service.fleet import Fleet, own_share
 from service.ingest import BrokerSettings, MqttIngest
 from service.ingest_process import ProcessIngest
 from service.input_log import InputLog
@@ -76,6 +77,12 @@ class Runtime:
     """
 
     def __init__(self, config: RwlsConfig, *, mqtt: bool = True) -> None:
+        # A replica of a fleet runs the channels it owns (service/fleet.py); the others it only knows of.
+        self.fleet_channels = list(config.channels)
+        config, self.shard = own_share(config)
+        self.fleet = (Fleet(self.shard, config.fleet.replicas, self.fleet_channels, reads=config.fleet.reads,
+                            timeout=config.fleet.peer_timeout)
+                      if self.shard is not None and config.fleet.replicas else None)
         self.config = config
         self.topics = config.require_topics() if mqtt else {}     # topic -> channel
         self.ingest: MqttIngest | ProcessIngest | None = None
@@ -135,7 +142,7 @@ class Runtime:
 
     def _open_persistence(self) -> None:
         store_config = self.config.store
-        store = Store(store_url(store_config.url or store_config.path))
+        store = Store(store_url(store_config.url or store_config.path), schema=store_config.schema_name)
         input_log = InputLog(Path(store_config.path) / "inputs")
         persistence = Persistence(store, input_log, checkpoint_seconds=store_config.checkpoint_seconds,
                                   history_step=store_config.history_step,
@@ -157,6 +164,8 @@ class Runtime:
             self.ingest.stop()
         self.engine.stop()
         self.webhooks.stop()
+        if self.fleet is not None:
+            self.fleet.close()
         if self.persistence is not None:
             try:
                 self.persistence.checkpoint(self.engine)        # a quick restart

@@ -46,6 +46,7 @@ from sqlalchemy import (
     func,
     insert,
     select,
+    text,
     update,
 )
 from sqlalchemy.engine import Connection, Engine
@@ -111,15 +112,25 @@ def store_url(path_or_url: str) -> str:
 class Store:
     """One store (SQLite or PostgreSQL), safe to use from several threads (a connection pool each)."""
 
-    def __init__(self, url: str) -> None:
+    def __init__(self, url: str, schema: str = "") -> None:
         self.url = url
         self.is_sqlite = url.startswith("sqlite")
+        # A PostgreSQL schema of its own (one per replica of a fleet): every connection searches it first.
+        connect_args = {"options": f"-csearch_path={schema}"} if schema and not self.is_sqlite else {}
         try:
-            self.engine: Engine = create_engine(url, future=True, pool_pre_ping=not self.is_sqlite)
+            self.engine: Engine = create_engine(url, future=True, pool_pre_ping=not self.is_sqlite,
+                                                connect_args=connect_args)
         except Exception as exc:             # a bad URL, a missing driver
             raise StoreError(f"cannot open the store: {type(exc).__name__}") from None
         if self.is_sqlite:
             event.listen(self.engine, "connect", _sqlite_pragmas)
+        elif schema:
+            try:
+                with self.engine.begin() as conn:
+                    conn.execute(text(f'CREATE SCHEMA IF NOT EXISTS "{schema}"'))   # a checked identifier
+            except Exception as exc:
+                self.engine.dispose()
+                raise StoreError(f"cannot create the store's schema {schema}: {type(exc).__name__}") from None
         try:
             self.migrate()
         except StoreError:
