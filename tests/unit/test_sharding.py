@@ -67,7 +67,7 @@ def test_a_replica_runs_only_its_share_in_a_schema_of_its_own() -> None:
 
 
 def test_a_replica_list_of_the_wrong_length_is_a_configuration_error() -> None:
-    with pytest.raises(ConfigError, match="fleet.replicas"):
+    with pytest.raises(ConfigError, match=r"fleet\.replicas"):
         own_share(_config("0/3", ["http://a:1", "http://b:1"]), hostname="x")   # type: ignore[arg-type]
 
 
