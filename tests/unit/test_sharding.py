@@ -86,3 +86,25 @@ def test_the_fleet_snapshot_marks_the_channels_of_a_silent_replica_bad() -> None
         else:
             assert entry == {"quality": "Bad", "quality_reason": "replica_unreachable", "replica": owner(c, 3)}
     assert [r["reachable"] for r in doc["replicas"]] == [True, False, False]
+
+
+def test_a_replica_in_redirect_mode_sends_reads_of_other_channels_to_their_owner(tmp_path: object) -> None:
+    from service.api import create_app
+    from service.runtime import Runtime
+    from tests.auth_tokens import auth_section
+    from tests.unit.test_api import _test_client
+
+    urls = ["http://rwls-0.peers:8080", "http://rwls-1.peers:8080", "http://rwls-2.peers:8080"]
+    config = parse_config({"channels": {c: {"terms": ["1", "u"]} for c in CHANNELS},
+                           "fleet": {"shard": "0/3", "replicas": urls, "reads": "redirect"},
+                           "store": {"path": str(tmp_path)}, "auth": auth_section()})
+    runtime = Runtime(config, mqtt=False)
+    assert set(runtime.config.channels) == {c for c in CHANNELS if owner(c, 3) == 0}
+    with _test_client(create_app(runtime), follow_redirects=False) as client:
+        theirs = next(c for c in CHANNELS if owner(c, 3) == 2)
+        answer = client.get(f"/api/v1/channels/{theirs}/history?limit=5")
+        assert answer.status_code == 307
+        assert answer.headers["location"] == f"{urls[2]}/api/v1/channels/{theirs}/history?limit=5"
+        mine = next(c for c in CHANNELS if owner(c, 3) == 0)
+        assert client.get(f"/api/v1/channels/{mine}").json()["id"] == mine
+        assert client.get("/api/v1/channels/no.such.channel").status_code == 404
