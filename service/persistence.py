@@ -98,6 +98,9 @@ class Persistence:
         self._writer: threading.Thread | None = None
         self._history_last: dict[str, float] = {}
         self._history_rows: list[tuple[str, float, dict[str, Any]]] = []
+        # Rows handed to the checkpoint writer: still served until the store has them (and handed
+        # again with the next checkpoint if this one fails).
+        self._history_writing: list[tuple[str, float, dict[str, Any]]] = []
         self._last_prune = 0.0
 
     # ------------------------------------------------------------ checkpoints
@@ -134,7 +137,8 @@ class Persistence:
                                                      if e.seq > self._handed_seq]
         if entries:
             self._handed_seq = int(entries[-1]["seq"])
-        rows, self._history_rows = self._history_rows, []
+        rows = self._history_writing + self._history_rows
+        self._history_writing, self._history_rows = rows, []
         position = engine.position
         self.log.start_new_segment()
         self.last_checkpoint_at = time.time()            # due again in checkpoint_seconds, whatever happens
@@ -143,6 +147,7 @@ class Persistence:
             try:
                 body = encode_checkpoint(arrays, meta)
                 self.store.save(body, position, entries, rows)
+                self._history_writing = []
                 # The log is kept from the older of the two kept checkpoints on: should the newest fail
                 # its checksum, the one before still has every record after it.
                 self._positions = [*self._positions, position][-KEEP_CHECKPOINTS:]
@@ -253,15 +258,19 @@ class Persistence:
                     "residual": _finite(view.last_innovation), "residual_spread": _finite(view.last_spread)}
             self._history_rows.append((cid, t, body))
         if len(self._history_rows) >= 10_000:          # between checkpoints, do not let it pile up
-            rows, self._history_rows = self._history_rows, []
-            self.store.save_history(rows)
+            rows = list(self._history_rows)
+            self.store.save_history(rows)               # stored first, then no longer pending: never unseen
+            del self._history_rows[:len(rows)]
 
     def history(self, channel: str, since: float | None, until: float | None, limit: int) -> list[dict[str, Any]]:
-        """The newest ``limit`` rows of a channel in [since, until], oldest first: stored, then pending."""
-        pending = [{"t": t, **body} for cid, t, body in list(self._history_rows)      # a copy: the engine appends
+        """The newest ``limit`` rows of a channel in [since, until], oldest first: stored, then those on
+        their way to the store (a checkpoint being written), then pending; a row in two places once."""
+        unsaved = [*self._history_writing, *self._history_rows]        # copies: other threads replace them
+        pending = [{"t": t, **body} for cid, t, body in unsaved
                    if cid == channel and (since is None or t >= since) and (until is None or t <= until)]
         stored = self.store.history(channel, since, until, limit) if len(pending) < limit else []
-        return (stored + pending)[-limit:]
+        newest = stored[-1]["t"] if stored else -math.inf
+        return (stored + [row for row in pending if row["t"] > newest])[-limit:]
 
     # ---------------------------------------------------------------- journal
     def journal(self, engine: Engine, after: int, limit: int, channel: str | None) -> list[dict[str, Any]]:

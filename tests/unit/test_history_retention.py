@@ -51,3 +51,35 @@ def test_rows_dated_long_before_the_wall_clock_are_kept_and_only_those_past_rete
     newest = max(r["t"] for r in rows)
     assert min(r["t"] for r in rows) >= newest - 2.0 * DAY             # older than retention: gone
     assert len(rows) >= 2 * 24                                          # the last two days: kept
+
+
+def test_rows_stay_visible_while_a_checkpoint_writes_them(tmp_path: Path) -> None:
+    import threading
+
+    runtime = _runtime(tmp_path)
+    runtime.start()
+    try:
+        persistence = runtime.persistence
+        assert persistence is not None
+        _feed(runtime, 0, 0.5)                                           # 12 hourly rows, pending
+        before = runtime.history("a", None, None, 100)
+        assert len(before) == 12
+        gate, inside = threading.Event(), threading.Event()
+        save = persistence.store.save
+
+        def slow_save(*args: object, **kwargs: object) -> int:
+            inside.set()
+            assert gate.wait(10.0)
+            return save(*args, **kwargs)                                 # type: ignore[arg-type]
+
+        persistence.store.save = slow_save                               # type: ignore[method-assign]
+        runtime.engine.command(lambda engine: persistence.checkpoint(engine, wait=False))
+        assert inside.wait(10.0)
+        during = runtime.history("a", None, None, 100)                   # handed to the writer, not stored yet
+        gate.set()
+        runtime.engine.command(lambda engine: persistence.checkpoint(engine))   # waits for the writer first
+        after = runtime.history("a", None, None, 100)
+    finally:
+        runtime.stop()
+    assert during == before
+    assert [r["t"] for r in after] == [r["t"] for r in before]           # stored now, and listed once
