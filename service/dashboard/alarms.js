@@ -50,6 +50,10 @@ export class AlarmList {
   }
 
   render() {
+    // Unchanged since the last drawing: leave the page alone (a button being clicked, a field being typed in).
+    const key = JSON.stringify([this.alarms, this.message, this.error]);
+    if (key === this.drawn && this.root.firstChild) return;
+    this.drawn = key;
     const sorted = this.alarms.slice().sort((a, b) => (ORDER[a.priority] - ORDER[b.priority])
       || ((b.since || 0) - (a.since || 0)));
     const rows = sorted.map((a) => {

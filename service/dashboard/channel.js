@@ -59,6 +59,10 @@ export class ChannelPage {
         element("p", { class: this.error ? "error" : "muted", role: this.error ? "alert" : null }, this.error || "Loading\u2026"));
       return;
     }
+    const key = JSON.stringify([this.detail, this.rows.length, this.rows[this.rows.length - 1], this.journal.length,
+      this.span, this.custom, this.error]);
+    if (key === this.drawn && this.root.firstChild) return;       // nothing new: keep the page as it is
+    this.drawn = key;
     const d = this.detail;
     const range = this.range();
     const markers = this.journal.filter((e) => MARKED.has(e.action)).map((e) => ({

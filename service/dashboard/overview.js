@@ -37,6 +37,9 @@ export class Overview {
   }
 
   render() {
+    const key = JSON.stringify([this.channels, this.filter, this.page, this.error]);
+    if (key === this.drawn && this.root.firstChild) return;       // nothing new: keep the page as it is
+    this.drawn = key;
     const chosen = this.chosen();
     const pages = Math.max(1, Math.ceil(chosen.length / PAGE));
     this.page = Math.min(this.page, pages - 1);

@@ -68,7 +68,7 @@ def service(mqtt_broker: Any, tmp_path_factory: pytest.TempPathFactory) -> Itera
     process = ServiceProcess(settings, tmp_path_factory.mktemp("ui-service"), port=free_port()).start()
     plant = Plant(mqtt_broker, topic)
     try:
-        time.sleep(0.5)                                    # subscribed
+        process.wait_subscribed()
         plant.publish(NORMAL_SAMPLES)
         _wait(lambda: _api(process, f"/api/v1/channels/{CHANNEL}")["samples"] >= NORMAL_SAMPLES, 20.0,
               "the normal samples were not applied")

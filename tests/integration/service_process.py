@@ -157,6 +157,18 @@ class ServiceProcess:
         except urllib.error.HTTPError as exc:
             return json.loads(exc.read())
 
+    def wait_subscribed(self, timeout: float = 30.0) -> None:
+        """Wait until the service reports its broker connection (it subscribes before it says so), plus a
+        moment for the broker to take the subscription: what is published after this reaches it."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            with contextlib.suppress(OSError, KeyError, TypeError, ValueError):
+                if self.get("/api/v1/ready")["broker"]["connected"]:
+                    time.sleep(0.2)
+                    return
+            time.sleep(0.05)
+        raise TimeoutError(f"the service did not connect to its broker in {timeout} s:\n{self.log_tail()}")
+
     def metrics_text(self, timeout: float = 5.0) -> str:
         """``/metrics`` as the service serves it (Prometheus text format)."""
         with urllib.request.urlopen(self.url + "/metrics", timeout=timeout) as response:

@@ -135,7 +135,7 @@ def test_kill_9_at_random_moments_then_restart_reaches_the_uninterrupted_state(
     publisher = threading.Thread(target=publish, name="plant", daemon=True)
     before_kill: list[int] = []
     try:
-        time.sleep(1.0)                    # subscribed: the broker holds what comes while we are down
+        service.wait_subscribed()          # subscribed: the broker holds what comes while we are down
         publisher.start()
         for k, pause in enumerate(rng.uniform(0.0, 0.6, size=KILLS)):
             before_kill.append(_wait_progress(service, step=150))

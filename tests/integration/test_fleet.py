@@ -73,7 +73,8 @@ def test_three_replicas_share_the_channels_survive_a_kill_and_lose_nothing(
     try:
         for r in replicas:
             r.start()
-        time.sleep(0.5)                                        # subscribed
+        for r in replicas:
+            r.wait_subscribed()
 
         # Every channel owned by exactly one replica, the one the stable hash names.
         local = [set(r.get("/api/v1/snapshot?scope=local")["channels"]) for r in replicas]

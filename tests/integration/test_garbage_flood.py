@@ -121,7 +121,7 @@ def test_garbage_flood_leaves_the_clean_state_counts_every_refusal_and_stays_bou
     rss: list[int] = []
     started = time.monotonic()
     try:
-        time.sleep(1.0)                                     # subscribed
+        service.wait_subscribed()
         for start in range(0, len(published), CHUNK):
             publish_and_wait(broker, published[start:start + CHUNK], qos=1, timeout=120.0)
             rss.append(service.rss_bytes())
