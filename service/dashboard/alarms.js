@@ -33,20 +33,25 @@ export class AlarmList {
 
   // A transition from the live feed: replace that alarm in place, without asking the service again.
   update(alarm) {
+    this.replace(alarm);
+    this.render();
+  }
+
+  replace(alarm) {
     const others = this.alarms.filter((a) => a.id !== alarm.id);
     this.alarms = alarm.state === "Normal" ? others : [...others, alarm];
-    this.render();
   }
 
   async act(alarm, action, body) {
     try {
-      await post(`/api/v1/alarms/${encodeURIComponent(alarm.id)}/${action}`, body);
+      const answer = await post(`/api/v1/alarms/${encodeURIComponent(alarm.id)}/${action}`, body);
       this.drafts.delete(alarm.id);
+      if (answer && answer.alarm) this.replace(answer.alarm);      // the service's word on the new state
       this.message = { ok: true, text: `${alarm.id}: ${action === "ack" ? "acknowledged" : action + "d"}.` };
     } catch (error) {
       this.message = { ok: false, text: `${alarm.id}: ${explain(error)}` };
     }
-    await this.refresh();
+    this.render();
   }
 
   render() {
@@ -88,7 +93,8 @@ export class AlarmList {
       this.error ? element("p", { class: "error", role: "alert" }, this.error) : null,
       this.message ? element("p", { class: this.message.ok ? "ok" : "error", role: "alert", id: "action-result" },
         this.message.text) : null,
-      element("p", { id: "alarm-count" }, sorted.length ? `${sorted.length} alarms not Normal.` : "No alarm is raised."),
+      element("p", { id: "alarm-count" }, sorted.length === 1 ? "1 alarm not Normal."
+        : sorted.length ? `${sorted.length} alarms not Normal.` : "No alarm is raised."),
       element("table", { id: "alarms" },
         element("thead", {}, element("tr", {},
           element("th", {}, "Alarm"), element("th", {}, "State"), element("th", {}, "Priority"),

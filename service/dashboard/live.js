@@ -10,6 +10,7 @@ export class LiveFeed {
     this.pause = 1000;
     this.stopped = false;
     this.controller = null;
+    this.restarting = false;
   }
 
   start() {
@@ -23,6 +24,7 @@ export class LiveFeed {
   }
 
   restart() {                      // the token changed: the stream may now be allowed, or no longer
+    this.restarting = true;
     if (this.controller) this.controller.abort();
   }
 
@@ -42,6 +44,10 @@ export class LiveFeed {
         throw new Error("stream ended");
       } catch (error) {
         if (this.stopped) return;
+        if (this.restarting) {           // asked for: connect again at once, nothing to report
+          this.restarting = false;
+          continue;
+        }
         const seconds = Math.round(this.pause / 1000);
         this.onState("reconnecting", `Live: reconnecting in ${seconds} s (${error.message})`);
         await new Promise((resolve) => setTimeout(resolve, this.pause));

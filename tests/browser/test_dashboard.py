@@ -172,6 +172,7 @@ def test_acknowledge_is_refused_without_a_token_and_works_with_an_operator_token
     page.locator(f'tr[data-alarm="{ALARM}"] button.ack').click()
     expect(page.locator("#action-result")).to_contain_text("acknowledged", timeout=10_000)
     assert _alarm_state(process) == "Acknowledged"
+    expect(page.locator(f'tr[data-alarm="{ALARM}"] .badge')).to_have_text("Acknowledged", timeout=5_000)
     journal = _api(process, f"/api/v1/alarms/journal?channel={CHANNEL}")["entries"]
     ack = [e for e in journal if e["action"] == "acknowledge"][-1]
     assert ack["user"] == "test-operator" and ack["comment"] == "checked the meter on site"
