@@ -232,21 +232,22 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
              response_class=Response)
     def snapshot(request: Request, scope: Literal["fleet", "local"] = "fleet") -> Response:
         snap = runtime.engine.snapshot
+        whole_fleet = fleet is not None and scope == "fleet"
+        etag = f'W/"{runtime.started_at!r}-{snap.version}"'   # versions restart with the process
+        if not whole_fleet and request.headers.get("if-none-match") == etag:
+            return Response(status_code=304, headers={"ETag": etag})       # before any work: SCADA polls
         if snapshot_cache["version"] != snap.version:
             fragments = b",".join(entry.fragment for entry in snap.channels.values())
             head = json.dumps({"version": snap.version, "created_at": snap.created_at})[:-1].encode()
             snapshot_cache["body"] = head + b', "channels": {' + fragments + b"}}"
             snapshot_cache["version"] = snap.version
-        if fleet is not None and scope == "fleet":
+        if whole_fleet and fleet is not None:
             whole = json.dumps(fleet.snapshot(json.loads(snapshot_cache["body"]),  # type: ignore[arg-type]
                                               passed_on(request)), allow_nan=False).encode()
             etag = f'W/"fleet-{hashlib.blake2b(whole, digest_size=12).hexdigest()}"'
             if request.headers.get("if-none-match") == etag:
                 return Response(status_code=304, headers={"ETag": etag})
             return Response(whole, media_type="application/json", headers={"ETag": etag, "Cache-Control": "no-cache"})
-        etag = f'W/"{runtime.started_at!r}-{snap.version}"'   # versions restart with the process
-        if request.headers.get("if-none-match") == etag:
-            return Response(status_code=304, headers={"ETag": etag})
         return Response(snapshot_cache["body"], media_type="application/json",  # type: ignore[arg-type]
                         headers={"ETag": etag, "Cache-Control": "no-cache"})
 
