@@ -241,9 +241,12 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             head = json.dumps({"version": snap.version, "created_at": snap.created_at})[:-1].encode()
             snapshot_cache["body"] = head + b', "channels": {' + fragments + b"}}"
             snapshot_cache["version"] = snap.version
+            snapshot_cache["doc"] = None
         if whole_fleet and fleet is not None:
-            whole = json.dumps(fleet.snapshot(json.loads(snapshot_cache["body"]),  # type: ignore[arg-type]
-                                              passed_on(request)), allow_nan=False).encode()
+            if snapshot_cache.get("doc") is None:          # parsed once per version, not once per fleet poll
+                snapshot_cache["doc"] = json.loads(snapshot_cache["body"])  # type: ignore[arg-type]
+            whole = json.dumps(fleet.snapshot(snapshot_cache["doc"], passed_on(request)),  # type: ignore[arg-type]
+                               allow_nan=False).encode()
             etag = f'W/"fleet-{hashlib.blake2b(whole, digest_size=12).hexdigest()}"'
             if request.headers.get("if-none-match") == etag:
                 return Response(status_code=304, headers={"ETag": etag})

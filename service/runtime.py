@@ -78,9 +78,9 @@ class Runtime:
 
     def __init__(self, config: RwlsConfig, *, mqtt: bool = True) -> None:
         # A replica of a fleet runs the channels it owns (service/fleet.py); the others it only knows of.
-        self.fleet_channels = list(config.channels)
+        every_channel = list(config.channels)
         config, self.shard = own_share(config)
-        self.fleet = (Fleet(self.shard, config.fleet.replicas, self.fleet_channels, reads=config.fleet.reads,
+        self.fleet = (Fleet(self.shard, config.fleet.replicas, every_channel, reads=config.fleet.reads,
                             timeout=config.fleet.peer_timeout)
                       if self.shard is not None and config.fleet.replicas else None)
         self.config = config

@@ -303,19 +303,23 @@ class PrivateMosquitto:
         self._terminate(signal.SIGKILL)
 
     def _terminate(self, sig: signal.Signals) -> None:
-        proc = self._proc
-        if proc is None:
-            return
-        if proc.poll() is None:
-            with contextlib.suppress(ProcessLookupError):
-                os.kill(proc.pid, sig)
-            try:
-                proc.wait(timeout=self.stop_timeout)
-            except subprocess.TimeoutExpired:
-                with contextlib.suppress(ProcessLookupError):
-                    os.kill(proc.pid, signal.SIGKILL)
-                proc.wait(timeout=self.stop_timeout)
+        if self._proc is not None:
+            signal_and_wait(self._proc, sig, self.stop_timeout)
         self._proc = None
+
+
+def signal_and_wait(proc: subprocess.Popen[Any], sig: signal.Signals, timeout: float) -> None:
+    """Send ``sig`` to a child of ours by PID and wait ``timeout`` s for it, then SIGKILL and wait again."""
+    if proc.poll() is not None:
+        return
+    with contextlib.suppress(ProcessLookupError):
+        os.kill(proc.pid, sig)
+    try:
+        proc.wait(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=max(timeout, 10.0))
 
 
 # ---------------------------------------------------------------------------------------------------------

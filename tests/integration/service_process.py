@@ -21,6 +21,8 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from tests.integration.mqtt_support import signal_and_wait
+
 __all__ = ["ServiceProcess", "toml_text"]
 
 LOOPBACK = "127.0.0.1"
@@ -135,18 +137,8 @@ class ServiceProcess:
         return None if proc is None else proc.returncode
 
     def _signal(self, sig: signal.Signals, timeout: float) -> None:
-        proc = self._proc
-        if proc is None:
-            return
-        if proc.poll() is None:
-            with contextlib.suppress(ProcessLookupError):
-                os.kill(proc.pid, sig)
-            try:
-                proc.wait(timeout=timeout)
-            except subprocess.TimeoutExpired:
-                with contextlib.suppress(ProcessLookupError):
-                    os.kill(proc.pid, signal.SIGKILL)
-                proc.wait(timeout=10.0)
+        if self._proc is not None:
+            signal_and_wait(self._proc, sig, timeout)
         self._proc = None
 
     def get(self, path: str, timeout: float = 5.0) -> Any:
