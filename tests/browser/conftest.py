@@ -7,7 +7,6 @@ Every test's page records console errors and uncaught exceptions, and leaves a f
 
 from __future__ import annotations
 
-import os
 import re
 from collections.abc import Iterator
 from pathlib import Path
@@ -15,6 +14,7 @@ from typing import Any
 
 import pytest
 
+from tests.ci import in_ci
 from tests.integration.conftest import mqtt_broker  # noqa: F401 (the session's broker, a fixture)
 
 CHROMIUM = Path("/usr/bin/chromium")
@@ -24,14 +24,10 @@ FLAGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "-
          "--disable-component-update", "--disable-sync", "--disable-dev-shm-usage"]
 
 
-def _in_ci() -> bool:
-    return os.environ.get("CI", "").strip().lower() == "true"
-
-
 @pytest.fixture(scope="session")
 def chromium() -> Iterator[Any]:
     if not CHROMIUM.exists():
-        if _in_ci():
+        if in_ci():
             pytest.fail("CI=true needs Debian's chromium at /usr/bin/chromium (.ci/run installs it)")
         pytest.skip("no /usr/bin/chromium")
     from playwright.sync_api import sync_playwright

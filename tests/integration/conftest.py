@@ -21,6 +21,7 @@ from typing import Any
 
 import pytest
 
+from tests.ci import in_ci
 from tests.integration.mqtt_support import (
     LOOPBACK,
     BrokerInfo,
@@ -36,10 +37,6 @@ from tests.integration.mqtt_support import (
 __all__ = ["BrokerInfo", "Collector", "PrivateMosquitto", "publish_and_wait"]
 
 SYSTEM_PORT = 1883
-
-
-def _in_ci() -> bool:
-    return os.environ.get("CI", "").strip().lower() == "true"
 
 
 def _start_private(binary: str, workdir: Path, attempts: int = 3, **kwargs: Any) -> PrivateMosquitto:
@@ -79,7 +76,7 @@ def mqtt_broker(tmp_path_factory: pytest.TempPathFactory) -> Iterator[BrokerInfo
     if choice == "private":
         pytest.fail("RWLS_TEST_BROKER=private but no mosquitto binary was found")
 
-    if _in_ci():
+    if in_ci():
         if choice == "embedded":
             pytest.fail("RWLS_TEST_BROKER=embedded is refused with CI=true: CI tests against a real Mosquitto")
         pytest.fail(
@@ -103,7 +100,7 @@ def private_mosquitto(tmp_path: Path) -> Iterator[Callable[..., PrivateMosquitto
     """
     binary = find_mosquitto()
     if binary is None:
-        if _in_ci():
+        if in_ci():
             pytest.fail("CI=true needs a `mosquitto` binary for private_mosquitto")
         pytest.skip("no mosquitto binary for a private broker")
 
