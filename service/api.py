@@ -25,9 +25,11 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from service.advisory import ADVISORY
 from service.alarms import PRIORITIES, Alarm
 from service.api_alarms import add_alarm_routes
 from service.api_dashboard import add_dashboard
+from service.api_errors import validation_problems
 from service.api_guard import add_guards
 from service.auth import Access, Principal
 from service.payload import decode_payload
@@ -39,8 +41,6 @@ __all__ = ["ADVISORY", "create_app"]
 
 log = logging.getLogger(__name__)
 
-ADVISORY = ("rwls is an advisory monitoring aid, not a safety instrumented function. Follow the site's "
-            "alarm philosophy, local codes and licensed engineering practice.")
 PROMETHEUS_TEXT = "text/plain; version=0.0.4; charset=utf-8"
 
 
@@ -158,7 +158,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
 
     @app.exception_handler(RequestValidationError)
     async def validation_error(request: Request, exc: RequestValidationError) -> JSONResponse:
-        return JSONResponse({"detail": "invalid request"}, status_code=422)
+        return JSONResponse(validation_problems(exc.errors()), status_code=422)
 
     @app.exception_handler(Exception)
     async def internal_error(request: Request, exc: Exception) -> JSONResponse:

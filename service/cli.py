@@ -15,22 +15,29 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
+from service.advisory import ADVISORY
 from service.config import ConfigError, RwlsConfig, load_config
 from service.config_auth import ROLES, TokenConfig
 from service.csvdata import CsvError
+from service.listen_socket import PortUnavailable, bind_listener
 from service.replay import RunResult, fit_file, replay_file
 from service.replay_trace import ReplayTrace
 from service.tables import render_text
 
-__all__ = ["main"]
+__all__ = ["build_parser", "main"]
 
 log = logging.getLogger("rwls")
 
-ADVISORY = ("rwls is an advisory monitoring aid, not a safety function; "
-            "follow the site's alarm philosophy, local codes and licensed practice.")
+
+class _HelpWithDefaults(argparse.ArgumentDefaultsHelpFormatter):
+    """Shows an option's default where it has one (not "default: None")."""
+
+    def _get_help_string(self, action: argparse.Action) -> str | None:
+        return action.help if action.default is None else super()._get_help_string(action)
 
 
-def _parser() -> argparse.ArgumentParser:
+def build_parser() -> argparse.ArgumentParser:
+    """The `rwls` command line, every subcommand with its options."""
     parser = argparse.ArgumentParser(
         prog="rwls", description="Recursive weighted least squares for sensor monitoring. " + ADVISORY)
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
@@ -52,35 +59,59 @@ def _parser() -> argparse.ArgumentParser:
             cmd.add_argument("--drift-alpha", type=float, metavar="ALPHA",
                              help="override every drift test's level per check")
 
-    check = sub.add_parser("check-config", help="validate a configuration file and explain errors by key")
+    helptext = "validate a configuration file and explain errors by key"
+    check = sub.add_parser("check-config", help=helptext, description=(
+        helptext + ": every problem in one pass, each naming its key; with a false-alarm budget, the thresholds "
+        "it derives and their detection delays. Exit status 0 when the file can be used, 2 when not."))
     check.add_argument("config", help="TOML file")
     check.add_argument("--serve", action="store_true", help="also require what serving needs (channel topics)")
 
-    serve = sub.add_parser("serve", help="run the live service: MQTT ingest, engine and REST API")
+    helptext = "run the live service: MQTT ingest, engine and REST API (and the dashboard at /)"
+    serve = sub.add_parser("serve", help=helptext, description=(
+        helptext + ". Subscribes to every channel's topic on the configured broker, applies samples as they "
+        "arrive, keeps the state in the store (see the README, State that survives) and serves it over HTTP. "
+        "Run it as one process: it takes an exclusive lock on its data directory. " + ADVISORY))
     serve.add_argument("-c", "--config", required=True, help="TOML file (RWLS_* environment variables override)")
-    serve.add_argument("--host", help="override http.host")
-    serve.add_argument("--port", type=int, help="override http.port (0: a free port)")
-    serve.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    serve.add_argument("--host", help="override http.host (default: the file's, else 127.0.0.1)")
+    serve.add_argument("--port", type=int, help="override http.port (default: the file's, else 8080; 0: any free "
+                                                "port, printed at start)")
+    serve.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"],
+                       help="how much the service logs (default: info)")
     serve.add_argument("--shard", metavar="K/N", help="override fleet.shard: own the channels whose stable hash "
                                                       "mod N is K (auto/N: K from the host name's -<ordinal>)")
 
-    demo = sub.add_parser("demo", help="embedded broker + simulated plant + service, on a free or given port")
-    demo.add_argument("--host", default="127.0.0.1")
-    demo.add_argument("--port", type=int, default=8080, help="0 picks a free port")
-    demo.add_argument("--rate", type=float, default=100.0, help="plant samples per second, all channels")
-    demo.add_argument("--data-dir", default="rwls-demo-data")
+    helptext = "embedded MQTT broker + simulated plant + service + dashboard, all in this process"
+    demo = sub.add_parser("demo", help=helptext, formatter_class=_HelpWithDefaults,
+                          description=helptext + ": the invented Larkspur Valley substation 7 in compressed time "
+                          "(a minute of demo shows days of plant). Prints the dashboard's URL and a fresh engineer "
+                          "token. State is kept in --data-dir: a second run carries on where the first stopped. "
+                          + ADVISORY)
+    demo.add_argument("--host", default="127.0.0.1", help="address the HTTP face listens on")
+    demo.add_argument("--port", type=int, default=8080, help="HTTP port (0: any free port, printed at start)")
+    demo.add_argument("--rate", type=float, default=100.0, help="samples per second the plant publishes, all "
+                                                                "channels together")
+    demo.add_argument("--data-dir", default="rwls-demo-data",
+                      help="where the demo keeps its state, relative to the working directory; delete it to start "
+                           "the plant's month afresh")
     demo.add_argument("--exit-after", type=float, metavar="SECONDS", help="stop by itself (smoke tests)")
 
-    token = sub.add_parser("token", help="make an API token: prints it once, and the [[auth.tokens]] entry to add")
+    helptext = "make an API token: prints it once, and the [[auth.tokens]] entry to add"
+    token = sub.add_parser("token", help=helptext, description=(
+        helptext + ". The token goes to standard output (give it to its holder; it is not stored anywhere), "
+        "the settings entry with its SHA-256 to standard error."))
     token.add_argument("--name", required=True, help="its holder, as the alarm journal will record it")
     token.add_argument("--role", required=True, choices=list(ROLES), help="what it may do (see README, Access)")
 
-    simulate = sub.add_parser("simulate", help="publish the demo plant (Larkspur Valley, substation 7) to a broker")
+    helptext = "publish the demo plant (Larkspur Valley, substation 7) to a broker"
+    simulate = sub.add_parser("simulate", help=helptext, formatter_class=_HelpWithDefaults,
+                              description=helptext + ", QoS 1, one JSON sample per message on <prefix>/sub7/<name>, "
+                              "in compressed time (each sample advances the plant clock by ten minutes).")
     simulate.add_argument("--broker", default="mqtt://127.0.0.1:1883", help="mqtt://host:port")
     simulate.add_argument("--prefix", default="larkspur", help="topic prefix (channels go under it)")
-    simulate.add_argument("--rate", type=float, default=200.0, help="messages per second, all channels")
+    simulate.add_argument("--rate", type=float, default=200.0, help="messages per second, all channels together")
     simulate.add_argument("--samples", type=int, help="samples per channel (default: until Ctrl-C)")
-    simulate.add_argument("--seed", type=int, default=7)
+    simulate.add_argument("--seed", type=int, default=7, help="seed of the plant's noise: the same seed publishes "
+                                                              "the same samples")
     return parser
 
 
@@ -129,8 +160,6 @@ def _with_forgetting(config: RwlsConfig, value: float | None) -> RwlsConfig:
 
 
 def _serve(args: argparse.Namespace) -> int:
-    import socket
-
     import uvicorn
 
     from service.api import create_app
@@ -142,9 +171,7 @@ def _serve(args: argparse.Namespace) -> int:
     runtime = Runtime(config)           # checks the topics and the shard (ConfigError by key)
     host = args.host or config.http.host
     port = config.http.port if args.port is None else args.port
-    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
-    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-    sock.bind((host, port))
+    sock = bind_listener(host, port)     # PortUnavailable: one line naming the port (main)
     try:
         runtime.start()                 # takes the ingest lock first: fails fast if another process owns it
     except AlreadyRunning as exc:
@@ -203,7 +230,7 @@ def _token(args: argparse.Namespace) -> int:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``rwls`` console script; returns the exit status."""
-    args = _parser().parse_args(argv)
+    args = build_parser().parse_args(argv)
     if args.command in ("serve", "demo"):
         # paho's network thread and the engine share one interpreter: a shorter switch
         # interval (default 5 ms) hands the GIL to paho sooner, which halves the time a
@@ -256,6 +283,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except CsvError as exc:
         print(f"data error: {exc}", file=sys.stderr)
         return 1
+    except PortUnavailable as exc:
+        print(f"rwls {args.command}: {exc}", file=sys.stderr)
+        return 2
     if args.json:
         json.dump(result.to_json(), sys.stdout, indent=2, allow_nan=False)
         sys.stdout.write("\n")

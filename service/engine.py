@@ -208,6 +208,9 @@ class Engine:
         self._last_publish = 0.0
         self._clock = clock
         self.updated_at: dict[str, float] = {}
+        # Per channel: samples refused since it last applied one, and the newest refusal's reason (quality).
+        self.refused_in_a_row: dict[str, int] = {}
+        self.last_refusal: dict[str, str] = {}
         self._fragments = FragmentWriter()
         self.stats = EngineStats()
         self._thread: threading.Thread | None = None
@@ -423,6 +426,11 @@ class Engine:
 
     def _refuse(self, message: Message, reason: str, detail: str, index: int | None) -> None:
         self.stats.reject(reason)
+        cid = message.channel
+        if cid is not None and cid in self.bank:
+            self.refused_in_a_row[cid] = self.refused_in_a_row.get(cid, 0) + 1
+            self.last_refusal[cid] = reason
+            self._pending.add(cid)
         if self._dead_letter is None:
             return
         letter = DeadLetter(reason, detail, message.channel, message.topic, message.source, index, message.payload)
@@ -524,9 +532,13 @@ class Engine:
             where = origins[cid]
             if outcome.last_applied is not None:
                 self.updated_at[cid] = where.locate(outcome.last_applied)[0].received
+                self.refused_in_a_row[cid] = 0            # the refusals below, after it, count again
             for position, reason in outcome.rejected:
                 message, index = where.locate(position)
                 self._refuse(message, reason, f"refused by channel {cid}", index)
+            if outcome.last_applied is not None:
+                self.refused_in_a_row[cid] = sum(1 for position, _ in outcome.rejected
+                                                 if position > outcome.last_applied)
         self._take_events()
         if self._queue.empty() or time.monotonic() - self._last_publish >= self._snapshot_interval:
             self._flush()
@@ -540,7 +552,8 @@ class Engine:
         entries = {}
         for cid, view in views.items():
             updated_at = self.updated_at.get(cid)
-            quality, reason = channel_quality(view, updated_at, now, self._stale_after)
+            quality, reason = channel_quality(view, updated_at, now, self._stale_after,
+                                              self.refused_in_a_row.get(cid, 0))
             entry = ChannelEntry(view, quality, reason, updated_at,
                                  self._fragments.write(view, quality, reason, updated_at))
             entries[cid] = entry
@@ -574,7 +587,8 @@ class Engine:
         now = self._clock()
         changed = []
         for cid, entry in self._snapshot.channels.items():
-            quality, reason = channel_quality(entry.view, entry.updated_at, now, self._stale_after)
+            quality, reason = channel_quality(entry.view, entry.updated_at, now, self._stale_after,
+                                              self.refused_in_a_row.get(cid, 0))
             if (quality, reason) != (entry.quality, entry.quality_reason):
                 changed.append(cid)
         if changed:

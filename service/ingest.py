@@ -137,6 +137,8 @@ class MqttIngest:
         self._topics = dict(topics)
         self._submit = submit
         self._connected = threading.Event()
+        self._subscribed = threading.Event()      # the broker's SUBACK granted every topic of this connection
+        self._subscribe_mid: int | None = None
         self._stopping = threading.Event()
         self._thread: threading.Thread | None = None
         self._client: mqtt.Client | None = None
@@ -157,8 +159,17 @@ class MqttIngest:
         """Our network thread runs (paho's own ``is_connected`` can lie after a callback crash)."""
         return self._thread is not None and self._thread.is_alive()
 
+    @property
+    def subscribed(self) -> bool:
+        """Connected, and the broker acknowledged (SUBACK) every subscription of this connection."""
+        return self._connected.is_set() and self._subscribed.is_set()
+
     def wait_connected(self, timeout: float) -> bool:
         return self._connected.wait(timeout)
+
+    def wait_subscribed(self, timeout: float) -> bool:
+        """Wait until :attr:`subscribed` (messages published from now on reach us); False on timeout."""
+        return self._subscribed.wait(timeout) and self._connected.is_set()
 
     # ------------------------------------------------------------- lifecycle
     def start(self) -> None:
@@ -215,12 +226,16 @@ class MqttIngest:
             self.reconnects += 1
         log.info("connected to %s:%s (MQTT %s, session present %s)", self.settings.host, self.settings.port,
                  self.protocol, getattr(flags, "session_present", None))
+        self._subscribed.clear()
         if self._topics:
             qos = self.settings.qos
             if self.protocol == "5":
-                client.subscribe([(topic, SubscribeOptions(qos=qos)) for topic in self._topics])
+                _, self._subscribe_mid = client.subscribe([(topic, SubscribeOptions(qos=qos))
+                                                           for topic in self._topics])
             else:
-                client.subscribe([(topic, qos) for topic in self._topics])
+                _, self._subscribe_mid = client.subscribe([(topic, qos) for topic in self._topics])
+        else:
+            self._subscribed.set()                # nothing to subscribe to: nothing to wait for
         self._connected.set()
 
     def _on_subscribe(self, client: mqtt.Client, userdata: Any, mid: int, reason_codes: Any,
@@ -228,12 +243,18 @@ class MqttIngest:
         failed = [code for code in reason_codes if getattr(code, "is_failure", False)]
         if failed:
             log.error("broker refused %d of %d subscriptions: %s", len(failed), len(reason_codes), failed[0])
+        elif mid == self._subscribe_mid:
+            self._subscribed.set()
 
     def _on_disconnect(self, client: mqtt.Client, userdata: Any, flags: Any, reason_code: Any,
                        properties: Any) -> None:
         if self._connected.is_set():
-            log.warning("disconnected from broker: %s", reason_code)
+            if self._stopping.is_set():
+                log.info("disconnected from broker (stopping): %s", reason_code)
+            else:
+                log.warning("disconnected from broker: %s", reason_code)
         self._connected.clear()
+        self._subscribed.clear()
 
     def _on_message(self, client: mqtt.Client, userdata: Any, message: mqtt.MQTTMessage) -> None:
         self.received += 1

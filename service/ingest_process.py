@@ -94,7 +94,8 @@ def _carry_out(ingest: MqttIngest, item: tuple[Any, ...], wait: float = PUBLISH_
 
 
 def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing: Any, stop: Any,
-           connected: Any, reconnects: Any, errors: Any, protocol: Any, failures: Any, parent: int) -> None:
+           connected: Any, subscribed: Any, reconnects: Any, errors: Any, protocol: Any, failures: Any,
+           parent: int) -> None:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s[ingest]: %(message)s")
     batcher = _Batcher(out)
 
@@ -109,6 +110,7 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing:
     # Also stop when the service process is gone (killed before it could stop us).
     while not stop.is_set() and os.getppid() == parent:
         connected.value = 1 if ingest.connected and ingest.alive() else 0
+        subscribed.value = 1 if ingest.subscribed and ingest.alive() else 0
         reconnects.value = ingest.reconnects
         errors.value = ingest.callback_errors
         failures.value = ingest.publish_failures
@@ -144,13 +146,14 @@ class ProcessIngest:
         self._outgoing = context.Queue(max(OUTGOING_QUEUE, 8 * len(self._topics)))
         self._stop = context.Event()
         self._connected = context.Value("b", 0)
+        self._subscribed = context.Value("b", 0)
         self._reconnects = context.Value("q", 0)
         self._errors = context.Value("q", 0)
         self._protocol = context.Value("b", 0)
         self._failures = context.Value("q", 0)
         self._process = context.Process(
             target=_child, name="rwls-ingest", daemon=True,
-            args=(settings, self._topics, self._out, self._outgoing, self._stop, self._connected,
+            args=(settings, self._topics, self._out, self._outgoing, self._stop, self._connected, self._subscribed,
                   self._reconnects, self._errors, self._protocol, self._failures, os.getpid()))
         self._reader: threading.Thread | None = None
         self._stopping = threading.Event()
@@ -160,6 +163,11 @@ class ProcessIngest:
     @property
     def connected(self) -> bool:
         return bool(self._connected.value)
+
+    @property
+    def subscribed(self) -> bool:
+        """Connected, and the broker acknowledged (SUBACK) every subscription (as the child last saw it)."""
+        return bool(self._connected.value and self._subscribed.value)
 
     @property
     def protocol(self) -> str:
@@ -182,12 +190,21 @@ class ProcessIngest:
         return self._process.is_alive() and self._reader is not None and self._reader.is_alive()
 
     def wait_connected(self, timeout: float) -> bool:
+        return self._wait(lambda: self.connected, timeout)
+
+    def wait_subscribed(self, timeout: float) -> bool:
+        """Wait until :attr:`subscribed` (messages published from now on reach us); False on timeout."""
+        return self._wait(lambda: self.subscribed, timeout)
+
+    @staticmethod
+    def _wait(condition: Callable[[], bool], timeout: float) -> bool:
+        # Shared values between processes have no event to wait on: poll them (bounded).
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
-            if self.connected:
+            if condition():
                 return True
             time.sleep(0.01)
-        return self.connected
+        return condition()
 
     # ------------------------------------------------------------- lifecycle
     def start(self) -> None:

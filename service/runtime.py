@@ -255,9 +255,10 @@ class Runtime:
         engine_alive = self.engine.alive()
         depth = self.engine.queue_depth
         broker = None if self.ingest is None else {
-            "connected": self.ingest.connected, "thread_alive": self.ingest.alive(),
-            "protocol": self.ingest.protocol, "reconnects": self.ingest.reconnects}
-        broker_ok = self.ingest is None or (self.ingest.connected and self.ingest.alive())
+            "connected": self.ingest.connected, "subscribed": self.ingest.subscribed,
+            "thread_alive": self.ingest.alive(), "protocol": self.ingest.protocol,
+            "reconnects": self.ingest.reconnects}
+        broker_ok = self.ingest is None or (self.ingest.subscribed and self.ingest.alive())
         persistence = self.persistence
         checkpoint_age = (None if persistence is None or persistence.last_checkpoint_at is None
                           else max(0.0, time.time() - persistence.last_checkpoint_at))

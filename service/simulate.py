@@ -10,8 +10,10 @@ from __future__ import annotations
 
 import json
 import logging
+import math
 import threading
 import time
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
@@ -39,8 +41,13 @@ class PublishStats:
 
 def simulate(host: str, port: int, *, prefix: str = "larkspur", rate: float = 200.0, samples: int | None = None,
              seed: int = 7, client_id: str = "rwls-simulator", max_inflight: int = 1000,
-             stop: threading.Event | None = None, timeout: float = 30.0) -> PublishStats:
+             stop: threading.Event | None = None, timeout: float = 30.0,
+             resume_after: Mapping[str, float] | None = None) -> PublishStats:
     """Publish ``samples`` per channel (None: until ``stop``), ``rate`` messages per second in all.
+
+    ``resume_after`` maps a channel to the newest sample time a service already holds: the plant runs
+    through those samples again without publishing them (same seed, same random draws), so it carries on
+    where it left off instead of repeating samples a service refuses as already seen.
 
     Returns when done and every message is acknowledged (or ``timeout`` passed
     waiting for acknowledgements). Raises ``ConnectionError`` if the broker is
@@ -68,9 +75,12 @@ def simulate(host: str, port: int, *, prefix: str = "larkspur", rate: float = 20
         plant = larkspur_substation7(rng, samples=samples if samples is not None else 10**9)
         interval = 1.0 / rate
         next_at = time.monotonic()
+        held = resume_after or {}
         for sample in plant:
             if stop.is_set():
                 break
+            if sample.t <= held.get(sample.channel, -math.inf):
+                continue
             payload = json.dumps({"t": sample.t, "y": sample.y, "u": sample.inputs, "seq": sample.seq})
             while not window.acquire(timeout=0.5):
                 if stop.is_set():

@@ -17,7 +17,7 @@ from estimator.channel_bank import ChannelView
 from estimator.statistics import CONDITION_LIMIT
 from service.alarms import Alarm
 
-__all__ = ["CONDITION_LIMIT", "ChannelEntry", "FragmentWriter", "Snapshot", "channel_quality"]
+__all__ = ["CONDITION_LIMIT", "REFUSED_IN_A_ROW", "ChannelEntry", "FragmentWriter", "Snapshot", "channel_quality"]
 
 
 @dataclass(frozen=True)
@@ -41,13 +41,25 @@ class Snapshot:
     alarms: tuple[Alarm, ...] = ()        # copies of every alarm, when the engine keeps an alarm book
 
 
+# Refused samples in a row (none applied between them) after which a channel's estimates are no longer
+# "Good": its data arrive but none of it is used, so what the estimates say is getting old.
+REFUSED_IN_A_ROW = 5
+
+
 def channel_quality(view: ChannelView, updated_at: float | None, now: float,
-                    stale_after: float) -> tuple[str, str]:
-    """Quality family and reason (OPC UA Good / Uncertain / Bad) of a channel's estimates."""
+                    stale_after: float, refused_in_a_row: int = 0) -> tuple[str, str]:
+    """Quality family and reason (OPC UA Good / Uncertain / Bad) of a channel's estimates.
+
+    ``refused_in_a_row`` counts the channel's samples refused since it last applied one: from
+    ``REFUSED_IN_A_ROW`` on, the channel is ``samples_refused`` (Bad with no estimate yet, else Uncertain).
+    """
+    refusing = refused_in_a_row >= REFUSED_IN_A_ROW
     if view.applied == 0:
-        return "Bad", "no_data"
+        return "Bad", "samples_refused" if refusing else "no_data"
     if not view.identifiable or not all(map(math.isfinite, view.parameters.tolist())):
         return "Bad", "not_identifiable"
+    if refusing:
+        return "Uncertain", "samples_refused"
     if updated_at is not None and now - updated_at > stale_after:
         return "Uncertain", "stale"
     if not view.dof >= 1.0:

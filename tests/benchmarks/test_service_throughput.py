@@ -533,7 +533,7 @@ def _counts(runtime: Runtime) -> Counts:
 
 def _await_subscription(runtime: Runtime, port: int, topic: str, timeout: float = 20.0) -> None:
     """Until the service's subscription is in place: a malformed probe to ``topic`` shows up as rejected."""
-    assert runtime.ingest is not None and runtime.ingest.wait_connected(timeout), "service did not connect"
+    assert runtime.ingest is not None and runtime.ingest.wait_subscribed(timeout), "service did not subscribe"
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         publish_and_wait(port, [(topic, b"probe")], qos=1, timeout=5.0)

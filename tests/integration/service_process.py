@@ -150,13 +150,12 @@ class ServiceProcess:
             return json.loads(exc.read())
 
     def wait_subscribed(self, timeout: float = 30.0) -> None:
-        """Wait until the service reports its broker connection (it subscribes before it says so), plus a
-        moment for the broker to take the subscription: what is published after this reaches it."""
+        """Wait until ``/ready`` says the broker acknowledged the service's subscriptions (SUBACK): what is
+        published after this reaches it."""
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             with contextlib.suppress(OSError, KeyError, TypeError, ValueError):
-                if self.get("/api/v1/ready")["broker"]["connected"]:
-                    time.sleep(0.2)
+                if self.get("/api/v1/ready")["broker"]["subscribed"]:
                     return
             time.sleep(0.05)
         raise TimeoutError(f"the service did not connect to its broker in {timeout} s:\n{self.log_tail()}")

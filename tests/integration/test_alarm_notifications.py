@@ -94,8 +94,7 @@ def receivers() -> Iterator[Callable[..., _Receiver]]:
 def _run(config: RwlsConfig) -> Runtime:
     runtime = Runtime(config)
     runtime.start()
-    assert runtime.ingest is not None and runtime.ingest.wait_connected(10.0)
-    time.sleep(0.3)                       # SUBACK on its way
+    assert runtime.ingest is not None and runtime.ingest.wait_subscribed(10.0)
     return runtime
 
 

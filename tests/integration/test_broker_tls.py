@@ -110,8 +110,7 @@ def test_samples_arrive_over_tls_with_password_and_client_certificate(
     runtime = Runtime(_config(broker, files, tmp_path / "store", unique_prefix, client_id("rwls"), ingest=ingest))
     runtime.start()
     try:
-        assert runtime.ingest is not None and runtime.ingest.wait_connected(15.0), broker.log_tail()
-        time.sleep(0.3)                                   # SUBACK on its way
+        assert runtime.ingest is not None and runtime.ingest.wait_subscribed(15.0), broker.log_tail()
         payloads = [json.dumps({"t": 1000.0 + k, "y": 1.0 + 0.5 * (k % 7), "u": {"u": float(k % 7)},
                                 "seq": k}).encode() for k in range(50)]
         _publish_tls(broker, files, f"{unique_prefix}/dp", payloads, client_id("pub"))

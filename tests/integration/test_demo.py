@@ -1,4 +1,5 @@
-"""`rwls demo` comes up on its own: embedded broker, simulated plant, service; channels appear and move."""
+"""`rwls demo` comes up on its own (embedded broker, simulated plant, service), its channels move on every run,
+the second run included, and a healthy start logs no warning."""
 
 from __future__ import annotations
 
@@ -6,14 +7,22 @@ import json
 import re
 import subprocess
 import sys
+import threading
 import time
+import tomllib
 import urllib.request
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
 import pytest
 
+from service.demo import DEMO_CHANNELS_TOML
+
 pytestmark = pytest.mark.integration
+
+CHANNELS = set(tomllib.loads(DEMO_CHANNELS_TOML)["channels"])
 
 
 def _get(url: str) -> Any:
@@ -21,49 +30,133 @@ def _get(url: str) -> Any:
         return json.loads(response.read())
 
 
-def test_demo_comes_up_and_its_parameters_move(tmp_path: Path) -> None:
+class _Demo:
+    """A running ``rwls demo`` child: its URL and every line it printed so far."""
+
+    def __init__(self, process: subprocess.Popen[str]) -> None:
+        self.process = process
+        self.lines: list[str] = []
+        self.url: str | None = None
+        self._found = threading.Event()
+        threading.Thread(target=self._read, name="demo-output", daemon=True).start()
+
+    def _read(self) -> None:
+        assert self.process.stdout is not None
+        for line in self.process.stdout:
+            self.lines.append(line.rstrip("\n"))
+            match = re.search(r"service at (http://127\.0\.0\.1:\d+)/", line)
+            if match and self.url is None:
+                self.url = match.group(1)
+                self._found.set()
+
+    def wait_url(self, timeout: float) -> str:
+        assert self._found.wait(timeout), "the demo did not print its URL:\n" + "\n".join(self.lines)
+        assert self.url is not None
+        return self.url
+
+
+@contextmanager
+def _demo(data_dir: Path) -> Iterator[_Demo]:
     rwls = Path(sys.executable).with_name("rwls")
-    process = subprocess.Popen([str(rwls), "demo", "--port", "0", "--rate", "200", "--exit-after", "40",
-                                "--data-dir", str(tmp_path / "demo")],
+    process = subprocess.Popen([str(rwls), "demo", "--port", "0", "--rate", "200", "--exit-after", "60",
+                                "--data-dir", str(data_dir)],
                                stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     try:
-        url = None
-        deadline = time.monotonic() + 20
-        while url is None and time.monotonic() < deadline:
-            line = process.stdout.readline() if process.stdout else ""
-            match = re.search(r"service at (http://127\.0\.0\.1:\d+)/", line)
-            url = match.group(1) if match else None
-        assert url is not None, "the demo did not print its URL"
-
-        first: dict[str, Any] = {}
-        deadline = time.monotonic() + 25
-        while time.monotonic() < deadline:
-            try:
-                channels = _get(f"{url}/api/v1/channels")
-            except OSError:              # printed before uvicorn listens: try again shortly
-                time.sleep(0.3)
-                continue
-            if len(channels) == 4 and all(c["samples"] >= 50 for c in channels):
-                first = _get(f"{url}/api/v1/snapshot")
-                break
-            time.sleep(0.5)
-        assert first, "the demo channels did not fill with samples"
-        time.sleep(2.0)
-        second = _get(f"{url}/api/v1/snapshot")
-        assert second["version"] > first["version"]
-        moved = [cid for cid in first["channels"]
-                 if first["channels"][cid]["parameters"] != second["channels"][cid]["parameters"]]
-        assert len(moved) == 4, f"parameters did not move on {set(first['channels']) - set(moved)}"
-        gain = second["channels"]["sub7.flow"]["parameters"]["pump_speed"]
-        assert gain is not None and 40.0 < gain < 70.0      # the invented flowmeter's gain is 55
-        assert "advisory" in urllib.request.urlopen(f"{url}/", timeout=5).read().decode().lower()
+        yield _Demo(process)
     finally:
         if process.poll() is None:
-            process.terminate()          # our own child, by PID
+            process.terminate()          # our own child, by PID: a clean stop writes the final checkpoint
             try:
-                process.wait(15)
+                process.wait(20)
             except subprocess.TimeoutExpired:
                 process.kill()
                 process.wait(5)
         if process.stdout is not None:
             process.stdout.close()
+
+
+def _poll(condition: Any, timeout: float, what: str) -> Any:
+    """``condition()`` until it returns something truthy (OSError: not listening yet), bounded by ``timeout``."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            value = condition()
+        except OSError:
+            value = None
+        if value:
+            return value
+        time.sleep(0.1)
+    raise AssertionError(f"timed out after {timeout} s waiting for {what}")
+
+
+def _assert_moving(url: str, more_than: dict[str, int]) -> dict[str, int]:
+    """Every demo channel gains samples past ``more_than`` and its parameters change; returns the counts."""
+    def filled() -> dict[str, Any] | None:
+        channels = _get(f"{url}/api/v1/channels")
+        if {c["id"] for c in channels} == CHANNELS and all(
+                c["samples"] >= more_than.get(c["id"], 0) + 50 for c in channels):
+            return _get(f"{url}/api/v1/snapshot")
+        return None
+
+    first = _poll(filled, 30.0, "the demo channels to fill with new samples")
+
+    def moved() -> dict[str, Any] | None:
+        later = _get(f"{url}/api/v1/snapshot")
+        changed = {cid for cid in CHANNELS
+                   if later["channels"][cid]["parameters"] != first["channels"][cid]["parameters"]}
+        return later if changed == CHANNELS else None
+
+    second = _poll(moved, 20.0, "the parameters of every demo channel to move")
+    for cid in CHANNELS:
+        assert second["channels"][cid]["quality"] != "Bad", cid
+        assert second["channels"][cid]["quality_reason"] != "samples_refused", cid
+    gain = second["channels"]["sub7.flow"]["parameters"]["pump_speed"]
+    assert gain is not None and 40.0 < gain < 70.0      # the invented flowmeter's gain is 55
+    return {cid: entry["samples"] for cid, entry in second["channels"].items()}
+
+
+def _noisy_lines(lines: list[str]) -> list[str]:
+    return [line for line in lines if re.search(r"\b(WARNING|ERROR|CRITICAL)\b|Traceback", line)]
+
+
+def test_demo_moves_on_its_first_and_its_second_run_and_starts_quietly(tmp_path: Path) -> None:
+    data_dir = tmp_path / "demo"
+    with _demo(data_dir) as demo:
+        url = demo.wait_url(20.0)
+        counts = _assert_moving(url, {})
+        assert "advisory" in urllib.request.urlopen(f"{url}/", timeout=5).read().decode().lower()
+    assert demo.process.returncode is not None
+    assert not _noisy_lines(demo.lines), "\n".join(demo.lines)
+
+    # The same data directory again: the state is recovered and the plant carries on after it.
+    with _demo(data_dir) as again:
+        url = again.wait_url(20.0)
+        listed = _poll(lambda: _get(f"{url}/api/v1/channels"), 20.0, "the service to answer")
+        recovered = {c["id"]: c["samples"] for c in listed}
+        assert all(recovered[cid] >= counts[cid] for cid in CHANNELS), (recovered, counts)
+        _assert_moving(url, recovered)
+        refused = _get(f"{url}/api/v1/channels/sub7.flow")["rejected"]
+        assert refused == 0, "the second run's plant repeated samples the service already held"
+    assert any("the plant carries on after" in line for line in again.lines), "\n".join(again.lines)
+    assert not _noisy_lines(again.lines), "\n".join(again.lines)
+
+
+def test_demo_on_a_taken_port_says_so_in_one_line(tmp_path: Path) -> None:
+    import socket
+
+    holder = socket.socket()
+    holder.bind(("127.0.0.1", 0))
+    holder.listen()
+    port = holder.getsockname()[1]
+    try:
+        rwls = Path(sys.executable).with_name("rwls")
+        run = subprocess.run([str(rwls), "demo", "--port", str(port), "--data-dir", str(tmp_path / "d")],
+                             capture_output=True, text=True, timeout=60, check=False)
+    finally:
+        holder.close()
+    assert run.returncode == 2
+    assert "Traceback" not in run.stderr
+    lines = [line for line in run.stderr.splitlines() if line.strip()]
+    assert len(lines) == 1, run.stderr
+    assert f"port {port} on 127.0.0.1 is already in use" in lines[0]
+    assert "--port 0" in lines[0] and "http.port" in lines[0]

@@ -88,8 +88,7 @@ def start_runtime(tmp_path: Path) -> Iterator[Callable[[RwlsConfig], Runtime]]:
         runtime = Runtime(config)
         runtime.start()
         started.append(runtime)
-        assert runtime.ingest is not None and runtime.ingest.wait_connected(10.0)
-        time.sleep(0.3)          # SUBACK on its way
+        assert runtime.ingest is not None and runtime.ingest.wait_subscribed(10.0)
         return runtime
 
     yield start
@@ -223,7 +222,7 @@ def test_broker_restart_mid_stream_loses_no_sample(private_mosquitto: Callable[.
     runtime.ingest = ingest                     # acknowledgements (once in the input log) go to it
     ingest.start()
     try:
-        assert ingest.wait_connected(15.0)
+        assert ingest.wait_subscribed(15.0)
         _wait_applied(runtime, len(messages), timeout=30.0)
     finally:
         ingest.stop()

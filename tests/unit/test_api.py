@@ -619,7 +619,7 @@ def test_metrics_are_prometheus_text_with_applied_rejections_and_queue_depth(
 
 
 # ------------------------------------------------------------------ errors
-def test_invalid_path_or_query_parameter_is_422_invalid_request(make_runtime: Callable[..., Runtime]) -> None:
+def test_invalid_path_or_query_parameter_is_422_naming_each_field(make_runtime: Callable[..., Runtime]) -> None:
     app = create_app(make_runtime())
 
     # No shipped endpoint has a typed parameter, so a probe route exercises the app's validation handler.
@@ -629,10 +629,31 @@ def test_invalid_path_or_query_parameter_is_422_invalid_request(make_runtime: Ca
 
     with _test_client(app) as client:
         assert client.get("/api/v1/probe/3?limit=4").json() == {"number": 3, "limit": 4}
-        for path in ("/api/v1/probe/three", "/api/v1/probe/3?limit=many"):
+        expected = {
+            "/api/v1/probe/three": {"detail": "invalid path parameter number: must be an integer",
+                                    "errors": [{"field": "path.number", "problem": "must be an integer"}]},
+            "/api/v1/probe/3?limit=many": {"detail": "invalid query parameter limit: must be an integer",
+                                           "errors": [{"field": "query.limit", "problem": "must be an integer"}]},
+            "/api/v1/probe/x?limit=y": {"detail": "invalid path parameter number: must be an integer (and 1 more)",
+                                        "errors": [{"field": "path.number", "problem": "must be an integer"},
+                                                   {"field": "query.limit", "problem": "must be an integer"}]},
+        }
+        for path, body in expected.items():
             response = client.get(path)
             assert response.status_code == 422
-            assert response.json() == {"detail": "invalid request"}
+            assert response.json() == body
+
+
+def test_a_422_names_the_field_and_the_problem_never_the_value(make_runtime: Callable[..., Runtime]) -> None:
+    with _test_client(create_app(make_runtime())) as client:
+        response = client.get("/api/v1/channels/flow/history", params={"limit": 0})
+        assert response.status_code == 422
+        assert response.json() == {"detail": "invalid query parameter limit: must be at least 1",
+                                   "errors": [{"field": "query.limit", "problem": "must be at least 1"}]}
+        secret = "s3cr3t-value-" * 3
+        response = client.get("/api/v1/channels/flow/history", params={"since": secret})
+        assert response.status_code == 422 and secret not in response.text
+        assert response.json()["errors"] == [{"field": "query.since", "problem": "must be a number"}]
 
 
 def test_unhandled_error_is_500_internal_error_without_traceback(make_runtime: Callable[..., Runtime]) -> None:

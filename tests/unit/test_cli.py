@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import io
 import json
 from pathlib import Path
@@ -9,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from service.cli import main
+from service.cli import build_parser, main
 from service.progress import Progress
 
 REPO = Path(__file__).resolve().parents[2]
@@ -168,3 +169,48 @@ def test_demo_channels_are_those_of_the_bundled_example() -> None:
     built_in = parse_config(tomllib.loads(DEMO_CHANNELS_TOML))
     assert built_in.channel_settings() == example.channel_settings()
     assert {c: ch.topic for c, ch in built_in.channels.items()} == {c: ch.topic for c, ch in example.channels.items()}
+
+
+def test_serve_on_a_taken_port_says_so_in_one_line(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import socket
+
+    config = tmp_path / "plant.toml"
+    config.write_text(f'[store]\npath = "{tmp_path / "store"}"\n[channels.a]\ntopic = "t/a"\nterms = ["1"]\n')
+    holder = socket.socket()
+    holder.bind(("127.0.0.1", 0))
+    holder.listen()
+    port = holder.getsockname()[1]
+    try:
+        assert main(["serve", "-c", str(config), "--port", str(port)]) == 2
+    finally:
+        holder.close()
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1
+    assert err[0].startswith(f"rwls serve: port {port} on 127.0.0.1 is already in use")
+    assert "--port 0" in err[0] and "http.port" in err[0]
+
+
+def _subcommands() -> dict[str, argparse.ArgumentParser]:
+    actions = [a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction)]
+    return dict(actions[0].choices)
+
+
+@pytest.mark.parametrize("command", ["serve", "demo", "token", "simulate", "replay", "fit", "check-config"])
+def test_every_command_describes_itself_and_each_option(command: str) -> None:
+    parser = _subcommands()[command]
+    assert parser.description and len(parser.description.split()) >= 5, f"{command} has no description"
+    for action in parser._actions:
+        if not isinstance(action, argparse._HelpAction):
+            assert action.help and action.help.strip(), f"{command} {action.option_strings or action.dest} has no help"
+
+
+def test_the_subcommands_tested_are_all_there_are() -> None:
+    assert set(_subcommands()) == {"serve", "demo", "token", "simulate", "replay", "fit", "check-config"}
+
+
+def test_demo_help_names_the_data_directory_default_and_where_it_lives(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit):
+        main(["demo", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    assert "relative to the working directory" in text and "(default: rwls-demo-data)" in text
+    assert "(default: 7)" not in text            # demo has no seed; simulate has

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import time
 from typing import Any
 
 import numpy as np
@@ -78,3 +79,39 @@ def test_decoder_refusals_and_unknown_channels_are_dead_lettered_once_each() -> 
     assert engine.stats.rejected == {"malformed_json": 1, "unknown_channel": 1, "bad_type": 1}
     assert engine.stats.samples_applied == 2
     assert np.isfinite(engine.bank.view(["a"])["a"].parameters).all()
+
+
+def test_a_channel_whose_every_sample_is_refused_is_not_good_and_says_why() -> None:
+    # A restarted publisher repeating sequence numbers the channel already holds: nothing is applied.
+    engine, letters = _engine()
+    engine._process([_message("a", {"samples": [_sample(k) for k in range(1, 40)]}, received=time.time())])
+    engine.flush_now()
+    assert (engine.snapshot.channels["a"].quality, engine.snapshot.channels["a"].quality_reason) == ("Good", "")
+    for k in range(1, 6):
+        engine._process([_message("a", _sample(k), received=time.time())])
+    engine.flush_now()
+    entry = engine.snapshot.channels["a"]
+    assert [d.reason for d in letters] == ["out_of_order_seq"] * 5
+    assert (entry.quality, entry.quality_reason) == ("Uncertain", "samples_refused")
+    # One applied sample and the channel is itself again.
+    engine._process([_message("a", _sample(40), received=time.time())])
+    engine.flush_now()
+    assert (engine.snapshot.channels["a"].quality, engine.snapshot.channels["a"].quality_reason) == ("Good", "")
+
+
+def test_a_few_refusals_between_applied_samples_leave_the_channel_good() -> None:
+    engine, _ = _engine()
+    engine._process([_message("a", {"samples": [_sample(k) for k in range(1, 40)]}, received=time.time())])
+    for k in range(40, 60):
+        engine._process([_message("a", {"y": "not a number"}), _message("a", _sample(k), time.time())])
+    engine.flush_now()
+    assert engine.snapshot.channels["a"].quality == "Good"
+
+
+def test_a_channel_refusing_from_its_first_sample_is_bad_with_the_reason() -> None:
+    engine, _ = _engine()
+    for _ in range(5):
+        engine._process([_message("a", {"y": "not a number"})])
+    engine.flush_now()
+    entry = engine.snapshot.channels["a"]
+    assert (entry.quality, entry.quality_reason) == ("Bad", "samples_refused")
