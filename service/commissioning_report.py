@@ -69,9 +69,12 @@ def _gain_text(c: Comparison | None) -> str:
     if c is None:
         return "\u2014"
     if not c.weights_vary:
-        return "none (equal weights)"
+        return "1 (equal weights: WLS is OLS)"
     finite = c.gain[np.isfinite(c.gain)]
-    return "\u2014" if not finite.size else f"{finite.min():.3g} to {finite.max():.3g}"
+    if not finite.size:
+        return "\u2014"
+    low, high = f"{finite.min():.3g}", f"{finite.max():.3g}"
+    return low if low == high else f"{low} to {high}"
 
 
 def _summary(result: RunResult, comparisons: dict[str, Comparison | None]) -> str:
@@ -108,11 +111,20 @@ def _estimates(ch: dict[str, Any]) -> str:
             f"</thead><tbody>{rows}</tbody></table>")
 
 
+# Journal actions in words for people (the JSON keeps the codes).
+_TRANSITIONS = {"condition_on": "condition raised", "condition_off": "condition cleared",
+                "suppress": "suppressed by design", "release": "released from suppression",
+                "acknowledge": "acknowledged", "shelve": "shelved", "unshelve": "unshelved",
+                "shelve_expired": "shelving expired", "remove": "removed from service",
+                "restore": "returned to service"}
+
+
 def _alarm_table(alarms: Sequence[dict[str, Any]]) -> str:
     if not alarms:
         return '<p class="alarms-none">No alarm would have been raised.</p>'
     rows = "".join(
-        f'<tr><td>{_e(a["kind"])}</td><td>{_e(a["action"])}</td><td>{_e(a["state"])}</td>'
+        f'<tr><td>{_e(a["kind"])}</td><td>{_e(_TRANSITIONS.get(a["action"], a["action"]))}</td>'
+        f'<td>{_e(a["state"])}</td>'
         f'<td>{_when(a.get("t", a.get("sample")))}</td><td class="num">{_num(a.get("statistic"), 6)}</td>'
         f'<td class="num">{_num(a.get("limit"), 6)}</td><td>{_when(a.get("onset"))}</td>'
         f'<td>{_e(a.get("baseline") if a.get("baseline") is not None else "—")}</td></tr>' for a in alarms)
@@ -128,16 +140,19 @@ def _comparison_table(terms: Sequence[str], c: Comparison | None) -> str:
         f'<tr data-term="{_e(t)}"><td>{_e(t)}</td><td class="num">{_num(c.ols[j])}</td>'
         f'<td class="num">{_num(c.ols_se[j], 5)}</td><td class="num">{_num(c.ols_se_robust[j], 5)}</td>'
         f'<td class="num">{_num(c.wls[j])}</td><td class="num">{_num(c.wls_se[j], 5)}</td>'
+        f'<td class="num">{_num(c.wls_se_robust[j], 5)}</td>'
         f'<td class="num gain">{_num(c.gain[j], 4)}</td></tr>' for j, t in enumerate(terms))
     note = ("" if c.weights_vary else
-            '<p class="muted">Every sample had the same weight, so WLS is OLS here: the channel uses '
-            "<code>unit</code> weighting without weight rules.</p>")
+            '<p class="muted">Every sample had the same weight, so WLS is OLS here (the channel uses '
+            "<code>unit</code> weighting without weight rules) and the gain is exactly 1.</p>")
     return (f'<p>Batch fits over all {c.samples} applied samples, no forgetting. The efficiency gain is '
-            "(OLS robust s.e. / WLS s.e.)\u00b2: how many times as many samples OLS would need for the "
-            "precision WLS has.</p>"
+            "(OLS s.e. HC0 / WLS s.e. HC0)\u00b2, both heteroscedasticity-consistent so that only the weighting "
+            "differs: how many times as many samples OLS would need for the precision WLS has (below 1: the "
+            "weights cost precision, as an engineering weight rule may).</p>"
             '<table class="comparison"><thead><tr><th>Term</th><th class="num">OLS estimate</th>'
             '<th class="num">OLS s.e. (textbook)</th><th class="num">OLS s.e. (HC0, robust)</th>'
-            '<th class="num">WLS estimate</th><th class="num">WLS s.e.</th><th class="num">Gain</th></tr></thead>'
+            '<th class="num">WLS estimate</th><th class="num">WLS s.e. (textbook)</th>'
+            '<th class="num">WLS s.e. (HC0, robust)</th><th class="num">Gain</th></tr></thead>'
             f"<tbody>{rows}</tbody></table>{note}")
 
 

@@ -3,14 +3,16 @@
 Both are batch fits over every applied sample of a replay (no forgetting: the comparison is about
 the weights, not the memory). For OLS two standard errors are given: the textbook one, which assumes
 one noise variance for all samples, and the heteroscedasticity-consistent one (HC0, White 1980),
-which stays valid when the noise changes from sample to sample. The WLS errors are those of
-``(Z^T W Z)^-1`` scaled by the weighted residual variance. The efficiency gain of a parameter is
-``(SE_OLS,HC0 / SE_WLS)^2``: how many times more samples OLS would need for the same precision.
+which stays valid when the noise changes from sample to sample. The WLS errors are likewise given
+twice: those of ``(Z^T W Z)^-1`` scaled by the weighted residual variance (valid when the weights are
+the inverse noise variances up to one factor), and the HC0 sandwich of the weighted fit. The efficiency
+gain of a parameter compares like with like, ``(SE_OLS,HC0 / SE_WLS,HC0)^2``: how many times more samples
+OLS would need for the same precision, whatever the weights were. With every weight equal the two fits
+are one and the gain is exactly 1.
 """
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -32,7 +34,8 @@ class Comparison:
     ols_se_robust: FloatArray      # HC0 sandwich (Z^T Z)^-1 Z^T diag(e^2) Z (Z^T Z)^-1
     wls: FloatArray
     wls_se: FloatArray             # s_w^2 (Z^T W Z)^-1
-    gain: FloatArray               # (ols_se_robust / wls_se)^2
+    wls_se_robust: FloatArray      # HC0 of the weighted fit: (Z^T W Z)^-1 Z^T W diag(e^2) W Z (Z^T W Z)^-1
+    gain: FloatArray               # (ols_se_robust / wls_se_robust)^2; exactly 1 where every weight is equal
     samples: int
     weights_vary: bool             # False: every weight equal, WLS is OLS
 
@@ -66,9 +69,18 @@ def compare(Z: FloatArray, y: FloatArray, weight: FloatArray) -> Comparison | No
     ols_se_robust = np.sqrt(np.clip(np.diagonal(robust), 0.0, None))
     wls_var = wls.residual_ss / dof
     wls_se = np.sqrt(np.clip(np.diagonal(wls.unscaled_covariance) * wls_var, 0.0, None))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        gain = (ols_se_robust / wls_se) ** 2
-    spread = float(np.max(weight) / np.min(weight)) if n_samples else 1.0
+    weights_vary = not bool(np.all(weight == weight[0]))
+    if weights_vary:
+        weighted_residual = weight * (y - Z @ wls.parameters)
+        wls_meat = (Z * (weighted_residual * weighted_residual)[:, None]).T @ Z
+        wls_robust = wls.unscaled_covariance @ wls_meat @ wls.unscaled_covariance
+        wls_se_robust = np.sqrt(np.clip(np.diagonal(wls_robust), 0.0, None))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            gain = (ols_se_robust / wls_se_robust) ** 2
+    else:
+        # One weight for all: WLS is OLS, the same estimator, and gains nothing (not 0.99 of rounding).
+        wls_se_robust = ols_se_robust.copy()
+        gain = np.ones(n)
     return Comparison(ols=ols.parameters, ols_se=ols_se, ols_se_robust=ols_se_robust, wls=wls.parameters,
-                      wls_se=wls_se, gain=gain, samples=n_samples,
-                      weights_vary=not math.isclose(spread, 1.0, rel_tol=1e-12))
+                      wls_se=wls_se, wls_se_robust=wls_se_robust, gain=gain, samples=n_samples,
+                      weights_vary=weights_vary)

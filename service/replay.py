@@ -38,7 +38,8 @@ class RunResult:
     channels: dict[str, dict[str, object]]
     rows: int = 0
     bad_rows: int = 0
-    listed_problems: list[dict[str, object]] = field(default_factory=list)
+    listed_problems: list[dict[str, object]] = field(default_factory=list)   # the first MAX_LISTED_ROWS
+    problems_by_reason: dict[str, int] = field(default_factory=dict)         # every problem, counted
 
     def to_json(self) -> dict[str, object]:
         """The ``--json`` document (NaN and inf become null)."""
@@ -46,11 +47,15 @@ class RunResult:
             "channels": self.channels,
             "rows": self.rows,
             "bad_rows": self.bad_rows,
+            "problems_by_reason": dict(sorted(self.problems_by_reason.items())),
             "problems": self.listed_problems,
+            "problems_listed": len(self.listed_problems),
+            "problems_list_limit": MAX_LISTED_ROWS,
         })
 
 
 def _note(result: RunResult, line: int, channel: str | None, reason: str, detail: str = "") -> None:
+    result.problems_by_reason[reason] = result.problems_by_reason.get(reason, 0) + 1
     if len(result.listed_problems) < MAX_LISTED_ROWS:
         entry: dict[str, object] = {"line": line, "reason": reason}
         if channel is not None:
@@ -150,13 +155,19 @@ def fit_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = 
             continue
         dof = fit.effective_count - n
         residual_var = fit.residual_ss / dof if dof > 0 else math.nan
+        # The batch estimate of the noise sigma in units of y: the unweighted residuals, with the same
+        # exponential forgetting as the fit (one sigma for the whole history, whatever the weights were).
+        memory = view.settings.forgetting_factor ** np.arange(len(ys) - 1, -1, -1, dtype=np.float64)
+        residual = np.array(ys) - Zarr @ fit.parameters
+        noise_dof = float(memory.sum()) - n
+        noise_sigma = math.sqrt(float(memory @ (residual * residual)) / noise_dof) if noise_dof > 0 else math.nan
         cov = fit.unscaled_covariance * (residual_var if scale == "estimated" else 1.0)
         # Eigenvalues of the information Z^T W Z from the singular values of sqrt(W) Z.
         singular = np.linalg.svd(Zarr * np.sqrt(fit.weights)[:, None], compute_uv=False)
         batch_view = replace(
             view, parameters=fit.parameters, covariance=cov,
             std_errors=np.sqrt(np.clip(np.diagonal(cov), 0.0, None)), residual_sd=math.sqrt(residual_var),
-            dof=dof, noise_sigma=math.nan,      # the batch fit tracks no noise; see residual_sd
+            dof=dof, noise_sigma=noise_sigma,
             effective_count=fit.effective_count, min_information=float(singular[-1] ** 2),
             information_condition=float((singular[0] / singular[-1]) ** 2))
         result.channels[cid] = channel_report(batch_view)

@@ -1,7 +1,7 @@
 """The commissioning report's plots: PNG bytes drawn by matplotlib (Agg, no display), one figure each.
 
-The look follows the dashboard: Okabe-Ito colours, limits dashed, baselines dotted, so that a plot
-printed in grey still reads.
+The look follows the dashboard: Okabe-Ito colours, limits dashed, baselines dotted, alarm onsets solid with a
+triangle at the top, so that a plot printed in grey still reads.
 """
 
 from __future__ import annotations
@@ -57,7 +57,10 @@ def _png(figure: plt.Figure, axes: plt.Axes, alarms: Sequence[float], dated: boo
         axes.xaxis.set_major_locator(locator)
         axes.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
     for k, t in enumerate(_x(alarms, dated)):
-        axes.axvline(t, color=PURPLE, linestyle=(0, (4, 2)), linewidth=1.2, label="alarm" if k == 0 else None)
+        # Solid, thin, with a triangle at the top: never mistaken for a dashed limit, in grey too.
+        axes.axvline(t, color=PURPLE, linestyle="-", linewidth=0.9, alpha=0.8)
+        axes.plot([t], [1.0], marker="v", markersize=7, color=PURPLE, transform=axes.get_xaxis_transform(),
+                  clip_on=False, linestyle="none", label="alarm raised" if k == 0 else None)
     axes.legend(fontsize=7, loc="upper left", frameon=False, ncols=4)
     buffer = io.BytesIO()
     figure.savefig(buffer, format="png")

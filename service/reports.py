@@ -41,6 +41,9 @@ def channel_report(view: ChannelView) -> dict[str, object]:
                          for n, v, s in zip(names, theta, std, strict=True)},
         "covariance": np.asarray(view.covariance, dtype=float).tolist(),
         "residual_sd": float(view.residual_sd),
+        # "y": the residuals' own sd in units of y (every weight 1); "weighted": the sd of residual * sqrt(weight),
+        # dimensionless, about 1 when the weights are the inverse noise variances.
+        "residual_sd_scale": "y" if settings.weighting == "unit" and not settings.weight_rules else "weighted",
         "noise_sigma": float(view.noise_sigma),
         "samples": view.applied,
         "rejected": sum(view.rejected.values()),

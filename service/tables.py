@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import math
-from collections import Counter
 from datetime import UTC, datetime
 
 from service.replay import RunResult
 
-__all__ = ["render_text"]
+__all__ = ["SHOWN_PROBLEMS", "render_text"]
+
+SHOWN_PROBLEMS = 20       # problem lines in the text output; --json lists more, the counts are of all
 
 
 def _num(value: object, digits: int = 6) -> str:
@@ -40,6 +41,14 @@ def _alarm_lines(ch: dict[str, object]) -> list[str]:
     return lines
 
 
+def _residual_text(ch: dict[str, object]) -> str:
+    """The residual sd, saying which: in units of y (unit weights), or of the weighted residuals."""
+    if ch.get("residual_sd_scale") == "weighted":
+        return (f"weighted residual sd {_num(ch['residual_sd'])} (of residual x sqrt(weight), no unit; "
+                f"about 1 when the weights are 1/sigma^2)")
+    return f"residual sd {_num(ch['residual_sd'])} (units of y)"
+
+
 def render_text(result: RunResult, command: str) -> str:
     """A readable summary: one table per channel, then the refused rows."""
     out: list[str] = []
@@ -56,24 +65,28 @@ def render_text(result: RunResult, command: str) -> str:
             low, high = ch["intervals_95"][term]  # type: ignore[index]
             out.append(f"  {term:<{width}}  {_num(ch['parameters'][term], 10):>14}  "  # type: ignore[index]
                        f"{_num(ch['std_errors'][term], 4):>12}  [{_num(low)}, {_num(high)}]")  # type: ignore[index]
-        out.append(f"  residual sd {_num(ch['residual_sd'])}   noise sigma {_num(ch['noise_sigma'])}   "
-                   f"effective samples {_num(ch['effective_count'])}   "
+        out.append(f"  {_residual_text(ch)}   noise sigma {_num(ch['noise_sigma'])} (units of y"
+                   f"{', batch estimate' if command == 'fit' else ', tracked'})")
+        out.append(f"  effective samples {_num(ch['effective_count'])}   "
                    f"information condition {_num(ch['information_condition'], 3)}")
         if ch["rejections"]:
             reasons = ", ".join(f"{r} {n}" for r, n in ch["rejections"].items())  # type: ignore[union-attr]
             out.append(f"  rejected by reason: {reasons}")
         out += _alarm_lines(ch)
         out.append("")
-    if result.bad_rows or result.listed_problems:
-        reasons = Counter(str(p["reason"]) for p in result.listed_problems)
-        out.append(f"{result.rows} rows read, {result.bad_rows} unreadable; problems by reason: "
-                   + ", ".join(f"{r} {n}" for r, n in sorted(reasons.items())))
-        for problem in result.listed_problems[:20]:
+    if result.bad_rows or result.problems_by_reason:
+        total = sum(result.problems_by_reason.values())
+        out.append(f"{result.rows} rows read, {result.bad_rows} unreadable; {total} problems by reason: "
+                   + ", ".join(f"{r} {n}" for r, n in sorted(result.problems_by_reason.items())))
+        for problem in result.listed_problems[:SHOWN_PROBLEMS]:
             where = f" channel {problem['channel']}" if "channel" in problem else ""
             detail = f": {problem['detail']}" if "detail" in problem else ""
             out.append(f"  line {problem['line']}{where}: {problem['reason']}{detail}")
-        if len(result.listed_problems) > 20:
-            out.append(f"  ... {len(result.listed_problems) - 20} more (see --json)")
+        if total > SHOWN_PROBLEMS:
+            listed = len(result.listed_problems)
+            capped = f" (--json lists the first {listed}; the counts above are of all {total})" \
+                if listed < total else " (see --json)"
+            out.append(f"  ... {total - min(SHOWN_PROBLEMS, listed)} more not shown here{capped}")
     else:
         out.append(f"{result.rows} rows read, none refused")
     return "\n".join(out) + "\n"

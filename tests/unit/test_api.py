@@ -38,7 +38,8 @@ CHANNELS: dict[str, dict[str, object]] = {
     "o2": {"terms": ["1", "y[-1]", "u"], "weighting": "tracked", "noise": {"model_terms": ["1", "u"]}},
 }
 INPUTS = {"flow": ("u",), "flow.b": ("u",), "temp": ("v",), "o2": ("u",)}
-REPORT_FIELDS = {"terms", "parameters", "std_errors", "intervals_95", "covariance", "residual_sd", "noise_sigma",
+REPORT_FIELDS = {"terms", "parameters", "std_errors", "intervals_95", "covariance", "residual_sd", "residual_sd_scale",
+                 "noise_sigma",
                  "commissioned", "baseline", "detectors", "alarms",
                  "samples", "rejected", "rejections", "warmup", "forgetting_factor", "weighting",
                  "covariance_scale", "effective_count", "min_information", "information_condition"}

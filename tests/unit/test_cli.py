@@ -214,3 +214,39 @@ def test_demo_help_names_the_data_directory_default_and_where_it_lives(capsys: p
     text = " ".join(capsys.readouterr().out.split())
     assert "relative to the working directory" in text and "(default: rwls-demo-data)" in text
     assert "(default: 7)" not in text            # demo has no seed; simulate has
+
+
+def test_problem_counts_by_reason_are_totals_and_only_the_listing_is_capped(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from service.replay import MAX_LISTED_ROWS
+
+    bad = MAX_LISTED_ROWS + 600
+    rows = ["t,y,u"] + [f"{k},oops,1" for k in range(1, bad + 1)] + [f"{bad + k},{k},{k % 5}" for k in range(1, 40)]
+    rows += [f"{bad + 40},1,"] * 3          # three more of another reason, after the listing is full
+    data, config = _write(tmp_path, "\n".join(rows) + "\n", '[channels.c]\nterms = ["1", "u"]\n')
+    result = _json(capsys, "replay", data, "--config", config)
+    assert result["problems_by_reason"] == {"bad_number": bad, "missing_input": 3}
+    assert len(result["problems"]) == result["problems_listed"] == MAX_LISTED_ROWS
+    assert main(["replay", data, "--config", config, "--no-progress"]) == 0
+    text = capsys.readouterr().out
+    assert f"{bad + 3} problems by reason: bad_number {bad}, missing_input 3" in text
+    assert f"--json lists the first {MAX_LISTED_ROWS}; the counts above are of all {bad + 3}" in text
+
+
+def test_fit_gives_a_batch_noise_sigma_in_units_of_y_and_labels_the_residual_sd(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rng = np.random.default_rng(3)
+    u = rng.uniform(0.0, 2.0, 3000)
+    sigma = np.where(np.arange(3000) % 2 == 0, 0.1, 0.4)
+    y = 1.0 + 2.0 * u + sigma * rng.normal(size=3000)
+    rows = ["t,y,u,sigma"] + [f"{k},{float(y[k])!r},{float(u[k])!r},{float(sigma[k])!r}" for k in range(3000)]
+    channels = ('[channels.w]\nterms = ["1", "u"]\nweighting = "sample"\nforgetting_factor = 1.0\n')
+    data, config = _write(tmp_path, "\n".join(rows) + "\n", channels)
+    fit = _json(capsys, "fit", data, "--config", config)["channels"]["w"]
+    # One sigma for the whole history: the root mean square of 0.1 and 0.4 alternating, sqrt(0.085).
+    assert fit["noise_sigma"] == pytest.approx(np.sqrt(0.085), rel=0.05)
+    assert fit["residual_sd_scale"] == "weighted"
+    assert fit["residual_sd"] == pytest.approx(1.0, rel=0.05)      # weights 1/sigma^2 match the noise
+    assert main(["fit", data, "--config", config]) == 0
+    text = capsys.readouterr().out
+    assert "weighted residual sd" in text and "(units of y, batch estimate)" in text

@@ -123,3 +123,22 @@ def test_overrides_change_the_run_and_are_named_in_the_report(tmp_path: Path) ->
 @pytest.mark.parametrize(("flag", "value"), [("--offset-h", "0"), ("--variance-h", "-1"), ("--drift-alpha", "1.5")])
 def test_a_bad_override_is_a_usage_error(flag: str, value: str, tmp_path: Path) -> None:
     assert main(["replay", str(DATA), "--config", str(CONFIG), flag, value, "--no-progress"]) == 2
+
+
+def test_the_report_speaks_plainly_and_never_contradicts_itself(report: tuple[str, dict[str, object]]) -> None:
+    page, _ = report
+    visible = re.sub(r"<script.*?</script>|<[^>]+>", " ", page, flags=re.DOTALL)
+    # Internal journal codes stay in the JSON; people read words.
+    assert "condition_on" not in visible and "condition_off" not in visible
+    assert "condition raised" in visible
+    # A range of one value is that value.
+    assert not re.search(r"(?<![\w.])(-?\d[\d.e+-]*) to \1(?![\w.])", visible)
+    # Equal weights: WLS is OLS, and the gain says exactly that.
+    tables = re.findall(r'<table class="comparison">.*?</table>(<p class="muted">Every sample had the same weight)?',
+                        page, flags=re.DOTALL)
+    equal_weight_tables = re.findall(r'(<table class="comparison">(?:(?!</table>).)*</table>)<p class="muted">Every '
+                                     r"sample had the same weight", page, flags=re.DOTALL)
+    assert tables and equal_weight_tables         # the demo's flowmeter has unit weights
+    for table in equal_weight_tables:
+        gains = re.findall(r'<td class="num gain">([^<]*)</td>', table)
+        assert gains and set(gains) == {"1"}, gains

@@ -28,7 +28,9 @@ def test_both_fits_and_their_standard_errors_match_statsmodels(make_regression: 
     np.testing.assert_allclose(result.ols_se_robust, ols_hc0.bse, rtol=1e-9)   # statsmodels HC0 (White 1980)
     np.testing.assert_allclose(result.wls, wls.params, rtol=1e-10)          # statsmodels WLS
     np.testing.assert_allclose(result.wls_se, wls.bse, rtol=1e-9)           # statsmodels WLS bse
-    np.testing.assert_allclose(result.gain, (ols_hc0.bse / wls.bse) ** 2, rtol=1e-8)
+    wls_hc0 = sm.WLS(y, Z, weights=w).fit(cov_type="HC0")
+    np.testing.assert_allclose(result.wls_se_robust, wls_hc0.bse, rtol=1e-9)  # statsmodels WLS HC0
+    np.testing.assert_allclose(result.gain, (ols_hc0.bse / wls_hc0.bse) ** 2, rtol=1e-8)
     assert result.weights_vary and np.all(result.gain > 1.0)     # weights 0.2..5: WLS is more precise
 
 
@@ -38,6 +40,7 @@ def test_equal_weights_make_wls_ols_and_the_gain_one(make_regression: Callable[.
     assert result is not None and not result.weights_vary
     np.testing.assert_allclose(result.wls, result.ols, rtol=1e-12)
     np.testing.assert_allclose(result.wls_se, result.ols_se, rtol=1e-12)
+    assert result.gain.tolist() == [1.0, 1.0]               # exactly: one estimator compared with itself
 
 
 def test_too_few_samples_or_a_singular_design_give_no_comparison() -> None:
