@@ -29,6 +29,11 @@ __all__ = ["build_parser", "main"]
 log = logging.getLogger("rwls")
 
 
+# A budget leaving one detector of one channel more false alarms a day than this earns a warning: a plant-wide
+# figure (EEMUA 191's one alarm per ten minutes per operator, for instance) shared by very few channels.
+GENEROUS_BUDGET_PER_DAY = 3.0
+
+
 class _HelpWithDefaults(argparse.ArgumentDefaultsHelpFormatter):
     """Shows an option's default where it has one (not "default: None")."""
 
@@ -249,6 +254,12 @@ def main(argv: Sequence[str] | None = None) -> int:
             budget = config.budget_thresholds()
             if budget is not None:
                 print(f"false-alarm budget: {budget.explain()}")
+                per_day = budget.rate_per_detector * 86400.0
+                if per_day > GENEROUS_BUDGET_PER_DAY:
+                    print(f"warning: the budget leaves each detector of each channel {per_day:.3g} false alarms a "
+                          f"day (more than {GENEROUS_BUDGET_PER_DAY:g}): with {budget.channels} channel(s) it is "
+                          f"shared by few; operators will learn to ignore alarms that often. Lower "
+                          f"alarms.budget.false_alarms or raise alarms.budget.per_seconds.", file=sys.stderr)
             return 0
         if args.command == "serve":
             return _serve(args)

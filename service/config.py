@@ -19,10 +19,11 @@ import re
 import tomllib
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Literal
+from typing import Annotated, Literal
 from urllib.parse import urlsplit
 
 from pydantic import (
+    AfterValidator,
     BaseModel,
     ConfigDict,
     Field,
@@ -35,7 +36,7 @@ from pydantic import (
 
 from estimator.channel import ChannelSettings, WeightRule
 from estimator.channel_bank import ChannelBank
-from estimator.regressors import RegressorSpec
+from estimator.regressors import RegressorSpec, parse_term
 from service.config_alarms import (
     AlarmKindConfig,
     AlarmsConfig,
@@ -137,6 +138,15 @@ class WeightRuleConfig(_Strict):
         return self
 
 
+def _one_term(text: str) -> str:
+    parse_term(text)             # ValueError names the term and what is wrong with it
+    return text
+
+
+# One term of a list, checked on its own: every bad term of a list is reported in one pass, each by its index.
+TermText = Annotated[str, AfterValidator(_one_term)]
+
+
 class NoiseConfig(_Strict):
     """Noise-variance tracker of a channel."""
 
@@ -145,7 +155,7 @@ class NoiseConfig(_Strict):
     robust: bool = False
     warmup: int = Field(default=10, ge=1)
     initial_sigma: float = Field(default=1.0, gt=0.0, description="sigma assumed before warm-up (tracked)")
-    model_terms: list[str] = Field(default_factory=list, description="operating-point log-variance terms")
+    model_terms: list[TermText] = Field(default_factory=list, description="operating-point log-variance terms")
     model_forgetting_factor: float = Field(default=0.999, gt=0.0, le=1.0)
 
     @field_validator("model_terms")
@@ -159,7 +169,7 @@ class NoiseConfig(_Strict):
 class ChannelConfig(_Strict):
     """One channel table, ``[channels.<id>]``."""
 
-    terms: list[str] = Field(min_length=1)
+    terms: list[TermText] = Field(min_length=1)
     forgetting_factor: float = 1.0
     weighting: Literal["unit", "sample", "tracked"] = "unit"
     weight_rules: list[WeightRuleConfig] = Field(default_factory=list)
@@ -500,7 +510,8 @@ def _explain(error: ValidationError, sources: Mapping[tuple[str, ...], str] | No
     problems = []
     for item in error.errors():
         loc = tuple(str(part) for part in item["loc"])
-        key = ".".join(loc) or "(file)"
+        key = "".join(f"[{part}]" if isinstance(part, int) else f".{part}" for part in item["loc"]).lstrip(".")
+        key = key or "(file)"
         message = item["msg"].removeprefix("Value error, ")
         if item["type"] == "extra_forbidden":
             message = "unknown key"

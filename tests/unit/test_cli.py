@@ -250,3 +250,30 @@ def test_fit_gives_a_batch_noise_sigma_in_units_of_y_and_labels_the_residual_sd(
     assert main(["fit", data, "--config", config]) == 0
     text = capsys.readouterr().out
     assert "weighted residual sd" in text and "(units of y, batch estimate)" in text
+
+
+def test_check_config_reports_every_bad_term_of_a_list_in_one_pass(tmp_path: Path,
+                                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    config = tmp_path / "bad.toml"
+    config.write_text('[channels.a]\nterms = ["1", "u^", "v*", "u"]\nnoise = { model_terms = ["1", "load^0"] }\n'
+                      '[channels.b]\nterms = ["y[-1"]\n')
+    assert main(["check-config", str(config)]) == 2
+    err = capsys.readouterr().err
+    keys = [line.split(":", 1)[0].strip() for line in err.splitlines()[1:]]
+    assert keys == ["channels.a.terms[1]", "channels.a.terms[2]", "channels.a.noise.model_terms[1]",
+                    "channels.b.terms[0]"]
+
+
+def test_check_config_warns_of_a_budget_shared_by_too_few_channels(tmp_path: Path,
+                                                                  capsys: pytest.CaptureFixture[str]) -> None:
+    budget = "[alarms]\nbudget = {{ false_alarms = 1, per_seconds = 600, sample_period = 10 }}\n"
+    one = tmp_path / "one.toml"
+    one.write_text(budget.format() + '[channels.a]\nterms = ["1", "u"]\n')
+    assert main(["check-config", str(one)]) == 0
+    out, err = capsys.readouterr()
+    assert "false-alarm budget:" in out
+    assert err.startswith("warning: the budget leaves each detector of each channel 48 false alarms a day")
+    many = tmp_path / "many.toml"       # 1,000 channels: 0.048 a day each, no warning
+    many.write_text(budget.format() + "".join(f'[channels.c{k}]\nterms = ["1", "u"]\n' for k in range(1000)))
+    assert main(["check-config", str(many)]) == 0
+    assert capsys.readouterr().err == ""

@@ -38,7 +38,7 @@ def test_forgetting_factor_out_of_range_names_the_key() -> None:
 
 def test_bad_term_names_the_key_and_the_term() -> None:
     (problem,) = _problems({"channels": {"flow": {"terms": ["1", "2u"]}}})
-    assert problem.startswith("channels.flow.terms: term '2u': cannot read factor '2u'")
+    assert problem.startswith("channels.flow.terms[1]: term '2u': cannot read factor '2u'")
 
 
 def test_unknown_key_and_missing_terms_are_both_reported() -> None:
@@ -55,7 +55,7 @@ def test_weighting_must_be_one_of_three() -> None:
 def test_weight_rule_band_must_be_ordered() -> None:
     rule = {"input": "u", "low": 5.0, "high": 1.0, "factor": 2.0}
     (problem,) = _problems({"channels": {"x": {"terms": ["1", "u"], "weight_rules": [rule]}}})
-    assert problem.startswith("channels.x.weight_rules.0:") and "low <= high" in problem
+    assert problem.startswith("channels.x.weight_rules[0]:") and "low <= high" in problem
 
 
 def test_channel_ids_are_restricted() -> None:
