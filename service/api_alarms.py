@@ -24,6 +24,17 @@ from estimator.baseline import Baseline
 from service.alarms import AlarmRefused
 from service.auth import Access, Principal
 from service.engine import EngineBusy
+from service.operations import (
+    Acknowledge,
+    Inspect,
+    LearnBaseline,
+    Remove,
+    Reset,
+    Restore,
+    SetBaseline,
+    Shelve,
+    Unshelve,
+)
 from service.reports import finite_or_null
 from service.runtime import Runtime
 
@@ -81,23 +92,24 @@ def _actor(who: Principal, body: _Body) -> str:
 
 def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
     """Register the alarm, baseline, reset and event-stream routes (reads, operate and configure checks)."""
-    book = runtime.alarms
+    known_alarms = frozenset(alarm.id for alarm in runtime.engine.snapshot.alarms)    # fixed by the configuration
     read = [Depends(access.needs("read"))]
     operator = Depends(access.needs("operate"))
     engineer = Depends(access.needs("configure"))
 
-    def alarm_action(op: str, alarm_id: str, body: _Body, who: Principal,
-                     **more: object) -> dict[str, object] | JSONResponse:
-        if alarm_id not in book:
+    def alarm_action(action: type[Acknowledge | Shelve | Unshelve | Remove | Restore], alarm_id: str, body: _Body,
+                     who: Principal, **more: float) -> dict[str, object] | JSONResponse:
+        if alarm_id not in known_alarms:
             return JSONResponse({"detail": "unknown_alarm", "message": f"no alarm {alarm_id!r}"}, status_code=404)
-        args = {"alarm": alarm_id, "user": _actor(who, body), "comment": body.comment, "time": time.time(), **more}
+        operation = action(alarm=alarm_id, user=_actor(who, body), comment=body.comment or "", time=time.time(),
+                           **more)
         try:
-            entry = runtime.engine.operate(op, args)
+            changed = runtime.engine.execute(operation)
         except AlarmRefused as exc:
             return _refused(exc)
         except EngineBusy as exc:
             return _busy(exc)
-        return {"entry": entry, "alarm": book.get(alarm_id).to_dict()}
+        return {"entry": changed.entry.to_dict(), "alarm": changed.alarm.to_dict()}
 
     @app.get("/api/v1/alarms", dependencies=read, summary="Alarms (by default those not Normal), filtered and paged")
     def alarms(channel: str | None = None, kind: str | None = None, state: str | None = None,
@@ -119,26 +131,26 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
     @app.post("/api/v1/alarms/{alarm_id}/ack", summary="Acknowledge an alarm", response_model=None)
     def acknowledge(alarm_id: str, body: AckBody,
                     who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action("acknowledge", alarm_id, body, who)
+        return alarm_action(Acknowledge, alarm_id, body, who)
 
     @app.post("/api/v1/alarms/{alarm_id}/shelve", summary="Shelve an alarm for some minutes", response_model=None)
     def shelve(alarm_id: str, body: ShelveBody, who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action("shelve", alarm_id, body, who, until=time.time() + 60.0 * body.minutes)
+        return alarm_action(Shelve, alarm_id, body, who, until=time.time() + 60.0 * body.minutes)
 
     @app.post("/api/v1/alarms/{alarm_id}/unshelve", summary="End an alarm's shelving", response_model=None)
     def unshelve(alarm_id: str, body: AckBody,
                  who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action("unshelve", alarm_id, body, who)
+        return alarm_action(Unshelve, alarm_id, body, who)
 
     @app.post("/api/v1/alarms/{alarm_id}/remove", summary="Take an alarm out of service", response_model=None)
     def remove(alarm_id: str, body: AckBody,
                who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action("remove", alarm_id, body, who)
+        return alarm_action(Remove, alarm_id, body, who)
 
     @app.post("/api/v1/alarms/{alarm_id}/restore", summary="Return an alarm to service", response_model=None)
     def restore(alarm_id: str, body: AckBody,
                 who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action("restore", alarm_id, body, who)
+        return alarm_action(Restore, alarm_id, body, who)
 
     @app.get("/api/v1/channels/{channel_id}/baselines", dependencies=read,
              summary="Every baseline of a channel, oldest first",
@@ -148,7 +160,7 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
         if entry is None:
             return JSONResponse({"detail": "unknown channel"}, status_code=404)
         try:
-            history = runtime.engine.command(lambda engine: engine.bank.baselines(channel_id))
+            history = runtime.engine.execute(Inspect(lambda engine: engine.bank.baselines(channel_id)))
         except EngineBusy as exc:
             return _busy(exc)
         return {"baselines": [baseline_json(b, entry.view.terms) for b in history],
@@ -164,24 +176,24 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
         terms = entry.view.terms
         actor = _actor(who, body)
         note = f"{actor}: {body.comment}" if body.comment else actor
-        args: dict[str, object] = {"channel": channel_id, "note": note}
+        operation: SetBaseline | LearnBaseline
         if body.action == "set":
             if body.parameters is None or body.noise_sigma is None or set(body.parameters) != set(terms):
                 return JSONResponse({"detail": "bad_baseline", "message": f"set needs noise_sigma and a value for "
                                      f"each term: {', '.join(terms)}"}, status_code=422)
-            values = [body.parameters[name] for name in terms]
+            values = tuple(body.parameters[name] for name in terms)
             if not all(math.isfinite(v) for v in values):
                 return JSONResponse({"detail": "bad_baseline", "message": "values must be finite"}, 422)
-            args.update(parameters=values, noise_sigma=body.noise_sigma)
+            operation = SetBaseline(channel=channel_id, parameters=values, noise_sigma=body.noise_sigma, note=note)
+        else:
+            operation = LearnBaseline(channel=channel_id, note=note)
         try:
-            version = runtime.engine.operate("set_baseline" if body.action == "set" else "learn_baseline", args)
-            history = runtime.engine.command(lambda engine: engine.bank.baselines(channel_id))
+            made = runtime.engine.execute(operation)
         except EngineBusy as exc:
             return _busy(exc)
-        if version is None:
+        if made is None:
             return JSONResponse({"detail": "not_identifiable", "message": "the estimates cannot be judged yet"},
                                 status_code=409)
-        made = next(b for b in history if b.version == version)
         return {"baseline": baseline_json(made, terms)}
 
     @app.post("/api/v1/channels/{channel_id}/reset", response_model=None,
@@ -191,8 +203,7 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
             return JSONResponse({"detail": "unknown channel"}, status_code=404)
 
         try:
-            runtime.engine.operate("reset", {"channel": channel_id, "user": _actor(who, body),
-                                             "comment": body.comment})
+            runtime.engine.execute(Reset(channel=channel_id, user=_actor(who, body), comment=body.comment or ""))
         except EngineBusy as exc:
             return _busy(exc)
         return {"reset": channel_id, "by": _actor(who, body)}

@@ -36,7 +36,7 @@ from estimator.sample_columns import SampleColumns
 from service.alarm_feed import AlarmFeed
 from service.alarms import Alarm, AlarmBook, JournalEntry
 from service.input_log import InputLog
-from service.operations import OPERATIONS
+from service.operations import Operation, operation_record
 from service.payload import DecodedSample, Rejection, decode_payload
 from service.payload_columns import decode_columns
 from service.redelivery import RecentlyLogged
@@ -136,18 +136,12 @@ class EngineBusy(RuntimeError):
     """The engine could not take or finish a command in time."""
 
 
-@dataclass
+@dataclass(frozen=True)
 class Command:
-    """Something to do on the engine thread (the single writer), with a future for its result.
+    """An operation queued for the engine thread (the single writer), with a future for its result."""
 
-    An operation (``op`` and ``args``, see :mod:`service.operations`) changes state and is written
-    to the input log first; a query (``action``) only reads and is not.
-    """
-
+    operation: Operation[object]
     future: concurrent.futures.Future[object]
-    action: Callable[[Engine], object] | None = None
-    op: str | None = None
-    args: dict[str, object] = field(default_factory=dict)
 
 
 class Engine:
@@ -231,31 +225,24 @@ class Engine:
             return False
         return True
 
-    def command(self, action: Callable[[Engine], T], timeout: float = 10.0) -> T:
-        """Run the read-only ``action(engine)`` on the engine thread, in order with the samples before it.
+    def execute(self, operation: Operation[T], timeout: float = 10.0) -> T:
+        """Run an operation (:mod:`service.operations`) on the engine thread, in order with the samples
+        queued before it; a logged one is in the synced input log before it applies. Returns its result.
 
         Raises
         ------
         EngineBusy
             The queue stayed full, or the engine did not answer within ``timeout``.
         Exception
-            Whatever ``action`` raised.
+            Whatever the operation raised (an alarm action the state does not allow, for instance).
         """
-        return self._submit_command(Command(concurrent.futures.Future(), action=action), timeout)  # type: ignore
-
-    def operate(self, op: str, args: dict[str, object], timeout: float = 10.0) -> object:
-        """Run operation ``op`` (:mod:`service.operations`) on the engine thread, logged for recovery."""
-        if op not in OPERATIONS:
-            raise ValueError(f"unknown operation {op!r}")
-        return self._submit_command(Command(concurrent.futures.Future(), op=op, args=args), timeout)
-
-    def _submit_command(self, command: Command, timeout: float) -> object:
+        command = Command(operation, concurrent.futures.Future())
         try:
             self._queue.put(command, timeout=timeout)  # type: ignore[arg-type]
         except queue.Full:
             raise EngineBusy("engine queue full") from None
         try:
-            return command.future.result(timeout)
+            return command.future.result(timeout)  # type: ignore[return-value]
         except concurrent.futures.TimeoutError:
             raise EngineBusy(f"engine did not answer within {timeout} s") from None
 
@@ -382,24 +369,20 @@ class Engine:
 
     def _execute(self, command: Command) -> None:
         try:
-            if command.op is not None:
-                if self.log is not None:
-                    self.position = self.log.append([("o", (command.op, command.args))])
-                    self.log.sync()
-                result = self.run_operation(command.op, command.args)
-            else:
-                result = command.action(self) if command.action is not None else None
-            command.future.set_result(result)
+            if command.operation.logged and self.log is not None:
+                self.position = self.log.append([("o", operation_record(command.operation))])
+                self.log.sync()
+            command.future.set_result(self.apply_operation(command.operation))
         except Exception as exc:      # the caller gets it; the loop goes on
             command.future.set_exception(exc)
         finally:
             self._queue.task_done()
         self._flush()
 
-    def run_operation(self, op: str, args: dict[str, object]) -> object:
-        """Run an operation now (the engine thread, or recovery before it starts)."""
+    def apply_operation(self, operation: Operation[T]) -> T:
+        """Apply an operation now, not logged (the engine thread, or recovery before it starts)."""
         try:
-            return OPERATIONS[op](self, args)
+            return operation.apply(self)
         finally:
             self._take_events()
 

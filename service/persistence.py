@@ -36,6 +36,7 @@ import numpy as np
 from estimator.bank_state import export_state, import_state
 from service.engine import EngineStats, Message
 from service.input_log import InputLog
+from service.operations import operation_from_record
 from service.snapshot import ChannelEntry
 from service.store import KEEP_CHECKPOINTS, Store
 
@@ -217,7 +218,7 @@ class Persistence:
                     batch = []
                 name, args = fields
                 try:
-                    engine.run_operation(str(name), dict(args))
+                    engine.apply_operation(operation_from_record(str(name), dict(args)))
                 except Exception as exc:          # refused then, refused again now: the same outcome
                     log.info("replayed operation %s refused again: %s", name, exc)
             engine.position = seq

@@ -29,6 +29,7 @@ from service.ingest_process import ProcessIngest
 from service.input_log import InputLog
 from service.log_throttle import LogThrottle
 from service.notify import EventHub, MqttAlarms, WebhookSender
+from service.operations import Inspect
 from service.payload import DecodedSample, Rejection
 from service.persistence import Persistence
 from service.store import Store, store_url
@@ -138,7 +139,7 @@ class Runtime:
             if self.alarm_topics is not None:
                 alarm_topics = self.alarm_topics
                 # Every alarm's retained state, so the tree is complete from the start (engine thread).
-                self.engine.command(lambda engine: alarm_topics.publish_all(self.alarms.alarms()))
+                self.engine.execute(Inspect(lambda engine: alarm_topics.publish_all(self.alarms.alarms())))
 
     def _open_persistence(self) -> None:
         store_config = self.config.store

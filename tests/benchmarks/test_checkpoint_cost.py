@@ -20,6 +20,7 @@ import pytest
 
 from service.config import parse_config
 from service.engine import Message
+from service.operations import Inspect
 from service.persistence import encode_checkpoint
 from service.runtime import Runtime
 from service.store import Store, store_url
@@ -73,7 +74,7 @@ def _measure(runtime: Runtime, store: Store, scratch: Path) -> dict[str, Any]:
             started = time.perf_counter()
             state = persistence.state(engine)
             return time.perf_counter() - started, state
-        seconds, (arrays, meta) = runtime.engine.command(copy, timeout=60.0)
+        seconds, (arrays, meta) = runtime.engine.execute(Inspect(copy), timeout=60.0)
         copies.append(seconds)
         started = time.perf_counter()
         body = encode_checkpoint(arrays, meta)

@@ -15,6 +15,7 @@ import pytest
 
 from service.api import create_app
 from service.config import parse_config
+from service.operations import Inspect
 from service.runtime import Runtime
 from tests.auth_tokens import auth_section, bearer
 
@@ -59,7 +60,7 @@ def _samples(first: int, count: int, offset: float = 0.0, seed: int = 0) -> list
 
 def _settle(runtime: Runtime) -> None:
     assert runtime.engine.drain(10.0)
-    runtime.engine.command(lambda engine: None)        # a command after the samples: their snapshot is out
+    runtime.engine.execute(Inspect(lambda engine: None))   # an operation after the samples: their snapshot is out
 
 
 def _raise_offset(runtime: Runtime, client: Any) -> None:

@@ -173,9 +173,9 @@ def test_no_token_reaches_the_logs(served: tuple[Runtime, Any], caplog: pytest.L
 
 # ------------------------------------------------------- configuration
 def test_token_configuration_is_checked_by_key(tmp_path: Path) -> None:
-    bad = [({"tokens": [{"name": "a", "role": "viewer", "sha256": "abc"}]}, "auth.tokens.0.sha256"),
-           ({"tokens": [{"name": "a", "role": "root", "sha256": "a" * 64}]}, "auth.tokens.0.role"),
-           ({"tokens": [{"name": "a b", "role": "viewer", "sha256": "a" * 64}]}, "auth.tokens.0.name"),
+    bad = [({"tokens": [{"name": "a", "role": "viewer", "sha256": "abc"}]}, "auth.tokens[0].sha256"),
+           ({"tokens": [{"name": "a", "role": "root", "sha256": "a" * 64}]}, "auth.tokens[0].role"),
+           ({"tokens": [{"name": "a b", "role": "viewer", "sha256": "a" * 64}]}, "auth.tokens[0].name"),
            ({"tokens": [{"name": "a", "role": "viewer", "sha256": "a" * 64},
                         {"name": "a", "role": "engineer", "sha256": "b" * 64}]}, "auth.tokens"),
            ({"reads": "maybe"}, "auth.reads")]

@@ -7,6 +7,7 @@ from pathlib import Path
 
 from service.config import parse_config
 from service.engine import Message
+from service.operations import Inspect
 from service.runtime import Runtime
 
 T0 = 1_704_067_200.0          # 2024-01-01: long before the wall clock of any test run
@@ -37,14 +38,14 @@ def test_rows_dated_long_before_the_wall_clock_are_kept_and_only_those_past_rete
         persistence = runtime.persistence
         assert persistence is not None
         k = _feed(runtime, 0, 1.0)                                      # one day of hourly rows
-        runtime.engine.command(lambda engine: persistence.periodic(engine))
-        runtime.engine.command(lambda engine: persistence.checkpoint(engine))
+        runtime.engine.execute(Inspect(lambda engine: persistence.periodic(engine)))
+        runtime.engine.execute(Inspect(lambda engine: persistence.checkpoint(engine)))
         first_day = runtime.history("a", None, None, 10_000)
         assert len(first_day) == 24                                     # nothing pruned: within 2 days of the newest
         persistence._last_prune = 0.0                                   # the next periodic job prunes again
         _feed(runtime, k, 3.0)                                          # three more days
-        runtime.engine.command(lambda engine: persistence.checkpoint(engine))
-        runtime.engine.command(lambda engine: persistence.periodic(engine))
+        runtime.engine.execute(Inspect(lambda engine: persistence.checkpoint(engine)))
+        runtime.engine.execute(Inspect(lambda engine: persistence.periodic(engine)))
         rows = runtime.history("a", None, None, 10_000)
     finally:
         runtime.stop()
@@ -73,11 +74,11 @@ def test_rows_stay_visible_while_a_checkpoint_writes_them(tmp_path: Path) -> Non
             return save(*args, **kwargs)                                 # type: ignore[arg-type]
 
         persistence.store.save = slow_save                               # type: ignore[method-assign]
-        runtime.engine.command(lambda engine: persistence.checkpoint(engine, wait=False))
+        runtime.engine.execute(Inspect(lambda engine: persistence.checkpoint(engine, wait=False)))
         assert inside.wait(10.0)
         during = runtime.history("a", None, None, 100)                   # handed to the writer, not stored yet
         gate.set()
-        runtime.engine.command(lambda engine: persistence.checkpoint(engine))   # waits for the writer first
+        runtime.engine.execute(Inspect(lambda engine: persistence.checkpoint(engine)))  # waits for the writer first
         after = runtime.history("a", None, None, 100)
     finally:
         runtime.stop()

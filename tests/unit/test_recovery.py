@@ -13,6 +13,7 @@ from sqlalchemy import update
 
 from service.config import parse_config
 from service.engine import Message
+from service.operations import Acknowledge, Inspect
 from service.persistence import Persistence
 from service.runtime import Runtime
 from service.store import checkpoints
@@ -52,7 +53,7 @@ def _feed(runtime: Runtime, messages: list[Message]) -> None:
 def _checkpoint(runtime: Runtime) -> None:
     persistence = runtime.persistence
     assert persistence is not None
-    runtime.engine.command(lambda engine: persistence.checkpoint(engine))
+    runtime.engine.execute(Inspect(lambda engine: persistence.checkpoint(engine)))
 
 
 def _crash(runtime: Runtime) -> None:
@@ -92,8 +93,8 @@ def test_a_crash_after_any_checkpoint_recovers_the_uninterrupted_state(tmp_path:
     whole.start()
     for chunk in chunks:
         _feed(whole, chunk)
-    ack = whole.engine.operate("acknowledge", {"alarm": "c1:offset", "user": "ana", "comment": "seen", "time": 9.0})
-    assert ack["after"] == "Acknowledged"  # type: ignore[index]
+    ack = whole.engine.execute(Acknowledge(alarm="c1:offset", user="ana", comment="seen", time=9.0))
+    assert ack.entry.after == "Acknowledged"
 
     first = _runtime(tmp_path / "crashed")
     first.start()
@@ -107,7 +108,7 @@ def test_a_crash_after_any_checkpoint_recovers_the_uninterrupted_state(tmp_path:
     second.start()
     assert second.recovery is not None and second.recovery["replayed"] > 0
     _feed(second, chunks[3])
-    second.engine.operate("acknowledge", {"alarm": "c1:offset", "user": "ana", "comment": "seen", "time": 9.0})
+    second.engine.execute(Acknowledge(alarm="c1:offset", user="ana", comment="seen", time=9.0))
     try:
         _same(whole, second)
     finally:
@@ -169,7 +170,7 @@ def test_readers_see_the_recovered_alarm_states_not_those_of_the_fresh_start(tmp
     _feed(runtime, _messages(0, 200))                    # c1's offset step raises its alarm
     raised = {a.id: str(a.state) for a in runtime.engine.snapshot.alarms}
     assert raised["c1:offset"] == "Unacknowledged"
-    runtime.engine.operate("acknowledge", {"alarm": "c1:offset", "user": "ana", "comment": "", "time": 5.0})
+    runtime.engine.execute(Acknowledge(alarm="c1:offset", user="ana", comment="", time=5.0))
     runtime.stop()
     again = _runtime(tmp_path / "store")
     again.start()
