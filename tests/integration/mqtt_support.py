@@ -4,7 +4,7 @@
 - :class:`PrivateMosquitto`: a Mosquitto process of our own on a free port with a temporary config, started
   and stopped by PID, restartable on the same port and persistence directory.
 - :func:`publish_and_wait`: publish with paho-mqtt 2.x and wait for every PUBACK, with a cap on in-flight
-  messages and every return code checked (DESIGN.md section 4).
+  messages and every return code checked.
 - :class:`Collector`: a subscriber that records what arrives (its ``on_message`` never raises).
 """
 

@@ -13,7 +13,8 @@ import pytest
 PACKAGE = Path(__file__).resolve().parents[2] / "estimator"
 SOURCES = sorted(PACKAGE.glob("*.py"))
 
-# Top-level modules the estimator must never import (STYLE.md, direction of dependencies).
+# Top-level modules the estimator must never import: it never depends on the service layer, and it
+# does no I/O (the direction of dependencies of this project).
 FORBIDDEN_IMPORTS = {
     "service", "fastapi", "paho", "pydantic", "uvicorn",      # the service layer
     "logging",                                                # the estimator returns or raises
