@@ -71,7 +71,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from estimator.baseline import Baseline
-from estimator.distributions import chi2_quantile
+from estimator.quantiles import chi2_quantile
 from estimator.run_length import variance_reference
 
 __all__ = ["KINDS", "ConditionEvent", "ConditionTiming", "DetectorBank", "DetectorSettings"]

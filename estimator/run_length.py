@@ -22,8 +22,7 @@ import math
 from collections.abc import Callable
 
 import numpy as np
-
-from estimator.distributions import normal_cdf
+from scipy.special import ndtr
 
 __all__ = ["offset_arl", "one_sided_arl", "threshold_for_arl", "variance_arl", "variance_reference"]
 
@@ -68,8 +67,9 @@ def one_sided_arl(h: float, k: float, cdf: Callable[[float], float], states: int
 
 def offset_arl(h: float, k: float, shift: float = 0.0, states: int = STATES) -> float:
     """Two-sided tabular CUSUM on N(shift, 1) increments: ARL from a zero start."""
-    up = one_sided_arl(h, k, lambda x: normal_cdf(x - shift), states)
-    down = one_sided_arl(h, k, lambda x: normal_cdf(x + shift), states)
+    # ndtr: the standard normal P(Z <= x), from erfc, so accurate in both tails.
+    up = one_sided_arl(h, k, lambda x: float(ndtr(x - shift)), states)
+    down = one_sided_arl(h, k, lambda x: float(ndtr(x + shift)), states)
     return 1.0 / (1.0 / up + 1.0 / down)
 
 

@@ -17,14 +17,12 @@ nothing of it is needed by the update itself.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
-from statistics import NormalDist
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-__all__ = ["CONDITION_LIMIT", "ChannelStatistics", "bank_statistics", "student_t_quantile"]
+__all__ = ["CONDITION_LIMIT", "ChannelStatistics", "bank_statistics"]
 
 FloatArray = NDArray[np.float64]
 
@@ -127,85 +125,3 @@ def bank_statistics(factor: ArrayLike, effective_count: ArrayLike,
         information_condition=condition,
         identifiable=identifiable,
     )
-
-
-def _incomplete_beta_fraction(a: float, b: float, x: float) -> float:
-    """Continued fraction of the regularised incomplete beta (DLMF 8.17.22), modified Lentz."""
-    tiny = 1e-300
-    c, d = 1.0, 1.0 - (a + b) * x / (a + 1.0)
-    d = 1.0 / (d if abs(d) > tiny else tiny)
-    result = d
-    for m in range(1, 400):
-        for numerator in (m * (b - m) * x / ((a + 2 * m - 1) * (a + 2 * m)),
-                          -(a + m) * (a + b + m) * x / ((a + 2 * m) * (a + 2 * m + 1))):
-            d = 1.0 + numerator * d
-            d = 1.0 / (d if abs(d) > tiny else tiny)
-            c = 1.0 + numerator / c
-            c = c if abs(c) > tiny else tiny
-            result *= c * d
-        if abs(c * d - 1.0) < 1e-16:
-            break
-    return result
-
-
-def _regularised_incomplete_beta(a: float, b: float, x: float, y: float) -> float:
-    """I_x(a, b) with ``y = 1 - x`` passed separately so neither loses digits (DLMF 8.17.2);
-    the fraction is evaluated on the side where it converges fast."""
-    if x <= 0.0:
-        return 0.0
-    if y <= 0.0:
-        return 1.0
-    log_front = math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b) + a * math.log(x) + b * math.log(y)
-    if x < (a + 1.0) / (a + b + 2.0):
-        return math.exp(log_front) * _incomplete_beta_fraction(a, b, x) / a
-    return 1.0 - math.exp(log_front) * _incomplete_beta_fraction(b, a, y) / b
-
-
-def _t_upper_tail(t: float, dof: float) -> float:
-    """P(T > t) for t >= 0: I_x(dof/2, 1/2) / 2 with x = dof / (dof + t^2) (DLMF 8.17.ii)."""
-    denominator = dof + t * t
-    return 0.5 * _regularised_incomplete_beta(0.5 * dof, 0.5, dof / denominator, t * t / denominator)
-
-
-def student_t_quantile(probability: float, dof: float) -> float:
-    """Quantile of Student's t distribution with ``dof`` (real, >= 1) degrees of freedom.
-
-    Solves ``P(T <= t) = probability`` with the distribution function written
-    through the regularised incomplete beta function (DLMF 8.17.ii), evaluated
-    by its continued fraction (DLMF 8.17.22), by Newton steps safeguarded with
-    bisection from the Cornish-Fisher start (Abramowitz & Stegun 1964, 26.7.5).
-    Relative accuracy about 1e-12 (absolute near the median). For dof < 1 it
-    returns NaN.
-    """
-    if not 0.0 < probability < 1.0:
-        raise ValueError(f"probability must be in (0, 1), got {probability}")
-    if not dof >= 1.0:
-        return math.nan
-    if probability < 0.5:
-        return -student_t_quantile(1.0 - probability, dof)
-    tail = 1.0 - probability
-    if tail >= 0.5:
-        return 0.0
-    z = NormalDist().inv_cdf(probability)
-    v = dof
-    z3, z5, z7 = z**3, z**5, z**7
-    guess = z + (z3 + z) / (4 * v) + (5 * z5 + 16 * z3 + 3 * z) / (96 * v**2) \
-        + (3 * z7 + 19 * z5 + 17 * z3 - 15 * z) / (384 * v**3)
-    low, high = 0.0, max(guess, 1.0)
-    while _t_upper_tail(high, dof) > tail:          # widen until the root is bracketed
-        high *= 2.0
-    log_norm = math.lgamma(0.5 * (dof + 1.0)) - math.lgamma(0.5 * dof) - 0.5 * math.log(dof * math.pi)
-    t = min(max(guess, low), high)
-    for _ in range(100):
-        excess = _t_upper_tail(t, dof) - tail       # decreasing in t
-        if excess > 0.0:
-            low = t
-        else:
-            high = t
-        density = math.exp(log_norm - 0.5 * (dof + 1.0) * math.log1p(t * t / dof))
-        step = t + excess / density
-        t_next = step if low < step < high else 0.5 * (low + high)
-        if abs(t_next - t) <= 1e-14 * max(1.0, abs(t)):
-            return t_next
-        t = t_next
-    return t

@@ -31,7 +31,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from estimator.distributions import chi2_quantile
+from estimator.quantiles import chi2_quantile
 from estimator.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
 
 __all__ = ["VARIANCE_FIT", "BudgetThresholds", "derive_thresholds"]

@@ -3,7 +3,7 @@
 Pure: no I/O, no clock, no module state. Channel-level checks (input lags,
 ordering of timestamps, the weighting in force) happen later, in the channel.
 
-Payload contract (DESIGN.md section 4)::
+Payload contract::
 
     {"t": 1767225600.5 | "2026-01-01T00:00:00Z", "y": 1.5, "u": {"flow": 2.0, ...},
      "sigma": 0.1, "weight": 4.0, "seq": 17}

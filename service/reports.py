@@ -7,7 +7,7 @@ import math
 import numpy as np
 
 from estimator.channel_bank import ChannelView
-from estimator.statistics import student_t_quantile
+from estimator.quantiles import student_t_quantile
 
 __all__ = ["INTERVAL_LEVEL", "channel_report", "finite_or_null"]
 

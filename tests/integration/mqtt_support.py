@@ -4,7 +4,7 @@
 - :class:`PrivateMosquitto`: a Mosquitto process of our own on a free port with a temporary config, started
   and stopped by PID, restartable on the same port and persistence directory.
 - :func:`publish_and_wait`: publish with paho-mqtt 2.x and wait for every PUBACK, with a cap on in-flight
-  messages and every return code checked (DESIGN.md section 4).
+  messages and every return code checked.
 - :class:`Collector`: a subscriber that records what arrives (its ``on_message`` never raises).
 """
 
@@ -393,12 +393,17 @@ def publish_and_wait(
     max_in_flight: int = 1_000,
     client_id: str | None = None,
     protocol: int = mqtt.MQTTv311,
+    in_flight: list[int] | None = None,
 ) -> int:
     """Publish ``messages`` (``(topic, payload)``) in order and wait until the broker acknowledged all of them.
 
     At most ``max_in_flight`` messages are unacknowledged at once (paho 2.x fails with ``MQTT_ERR_QUEUE_SIZE``
     past 65,535); every ``publish()`` return code must be ``MQTT_ERR_SUCCESS``; a lost connection or any
     failure reason code raises. All of it within ``timeout`` seconds. Returns the number acknowledged.
+
+    ``in_flight``, when given, receives for every message the number handed to paho and not yet
+    acknowledged, counted the moment it is handed over (so never less than the truth): counters of
+    their own, apart from the ones the cap works with, so that the test of the cap measures it.
     """
     if not 1 <= max_in_flight <= 65_000:
         raise ValueError("max_in_flight must be between 1 and 65000")
@@ -407,12 +412,15 @@ def publish_and_wait(
     client.max_inflight_messages_set(min(max_in_flight, 65_000))
     state = threading.Condition()
     acked = 0
+    handed_over = 0         # for ``in_flight`` only
+    pubacks = 0             # for ``in_flight`` only
     failures: list[str] = []
     disconnected: list[Any] = []
 
     def on_publish(_c: mqtt.Client, _u: Any, mid: int, reason: Any, _p: Any) -> None:
-        nonlocal acked
+        nonlocal acked, pubacks
         with state:
+            pubacks += 1
             if reason is not None and getattr(reason, "is_failure", False):
                 failures.append(f"mid {mid}: {reason}")
             acked += 1
@@ -439,6 +447,10 @@ def publish_and_wait(
                     raise ConnectionError(f"publisher disconnected after {acked} PUBACKs: {disconnected[0]}")
                 if failures:
                     raise RuntimeError(f"publish failed: {failures[:3]}")
+            if in_flight is not None:
+                with state:
+                    handed_over += 1
+                    in_flight.append(handed_over - pubacks)
             info = client.publish(topic, payload, qos=qos, retain=retain)
             if info.rc != mqtt.MQTT_ERR_SUCCESS:
                 raise RuntimeError(f"publish #{sent} to {topic!r} returned {mqtt.error_string(info.rc)}")

@@ -69,9 +69,14 @@ def test_mqtt_broker_keeps_retained_message(mqtt_broker: BrokerInfo, unique_pref
 def test_publish_and_wait_caps_in_flight(mqtt_broker: BrokerInfo, unique_prefix: str) -> None:
     n = 3_000
     messages = [(f"{unique_prefix}/burst", p) for p in _payloads(n, "b")]
+    in_flight: list[int] = []
     t0 = time.monotonic()
-    assert publish_and_wait(mqtt_broker.url, messages, qos=1, timeout=60, max_in_flight=100) == n
+    assert publish_and_wait(mqtt_broker.url, messages, qos=1, timeout=60, max_in_flight=100,
+                            in_flight=in_flight) == n
     assert time.monotonic() - t0 < 60
+    assert len(in_flight) == n
+    # Never more than the cap unacknowledged, and the cap was reached: 3,000 QoS 1 messages outrun the PUBACKs.
+    assert max(in_flight) == 100, max(in_flight)
 
 
 def test_publish_and_wait_rejects_non_loopback() -> None:

@@ -1,11 +1,16 @@
-"""Reader for the NIST StRD linear least squares files in ../shared/reference/nist-strd/.
+"""Reader for the NIST StRD linear least squares datasets kept in tests/reference/data/nist_strd/.
 
-Certified values and data are both read from the files (their header names the
-line ranges); nothing is typed in by hand. Format: see that folder's README.md.
+One JSON file per dataset, converted once from NIST's ``.dat`` files: the data
+rows and the certified values (estimates, their standard deviations, residual
+standard deviation, R^2), every number a string exactly as NIST prints it, and
+the model equation of the file's header. Each file names its source:
+NIST Statistical Reference Datasets, linear regression; public-domain data and
+certified values, https://www.itl.nist.gov/div898/strd/.
 """
 
 from __future__ import annotations
 
+import json
 import math
 import re
 from dataclasses import dataclass
@@ -13,8 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-STRD_DIR = Path(__file__).resolve().parents[2] / ".." / "shared" / "reference" / "nist-strd"
-_RANGE = r"\(lines\s+(\d+)\s+to\s+(\d+)\)"
+STRD_DIR = Path(__file__).resolve().parent / "data" / "nist_strd"
 
 
 @dataclass(frozen=True)
@@ -30,37 +34,36 @@ class StrdCase:
     residual_sd: float
 
 
-def read_case(name: str) -> StrdCase:
-    """Parse ``<name>.dat``: certified block, data block and model equation."""
-    lines = (STRD_DIR / f"{name}.dat").read_text().splitlines()
-    text = "\n".join(lines)
-    c0, c1 = map(int, re.search(r"Certified Values\s+" + _RANGE, text).groups())
-    d0, d1 = map(int, re.search(r"Data\s+" + _RANGE, text).groups())
-    equation = next(line.strip() for line in lines[:c0] if line.strip().startswith("y ="))
-    beta, beta_sd, residual_sd = [], [], math.nan
-    certified = lines[c0 - 1:c1]
-    for i, line in enumerate(certified):
-        match = re.match(r"\s*B(\d+)\s+(\S+)\s+(\S+)", line)
-        if match:
-            beta.append(float(match.group(2)))
-            beta_sd.append(float(match.group(3)))
-            continue
-        sd = re.match(r"\s*Standard Deviation\s+(\S+)\s*$", line)
-        if sd and i > 0 and "Residual" in certified[i - 1]:
-            residual_sd = float(sd.group(1))
-    columns = lines[d0 - 2].split(":", 1)[1].split()
-    rows = [lines[k].split() for k in range(d0 - 1, d1)]
-    predictors = [c for c in columns if c != "y"]
+def _terms(equation: str, predictors: list[str]) -> list[str]:
+    """Our term list for a StRD model equation: ``B0`` is the intercept; one predictor
+    with ``x**k`` terms is a polynomial of the highest power (Filip writes ``...``)."""
     terms = ["1"] if re.search(r"\bB0\b", equation) else []
     if len(predictors) == 1:
         powers = [int(p) for p in re.findall(r"x\*\*(\d+)", equation)]
         degree = max(powers) if powers else 1
-        terms += ["x"] + [f"x^{k}" for k in range(2, degree + 1)]
-    else:
-        terms += predictors
-    if len(terms) != len(beta):
-        raise ValueError(f"{name}: {len(terms)} terms for {len(beta)} certified parameters")
-    return StrdCase(name, columns, rows, terms, np.array(beta), np.array(beta_sd), residual_sd)
+        return [*terms, "x", *(f"x^{k}" for k in range(2, degree + 1))]
+    return terms + predictors
+
+
+def read_case(name: str) -> StrdCase:
+    """Load ``<name>.json`` (``name`` as NIST spells it, e.g. ``"Norris"``)."""
+    doc = json.loads((STRD_DIR / f"{name.lower()}.json").read_text(encoding="utf-8"))
+    if doc["dataset"] != name:
+        raise ValueError(f"name: {name!r} is not the dataset in its file ({doc['dataset']!r})")
+    certified = doc["certified"]
+    columns = list(doc["columns"])
+    terms = _terms(doc["model"], [c for c in columns if c != "y"])
+    parameters = certified["parameters"]
+    if len(terms) != len(parameters):
+        raise ValueError(f"{name}: {len(terms)} terms for {len(parameters)} certified parameters")
+    return StrdCase(name, columns, [list(r) for r in doc["rows"]], terms,
+                    np.array([float(p[1]) for p in parameters]), np.array([float(p[2]) for p in parameters]),
+                    float(certified["residual_std_dev"]))
+
+
+def dataset_names() -> list[str]:
+    """Every dataset kept in :data:`STRD_DIR`, as NIST spells the names."""
+    return sorted(json.loads(p.read_text(encoding="utf-8"))["dataset"] for p in STRD_DIR.glob("*.json"))
 
 
 def log_relative_error(computed: np.ndarray | float, certified: np.ndarray | float) -> float:

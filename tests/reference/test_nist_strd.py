@@ -1,17 +1,18 @@
 """NIST StRD linear regression through `rwls replay` (recursive) and `rwls fit` (batch).
 
-# NIST StRD, linear least squares, certified values: read from
-# ../shared/reference/nist-strd/*.dat (estimates, their standard deviations,
-# residual standard deviation). Agreement as the log relative error, LRE
-# (McCullough 1998). Thresholds: the project's foundation issue; the replay ones
-# sit below what a backward-stable float64 QR reaches on each file, the plain
-# covariance-form RLS reaches 0-4 digits on most of them.
+# NIST Statistical Reference Datasets (StRD), linear regression: public-domain
+# data and certified values, https://www.itl.nist.gov/div898/strd/, kept in
+# tests/reference/data/nist_strd/ (estimates, their standard deviations,
+# residual standard deviation; each file names its source). Agreement as the
+# log relative error, LRE (McCullough 1998). Thresholds: the project's
+# foundation issue; the replay ones sit below what a backward-stable float64 QR
+# reaches on each file, the plain covariance-form RLS reaches 0-4 digits on
+# most of them.
 """
 
 from __future__ import annotations
 
 import json
-import os
 import subprocess
 import sys
 from pathlib import Path
@@ -19,12 +20,7 @@ from pathlib import Path
 import pytest
 
 from service.cli import main
-from tests.reference.strd import STRD_DIR, log_relative_error, read_case
-
-# Outside CI a checkout without ../shared skips these; in CI (CI=true) a missing
-# reference folder is a failure, never a silent skip.
-pytestmark = pytest.mark.skipif(not STRD_DIR.is_dir() and os.environ.get("CI") != "true",
-                                reason="../shared/reference/nist-strd not present")
+from tests.reference.strd import dataset_names, log_relative_error, read_case
 
 # Minimum LRE of the parameter estimates, per path.
 REPLAY_MIN_LRE = {"Norris": 12, "Pontius": 11, "NoInt1": 13, "NoInt2": 13, "Longley": 9, "Wampler1": 9,
@@ -33,6 +29,11 @@ FIT_MIN_LRE = {"Norris": 12, "Pontius": 13, "NoInt1": 14, "NoInt2": 14, "Longley
                "Wampler1": 9, "Wampler2": 12, "Wampler3": 8.5, "Wampler4": 7.5, "Wampler5": 5.5}
 # Standard errors and residual SD: at least 6 digits on these, both paths.
 UNCERTAINTY_SETS = ("Norris", "Pontius", "NoInt1", "NoInt2", "Longley")
+
+
+def test_every_dataset_in_the_repository_is_checked_and_none_is_missing() -> None:
+    # The data live in the repository, so a missing or extra file is a failure, never a skip.
+    assert dataset_names() == sorted(REPLAY_MIN_LRE) == sorted(FIT_MIN_LRE)
 
 
 def _write_case(tmp_path: Path, name: str) -> tuple[Path, Path]:

@@ -1,19 +1,24 @@
-"""CUSUM average run lengths and chi-square quantiles against published tables, cross-checked by simulation."""
+"""CUSUM average run lengths and chi-square quantiles against published tables, cross-checked by simulation.
+
+The chi-square quantile is scipy's (``estimator.quantiles``); the tables here check that we call it right.
+"""
 
 from __future__ import annotations
 
 import math
+from statistics import NormalDist
 
 import numpy as np
 import pytest
 
-from estimator.distributions import chi2_quantile, chi2_sf, normal_cdf
+from estimator.quantiles import chi2_quantile
 from estimator.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
 
 SHIFTS = (0.0, 0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 2.5, 3.0, 4.0)
 # Two-sided tabular CUSUM, k = 0.5, h = 4: Lucas & Crosier (1982), Table 1.
 LUCAS_CROSIER_H4 = (168, 74.2, 26.6, 13.3, 8.38, 4.75, 3.34, 2.62, 2.19, 1.71)
-# The same for h = 5: the CUSUM ARL table for k = 1/2 in Montgomery & Runger's applied statistics textbook.
+# The same for h = 5: the CUSUM ARL table for k = 1/2 in Montgomery & Runger's applied statistics textbook
+# (from memory: edition and table number not checked).
 MONTGOMERY_RUNGER_H5 = (465, 139, 38.0, 17.0, 10.4, 5.75, 4.01, 3.11, 2.57, 2.01)
 
 
@@ -68,16 +73,24 @@ def test_chi_square_quantiles_match_the_published_critical_values() -> None:
     assert round(chi2_quantile(0.999, 100), 3) == 149.449
 
 
-def test_chi_square_tail_inverts_its_quantile_and_has_closed_forms() -> None:
-    # chi2 with 2 dof is exponential with mean 2: P(X > x) = exp(-x / 2) (common practice, exact).
-    for x in (0.01, 1.0, 7.5, 60.0):
-        assert chi2_sf(x, 2) == pytest.approx(math.exp(-x / 2), rel=1e-13)
-        # with 1 dof, P(X > x) = P(|Z| > sqrt(x)) = erfc(sqrt(x / 2)) (common practice, exact)
-        assert chi2_sf(x, 1) == pytest.approx(math.erfc(math.sqrt(x / 2)), rel=1e-11)
-        assert 1.0 - chi2_sf(x, 1) == pytest.approx(2.0 * normal_cdf(math.sqrt(x)) - 1.0, rel=1e-11)
+def test_chi_square_quantile_has_its_closed_forms_at_one_and_two_degrees_of_freedom() -> None:
+    # Independent of scipy, so a wrong argument (an upper for a lower tail, dof for dof / 2) shows.
     for p in (1e-9, 0.05, 0.5, 0.999, 1 - 1e-9):
-        for dof in (1, 3, 17):
-            assert chi2_sf(chi2_quantile(p, dof), dof) == pytest.approx(1 - p, rel=1e-9)
+        # chi2 with 2 dof is exponential with mean 2: x_p = -2 ln(1 - p) (common practice, exact).
+        assert chi2_quantile(p, 2) == pytest.approx(-2.0 * math.log1p(-p), rel=1e-12)
+    for p in (0.05, 0.5, 0.9, 0.999, 1 - 1e-9):
+        # chi2 with 1 dof is Z^2: x_p = z_{(1 + p) / 2}^2 (common practice, exact). rel 1e-7: NormalDist's
+        # inverse at (1 + p) / 2 carries the rounding of that sum, 1e-16 / phi(z), up to 1e-8 relative.
+        assert chi2_quantile(p, 1) == pytest.approx(NormalDist().inv_cdf(0.5 + 0.5 * p) ** 2, rel=1e-7)
+
+
+def test_chi_square_quantile_refuses_a_probability_outside_zero_one_and_a_dof_not_positive() -> None:
+    for p in (0.0, 1.0, -0.1, 1.5, math.nan):
+        with pytest.raises(ValueError, match=r"probability must be in \(0, 1\)"):
+            chi2_quantile(p, 2)
+    for dof in (0.0, -1.0, math.nan):
+        with pytest.raises(ValueError, match="dof must be > 0"):
+            chi2_quantile(0.95, dof)
 
 
 def test_variance_cusum_arl_matches_simulation() -> None:

@@ -1,6 +1,6 @@
 """Weighted least squares against a published example, statsmodels, and the Aitken / Gauss-Markov theory.
 
-Sources (see ../shared/REFERENCES.md):
+Sources:
 
 * Greene's credit-card expenditure data, shipped with statsmodels as
   ``statsmodels.datasets.ccard`` and loaded at test time (the data carry their
@@ -323,7 +323,7 @@ def test_wls_empirical_covariance_is_aitken_covariance(monte_carlo: MonteCarlo) 
 
 
 def test_ols_empirical_covariance_is_sandwich_covariance(monte_carlo: MonteCarlo) -> None:
-    # OLS under heteroscedastic noise: (Z^T Z)^-1 Z^T R Z (Z^T Z)^-1 (REFERENCES.md, Aitken entry).
+    # OLS under heteroscedastic noise: (Z^T Z)^-1 Z^T R Z (Z^T Z)^-1 (Aitken 1935, module docstring).
     _check_covariance("OLS", monte_carlo.ols, monte_carlo.ols_covariance)
 
 

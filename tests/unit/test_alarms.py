@@ -16,9 +16,10 @@ N, U, A, R = (AlarmState.NORMAL, AlarmState.UNACKNOWLEDGED, AlarmState.ACKNOWLED
 SH, SU, OOS = AlarmState.SHELVED, AlarmState.SUPPRESSED, AlarmState.OUT_OF_SERVICE
 PRIORITIES = {"flow": {"drift": "high", "offset": "medium"}}
 
-# The transitions the standard's state diagram allows (ANSI/ISA-18.2-2016, figure 5, as summarised in
-# service/alarms.py): (state, event) -> state. "back" is where a set-aside alarm returns: Suppressed when
-# design suppression holds, else Unacknowledged while the condition is active, else Normal.
+# The transitions the alarm state transition diagram of ANSI/ISA-18.2-2016 allows (from memory: the figure
+# and clause numbers are not checked here): (state, event) -> state. "back" is where a set-aside alarm
+# returns, in our reading of that diagram: Suppressed when design suppression holds, else Unacknowledged
+# while the condition is active, else Normal.
 ALLOWED = {
     (N, "on"): U, (R, "on"): U, (U, "off"): R, (A, "off"): N,
     (U, "ack"): A, (R, "ack"): N,

@@ -77,11 +77,14 @@ _CELLS = st.sampled_from(["", "1", "-2.5e3", "nan", "NaN", "-inf", "Infinity", "
                           "9999-12-31T23:59:59-23:59", "\udcff", "1" * 400])
 
 
-def _read_all(path: Path) -> list[CsvRow | BadRow]:
-    """Every row of the file; CsvError is the one exception a file may raise as a whole."""
+def _read_all(path: Path, header_written: bool) -> list[CsvRow | BadRow]:
+    """Every row of the file. CsvError is the one exception a file may raise as a whole, and only when
+    it lacks our header (the header names every column the reader needs, so with it nothing is refused)."""
     try:
         return list(CsvSource(path, ("u",), True))
     except CsvError:
+        if header_written:
+            raise
         return []
 
 
@@ -99,7 +102,7 @@ def test_fuzz_random_bytes_never_raise_and_every_bad_row_has_a_reason(tmp_path: 
                                                                       header: bool) -> None:
     path = tmp_path / "fuzz.csv"
     path.write_bytes((HEADER if header else b"") + data)
-    _check_rows(_read_all(path))
+    _check_rows(_read_all(path, header))
     try:
         result = replay_file(path, _CONFIG, show_progress=False)
     except CsvError:
@@ -113,9 +116,80 @@ def test_fuzz_csv_shaped_text_never_raises(tmp_path: Path, rows: list[list[str]]
     path = tmp_path / "fuzz.csv"
     text = "\n".join(",".join(cells) for cells in rows)
     path.write_bytes(HEADER + text.encode("utf-8", "surrogatepass"))
-    _check_rows(_read_all(path))
+    _check_rows(_read_all(path, True))
     result = replay_file(path, _CONFIG, show_progress=False)
     assert sum(r["samples"] + r["warmup"] for r in result.channels.values()) <= result.rows - result.bad_rows
+
+
+# Rows built to be valid (their values known) or to carry one defect (its reason known), and blank lines.
+_FINITE = st.floats(allow_nan=False, allow_infinity=False)          # repr() gives back the same float64
+_PAD = st.sampled_from(["", " ", "  "])                              # cells are read stripped
+_NOT_NUMBERS = st.sampled_from(["abc", "1_000", "\u0661", "0x10", "1.5.2", "--1", "1e", "\ufffd"])
+_NOT_TIMES = st.sampled_from(["yesterday", "2026-13-01T00:00:00Z", "12:00", "T", "0x10"])
+_DEFECTS = ("extra_field", "missing_field", "y_empty", "y_not_number", "u_not_number", "sigma_not_number",
+            "t_not_time")
+
+
+@st.composite
+def _valid_row(draw: st.DrawFn) -> tuple[list[str], dict[str, object]]:
+    """Cells ``t, y, u, sigma, channel`` and the CsvRow fields they must read back as (line aside)."""
+    t = draw(st.none() | _FINITE)
+    y = draw(_FINITE)
+    u = draw(st.none() | _FINITE)
+    sigma = draw(st.none() | st.floats(min_value=1e-9, max_value=1e9))
+    channel = draw(st.sampled_from(["a", "b", "pump-3", "Zone_7"]))
+
+    def text(value: float | None) -> str:
+        return "" if value is None else draw(_PAD) + repr(value) + draw(_PAD)
+
+    cells = [text(t), text(y), text(u), text(sigma), draw(_PAD) + channel + draw(_PAD)]
+    fields = {"channel": channel, "t": t, "y": y, "inputs": {} if u is None else {"u": u}, "sigma": sigma,
+              "weight": None}
+    return cells, fields
+
+
+@st.composite
+def _line(draw: st.DrawFn) -> tuple[str, object]:
+    """One line of the file and what the reader must make of it: CsvRow fields, a reason, or None (skipped)."""
+    kind = draw(st.sampled_from(["valid", "valid", "defect", "blank"]))
+    if kind == "blank":
+        return draw(st.sampled_from(["", "   "])), None
+    cells, fields = draw(_valid_row())
+    if kind == "valid":
+        return ",".join(cells), fields
+    defect = draw(st.sampled_from(_DEFECTS))
+    if defect == "extra_field":
+        cells, reason = [*cells, "x"], "bad_row"
+    elif defect == "missing_field":
+        cells, reason = cells[:-1], "bad_row"
+    elif defect == "y_empty":
+        cells[1], reason = draw(_PAD), "missing_value"
+    elif defect == "t_not_time":
+        cells[0], reason = draw(_NOT_TIMES), "bad_time"
+    else:
+        cells[{"y_not_number": 1, "u_not_number": 2, "sigma_not_number": 3}[defect]] = draw(_NOT_NUMBERS)
+        reason = "bad_number"
+    return ",".join(cells), reason
+
+
+@given(lines=st.lists(_line(), max_size=25), newline=st.sampled_from(["\n", "\r\n"]))
+@_FUZZ
+def test_valid_rows_read_back_exactly_and_each_defect_is_refused_with_its_reason_and_line(
+        tmp_path: Path, lines: list[tuple[str, object]], newline: str) -> None:
+    path = tmp_path / "generated.csv"
+    text = newline.join(["t,y,u,sigma,channel", *(line for line, _ in lines)]) + newline
+    path.write_bytes(text.encode("utf-8"))
+    got = list(CsvSource(path, ("u",), True))
+    # The header is line 1; a blank line is skipped but still counts.
+    expected = [(number, outcome) for number, (_, outcome) in enumerate(lines, start=2) if outcome is not None]
+    assert len(got) == len(expected), (got, expected)
+    for row, (number, outcome) in zip(got, expected, strict=True):
+        if isinstance(outcome, dict):
+            assert row == CsvRow(line=number, **outcome)                       # type: ignore[arg-type]
+        else:
+            assert isinstance(row, BadRow), (number, row)
+            assert (row.line, row.reason) == (number, outcome), row
+            assert 0 < len(row.detail) <= 200
 
 
 @pytest.mark.parametrize(("cell", "outcome"), [

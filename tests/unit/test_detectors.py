@@ -11,7 +11,7 @@ from estimator.baseline import Baseline
 from estimator.channel import ChannelSettings, Sample
 from estimator.channel_bank import ChannelBank
 from estimator.detectors import ConditionTiming, DetectorBank, DetectorSettings
-from estimator.distributions import chi2_quantile
+from estimator.quantiles import chi2_quantile
 from estimator.run_length import variance_reference
 
 

@@ -23,7 +23,12 @@ CHANNELS = {f"c{k}": {"terms": ["1", "u"], "forgetting_factor": 0.99,
 CHANNELS["arx"] = {"terms": ["1", "y[-1]", "u"], "weighting": "tracked", "noise": {"model_terms": ["1", "u"]},
                    "detectors": {"commissioning_samples": 40}}
 WALL_CLOCK = {"engine.updated_at"}        # arrival times: what the wall clock said, not the inputs
-ARRIVAL = time.time()                     # the messages' arrival stamps: recent, so nothing is stale
+
+
+@pytest.fixture
+def arrival() -> float:
+    """The messages' arrival stamps start now, when the test runs: recent, so nothing is stale."""
+    return time.time()
 
 
 def _runtime(store: Path) -> Runtime:
@@ -31,7 +36,7 @@ def _runtime(store: Path) -> Runtime:
     return Runtime(config, mqtt=False)
 
 
-def _messages(first: int, count: int) -> list[Message]:
+def _messages(first: int, count: int, arrival: float) -> list[Message]:
     rng = np.random.default_rng(first)
     out = []
     for k in range(first, first + count):
@@ -40,7 +45,7 @@ def _messages(first: int, count: int) -> list[Message]:
             offset = 1.5 if k >= 150 and cid == "c1" else 0.0          # an offset step: an alarm to journal
             body = {"t": 1000.0 + k, "y": 1.0 + 0.5 * u + offset + float(rng.normal(0.0, 0.1)), "u": {"u": u},
                     "seq": k}
-            out.append(Message(cid, json.dumps(body).encode(), "http", received=ARRIVAL + k / 100.0))
+            out.append(Message(cid, json.dumps(body).encode(), "http", received=arrival + k / 100.0))
     return out
 
 
@@ -87,8 +92,9 @@ def _same(a: Runtime, b: Runtime) -> None:
 
 
 @pytest.mark.parametrize("crash_after", [0, 1, 2])
-def test_a_crash_after_any_checkpoint_recovers_the_uninterrupted_state(tmp_path: Path, crash_after: int) -> None:
-    chunks = [_messages(0, 60), _messages(60, 60), _messages(120, 60), _messages(180, 60)]
+def test_a_crash_after_any_checkpoint_recovers_the_uninterrupted_state(tmp_path: Path, crash_after: int,
+                                                                       arrival: float) -> None:
+    chunks = [_messages(60 * k, 60, arrival) for k in range(4)]
     whole = _runtime(tmp_path / "whole")
     whole.start()
     for chunk in chunks:
@@ -116,13 +122,13 @@ def test_a_crash_after_any_checkpoint_recovers_the_uninterrupted_state(tmp_path:
         second.stop()
 
 
-def test_a_torn_newest_checkpoint_falls_back_to_the_one_before(tmp_path: Path) -> None:
+def test_a_torn_newest_checkpoint_falls_back_to_the_one_before(tmp_path: Path, arrival: float) -> None:
     whole = _runtime(tmp_path / "whole")
     whole.start()
     crashed = _runtime(tmp_path / "torn")
     crashed.start()
     for k in range(3):
-        chunk = _messages(60 * k, 60)
+        chunk = _messages(60 * k, 60, arrival)
         _feed(whole, chunk)
         _feed(crashed, chunk)
         _checkpoint(crashed)
@@ -145,11 +151,13 @@ def test_a_torn_newest_checkpoint_falls_back_to_the_one_before(tmp_path: Path) -
         again.stop()
 
 
-def test_a_clean_stop_checkpoints_and_restarts_without_replay(tmp_path: Path) -> None:
+def test_a_clean_stop_checkpoints_and_restarts_without_replay(tmp_path: Path, arrival: float) -> None:
     runtime = _runtime(tmp_path / "store")
     runtime.start()
-    _feed(runtime, _messages(0, 80))
+    _feed(runtime, _messages(0, 80, arrival))
     before = _state(runtime)[0]["g0.bank.A"].copy()
+    stopped = runtime.persistence                          # the runtime lets go of it at stop
+    assert isinstance(stopped, Persistence)
     runtime.stop()
     again = _runtime(tmp_path / "store")
     again.start()
@@ -157,17 +165,25 @@ def test_a_clean_stop_checkpoints_and_restarts_without_replay(tmp_path: Path) ->
         assert again.recovery is not None and again.recovery["replayed"] == 0
         assert _state(again)[0]["g0.bank.A"].tobytes() == before.tobytes()
         persistence = again.persistence
-        assert isinstance(persistence, Persistence) and persistence.last_checkpoint_bytes >= 0
+        assert isinstance(persistence, Persistence)
+        # The stop's checkpoint is the newest stored, and its size is the one the stopped runtime reported.
+        stored = persistence.store.checkpoints()
+        assert stopped.checkpoints >= 1 and stopped.last_checkpoint_bytes == len(stored[0].body) > 0
+        # The restarted runtime has written none yet; its first reports the size of what it stored.
+        assert persistence.last_checkpoint_bytes == 0
+        _checkpoint(again)
+        assert persistence.last_checkpoint_bytes == len(persistence.store.checkpoints()[0].body) > 0
         ready = again.readiness()
         assert ready["checkpoint_age_seconds"] is not None and ready["input_log_position"] > 0
     finally:
         again.stop()
 
 
-def test_readers_see_the_recovered_alarm_states_not_those_of_the_fresh_start(tmp_path: Path) -> None:
+def test_readers_see_the_recovered_alarm_states_not_those_of_the_fresh_start(tmp_path: Path,
+                                                                             arrival: float) -> None:
     runtime = _runtime(tmp_path / "store")
     runtime.start()
-    _feed(runtime, _messages(0, 200))                    # c1's offset step raises its alarm
+    _feed(runtime, _messages(0, 200, arrival))           # c1's offset step raises its alarm
     raised = {a.id: str(a.state) for a in runtime.engine.snapshot.alarms}
     assert raised["c1:offset"] == "Unacknowledged"
     runtime.engine.execute(Acknowledge(alarm="c1:offset", user="ana", comment="", time=5.0))
