@@ -28,6 +28,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from service.alarms import PRIORITIES, Alarm
 from service.api_alarms import add_alarm_routes
 from service.api_dashboard import add_dashboard
+from service.api_docs import add_docs
 from service.api_guard import add_guards
 from service.auth import Access, Principal
 from service.payload import decode_payload
@@ -141,8 +142,9 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             if manage_runtime:
                 runtime.stop()
 
-    app = FastAPI(title="rwls", version="1", lifespan=lifespan,
+    app = FastAPI(title="rwls", version="1", lifespan=lifespan, docs_url=None, redoc_url=None,
                   description="Recursive weighted least squares for sensor monitoring. " + ADVISORY)
+    add_docs(app, "rwls", ADVISORY)          # /docs with Swagger UI served from here, not from a CDN
     registry = CollectorRegistry()
     registry.register(_EngineCollector(runtime))
     snapshot_cache: dict[str, object] = {"version": -1, "body": b""}
