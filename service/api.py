@@ -63,10 +63,20 @@ def _alarm_summary(alarms: list[Alarm]) -> dict[str, object]:
             "highest_active": max((a.priority for a in active), key=order.__getitem__, default=None)}
 
 
+def _commissioning(entry: ChannelEntry) -> dict[str, int] | None:
+    """While no baseline is in force: samples applied since the start or reset, and the number that ends
+    commissioning (0: none does, the baseline is set by hand); None once a baseline is in force."""
+    view = entry.view
+    if view.baseline is not None:
+        return None
+    return {"done": int(view.commissioned), "needed": int(view.settings.detectors.commissioning_samples)}
+
+
 def _summary(cid: str, entry: ChannelEntry, alarms: list[Alarm]) -> dict[str, object]:
     return {"id": cid, "quality": entry.quality, "quality_reason": entry.quality_reason,
             "updated_at": entry.updated_at, "t": entry.view.last_t, "samples": entry.view.applied,
-            "rejected": sum(entry.view.rejected.values()), "alarms": _alarm_summary(alarms)}
+            "rejected": sum(entry.view.rejected.values()), "alarms": _alarm_summary(alarms),
+            "commissioning": _commissioning(entry)}
 
 
 def _detail(entry: ChannelEntry, cid: str, alarms: list[Alarm]) -> dict[str, object]:
