@@ -29,6 +29,7 @@ from service.advisory import ADVISORY
 from service.alarms import PRIORITIES, Alarm
 from service.api_alarms import add_alarm_routes
 from service.api_dashboard import add_dashboard
+from service.api_docs import add_docs
 from service.api_errors import validation_problems
 from service.api_guard import add_guards
 from service.auth import Access, Principal
@@ -62,10 +63,20 @@ def _alarm_summary(alarms: list[Alarm]) -> dict[str, object]:
             "highest_active": max((a.priority for a in active), key=order.__getitem__, default=None)}
 
 
+def _commissioning(entry: ChannelEntry) -> dict[str, int] | None:
+    """While no baseline is in force: samples applied since the start or reset, and the number that ends
+    commissioning (0: none does, the baseline is set by hand); None once a baseline is in force."""
+    view = entry.view
+    if view.baseline is not None:
+        return None
+    return {"done": int(view.commissioned), "needed": int(view.settings.detectors.commissioning_samples)}
+
+
 def _summary(cid: str, entry: ChannelEntry, alarms: list[Alarm]) -> dict[str, object]:
     return {"id": cid, "quality": entry.quality, "quality_reason": entry.quality_reason,
             "updated_at": entry.updated_at, "t": entry.view.last_t, "samples": entry.view.applied,
-            "rejected": sum(entry.view.rejected.values()), "alarms": _alarm_summary(alarms)}
+            "rejected": sum(entry.view.rejected.values()), "alarms": _alarm_summary(alarms),
+            "commissioning": _commissioning(entry)}
 
 
 def _detail(entry: ChannelEntry, cid: str, alarms: list[Alarm]) -> dict[str, object]:
@@ -141,8 +152,9 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             if manage_runtime:
                 runtime.stop()
 
-    app = FastAPI(title="rwls", version="1", lifespan=lifespan,
+    app = FastAPI(title="rwls", version="1", lifespan=lifespan, docs_url=None, redoc_url=None,
                   description="Recursive weighted least squares for sensor monitoring. " + ADVISORY)
+    add_docs(app, "rwls", ADVISORY)          # /docs with Swagger UI served from here, not from a CDN
     registry = CollectorRegistry()
     registry.register(_EngineCollector(runtime))
     snapshot_cache: dict[str, object] = {"version": -1, "body": b""}

@@ -1,10 +1,20 @@
 // The alarm list: state, priority and evidence of every alarm not Normal; acknowledge and shelve with a
 // token of the operator role (the service refuses without one, and the page says why).
+//
+// One clock: the times shown are sample times (the clock of the data), as the detectors judged them. An
+// alarm's own "since" moves to the wall clock when someone acknowledges or shelves it, so the list shows
+// the evidence's time instead: the sample time of the latest condition change (onset or clear).
 
 import { get, post, explain } from "./api.js";
 import { element, fill, number, stateBadge, time } from "./format.js";
 
 const ORDER = { urgent: 0, high: 1, medium: 2, low: 3 };
+
+// Sample time of the alarm's latest condition change (null while its condition never changed).
+function conditionTime(alarm) {
+  const t = alarm.evidence ? alarm.evidence.t : null;
+  return Number.isFinite(t) ? t : null;
+}
 
 export class AlarmList {
   constructor(root) {
@@ -60,13 +70,16 @@ export class AlarmList {
     if (key === this.drawn && this.root.firstChild) return;
     this.drawn = key;
     const sorted = this.alarms.slice().sort((a, b) => (ORDER[a.priority] - ORDER[b.priority])
-      || ((b.since || 0) - (a.since || 0)));
+      || ((conditionTime(b) || 0) - (conditionTime(a) || 0)));
     const rows = sorted.map((a) => {
       const draft = this.draft(a.id);
       const comment = element("input", { type: "text", class: "comment", "aria-label": `comment for ${a.id}`,
         placeholder: "comment", value: draft.comment, oninput: (e) => { draft.comment = e.target.value; } });
       const minutes = element("input", { type: "number", class: "minutes", min: 1, max: 10080, value: draft.minutes,
-        "aria-label": `minutes to shelve ${a.id}`, oninput: (e) => { draft.minutes = Number(e.target.value); } });
+        oninput: (e) => { draft.minutes = Number(e.target.value); } });
+      // A visible label around the field; the alarm's id is there for screen readers, the eye has the row.
+      const shelveFor = element("label", { class: "shelve-for" }, "Shelve ",
+        element("span", { class: "visually-hidden" }, `${a.id} `), "for ", minutes, " min");
       const canAck = a.state === "Unacknowledged" || a.state === "Return-to-normal unacknowledged";
       const canShelve = a.state !== "Shelved" && a.state !== "Out of service" && a.state !== "Suppressed by design";
       const e = a.evidence || {};
@@ -74,7 +87,7 @@ export class AlarmList {
         element("td", {}, element("a", { href: `#/channel/${encodeURIComponent(a.channel)}` }, a.channel), ` ${a.kind}`),
         element("td", {}, stateBadge(a.state), a.active ? " condition present" : " condition cleared"),
         element("td", {}, a.priority),
-        element("td", { class: "num" }, time(a.since)),
+        element("td", { class: "num since" }, time(conditionTime(a))),
         element("td", { class: "num" }, `${number(e.statistic)} / ${number(e.limit)}`),
         element("td", { class: "num" }, time(e.onset)),
         element("td", { class: "num" }, e.baseline === null || e.baseline === undefined ? "\u2014" : `v${e.baseline}`),
@@ -82,7 +95,7 @@ export class AlarmList {
           comment, " ",
           element("button", { class: "ack", disabled: !canAck,
             onclick: () => this.act(a, "ack", { comment: draft.comment }) }, "Acknowledge"), " ",
-          minutes, " ",
+          shelveFor, " ",
           element("button", { class: "shelve", disabled: !canShelve,
             onclick: () => this.act(a, "shelve", { comment: draft.comment, minutes: draft.minutes }) }, "Shelve"),
           a.state === "Shelved" ? element("button", { class: "unshelve",
@@ -98,8 +111,10 @@ export class AlarmList {
       element("table", { id: "alarms" },
         element("thead", {}, element("tr", {},
           element("th", {}, "Alarm"), element("th", {}, "State"), element("th", {}, "Priority"),
-          element("th", { class: "num" }, "Since"), element("th", { class: "num" }, "Statistic / limit"),
-          element("th", { class: "num" }, "Onset"), element("th", { class: "num" }, "Baseline"),
+          element("th", { class: "num", id: "since-heading",
+            title: "sample time of the latest condition change (onset or clear)" }, "Since (sample time, UTC)"),
+          element("th", { class: "num" }, "Statistic / limit"),
+          element("th", { class: "num" }, "Onset (sample time, UTC)"), element("th", { class: "num" }, "Baseline"),
           element("th", {}, "Action (operator token)"))),
         element("tbody", {}, rows)));
   }

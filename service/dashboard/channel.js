@@ -1,10 +1,14 @@
 // One channel: its parameters over time with +/- 2 standard-error bands, the noise sigma against its limit
 // and baseline, each detector's statistic against its threshold, the residuals, alarm markers on the time
-// axis, and a time range chosen from the stored history.
+// axis, and a time range chosen from the stored history (typed as ISO 8601 UTC, never in the browser's locale).
+//
+// The parameter trends leave out, unless asked, the start-up transient: the rows before commissioning ended
+// (the time of the baseline in force). The first samples' estimates swing far wider than anything after, and
+// an axis scaled to them flattens the rest of the curve.
 
 import { get, explain } from "./api.js";
 import { timeChart } from "./chart.js";
-import { alarmGroups, element, fill, number, qualityBadge, time } from "./format.js";
+import { alarmGroups, element, fill, number, parseUtc, qualityBadge, time, UTC_EXAMPLE, UTC_PATTERN } from "./format.js";
 
 const RANGES = [["1 hour", 3600], ["6 hours", 6 * 3600], ["1 day", 86400], ["7 days", 7 * 86400],
   ["30 days", 30 * 86400], ["all", Infinity]];
@@ -21,6 +25,9 @@ export class ChannelPage {
     this.rows = [];
     this.journal = [];
     this.error = null;
+    this.showTransient = false;
+    this.typed = { from: "", until: "" };   // the range fields as typed (kept across redrawings)
+    this.rangeError = null;                 // {field, text} when the typed range was refused
   }
 
   async refresh() {
@@ -60,18 +67,23 @@ export class ChannelPage {
       return;
     }
     const key = JSON.stringify([this.detail, this.rows.length, this.rows[this.rows.length - 1], this.journal.length,
-      this.span, this.custom, this.error]);
+      this.span, this.custom, this.error, this.showTransient, this.rangeError]);
     if (key === this.drawn && this.root.firstChild) return;       // nothing new: keep the page as it is
     this.drawn = key;
+    const focused = document.activeElement && this.root.contains(document.activeElement) ? document.activeElement.id : null;
     const d = this.detail;
     const range = this.range();
+    // Commissioning ended when the baseline in force was taken; the rows before it are the start-up transient.
+    const settled = d.baseline && Number.isFinite(d.baseline.t) ? d.baseline.t : null;
+    const trendRows = this.showTransient || settled === null ? this.rows : this.rows.filter((r) => r.t >= settled);
+    const hidden = this.rows.length - trendRows.length;
     const markers = this.journal.filter((e) => MARKED.has(e.action)).map((e) => ({
       t: e.evidence && Number.isFinite(e.evidence.t) ? e.evidence.t : e.time,
       label: `${e.kind}: ${e.before} \u2192 ${e.after} (${e.action})`, short: e.kind }));
     const charts = [];
     d.terms.forEach((term, j) => {
-      const points = this.rows.map((r) => [r.t, r.parameters ? r.parameters[j] : null]);
-      const band = this.rows.map((r) => {
+      const points = trendRows.map((r) => [r.t, r.parameters ? r.parameters[j] : null]);
+      const band = trendRows.map((r) => {
         const v = r.parameters ? r.parameters[j] : null;
         const se = r.std_errors ? r.std_errors[j] : null;
         return [r.t, v === null || se === null ? null : v - 2 * se, v === null || se === null ? null : v + 2 * se];
@@ -122,39 +134,67 @@ export class ChannelPage {
         `forgetting factor ${d.forgetting_factor}, weighting ${d.weighting}. `, d.quality_reason ? `Quality: ${d.quality_reason}.` : ""),
       parameterTable(d),
       alarmLine(d),
-      this.controls(),
-      element("p", { class: "muted", id: "history-count" }, `${this.rows.length} history rows, ${time(range[0])} to ${time(range[1])}.`),
+      this.controls(settled),
+      this.rangeError ? element("p", { class: "error", role: "alert", id: "range-error" }, this.rangeError.text) : null,
+      element("p", { class: "muted", id: "history-count" },
+        `${this.rows.length} history rows, ${time(range[0])} to ${time(range[1])} (sample time, UTC).`),
+      element("p", { class: "muted", id: "transient-note" }, settled === null
+        ? "No baseline yet (commissioning): the parameter trends show every row."
+        : hidden > 0 ? `Parameter trends: the start-up transient (${hidden} rows before commissioning ended at ${time(settled)}) is left out, and out of their scale; tick "show start-up transient" to see it.`
+          : this.showTransient ? "Parameter trends: the start-up transient is shown." : "Parameter trends: no start-up transient in this range."),
       element("div", { class: "charts" }, charts));
+    if (focused) {                             // a redrawing while someone types keeps their place
+      const node = document.getElementById(focused);
+      if (node) {
+        node.focus();
+        if (node.type === "text") node.setSelectionRange(node.value.length, node.value.length);
+      }
+    }
   }
 
-  controls() {
+  controls(settled) {
     const preset = element("select", { id: "range", onchange: (e) => {
       this.custom = null;
+      this.typed = { from: "", until: "" };
+      this.rangeError = null;
       this.span = Number(e.target.value);
       this.refresh();
     } }, RANGES.map(([name, seconds]) => element("option", { value: seconds, selected: !this.custom && seconds === this.span }, name)));
-    const from = element("input", { type: "datetime-local", id: "range-from", step: 1 });
-    const until = element("input", { type: "datetime-local", id: "range-until", step: 1 });
-    if (this.custom) {
-      from.value = local(this.custom[0]);
-      until.value = local(this.custom[1]);
-    }
-    const apply = element("button", { id: "range-apply", onclick: () => {
-      const a = Date.parse(from.value + "Z") / 1000;
-      const b = Date.parse(until.value + "Z") / 1000;
-      if (Number.isFinite(a) && Number.isFinite(b) && b > a) {
-        this.custom = [a, b];
-        this.refresh();
-      }
-    } }, "Show");
-    return element("div", { class: "controls" },
-      element("label", {}, "Time range (back from the newest row)", preset),
-      element("label", {}, "From (UTC)", from), element("label", {}, "Until (UTC)", until), apply);
+    const field = (name) => element("input", { type: "text", class: "utc", id: `range-${name}`, value: this.typed[name],
+      pattern: UTC_PATTERN, placeholder: UTC_EXAMPLE, autocomplete: "off", spellcheck: "false",
+      "aria-describedby": "range-hint", "aria-invalid": this.rangeError && this.rangeError.field === name ? "true" : null,
+      oninput: (e) => { this.typed[name] = e.target.value; } });
+    const apply = element("button", { id: "range-apply", onclick: () => this.applyRange() }, "Show");
+    const transient = element("input", { type: "checkbox", id: "show-transient", checked: this.showTransient,
+      disabled: settled === null, onchange: (e) => { this.showTransient = e.target.checked; this.render(); } });
+    return [
+      element("div", { class: "controls" },
+        element("label", {}, "Time range (back from the newest row)", preset),
+        element("label", {}, "From (UTC)", field("from")), element("label", {}, "Until (UTC)", field("until")), apply,
+        element("label", { class: "check", title: settled === null ? "no baseline yet: every row is shown" : null },
+          transient, "show start-up transient")),
+      element("p", { class: "muted hint", id: "range-hint" },
+        `From and Until: ISO 8601 in UTC, e.g. ${UTC_EXAMPLE} (seconds optional, the Z required).`)];
   }
-}
 
-function local(seconds) {
-  return new Date(seconds * 1000).toISOString().slice(0, 19);
+  // The typed range, checked: both times ISO 8601 UTC and Until after From; else say which field and why.
+  applyRange() {
+    const [a, b] = [parseUtc(this.typed.from), parseUtc(this.typed.until)];
+    const wrong = (name, label) => ({ field: name,
+      text: `${label}: "${this.typed[name].trim()}" is not a UTC time in ISO 8601 form such as ${UTC_EXAMPLE}.` });
+    if (a === null) this.rangeError = wrong("from", "From");
+    else if (b === null) this.rangeError = wrong("until", "Until");
+    else if (!(b > a)) this.rangeError = { field: "until", text: "Until must be after From." };
+    else this.rangeError = null;
+    if (this.rangeError) {
+      this.render();
+      document.getElementById(`range-${this.rangeError.field}`)?.focus();
+      return;
+    }
+    this.custom = [a, b];
+    this.typed = { from: time(a), until: time(b) };
+    this.refresh();
+  }
 }
 
 function parameterTable(d) {
@@ -174,9 +214,13 @@ function parameterTable(d) {
 }
 
 function alarmLine(d) {
-  const raised = (d.alarms || []).filter((a) => a.state !== "Normal");
-  if (!raised.length) return element("p", { id: "channel-alarms" }, "No alarm raised on this channel.");
-  return element("p", { id: "channel-alarms" }, "Alarms: ",
+  const commissioning = !d.baseline;
+  // While commissioning the detector alarms are held back by design: said once, not listed as raised.
+  const raised = (d.alarms || []).filter((a) => a.state !== "Normal" && !(commissioning && a.state === "Suppressed by design"));
+  const note = commissioning ? element("span", { class: "commissioning", id: "channel-commissioning" },
+    `commissioning (${d.commissioned} samples so far, no baseline yet; detector alarms held back by design)`) : null;
+  if (!raised.length) return element("p", { id: "channel-alarms" }, note || "No alarm raised on this channel.");
+  return element("p", { id: "channel-alarms" }, note, note ? " " : null, "Alarms: ",
     alarmGroups(raised),
     element("a", { href: "#/alarms" }, "to the alarm list"));
 }

@@ -35,7 +35,7 @@ function label(value) {
 
 function timeLabel(seconds, span) {
   const iso = new Date(seconds * 1000).toISOString();
-  return span > 2 * 86400 ? iso.slice(5, 10) + " " + iso.slice(11, 16) : iso.slice(11, 19);
+  return span > 2 * 86400 ? iso.slice(5, 16) : iso.slice(11, 19);      // ISO 8601 parts: 06-11T00:56, 00:56:07
 }
 
 // series: [{type: "line"|"limit"|"reference"|"points", points: [[t, v], ...], name},
@@ -62,7 +62,8 @@ export function timeChart({ series, markers = [], range, title }) {
   const x = (t) => PAD.left + ((t - t0) / (t1 - t0)) * (WIDTH - PAD.left - PAD.right);
   const y = (v) => HEIGHT - PAD.bottom - ((v - lo) / (hi - lo)) * (HEIGHT - PAD.top - PAD.bottom);
 
-  const root = svg("svg", { viewBox: `0 0 ${WIDTH} ${HEIGHT}`, class: "chart", role: "img" });
+  // The value axis's ends ride along as data, so that a test can read what the scale was made of.
+  const root = svg("svg", { viewBox: `0 0 ${WIDTH} ${HEIGHT}`, class: "chart", role: "img", "data-y-lo": lo, "data-y-hi": hi });
   const heading = svg("title");
   heading.textContent = title;
   root.append(heading);
@@ -72,6 +73,9 @@ export function timeChart({ series, markers = [], range, title }) {
     text.textContent = label(v);
     root.append(text);
   }
+  const zone = svg("text", { x: 4, y: HEIGHT - 12 });
+  zone.textContent = "UTC";                  // the time axis is sample time, in UTC like every time shown
+  root.append(zone);
   for (const t of ticks(t0, t1, 4)) {
     const near = x(t) > WIDTH - PAD.right - 50 ? "end" : x(t) < PAD.left + 50 ? "start" : "middle";
     const text = svg("text", { x: x(t), y: HEIGHT - 12, "text-anchor": near });

@@ -7,9 +7,27 @@ export function number(value, digits = 4) {
   return value.toPrecision(digits).replace(/\.?0+$/, (m) => (m.includes(".") ? "" : m));
 }
 
+// Every time the pages show is ISO 8601 in UTC, to the second: 2026-06-11T00:56:07Z (never the browser's locale).
 export function time(seconds) {
   if (seconds === null || seconds === undefined || !Number.isFinite(seconds)) return "\u2014";
-  return new Date(seconds * 1000).toISOString().replace("T", " ").slice(0, 19) + " UTC";
+  return new Date(seconds * 1000).toISOString().slice(0, 19) + "Z";
+}
+
+// What a person types for a time: ISO 8601 in UTC, minutes or seconds, the Z required (a time without a zone
+// would be read in some local zone, which is what these fields exist to avoid).
+export const UTC_PATTERN = "\\d{4}-\\d{2}-\\d{2}T\\d{2}:\\d{2}(:\\d{2})?Z";
+export const UTC_EXAMPLE = "2026-06-11T00:56Z";
+const UTC_TEXT = new RegExp(`^${UTC_PATTERN}$`);
+
+// Epoch seconds of such a text, or null when it is not one or names no real time (2026-02-30T00:00Z).
+export function parseUtc(text) {
+  const value = String(text).trim();
+  if (!UTC_TEXT.test(value)) return null;
+  const ms = Date.parse(value);
+  if (!Number.isFinite(ms)) return null;
+  const back = new Date(ms).toISOString();                  // the same fields back: the date exists
+  if (back.slice(0, 16) !== value.slice(0, 16)) return null;
+  return ms / 1000;
 }
 
 export function element(tag, attributes = {}, ...children) {

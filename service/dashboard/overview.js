@@ -31,7 +31,7 @@ export class Overview {
     return this.channels
       .filter((c) => !text || c.id.toLowerCase().includes(text))
       .filter((c) => !this.filter.quality || c.quality === this.filter.quality)
-      .filter((c) => !this.filter.alarmed || (c.alarms && c.alarms.raised.length > 0))
+      .filter((c) => !this.filter.alarmed || raised(c).length > 0)
       .sort((a, b) => (unacknowledged(b) - unacknowledged(a)) || (RANK[a.quality] - RANK[b.quality])
         || a.id.localeCompare(b.id));
   }
@@ -58,9 +58,11 @@ export class Overview {
     const rows = shown.map((c) => element("tr", { "data-channel": c.id },
       element("td", {}, element("a", { href: `#/channel/${encodeURIComponent(c.id)}` }, c.id)),
       element("td", {}, qualityBadge(c.quality, c.quality_reason), " ", element("span", { class: "muted" }, c.quality_reason || "")),
-      element("td", {}, c.alarms && c.alarms.raised.length
-        ? alarmGroups(c.alarms.raised)
-        : element("span", { class: "muted" }, "none raised")),
+      element("td", { class: "alarms" },
+        c.commissioning ? element("span", { class: "commissioning" }, commissioningText(c.commissioning)) : null,
+        c.commissioning && raised(c).length ? " " : null,
+        raised(c).length ? alarmGroups(raised(c))
+          : c.commissioning ? null : element("span", { class: "muted" }, "none raised")),
       element("td", { class: "num" }, time(c.t)),
       element("td", { class: "num" }, number(c.samples, 6)),
       element("td", { class: "num" }, number(c.rejected, 6))));
@@ -77,7 +79,7 @@ export class Overview {
       element("table", { id: "channels" },
         element("thead", {}, element("tr", {},
           element("th", {}, "Channel"), element("th", {}, "Quality"), element("th", {}, "Alarms"),
-          element("th", { class: "num" }, "Last sample"), element("th", { class: "num" }, "Samples"),
+          element("th", { class: "num" }, "Last sample (UTC)"), element("th", { class: "num" }, "Samples"),
           element("th", { class: "num" }, "Rejected"))),
         element("tbody", {}, rows)),
       element("div", { class: "pager" },
@@ -93,6 +95,18 @@ export class Overview {
       node.setSelectionRange?.(node.value.length, node.value.length);
     }
   }
+}
+
+// The alarms a channel has raised. While it commissions (no baseline yet) its detector alarms are held back
+// by design: that is the commissioning, shown as such, not four raised alarms.
+function raised(channel) {
+  const all = channel.alarms ? channel.alarms.raised : [];
+  return channel.commissioning ? all.filter((a) => a.state !== "Suppressed by design") : all;
+}
+
+function commissioningText({ done, needed }) {
+  return needed > 0 ? `commissioning (${done} of ${needed} samples)`
+    : `commissioning (${done} samples; no baseline until one is set)`;
 }
 
 function unacknowledged(channel) {

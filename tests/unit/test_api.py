@@ -3,9 +3,12 @@
 from __future__ import annotations
 
 import asyncio
+import base64
+import hashlib
 import itertools
 import json
 import math
+import re
 import warnings
 from collections.abc import Callable, Iterator
 from dataclasses import fields, is_dataclass
@@ -695,6 +698,27 @@ def test_openapi_lists_the_endpoints_and_docs_serve_html(served: tuple[Runtime, 
     assert docs.status_code == 200
     assert docs.headers["content-type"].startswith("text/html")
     assert "/openapi.json" in docs.text
+
+
+def test_docs_page_names_only_its_own_origin_and_allows_its_inline_script_by_hash(
+        served: tuple[Runtime, TestClient]) -> None:
+    _, client = served
+    docs = client.get("/docs")
+    policy = docs.headers["content-security-policy"]
+    assert "unsafe-inline" not in policy and "http" not in policy
+    assert "https://" not in docs.text and "http://" not in docs.text        # no CDN, no favicon from elsewhere
+    inline = re.findall(r"<script>(.*?)</script>", docs.text, re.DOTALL)
+    assert len(inline) == 1
+    digest = base64.b64encode(hashlib.sha256(inline[0].encode()).digest()).decode()
+    assert f"'sha256-{digest}'" in policy
+    assert "Advisory use only." in docs.text
+    for name, kind in (("swagger-ui-bundle.js", "text/javascript"), ("swagger-ui.css", "text/css"),
+                       ("LICENSE", "text/plain")):
+        asset = client.get(f"/docs/assets/{name}")
+        assert asset.status_code == 200 and asset.headers["content-type"].startswith(kind), name
+    assert "Apache License" in client.get("/docs/assets/LICENSE").text
+    assert client.get("/docs/assets/index.css").status_code == 404       # only the files the page needs
+    assert client.get("/redoc").status_code == 404
 
 
 def test_second_runtime_on_the_same_store_fails_with_already_running(

@@ -88,6 +88,23 @@ def test_commissioning_suppresses_then_an_offset_raises_an_unacknowledged_alarm(
     assert summary["highest_active"] == "urgent" and summary["unacknowledged"] >= 1
 
 
+def test_the_channel_list_says_how_far_commissioning_is_and_null_once_a_baseline_is_in_force(
+        served: tuple[Runtime, Any]) -> None:
+    runtime, client = served
+    assert client.get("/api/v1/channels").json()[0]["commissioning"] == {"done": 0, "needed": 60}
+    _post(client, _samples(0, 30))
+    _settle(runtime)
+    detail = client.get("/api/v1/channels/dp").json()
+    assert detail["baseline"] is None
+    assert client.get("/api/v1/channels").json()[0]["commissioning"] == {"done": detail["commissioned"],
+                                                                          "needed": 60}
+    assert detail["commissioned"] == 30
+    _post(client, _samples(30, 70))
+    _settle(runtime)
+    assert client.get("/api/v1/channels/dp").json()["baseline"]["version"] == 1
+    assert client.get("/api/v1/channels").json()[0]["commissioning"] is None
+
+
 def test_acknowledge_and_shelve_are_journaled_with_user_and_refused_when_not_allowed(
         served: tuple[Runtime, Any]) -> None:
     runtime, client = served
