@@ -16,13 +16,13 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from service.advisory import ADVISORY
-from service.config import ConfigError, RwlsConfig, load_config
-from service.config_auth import ROLES, TokenConfig
-from service.csvdata import CsvError
-from service.listen_socket import PortUnavailable, bind_listener
-from service.replay import RunResult, fit_file, replay_file
-from service.replay_trace import ReplayTrace
-from service.tables import render_text
+from service.api.listen_socket import PortUnavailable, bind_listener
+from service.config.settings import ConfigError, RwlsConfig, load_config
+from service.config.token_settings import ROLES, TokenConfig
+from service.offline.csv_source import CsvError
+from service.offline.replay import RunResult, fit_file, replay_file
+from service.offline.tables import render_text
+from service.offline.trace import ReplayTrace
 
 __all__ = ["build_parser", "main"]
 
@@ -143,7 +143,7 @@ def _with_thresholds(config: RwlsConfig, args: argparse.Namespace) -> tuple[Rwls
 
 def _write_report(result: RunResult, trace: ReplayTrace, args: argparse.Namespace,
                   overrides: dict[str, float]) -> None:
-    from service.commissioning_report import build_report  # matplotlib only when a report is asked for
+    from service.offline.report import build_report  # matplotlib only when a report is asked for
 
     def progress(channel: str) -> None:
         if not args.no_progress and sys.stderr.isatty():
@@ -167,7 +167,7 @@ def _with_forgetting(config: RwlsConfig, value: float | None) -> RwlsConfig:
 def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
-    from service.api import create_app
+    from service.api.app import create_app
     from service.runtime import AlreadyRunning, Runtime, exit_on_signal
 
     config = load_config(args.config)
@@ -196,8 +196,8 @@ def _serve(args: argparse.Namespace) -> int:
 
 
 def _simulate(args: argparse.Namespace) -> int:
-    from service.config import parse_config
-    from service.simulate import simulate
+    from service.config.settings import parse_config
+    from service.demo.simulate import simulate
 
     broker = parse_config({"channels": {"x": {"terms": ["1"]}}, "broker": {"url": args.broker}}).broker
     print(f"rwls simulate: publishing the demo plant to {args.broker} under {args.prefix}/ at {args.rate:g}/s",
@@ -218,7 +218,7 @@ def _simulate(args: argparse.Namespace) -> int:
 def _token(args: argparse.Namespace) -> int:
     from pydantic import ValidationError
 
-    from service.auth import new_token, token_digest
+    from service.api.auth import new_token, token_digest
 
     token = new_token()
     try:
@@ -264,7 +264,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.command == "serve":
             return _serve(args)
         if args.command == "demo":
-            from service.demo import run_demo
+            from service.demo.run import run_demo
             try:
                 return run_demo(host=args.host, port=args.port, rate=args.rate, data_dir=args.data_dir,
                                 exit_after=args.exit_after)

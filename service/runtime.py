@@ -20,19 +20,20 @@ from typing import IO
 
 import numpy as np
 
-from service.alarms import AlarmBook
-from service.config import RwlsConfig
-from service.engine import DeadLetter, Engine, Message
-from service.fleet import Fleet, own_share
-from service.ingest import BrokerSettings, MqttIngest
-from service.ingest_process import ProcessIngest
-from service.input_log import InputLog
-from service.log_throttle import LogThrottle
-from service.notify import EventHub, MqttAlarms, WebhookSender
-from service.operations import Inspect
-from service.payload import DecodedSample, Rejection
-from service.persistence import Persistence
-from service.store import Store, store_url
+from service.alarms.lifecycle import AlarmBook
+from service.alarms.notify import EventHub, MqttAlarms, WebhookSender
+from service.broker_link.child_process import ProcessIngest
+from service.broker_link.messages import DeadLetter, Message
+from service.broker_link.mqtt_client import BrokerSettings, MqttIngest
+from service.broker_link.payload import DecodedSample, Rejection
+from service.config.settings import RwlsConfig
+from service.engine.log_throttle import LogThrottle
+from service.engine.operations import Inspect
+from service.engine.writer import Engine
+from service.fleet.peers import Fleet, own_share
+from service.storage.input_log import InputLog
+from service.storage.persistence import Persistence
+from service.storage.store import Store, store_url
 
 __all__ = ["AlreadyRunning", "Runtime", "broker_settings", "exit_on_signal"]
 
@@ -78,7 +79,7 @@ class Runtime:
     """
 
     def __init__(self, config: RwlsConfig, *, mqtt: bool = True) -> None:
-        # A replica of a fleet runs the channels it owns (service/fleet.py); the others it only knows of.
+        # A replica of a fleet runs the channels it owns (service/fleet/peers.py); the others it only knows of.
         every_channel = list(config.channels)
         config, self.shard = own_share(config)
         self.fleet = (Fleet(self.shard, config.fleet.replicas, every_channel, reads=config.fleet.reads,

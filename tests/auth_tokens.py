@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from service.auth import new_token, token_digest
-from service.config_auth import ROLES
+from service.api.auth import new_token, token_digest
+from service.config.token_settings import ROLES
 
 __all__ = ["TOKENS", "auth_section", "bearer"]
 

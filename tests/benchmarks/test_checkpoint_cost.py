@@ -18,12 +18,12 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.config import parse_config
-from service.engine import Message
-from service.operations import Inspect
-from service.persistence import encode_checkpoint
+from service.broker_link.messages import Message
+from service.config.settings import parse_config
+from service.engine.operations import Inspect
 from service.runtime import Runtime
-from service.store import Store, store_url
+from service.storage.persistence import encode_checkpoint
+from service.storage.store import Store, store_url
 from tests.benchmarks._common import environment_line
 
 pytestmark = pytest.mark.benchmark

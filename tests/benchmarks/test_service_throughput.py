@@ -72,9 +72,9 @@ from paho.mqtt.enums import CallbackAPIVersion
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
-from service.api import create_app
-from service.config import RwlsConfig, parse_config
-from service.engine import Message
+from service.api.app import create_app
+from service.broker_link.messages import Message
+from service.config.settings import RwlsConfig, parse_config
 from service.runtime import Runtime
 from tests.benchmarks._common import print_header, print_table
 from tests.integration.mqtt_support import (

@@ -4,7 +4,7 @@
 
 1. the system broker, when 127.0.0.1:1883 accepts an MQTT CONNECT (kind ``"mosquitto-system"``);
 2. a private Mosquitto on a free port, when a ``mosquitto`` binary exists (``"mosquitto-private"``);
-3. the in-process :class:`service.embedded_broker.EmbeddedBroker` (``"embedded"``), only when ``CI`` is not
+3. the in-process :class:`service.demo.embedded_broker.EmbeddedBroker` (``"embedded"``), only when ``CI`` is not
    ``"true"``: CI must test against a real Mosquitto, so there it fails instead.
 
 ``RWLS_TEST_BROKER=system|private|embedded`` forces one choice (``auto``, the default, is the order above).
@@ -83,7 +83,7 @@ def mqtt_broker(tmp_path_factory: pytest.TempPathFactory) -> Iterator[BrokerInfo
             "CI=true needs a real Mosquitto: nothing answers MQTT on 127.0.0.1:1883 and no `mosquitto` binary "
             "is on PATH (install Debian's mosquitto package, or start it in .ci/run)")
 
-    from service.embedded_broker import EmbeddedBroker  # needs amqtt; only imported when it is used
+    from service.demo.embedded_broker import EmbeddedBroker  # needs amqtt; only imported when it is used
 
     with EmbeddedBroker() as embedded:
         yield BrokerInfo(embedded.host, embedded.port, "embedded")

@@ -12,11 +12,11 @@ from typing import Any
 
 import numpy as np
 
-from service.config import parse_config
-from service.engine import Message
-from service.persistence import decode_checkpoint
+from service.broker_link.messages import Message
+from service.config.settings import parse_config
 from service.runtime import Runtime
-from service.store import Store, store_url
+from service.storage.persistence import decode_checkpoint
+from service.storage.store import Store, store_url
 
 WALL_CLOCK = {"engine.updated_at"}        # when messages arrived: the wall clock, not the inputs
 

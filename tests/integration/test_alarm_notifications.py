@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.config import RwlsConfig, parse_config
+from service.config.settings import RwlsConfig, parse_config
 from service.runtime import Runtime
 from tests.integration.mqtt_support import Collector, publish_and_wait
 

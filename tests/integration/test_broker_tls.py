@@ -23,7 +23,7 @@ import pytest
 import trustme
 from paho.mqtt.enums import CallbackAPIVersion
 
-from service.config import RwlsConfig, parse_config
+from service.config.settings import RwlsConfig, parse_config
 from service.runtime import Runtime
 from tests.integration.mqtt_support import LOOPBACK
 

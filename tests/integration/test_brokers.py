@@ -12,7 +12,7 @@ from collections.abc import Callable
 import paho.mqtt.client as mqtt
 import pytest
 
-from service.embedded_broker import EmbeddedBroker, EmbeddedBrokerError
+from service.demo.embedded_broker import EmbeddedBroker, EmbeddedBrokerError
 from tests.integration.mqtt_support import (
     BrokerInfo,
     Collector,

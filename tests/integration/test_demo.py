@@ -18,7 +18,7 @@ from typing import Any
 
 import pytest
 
-from service.demo import DEMO_CHANNELS_TOML
+from service.demo.run import DEMO_CHANNELS_TOML
 
 pytestmark = pytest.mark.integration
 

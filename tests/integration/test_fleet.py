@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.sharding import owner
+from service.fleet.sharding import owner
 from tests.integration.mqtt_support import free_port, publish_and_wait
 from tests.integration.service_process import ServiceProcess
 

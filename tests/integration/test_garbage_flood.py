@@ -37,7 +37,7 @@ TOO_LARGE = 70_000                   # bytes: past the default broker.max_payloa
 
 
 def _garbage_kinds() -> list[tuple[str, Callable[[int], bytes]]]:
-    """(reason the service must give, payload for the i-th of its kind): see service/payload.py."""
+    """(reason the service must give, payload for the i-th of its kind): see service/broker_link/payload.py."""
     def text(s: str) -> bytes:
         return s.encode()
     return [

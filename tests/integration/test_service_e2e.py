@@ -18,9 +18,9 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.config import RwlsConfig, parse_config
-from service.ingest import MqttIngest
-from service.replay import replay_file
+from service.broker_link.mqtt_client import MqttIngest
+from service.config.settings import RwlsConfig, parse_config
+from service.offline.replay import replay_file
 from service.runtime import Runtime
 from tests.integration.mqtt_support import Collector, publish_and_wait
 

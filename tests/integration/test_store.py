@@ -8,7 +8,7 @@ import pytest
 from sqlalchemy import update
 from sqlalchemy.exc import IntegrityError
 
-from service.store import SCHEMA_VERSION, Store, StoreError, checkpoints, meta_table, store_url
+from service.storage.store import SCHEMA_VERSION, Store, StoreError, checkpoints, meta_table, store_url
 
 pytestmark = pytest.mark.integration
 

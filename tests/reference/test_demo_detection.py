@@ -1,6 +1,6 @@
 """The demo plant's faults are found, in good time, by the detectors the scenario implies, and by no others.
 
-Larkspur Valley, substation 7 (invented, ``service/plant.py``): the supply
+Larkspur Valley, substation 7 (invented, ``service/demo/plant.py``): the supply
 thermocouple's noise grows from day 8, the flowmeter's gain creeps from day
 10, the differential-pressure transmitter steps by 0.9 (6 sigma) on day 18,
 the flue-gas O2 channel stays healthy (its noise depends on load by design).
@@ -16,9 +16,9 @@ import pytest
 
 from estimator.channel import Sample
 from estimator.channel_bank import ChannelBank
-from service.config import load_config
-from service.plant import DAY, START, larkspur_substation7
-from service.replay import replay_file
+from service.config.settings import load_config
+from service.demo.plant import DAY, START, larkspur_substation7
+from service.offline.replay import replay_file
 
 ROOT = Path(__file__).resolve().parents[2]
 CONFIG = ROOT / "examples" / "larkspur_sub7.toml"

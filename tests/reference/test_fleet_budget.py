@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 
 from estimator.run_length import offset_arl, variance_reference
-from service.config import ConfigError, parse_config
-from service.fleet_budget import VARIANCE_FIT, derive_thresholds
+from service.config.false_alarm_budget import VARIANCE_FIT, derive_thresholds
+from service.config.settings import ConfigError, parse_config
 
 
 def test_one_false_alarm_per_ten_minutes_over_a_thousand_channels() -> None:

@@ -9,7 +9,7 @@ from hypothesis import settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, rule
 
-from service.alarms import AlarmBook, AlarmRefused, AlarmState, Evidence, replay
+from service.alarms.lifecycle import AlarmBook, AlarmRefused, AlarmState, Evidence, replay
 
 N, U, A, R = (AlarmState.NORMAL, AlarmState.UNACKNOWLEDGED, AlarmState.ACKNOWLEDGED,
               AlarmState.RETURNED_UNACKNOWLEDGED)

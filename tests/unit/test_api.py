@@ -20,9 +20,9 @@ import pytest
 from fastapi import FastAPI
 from prometheus_client.parser import text_string_to_metric_families
 
-from service.api import create_app
-from service.config import parse_config
-from service.replay import replay_file
+from service.api.app import create_app
+from service.config.settings import parse_config
+from service.offline.replay import replay_file
 from service.runtime import AlreadyRunning, Runtime
 from tests.auth_tokens import auth_section, bearer
 

@@ -13,9 +13,9 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.api import create_app
-from service.config import parse_config
-from service.operations import Inspect
+from service.api.app import create_app
+from service.config.settings import parse_config
+from service.engine.operations import Inspect
 from service.runtime import Runtime
 from tests.auth_tokens import auth_section, bearer
 

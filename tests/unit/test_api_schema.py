@@ -20,9 +20,9 @@ from fastapi import FastAPI
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from service.api import create_app
-from service.config import parse_config
-from service.payload import REASONS
+from service.api.app import create_app
+from service.broker_link.payload import REASONS
+from service.config.settings import parse_config
 from service.runtime import Runtime
 from tests.auth_tokens import auth_section, bearer
 

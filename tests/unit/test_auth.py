@@ -10,10 +10,10 @@ from typing import Any
 
 import pytest
 
-from service.api import create_app
-from service.auth import PERMISSIONS, Access, new_token, token_digest
-from service.config import ConfigError, load_config, parse_config
-from service.config_auth import AuthConfig
+from service.api.app import create_app
+from service.api.auth import PERMISSIONS, Access, new_token, token_digest
+from service.config.settings import ConfigError, load_config, parse_config
+from service.config.token_settings import AuthConfig
 from service.runtime import Runtime
 from tests.auth_tokens import TOKENS, auth_section, bearer
 

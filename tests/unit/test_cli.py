@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from service.cli import build_parser, main
-from service.progress import Progress
+from service.offline.progress import Progress
 
 REPO = Path(__file__).resolve().parents[2]
 DEMO_CSV = REPO / "examples" / "larkspur_sub7.csv"
@@ -162,8 +162,8 @@ def test_demo_channels_are_those_of_the_bundled_example() -> None:
     # One plant: `rwls demo` (built in) and `examples/larkspur_sub7.toml` (replay) must not drift apart.
     import tomllib
 
-    from service.config import load_config, parse_config
-    from service.demo import DEMO_CHANNELS_TOML
+    from service.config.settings import load_config, parse_config
+    from service.demo.run import DEMO_CHANNELS_TOML
 
     example = load_config(Path(__file__).resolve().parents[2] / "examples" / "larkspur_sub7.toml")
     built_in = parse_config(tomllib.loads(DEMO_CHANNELS_TOML))
@@ -218,7 +218,7 @@ def test_demo_help_names_the_data_directory_default_and_where_it_lives(capsys: p
 
 def test_problem_counts_by_reason_are_totals_and_only_the_listing_is_capped(
         tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    from service.replay import MAX_LISTED_ROWS
+    from service.offline.replay import MAX_LISTED_ROWS
 
     bad = MAX_LISTED_ROWS + 600
     rows = ["t,y,u"] + [f"{k},oops,1" for k in range(1, bad + 1)] + [f"{bad + k},{k},{k % 5}" for k in range(1, 40)]

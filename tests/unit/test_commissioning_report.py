@@ -14,7 +14,7 @@ from pathlib import Path
 import pytest
 
 from service.cli import main
-from service.config import load_config
+from service.config.settings import load_config
 
 ROOT = Path(__file__).resolve().parents[2]
 DATA = ROOT / "examples" / "larkspur_sub7.csv"

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from service.config import ConfigError, RwlsConfig, load_config, parse_config
+from service.config.settings import ConfigError, RwlsConfig, load_config, parse_config
 
 CHANNEL = {"terms": ["1", "u"]}
 SECRET = "hunter2-Zq9"

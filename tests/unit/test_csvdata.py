@@ -9,9 +9,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from service.config import parse_config
-from service.csvdata import REASONS, BadRow, CsvError, CsvRow, CsvSource, parse_time
-from service.replay import replay_file
+from service.broker_link.text_values import parse_time
+from service.config.settings import parse_config
+from service.offline.csv_source import REASONS, BadRow, CsvError, CsvRow, CsvSource
+from service.offline.replay import replay_file
 
 
 def _rows(tmp_path: Path, text: str, inputs: tuple[str, ...] = ("u",), need_channel: bool = False) -> list:

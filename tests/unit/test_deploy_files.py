@@ -17,7 +17,7 @@ import kubernetes_validate
 import pytest
 import yaml
 
-from service.config import parse_config
+from service.config.settings import parse_config
 
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
 K8S_VERSION = "1.30.0"            # the oldest Kubernetes these manifests are meant for

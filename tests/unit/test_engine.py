@@ -10,7 +10,8 @@ import numpy as np
 
 from estimator.channel import ChannelSettings, Sample
 from estimator.channel_bank import ChannelBank
-from service.engine import DeadLetter, Engine, Message
+from service.broker_link.messages import DeadLetter, Message
+from service.engine.writer import Engine
 
 CHANNELS = {"a": ChannelSettings(terms=("1", "u"), forgetting_factor=0.99),
             "b": ChannelSettings(terms=("1", "u"), weighting="tracked", noise_warmup=2)}

@@ -82,7 +82,7 @@ def test_estimator_module_opens_no_files_and_uses_no_global_random_state(path: P
 def test_the_scan_flags_what_it_is_meant_to_flag() -> None:
     # The scan itself can fail: a module doing every forbidden thing is caught.
     tree = ast.parse(
-        "import os, logging.config\nfrom service.api import app\nimport numpy as np\n"
+        "import os, logging.config\nfrom service.api.app import app\nimport numpy as np\n"
         "open('x')\nnp.load('y')\nnp.random.seed(1)\narr.tofile('z')\n")
     assert _imports(tree) & FORBIDDEN_IMPORTS == {"os", "logging", "service"}
     assert _bad_calls(tree) == ["open", "np.load", "np.random.seed", "arr.tofile"]

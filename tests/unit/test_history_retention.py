@@ -5,9 +5,9 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from service.config import parse_config
-from service.engine import Message
-from service.operations import Inspect
+from service.broker_link.messages import Message
+from service.config.settings import parse_config
+from service.engine.operations import Inspect
 from service.runtime import Runtime
 
 T0 = 1_704_067_200.0          # 2024-01-01: long before the wall clock of any test run

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from service.input_log import InputLog
+from service.storage.input_log import InputLog
 
 
 def _messages(first: int, count: int) -> list[tuple[str, tuple[object, ...]]]:

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
-from service.ols_vs_wls import compare
+from service.offline.ols_vs_wls import compare
 
 
 def test_both_fits_and_their_standard_errors_match_statsmodels(make_regression: Callable[..., object]) -> None:

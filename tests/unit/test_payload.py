@@ -10,8 +10,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service import payload as payload_module
-from service.payload import MAX_DEPTH, REASONS, DecodedSample, Rejection, decode_payload
+from service.broker_link import payload as payload_module
+from service.broker_link.payload import MAX_DEPTH, REASONS, DecodedSample, Rejection, decode_payload
 
 FUZZ = settings(max_examples=300, deadline=None, derandomize=True, database=None)
 

@@ -10,8 +10,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.payload import decode_payload
-from service.payload_columns import decode_columns
+from service.broker_link.payload import decode_payload
+from service.broker_link.payload_columns import decode_columns
 
 FUZZ = settings(max_examples=400, deadline=None, derandomize=True, database=None)
 NAMES = ("a", "b")

@@ -13,8 +13,8 @@ from typing import Any
 import paho.mqtt.client as mqtt
 import pytest
 
-from service.ingest import BrokerSettings, MqttIngest
-from service.log_throttle import LogThrottle
+from service.broker_link.mqtt_client import BrokerSettings, MqttIngest
+from service.engine.log_throttle import LogThrottle
 
 
 class _FullThenFree:

@@ -11,12 +11,12 @@ import numpy as np
 import pytest
 from sqlalchemy import update
 
-from service.config import parse_config
-from service.engine import Message
-from service.operations import Acknowledge, Inspect
-from service.persistence import Persistence
+from service.broker_link.messages import Message
+from service.config.settings import parse_config
+from service.engine.operations import Acknowledge, Inspect
 from service.runtime import Runtime
-from service.store import checkpoints
+from service.storage.persistence import Persistence
+from service.storage.store import checkpoints
 
 CHANNELS = {f"c{k}": {"terms": ["1", "u"], "forgetting_factor": 0.99,
                       "detectors": {"commissioning_samples": 40, "offset": {"h": 5.0}}} for k in range(4)}

@@ -7,9 +7,9 @@ from pathlib import Path
 
 import pytest
 
-from service.config import parse_config
-from service.engine import Message
-from service.redelivery import RecentlyLogged
+from service.broker_link.messages import Message
+from service.broker_link.redelivery import RecentlyLogged
+from service.config.settings import parse_config
 from service.runtime import Runtime
 
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from estimator.channel import ChannelSettings, Sample
 from estimator.channel_bank import ChannelBank
-from service.replay_trace import ReplayTrace
+from service.offline.trace import ReplayTrace
 
 
 def test_the_trajectory_is_thinned_to_a_bound_keeping_every_stride_th_sample() -> None:

@@ -9,9 +9,9 @@ import sys
 
 import pytest
 
-from service.config import ConfigError, parse_config
-from service.fleet import Fleet, own_share
-from service.sharding import Shard, owner, parse_shard
+from service.config.settings import ConfigError, parse_config
+from service.fleet.peers import Fleet, own_share
+from service.fleet.sharding import Shard, owner, parse_shard
 from tests.integration.mqtt_support import free_port
 
 CHANNELS = [f"plant{p}.line{k}.sensor" for p in range(3) for k in range(20)]
@@ -27,7 +27,7 @@ def test_every_channel_has_exactly_one_owner_and_the_split_is_even_enough() -> N
 
 
 def test_ownership_does_not_depend_on_the_process_or_its_hash_seed() -> None:
-    code = ("import json, sys; from service.sharding import owner; "
+    code = ("import json, sys; from service.fleet.sharding import owner; "
             "print(json.dumps([owner(c, 3) for c in json.loads(sys.argv[1])]))")
     runs = []
     for seed in ("0", "1", "12345"):
@@ -89,7 +89,7 @@ def test_the_fleet_snapshot_marks_the_channels_of_a_silent_replica_bad() -> None
 
 
 def test_a_replica_in_redirect_mode_sends_reads_of_other_channels_to_their_owner(tmp_path: object) -> None:
-    from service.api import create_app
+    from service.api.app import create_app
     from service.runtime import Runtime
     from tests.auth_tokens import auth_section
     from tests.unit.test_api import _test_client

@@ -1,0 +1,52 @@
+"""What the broker link hands the engine (a raw message) and what it hands back (a refusal to dead-letter)."""
+
+from __future__ import annotations
+
+import json
+import threading
+import time
+from dataclasses import dataclass, field
+
+from service.broker_link.payload import DecodedSample, Rejection
+
+__all__ = ["DeadLetter", "Message"]
+
+
+@dataclass(frozen=True)
+class Message:
+    """One raw message for one channel (``channel`` None: its topic matched no channel).
+
+    ``decoded`` carries the result of :func:`decode_payload` when the producer already
+    decoded the payload (HTTP does, to answer the client), so it is not done twice.
+    """
+
+    channel: str | None
+    payload: bytes
+    source: str                  # "mqtt" or "http"
+    topic: str | None = None
+    received: float = field(default_factory=time.time)
+    decoded: tuple[list[DecodedSample], list[Rejection]] | None = None
+    ack: tuple[int, int] | None = None        # (connection, message id): acknowledge once in the synced log
+    durable: threading.Event | None = None    # set once the message is in the synced log (HTTP waits on it)
+    redelivered: bool = False                 # the broker's DUP flag: it may have sent this one before
+
+
+@dataclass(frozen=True)
+class DeadLetter:
+    """A refused message or sample, with its reason, for the dead-letter topic."""
+
+    reason: str
+    detail: str
+    channel: str | None
+    topic: str | None
+    source: str
+    index: int | None
+    payload: bytes
+
+    def to_json(self, excerpt: int = 2048) -> bytes:
+        """Reason and context, with at most ``excerpt`` bytes of the payload (as text, replaced if not UTF-8)."""
+        body = {"reason": self.reason, "detail": self.detail, "channel": self.channel, "topic": self.topic,
+                "source": self.source, "index": self.index,
+                "payload": self.payload[:excerpt].decode("utf-8", errors="replace"),
+                "truncated": len(self.payload) > excerpt}
+        return json.dumps(body).encode()

@@ -1,0 +1,1 @@
+"""The demo: the invented plant, its publisher and the embedded broker of `rwls demo`."""

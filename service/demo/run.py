@@ -1,0 +1,139 @@
+"""`rwls demo`: everything in one process on embedded defaults.
+
+An embedded MQTT broker on a free loopback port, the demo plant publishing to
+it, the service (engine, ingest, API) with its data directory, and the URL
+printed. Channel tables come from
+``examples/larkspur_sub7.toml``'s twin below (a test keeps the two equal).
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import tomllib
+from datetime import UTC, datetime
+
+import uvicorn
+
+from service.advisory import ADVISORY
+from service.api.app import create_app
+from service.api.auth import new_token, token_digest
+from service.api.listen_socket import bind_listener
+from service.config.settings import RwlsConfig, parse_config
+from service.demo.embedded_broker import EmbeddedBroker
+from service.demo.simulate import simulate
+from service.runtime import Runtime, exit_on_signal
+
+__all__ = ["DEMO_CHANNELS_TOML", "demo_config", "recovered_positions", "run_demo"]
+
+log = logging.getLogger(__name__)
+
+DEMO_CHANNELS_TOML = '''
+[channels."sub7.supply_temp"]
+topic = "larkspur/sub7/supply_temp"
+terms = ["1", "ref_temp"]
+forgetting_factor = 0.999
+weighting = "tracked"
+noise = { half_life = 300, robust = true, initial_sigma = 0.2 }
+
+[channels."sub7.flow"]
+topic = "larkspur/sub7/flow"
+terms = ["1", "pump_speed", "pump_speed^2"]
+forgetting_factor = 0.995
+weighting = "unit"
+
+[channels."sub7.return_dp"]
+topic = "larkspur/sub7/return_dp"
+terms = ["1", "ref_dp"]
+forgetting_factor = 0.995
+weighting = "unit"
+weight_rules = [{ input = "ref_dp", low = 44.0, high = 52.0, factor = 2.0 }]
+noise = { robust = true }
+
+[channels."sub7.stack_o2"]
+topic = "larkspur/sub7/stack_o2"
+terms = ["1", "y[-1]", "load"]
+forgetting_factor = 0.999
+weighting = "tracked"
+noise = { half_life = 500, model_terms = ["1", "load"], initial_sigma = 0.1 }
+'''
+
+
+def demo_config(broker_url: str, data_dir: str, engineer_token: str | None = None) -> RwlsConfig:
+    """The demo channels against a broker URL, with the store in ``data_dir`` (and one engineer token)."""
+    data = tomllib.loads(DEMO_CHANNELS_TOML)
+    # The embedded broker speaks MQTT 3.1.1: say so, rather than probe with v5 and have it log the refusal.
+    data["broker"] = {"url": broker_url, "client_id": "rwls-demo", "protocol": "3.1.1"}
+    data["store"] = {"path": data_dir}
+    if engineer_token is not None:
+        data["auth"] = {"tokens": [{"name": "demo-engineer", "role": "engineer",
+                                    "sha256": token_digest(engineer_token)}]}
+    return parse_config(data)
+
+
+def recovered_positions(runtime: Runtime) -> dict[str, float]:
+    """Each channel's newest applied sample time, as recovered from the data directory (empty on a first run)."""
+    return {cid: entry.view.last_t for cid, entry in runtime.engine.snapshot.channels.items()
+            if entry.view.last_t is not None}
+
+
+def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, data_dir: str = "rwls-demo-data",
+             exit_after: float | None = None) -> int:
+    """Run the demo until Ctrl-C (or ``exit_after`` seconds); returns the exit status.
+
+    ``data_dir`` (relative to the working directory) keeps the state between runs: a second run recovers
+    it and the simulated plant carries on after the newest sample the service holds.
+
+    Raises
+    ------
+    PortUnavailable
+        ``port`` is taken (before anything else starts).
+    """
+    sock = bind_listener(host, port)           # first: a taken port costs nothing to find out
+    actual_port = sock.getsockname()[1]
+    broker = EmbeddedBroker()
+    broker.start()
+    token = new_token()                       # a fresh one each run: writes always need a token
+    config = demo_config(broker.url, data_dir, token)
+    runtime = Runtime(config)
+    runtime.start()
+    resume = recovered_positions(runtime)
+    server = uvicorn.Server(uvicorn.Config(create_app(runtime, manage_runtime=False), log_level="warning",
+                                           lifespan="on", timeout_graceful_shutdown=3))
+    stop = threading.Event()
+
+    def publish() -> None:
+        if runtime.ingest is not None and not runtime.ingest.wait_subscribed(30.0):
+            log.error("the service did not subscribe to the embedded broker within 30 s; the plant publishes anyway")
+        try:
+            simulate(broker.host, broker.port, prefix="larkspur", rate=rate, stop=stop,
+                     client_id="rwls-demo-plant", resume_after=resume)
+        except Exception:
+            log.exception("demo plant stopped")
+
+    def stopper() -> None:
+        if exit_after is not None and not stop.wait(exit_after):
+            server.should_exit = True
+
+    plant = threading.Thread(target=publish, name="rwls-demo-plant", daemon=True)
+    timer = threading.Thread(target=stopper, name="rwls-demo-timer", daemon=True)
+    print(f"rwls demo: service at http://{host}:{actual_port}/ (API docs /docs, snapshot /api/v1/snapshot)",
+          flush=True)
+    print(f"rwls demo: embedded MQTT broker at {broker.url}; plant publishing {rate:g} samples/s", flush=True)
+    if resume:
+        newest = datetime.fromtimestamp(max(resume.values()), UTC).strftime("%Y-%m-%d %H:%M UTC")
+        print(f"rwls demo: state recovered from {data_dir}/; the plant carries on after {newest} (plant time); "
+              f"delete that directory to start the month afresh", flush=True)
+    print(f"rwls demo: engineer token for this run (Authorization: Bearer ...): {token}", flush=True)
+    print(f"rwls demo: {ADVISORY}", flush=True)
+    plant.start()
+    timer.start()
+    exit_on_signal()
+    try:
+        server.run(sockets=[sock])
+    finally:
+        stop.set()
+        plant.join(5.0)
+        runtime.stop()
+        broker.stop()
+    return 0

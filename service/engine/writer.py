@@ -1,0 +1,547 @@
+"""The single writer: drains the ingest queue in micro-batches and owns the ChannelBank.
+
+Everything that changes estimator state happens on the engine's own thread.
+MQTT and HTTP hand raw messages over through a bounded queue (a full queue
+blocks MQTT, which stops acknowledging and lets the broker hold the messages,
+and makes HTTP answer 503); readers get an immutable :class:`Snapshot` that the
+engine replaces after a batch (at once when the queue runs empty, at most every
+``snapshot_interval`` under load), so no reader ever holds a lock on numpy state.
+
+Per message: decode into columns (``service.broker_link.payload_columns`` for a plain
+message, else the exact ``service.broker_link.payload``); then every channel's columns of
+a micro-batch go to :meth:`ChannelBank.apply_columns` together, which also
+refuses a ``seq`` or ``t`` that does not advance the channel's (redeliveries,
+replays).
+Every refused message or sample is counted by reason and handed to the
+dead-letter callback with that reason; nothing is dropped silently.
+"""
+
+from __future__ import annotations
+
+import bisect
+import concurrent.futures
+import contextlib
+import logging
+import queue
+import threading
+import time
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Protocol, TypeVar
+
+from estimator.channel import ChannelSettings
+from estimator.channel_bank import ChannelBank, ChannelView
+from estimator.sample_columns import SampleColumns
+from service.alarms.feed import AlarmFeed
+from service.alarms.lifecycle import Alarm, AlarmBook, JournalEntry
+from service.broker_link.messages import DeadLetter, Message
+from service.broker_link.payload import decode_payload
+from service.broker_link.payload_columns import decode_columns
+from service.broker_link.redelivery import RecentlyLogged
+from service.engine.operations import Operation, operation_record
+from service.engine.snapshot import ChannelEntry, FragmentWriter, Snapshot, channel_quality
+
+__all__ = ["Command", "Engine", "EngineBusy", "EngineStats", "InputRecorder"]
+
+T = TypeVar("T")
+
+log = logging.getLogger(__name__)
+
+
+@dataclass
+class EngineStats:
+    """Counters the engine thread writes and the metrics endpoint reads."""
+
+    messages: int = 0
+    samples_applied: int = 0
+    samples_warmup: int = 0
+    rejected: dict[str, int] = field(default_factory=dict)
+    batches: int = 0
+    last_batch_seconds: float = 0.0
+    batch_seconds_total: float = 0.0
+    dead_letter_failures: int = 0
+    redelivered: int = 0            # broker redeliveries of messages already logged: acknowledged, not applied
+
+    def reject(self, reason: str) -> None:
+        self.rejected[reason] = self.rejected.get(reason, 0) + 1
+
+
+@dataclass(frozen=True)
+class _Origin:
+    """The message a run of a channel's samples came from, and their indexes in it (None: a single sample)."""
+
+    message: Message
+    indexes: Sequence[int | None] | None
+
+
+class _Origins:
+    """Where each of a channel's samples in a micro-batch came from (runs of samples, one per message)."""
+
+    def __init__(self, first: _Origin) -> None:
+        self._starts = [0]
+        self._origins = [first]
+
+    def add(self, start: int, origin: _Origin) -> None:
+        self._starts.append(start)
+        self._origins.append(origin)
+
+    def locate(self, position: int) -> tuple[Message, int | None]:
+        k = bisect.bisect_right(self._starts, position) - 1
+        origin = self._origins[k]
+        return origin.message, None if origin.indexes is None else origin.indexes[position - self._starts[k]]
+
+
+class InputRecorder(Protocol):
+    """Where the engine writes every message and operation before it applies them (the storage's input log)."""
+
+    def append(self, records: Sequence[tuple[str, tuple[Any, ...]]]) -> int:
+        """Write records ``(kind, fields)``; the sequence number of the last."""
+
+    def sync(self) -> int:
+        """Make everything appended durable."""
+
+
+class EngineBusy(RuntimeError):
+    """The engine could not take or finish a command in time."""
+
+
+@dataclass(frozen=True)
+class Command:
+    """An operation queued for the engine thread (the single writer), with a future for its result."""
+
+    operation: Operation[object]
+    future: concurrent.futures.Future[object]
+
+
+class Engine:
+    """Owns the ChannelBank; applies queued messages in micro-batches on its own thread.
+
+    Parameters
+    ----------
+    channels : mapping of channel id to settings
+    queue_size : bound of the message queue (messages; a batch payload is one)
+    max_batch : messages per micro-batch at most (a batch payload is never split)
+    max_wait : seconds a micro-batch waits to fill after its first message
+    max_payload_bytes : larger payloads are refused ``too_large``
+    dead_letter : called on the engine thread for every refusal; must not block for long
+    stale_after : seconds without data after which a channel's quality is Uncertain (and its stale alarm on)
+    snapshot_interval : under load, a new snapshot at most this often (seconds); whenever the
+        queue runs empty, at once. Refreshing costs tens of microseconds per touched channel.
+    alarms : the alarm book the engine keeps in step (detector events, design suppression, staleness)
+    prepare : called with the new bank before anything else (configured baselines)
+    input_log : every message and operation is written and synced here before it applies (recovery)
+    acknowledge : called with ``(connection, message id)`` of MQTT messages once they are in the synced log
+    """
+
+    def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
+                 max_batch: int = 5000, max_wait: float = 0.005, max_payload_bytes: int = 65536,
+                 dead_letter: Callable[[DeadLetter], None] | None = None, stale_after: float = 600.0,
+                 snapshot_interval: float = 0.002, clock: Callable[[], float] = time.time,
+                 alarms: AlarmBook | None = None, prepare: Callable[[ChannelBank], None] | None = None,
+                 input_log: InputRecorder | None = None,
+                 acknowledge: Callable[[list[tuple[int, int]]], None] | None = None) -> None:
+        self.bank = ChannelBank(channels)
+        self.log = input_log
+        self.acknowledge = acknowledge
+        self.position = 0                                     # last input-log seq applied
+        self.recently_logged = RecentlyLogged()                # MQTT messages logged lately (redeliveries)
+        self.periodic: list[Callable[[], None]] = []         # run by the engine thread about once a second
+        # Called with the refreshed entries after each snapshot (history).
+        self.publish_hooks: list[Callable[[dict[str, ChannelEntry], float], None]] = []
+        if prepare is not None:
+            prepare(self.bank)                 # e.g. baselines from the configuration, before the first snapshot
+        self.alarms = alarms
+        self._feed = AlarmFeed(alarms, stale_after) if alarms is not None else None
+        self._alarms_changed = alarms is not None
+        if alarms is not None:
+            alarms.listen(self._on_transition)
+        self.bank.take_events()                # the configured baselines: in force from the start, not news
+        if self._feed is not None:
+            self._feed.hold_uncommissioned({c: self.bank.baseline_version(c) is not None
+                                            for c in self.bank.channel_ids}, clock())
+        self._inputs = {cid: tuple(s.input_names) for cid, s in channels.items()}
+        self._queue: queue.Queue[Message | None] = queue.Queue(maxsize=queue_size)
+        self._max_batch = max_batch
+        self._max_wait = max_wait
+        self._max_payload = max_payload_bytes
+        self._dead_letter = dead_letter
+        self._stale_after = stale_after
+        self._snapshot_interval = snapshot_interval
+        self._pending: set[str] = set()          # channels changed since the last snapshot
+        self._last_publish = 0.0
+        self._clock = clock
+        self.updated_at: dict[str, float] = {}
+        # Per channel: samples refused since it last applied one, and the newest refusal's reason (quality).
+        self.refused_in_a_row: dict[str, int] = {}
+        self.last_refusal: dict[str, str] = {}
+        self._fragments = FragmentWriter()
+        self.stats = EngineStats()
+        self._thread: threading.Thread | None = None
+        self._stopping = threading.Event()
+        self._heartbeat = time.monotonic()
+        self._last_refresh = time.monotonic()
+        now = clock()
+        entries = self._entries(self.bank.view(), now)
+        self._snapshot = Snapshot(0, now, entries, tuple(alarms.alarms()) if alarms is not None else ())
+        self._alarms_changed = False
+
+    # ------------------------------------------------------------- producers
+    def submit(self, message: Message, timeout: float | None = None) -> bool:
+        """Queue a message; blocks up to ``timeout`` (None: until there is room). False if still full."""
+        try:
+            self._queue.put(message, timeout=timeout)
+        except queue.Full:
+            return False
+        return True
+
+    def execute(self, operation: Operation[T], timeout: float = 10.0) -> T:
+        """Run an operation (:mod:`service.engine.operations`) on the engine thread, in order with the samples
+        queued before it; a logged one is in the synced input log before it applies. Returns its result.
+
+        Raises
+        ------
+        EngineBusy
+            The queue stayed full, or the engine did not answer within ``timeout``.
+        Exception
+            Whatever the operation raised (an alarm action the state does not allow, for instance).
+        """
+        command = Command(operation, concurrent.futures.Future())
+        try:
+            self._queue.put(command, timeout=timeout)  # type: ignore[arg-type]
+        except queue.Full:
+            raise EngineBusy("engine queue full") from None
+        try:
+            return command.future.result(timeout)  # type: ignore[return-value]
+        except concurrent.futures.TimeoutError:
+            raise EngineBusy(f"engine did not answer within {timeout} s") from None
+
+    def _on_transition(self, entry: JournalEntry, alarm: Alarm) -> None:
+        self._alarms_changed = True
+
+    def alarms_reloaded(self) -> None:
+        """The alarm book was loaded from a checkpoint: the next snapshot carries its alarms, not the old ones."""
+        self._alarms_changed = True
+
+    def feed_state(self) -> dict[str, object]:
+        """What the alarm feed remembers (for checkpoints)."""
+        if self._feed is None:
+            return {}
+        return {"stale": dict(self._feed.stale), "unjudged": sorted(self._feed.unjudged)}
+
+    def load_feed_state(self, state: dict[str, object]) -> None:
+        if self._feed is not None:
+            self._feed.stale = {str(k): bool(v) for k, v in dict(state.get("stale", {})).items()}  # type: ignore
+            self._feed.unjudged = set(state.get("unjudged", []))  # type: ignore[arg-type]
+
+    def flush_now(self) -> None:
+        """Take pending events and publish a snapshot now (after recovery, before the thread starts)."""
+        self._take_events()
+        self._pending.update(self.bank.channel_ids)
+        self._flush()
+
+    def touch(self, channel: str) -> None:
+        """Mark a channel for the next snapshot (a command changed it)."""
+        self._pending.add(channel)
+
+    @property
+    def queue_depth(self) -> int:
+        return self._queue.qsize()
+
+    @property
+    def snapshot(self) -> Snapshot:
+        """The latest snapshot (replaced, never mutated)."""
+        return self._snapshot
+
+    # ------------------------------------------------------------- lifecycle
+    def start(self) -> None:
+        """Start the engine thread."""
+        if self._thread is not None:
+            raise RuntimeError("engine already started")
+        self._thread = threading.Thread(target=self._run, name="rwls-engine", daemon=True)
+        self._thread.start()
+
+    def stop(self, timeout: float = 10.0) -> None:
+        """Apply what is queued, then stop the thread (bounded by ``timeout``)."""
+        self._stopping.set()
+        if self._thread is not None:
+            with contextlib.suppress(queue.Full):
+                self._queue.put(None, timeout=timeout)     # wake the thread
+            self._thread.join(timeout)
+
+    def alive(self, max_silence: float = 5.0) -> bool:
+        """The thread runs and its loop went round within ``max_silence`` seconds."""
+        return (self._thread is not None and self._thread.is_alive()
+                and time.monotonic() - self._heartbeat < max_silence)
+
+    def drain(self, timeout: float = 10.0) -> bool:
+        """Wait until everything queued so far is applied (tests, shutdown). False on timeout."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self._queue.unfinished_tasks == 0:
+                return True
+            time.sleep(0.002)
+        return False
+
+    # ---------------------------------------------------------------- thread
+    def _run(self) -> None:
+        while True:
+            self._heartbeat = time.monotonic()
+            try:
+                first = self._queue.get(timeout=0.25)
+            except queue.Empty:
+                self._flush()                         # left over from a batch under load
+                if self._stopping.is_set():
+                    return
+                self._tick()
+                continue
+            batch, command = self._collect(first)
+            if batch:
+                try:
+                    self._process(batch)
+                except Exception:          # the loop must outlive any bug in one batch
+                    log.exception("engine batch failed; %d messages dead-lettered", len(batch))
+                    for message in batch:
+                        self._refuse(message, "internal_error", "engine failed on this batch", None)
+                finally:
+                    for _ in batch:
+                        self._queue.task_done()
+            if command is not None:
+                self._execute(command)
+            self._tick()
+            if self._stopping.is_set() and self._queue.empty():
+                self._flush()
+                return
+
+    def _collect(self, first: Message | Command | None) -> tuple[list[Message], Command | None]:
+        """A micro-batch: messages until full, ``max_wait`` passes, or a command (which runs after them)."""
+        batch: list[Message] = []
+        if isinstance(first, Command):
+            return batch, first
+        if first is not None:
+            batch.append(first)
+        else:
+            self._queue.task_done()
+        deadline = time.monotonic() + self._max_wait
+        while len(batch) < self._max_batch:
+            remaining = deadline - time.monotonic()
+            try:
+                item = self._queue.get(timeout=remaining) if remaining > 0 else self._queue.get_nowait()
+            except queue.Empty:
+                break
+            if item is None:
+                self._queue.task_done()
+                continue
+            if isinstance(item, Command):
+                return batch, item
+            batch.append(item)
+        return batch, None
+
+    def _execute(self, command: Command) -> None:
+        try:
+            if command.operation.logged and self.log is not None:
+                self.position = self.log.append([("o", operation_record(command.operation))])
+                self.log.sync()
+            command.future.set_result(self.apply_operation(command.operation))
+        except Exception as exc:      # the caller gets it; the loop goes on
+            command.future.set_exception(exc)
+        finally:
+            self._queue.task_done()
+        self._flush()
+
+    def apply_operation(self, operation: Operation[T]) -> T:
+        """Apply an operation now, not logged (the engine thread, or recovery before it starts)."""
+        try:
+            return operation.apply(self)
+        finally:
+            self._take_events()
+
+    def _tick(self) -> None:
+        """At most once a second: staleness, shelving expiry."""
+        if time.monotonic() - self._last_refresh < 1.0:
+            return
+        self._last_refresh = time.monotonic()
+        now = self._clock()
+        if self.alarms is not None:
+            self.alarms.expire(now)
+        self._refresh_quality()
+        self._flush()
+        for job in self.periodic:
+            try:
+                job()
+            except Exception:              # a failing checkpoint must not stop the samples
+                log.exception("periodic job failed")
+
+    def _flush(self) -> None:
+        if self._pending or self._alarms_changed:
+            self._publish(sorted(self._pending))
+            self._pending.clear()
+
+    def _refuse(self, message: Message, reason: str, detail: str, index: int | None) -> None:
+        self.stats.reject(reason)
+        cid = message.channel
+        if cid is not None and cid in self.bank:
+            self.refused_in_a_row[cid] = self.refused_in_a_row.get(cid, 0) + 1
+            self.last_refusal[cid] = reason
+            self._pending.add(cid)
+        if self._dead_letter is None:
+            return
+        letter = DeadLetter(reason, detail, message.channel, message.topic, message.source, index, message.payload)
+        try:
+            self._dead_letter(letter)
+        except Exception:
+            self.stats.dead_letter_failures += 1
+            log.exception("dead-letter delivery failed reason=%s channel=%s", reason, message.channel)
+
+    def _decode(self, message: Message, cid: str) -> tuple[SampleColumns, _Origin] | None:
+        """A message's samples as columns: the short path when it vouches, else the exact decoder."""
+        names = self._inputs[cid]
+        fast = None if message.decoded is not None else decode_columns(
+            message.payload, input_names=names, max_bytes=self._max_payload)
+        if fast is not None:
+            columns, is_batch = fast
+            return columns, _Origin(message, None if not is_batch else range(len(columns)))
+        decoded, rejections = message.decoded or decode_payload(
+            message.payload, max_bytes=self._max_payload, input_names=names)
+        for rejection in rejections:
+            self._refuse(message, rejection.reason, rejection.detail, rejection.index)
+        if not decoded:
+            return None
+        columns = SampleColumns()
+        for sample in decoded:
+            columns.append(sample.y, sample.inputs, sample.t, sample.sigma, sample.weight, sample.seq)
+        return columns, _Origin(message, [sample.index for sample in decoded])
+
+    def _skip_redelivered(self, batch: list[Message]) -> tuple[list[Message], list[tuple[int, int]]]:
+        """The messages to log and apply, and the acknowledgements of redeliveries already logged."""
+        if not any(m.redelivered for m in batch):
+            return batch, []
+        kept: list[Message] = []
+        acks: list[tuple[int, int]] = []
+        for m in batch:
+            if m.redelivered and m.topic is not None and (m.topic, m.payload) in self.recently_logged:
+                self.stats.redelivered += 1
+                if m.ack is not None:
+                    acks.append(m.ack)
+            else:
+                kept.append(m)
+        return kept, acks
+
+    def _log_batch(self, batch: list[Message], acks: list[tuple[int, int]]) -> None:
+        """Into the input log, synced, before anything is applied; then acknowledge (MQTT) or release (HTTP)."""
+        if self.log is None:
+            return
+        self.position = self.log.append([("m", (m.channel, m.payload, m.source, m.topic, m.received))
+                                         for m in batch])
+        self.log.sync()
+        for m in batch:
+            if m.source == "mqtt" and m.topic is not None:
+                self.recently_logged.add(m.topic, m.payload)
+        acks = acks + [m.ack for m in batch if m.ack is not None]
+        if acks and self.acknowledge is not None:
+            try:
+                self.acknowledge(acks)
+            except Exception:            # the broker will redeliver; seq/t refuses the repeats
+                log.exception("acknowledgements not sent (%d)", len(acks))
+        for m in batch:
+            if m.durable is not None:
+                m.durable.set()
+
+    def replay(self, batch: list[Message]) -> None:
+        """Apply messages from the input log (recovery): not logged again, no dead letters sent again."""
+        dead_letter, self._dead_letter = self._dead_letter, None
+        try:
+            self._process(batch, logged=True)
+        finally:
+            self._dead_letter = dead_letter
+
+    def _process(self, batch: list[Message], logged: bool = False) -> None:
+        started = time.perf_counter()
+        if not logged:
+            batch, redelivery_acks = self._skip_redelivered(batch) if self.log is not None else (batch, [])
+            self._log_batch(batch, redelivery_acks)
+        columns: dict[str, SampleColumns] = {}
+        origins: dict[str, _Origins] = {}      # where each channel's samples came from
+        for message in batch:
+            self.stats.messages += 1
+            cid = message.channel
+            if cid is None or cid not in self.bank:
+                self._refuse(message, "unknown_channel", "no channel for this topic or id", None)
+                continue
+            decoded = self._decode(message, cid)
+            if decoded is None:
+                continue
+            more, origin = decoded
+            if cid in columns:
+                origins[cid].add(len(columns[cid]), origin)
+                columns[cid].extend(more)
+            else:
+                columns[cid] = more
+                origins[cid] = _Origins(origin)
+        for cid, outcome in self.bank.apply_columns(columns).items():
+            self._pending.add(cid)      # applied, warm-up or refused: its view changed either way
+            self.stats.samples_applied += outcome.applied
+            self.stats.samples_warmup += outcome.warmup
+            where = origins[cid]
+            if outcome.last_applied is not None:
+                self.updated_at[cid] = where.locate(outcome.last_applied)[0].received
+                self.refused_in_a_row[cid] = 0            # the refusals below, after it, count again
+            for position, reason in outcome.rejected:
+                message, index = where.locate(position)
+                self._refuse(message, reason, f"refused by channel {cid}", index)
+            if outcome.last_applied is not None:
+                self.refused_in_a_row[cid] = sum(1 for position, _ in outcome.rejected
+                                                 if position > outcome.last_applied)
+        self._take_events()
+        if self._queue.empty() or time.monotonic() - self._last_publish >= self._snapshot_interval:
+            self._flush()
+        elapsed = time.perf_counter() - started
+        self.stats.batches += 1
+        self.stats.last_batch_seconds = elapsed
+        self.stats.batch_seconds_total += elapsed
+
+    # ------------------------------------------------------------- snapshots
+    def _entries(self, views: Mapping[str, ChannelView], now: float) -> dict[str, ChannelEntry]:
+        entries = {}
+        for cid, view in views.items():
+            updated_at = self.updated_at.get(cid)
+            quality, reason = channel_quality(view, updated_at, now, self._stale_after,
+                                              self.refused_in_a_row.get(cid, 0))
+            entry = ChannelEntry(view, quality, reason, updated_at,
+                                 self._fragments.write(view, quality, reason, updated_at))
+            entries[cid] = entry
+            if self._feed is not None:
+                self._feed.judge_staleness(cid, reason == "stale", updated_at, view.last_t, now)
+        return entries
+
+    def _take_events(self) -> None:
+        """Detector events of the last batch (or command) into the alarm book."""
+        events = self.bank.take_events()
+        if events and self._feed is not None:
+            channels = {e.channel for e in events}
+            self._feed.take(events, self._clock(), {c: self.bank.baseline_version(c) for c in channels})
+
+    def _publish(self, channels: list[str]) -> None:
+        self._last_publish = time.monotonic()
+        now = self._clock()
+        entries = dict(self._snapshot.channels)
+        fresh = self._entries(self.bank.view(channels), now)
+        entries.update(fresh)
+        for hook in self.publish_hooks:
+            hook(fresh, now)
+        alarms = self._snapshot.alarms
+        if self._alarms_changed and self.alarms is not None:
+            self._alarms_changed = False
+            alarms = tuple(self.alarms.alarms())
+        self._snapshot = Snapshot(self._snapshot.version + 1, now, entries, alarms)
+
+    def _refresh_quality(self) -> None:
+        """Re-judge staleness while idle; publish only when some channel's quality changed."""
+        now = self._clock()
+        changed = []
+        for cid, entry in self._snapshot.channels.items():
+            quality, reason = channel_quality(entry.view, entry.updated_at, now, self._stale_after,
+                                              self.refused_in_a_row.get(cid, 0))
+            if (quality, reason) != (entry.quality, entry.quality_reason):
+                changed.append(cid)
+        if changed:
+            self._publish(changed)

@@ -1,0 +1,159 @@
+"""Reading sample histories from CSV, row by row, with line numbers for every bad row.
+
+Layout: a header row, then one sample per row. Columns: ``y`` (required), one
+column per input name, optional ``t`` (epoch seconds or ISO 8601; naive times
+are UTC), optional ``sigma`` or ``weight``, optional ``channel`` (required when
+the configuration has several channels). Other columns are ignored.
+
+Numbers are plain ASCII decimals as ``float`` reads them (``1.5``, ``-2e-3``,
+``nan``, ``inf``); digit separators (``1_000``) and non-ASCII digits, which
+``float`` would also take, are refused as ``bad_number``. Non-finite values
+parse, so the channel can refuse them with its own reason. A UTF-8 byte order
+mark is skipped; undecodable bytes become U+FFFD and so a bad number; a field
+longer than :data:`MAX_FIELD_CHARS` makes its row a ``bad_row``.
+"""
+
+from __future__ import annotations
+
+import csv
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+from service.broker_link.text_values import parse_number, parse_time
+
+__all__ = ["BadRow", "CsvError", "CsvRow", "CsvSource"]
+
+RESERVED = ("t", "y", "sigma", "weight", "channel")
+REASONS = frozenset({"bad_row", "bad_number", "missing_value", "bad_time"})
+MAX_FIELD_CHARS = 1 << 20                # the csv module's limit, raised from its default 131,072
+
+
+class CsvError(Exception):
+    """The file as a whole cannot be used (unreadable, no header, columns missing)."""
+
+
+@dataclass(frozen=True)
+class CsvRow:
+    """One parsed sample. ``inputs`` omits inputs whose cell was empty."""
+
+    line: int
+    channel: str | None
+    t: float | None
+    y: float
+    inputs: dict[str, float]
+    sigma: float | None
+    weight: float | None
+
+
+@dataclass(frozen=True)
+class BadRow:
+    """A row that could not be read; ``reason`` is a stable code."""
+
+    line: int
+    reason: str
+    detail: str
+
+
+class _CountingLines:
+    """Iterates a text file's lines and counts the characters read (for progress)."""
+
+    def __init__(self, lines: Iterable[str]) -> None:
+        self._lines = iter(lines)
+        self.chars = 0
+
+    def __iter__(self) -> Iterator[str]:
+        return self
+
+    def __next__(self) -> str:
+        line = next(self._lines)
+        self.chars += len(line)
+        return line
+
+
+class CsvSource:
+    """Rows of a CSV file as :class:`CsvRow` or :class:`BadRow`.
+
+    Parameters
+    ----------
+    path : path of the file
+    input_names : every input some channel needs
+    need_channel : the file must carry a ``channel`` column
+    """
+
+    def __init__(self, path: str | Path, input_names: Iterable[str], need_channel: bool) -> None:
+        self.path = Path(path)
+        try:
+            self.total_chars = max(self.path.stat().st_size, 1)
+        except OSError as exc:
+            raise CsvError(f"{path}: cannot read: {exc.strerror}") from None
+        self._input_names = sorted(set(input_names))
+        self._need_channel = need_channel
+        self.progress_chars = 0
+
+    def __iter__(self) -> Iterator[CsvRow | BadRow]:
+        if csv.field_size_limit() < MAX_FIELD_CHARS:
+            csv.field_size_limit(MAX_FIELD_CHARS)
+        with self.path.open("r", encoding="utf-8-sig", errors="replace", newline="") as handle:
+            counter = _CountingLines(handle)
+            reader = csv.reader(counter)
+            try:
+                header = next(reader, None)
+            except csv.Error as exc:
+                raise CsvError(f"{self.path}: unreadable header row: {exc}") from None
+            if header is None:
+                raise CsvError(f"{self.path}: empty file, expected a header row")
+            columns = {name.strip(): i for i, name in enumerate(header)}
+            missing = [c for c in ("y", *self._input_names) if c not in columns]
+            if self._need_channel and "channel" not in columns:
+                missing.append("channel")
+            if missing:
+                raise CsvError(f"{self.path}: header lacks column(s): {', '.join(missing)}")
+            width = len(header)
+            while True:
+                try:
+                    fields = next(reader)
+                except StopIteration:
+                    break
+                except csv.Error as exc:      # a field beyond the limit: that row only
+                    self.progress_chars = counter.chars
+                    yield BadRow(reader.line_num, "bad_row", str(exc)[:200])
+                    continue
+                self.progress_chars = counter.chars
+                if not fields or (len(fields) == 1 and not fields[0].strip()):
+                    continue
+                if len(fields) != width:
+                    yield BadRow(reader.line_num, "bad_row", f"{len(fields)} fields, header has {width}")
+                    continue
+                yield self._parse(reader.line_num, fields, columns)
+            self.progress_chars = counter.chars
+
+    def _parse(self, line: int, fields: list[str], columns: dict[str, int]) -> CsvRow | BadRow:
+        def cell(name: str) -> str:
+            index = columns.get(name)
+            return fields[index].strip() if index is not None else ""
+
+        def number(name: str) -> float | None:
+            text = cell(name)
+            return parse_number(text) if text else None
+
+        try:
+            y = number("y")
+            inputs = {}
+            for name in self._input_names:
+                value = number(name)
+                if value is not None:
+                    inputs[name] = value
+            sigma = number("sigma")
+            weight = number("weight")
+        except ValueError as exc:
+            return BadRow(line, "bad_number", str(exc)[:200])
+        if y is None:
+            return BadRow(line, "missing_value", "y is empty")
+        t_text = cell("t")
+        try:
+            t = parse_time(t_text) if t_text else None
+        except (ValueError, OverflowError):
+            return BadRow(line, "bad_time", f"cannot read time {t_text[:40]!r}")
+        channel = cell("channel") or None
+        return CsvRow(line, channel, t, y, inputs, sigma, weight)

@@ -1,0 +1,92 @@
+"""Plain-text rendering of a replay or fit result for people at a terminal."""
+
+from __future__ import annotations
+
+import math
+from datetime import UTC, datetime
+
+from service.offline.replay import RunResult
+
+__all__ = ["SHOWN_PROBLEMS", "render_text"]
+
+SHOWN_PROBLEMS = 20       # problem lines in the text output; --json lists more, the counts are of all
+
+
+def _num(value: object, digits: int = 6) -> str:
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return "-"
+    return f"{value:.{digits}g}"
+
+
+def _when(item: dict[str, object]) -> str:
+    if "t" in item and isinstance(item["t"], float):
+        return datetime.fromtimestamp(item["t"], tz=UTC).strftime("%Y-%m-%d %H:%M")
+    return f"sample {item.get('sample')}"
+
+
+def _alarm_lines(ch: dict[str, object]) -> list[str]:
+    """The baseline and the alarm transitions the detectors would have produced (replay only)."""
+    lines = []
+    baseline = ch.get("baseline")
+    if isinstance(baseline, dict):
+        lines.append(f"  baseline v{baseline['version']} ({baseline['source']}, {baseline['samples']} samples), "
+                     f"noise sigma {_num(baseline['noise_sigma'])}")
+    alarms = ch.get("alarms")
+    if isinstance(alarms, list):
+        if not alarms:
+            lines.append("  alarms: none")
+        for item in alarms:
+            lines.append(f"  alarm {item['kind']:<11} {item['state']:<31} {_when(item)}   "
+                         f"statistic {_num(item['statistic'], 4)} limit {_num(item['limit'], 4)}")
+    return lines
+
+
+def _residual_text(ch: dict[str, object]) -> str:
+    """The residual sd, saying which: in units of y (unit weights), or of the weighted residuals."""
+    if ch.get("residual_sd_scale") == "weighted":
+        return (f"weighted residual sd {_num(ch['residual_sd'])} (of residual x sqrt(weight), no unit; "
+                f"about 1 when the weights are 1/sigma^2)")
+    return f"residual sd {_num(ch['residual_sd'])} (units of y)"
+
+
+def render_text(result: RunResult, command: str) -> str:
+    """A readable summary: one table per channel, then the refused rows."""
+    out: list[str] = []
+    for cid, ch in result.channels.items():
+        out.append(
+            f"channel {cid}  ({command}; weighting {ch['weighting']}, forgetting factor "
+            f"{ch['forgetting_factor']:g}; {ch['samples']} samples, {ch['rejected']} rejected, "
+            f"{ch['warmup']} warm-up)")
+        if "error" in ch:
+            out.append(f"  {ch['error']}")
+        width = max(12, *(len(t) for t in ch["terms"]))  # type: ignore[union-attr]
+        out.append(f"  {'term':<{width}}  {'estimate':>14}  {'std error':>12}  95% interval")
+        for term in ch["terms"]:  # type: ignore[union-attr]
+            low, high = ch["intervals_95"][term]  # type: ignore[index]
+            out.append(f"  {term:<{width}}  {_num(ch['parameters'][term], 10):>14}  "  # type: ignore[index]
+                       f"{_num(ch['std_errors'][term], 4):>12}  [{_num(low)}, {_num(high)}]")  # type: ignore[index]
+        out.append(f"  {_residual_text(ch)}   noise sigma {_num(ch['noise_sigma'])} (units of y"
+                   f"{', batch estimate' if command == 'fit' else ', tracked'})")
+        out.append(f"  effective samples {_num(ch['effective_count'])}   "
+                   f"information condition {_num(ch['information_condition'], 3)}")
+        if ch["rejections"]:
+            reasons = ", ".join(f"{r} {n}" for r, n in ch["rejections"].items())  # type: ignore[union-attr]
+            out.append(f"  rejected by reason: {reasons}")
+        out += _alarm_lines(ch)
+        out.append("")
+    if result.bad_rows or result.problems_by_reason:
+        total = sum(result.problems_by_reason.values())
+        out.append(f"{result.rows} rows read, {result.bad_rows} unreadable; {total} problems by reason: "
+                   + ", ".join(f"{r} {n}" for r, n in sorted(result.problems_by_reason.items())))
+        for problem in result.listed_problems[:SHOWN_PROBLEMS]:
+            where = f" channel {problem['channel']}" if "channel" in problem else ""
+            detail = f": {problem['detail']}" if "detail" in problem else ""
+            out.append(f"  line {problem['line']}{where}: {problem['reason']}{detail}")
+        if total > SHOWN_PROBLEMS:
+            listed = len(result.listed_problems)
+            capped = f" (--json lists the first {listed}; the counts above are of all {total})" \
+                if listed < total else " (see --json)"
+            out.append(f"  ... {total - min(SHOWN_PROBLEMS, listed)} more not shown here{capped}")
+    else:
+        out.append(f"{result.rows} rows read, none refused")
+    return "\n".join(out) + "\n"

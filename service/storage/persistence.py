@@ -1,0 +1,291 @@
+"""Checkpoints, recovery and history: the engine's state made durable, and taken back exactly after a crash.
+
+Recovery is exact because the state is a function of the inputs in order:
+
+1. every message and operation is written to the input log and synced before
+   it applies (and MQTT messages are acknowledged only then), so nothing the
+   broker stopped holding is lost;
+2. a checkpoint is the whole state (every array of the bank, the alarms, the
+   counters, per-channel ordering) as of one input-log position, written in
+   one transaction with the journal entries made since the last checkpoint;
+3. recovery loads the newest checkpoint that passes its checksum (else the
+   one before), applies the log's records after its position in their order
+   (the same arithmetic gives the same bits, and the same transitions get
+   the same journal numbers), then ingest resumes: the broker redelivers what
+   was not acknowledged, and per-channel ``seq``/``t`` refuses what the log
+   already held.
+
+Alarm notifications (MQTT, webhooks, the event stream) of the replayed part
+may go out a second time: at least once. The stale alarm follows the wall
+clock, not the inputs.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import logging
+import math
+import threading
+import time
+import zipfile
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from estimator.bank_state import export_state, import_state
+from service.broker_link.messages import Message
+from service.engine.operations import operation_from_record
+from service.engine.snapshot import ChannelEntry
+from service.engine.writer import EngineStats
+from service.storage.input_log import InputLog
+from service.storage.store import KEEP_CHECKPOINTS, Store
+
+if TYPE_CHECKING:
+    from service.engine.writer import Engine
+
+__all__ = ["CorruptCheckpoint", "Persistence", "decode_checkpoint", "encode_checkpoint"]
+
+log = logging.getLogger(__name__)
+
+REPLAY_BATCH = 2000
+_META = "__meta__"
+
+
+class CorruptCheckpoint(ValueError):
+    """A checkpoint body that does not decode (never raised for a good one)."""
+
+
+def encode_checkpoint(arrays: dict[str, np.ndarray], meta: dict[str, Any]) -> bytes:
+    """Arrays (exact, in .npy form) and the JSON-able rest in one .npz blob; no pickles."""
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays, **{_META: np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)})
+    return buffer.getvalue()
+
+
+def decode_checkpoint(body: bytes) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    try:
+        with np.load(io.BytesIO(body), allow_pickle=False) as data:
+            arrays = {name: data[name] for name in data.files}
+        meta = json.loads(arrays.pop(_META).tobytes())
+    except (ValueError, KeyError, OSError, EOFError, zipfile.BadZipFile) as exc:
+        raise CorruptCheckpoint(f"{type(exc).__name__}: {exc}") from None
+    return arrays, meta
+
+
+class Persistence:
+    """The store and the input log of one engine: checkpoints, recovery, history, the journal's durable part.
+
+    Parameters
+    ----------
+    checkpoint_seconds : a checkpoint at most this often (the engine's periodic job), and at stop
+    history_step : a history row per channel at most every this many seconds (sample time, else wall)
+    history_retention : rows older than this (seconds) before the newest row are deleted
+    """
+
+    def __init__(self, store: Store, input_log: InputLog, *, checkpoint_seconds: float = 30.0,
+                 history_step: float = 60.0, history_retention: float = 30 * 86400.0) -> None:
+        self.store = store
+        self.log = input_log
+        self.checkpoint_seconds = checkpoint_seconds
+        self.history_step = history_step
+        self.history_retention = history_retention
+        self.persisted_seq = store.last_journal_seq()
+        self.last_checkpoint_at: float | None = store.latest_checkpoint_time()
+        self.last_checkpoint_seconds = math.nan
+        self.last_checkpoint_bytes = 0
+        self.checkpoints = 0
+        self._handed_seq = self.persisted_seq            # journal entries already in a checkpoint on its way
+        self._positions = sorted(c.position for c in store.checkpoints())[-KEEP_CHECKPOINTS:]
+        self._writer: threading.Thread | None = None
+        self._history_last: dict[str, float] = {}
+        self._history_rows: list[tuple[str, float, dict[str, Any]]] = []
+        # Rows handed to the checkpoint writer: still served until the store has them (and handed
+        # again with the next checkpoint if this one fails).
+        self._history_writing: list[tuple[str, float, dict[str, Any]]] = []
+        self._last_prune = 0.0
+
+    # ------------------------------------------------------------ checkpoints
+    def state(self, engine: Engine) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+        arrays, bank_meta = export_state(engine.bank)
+        stats = engine.stats
+        channels = engine.bank.channel_ids
+        arrays["engine.updated_at"] = np.array([engine.updated_at.get(c, np.nan) for c in channels])
+        alarms_meta = None
+        if engine.alarms is not None:
+            alarm_arrays, alarms_meta = engine.alarms.export()
+            arrays.update(alarm_arrays)
+        meta = {"format": 1, "position": engine.position, "bank": bank_meta, "channels": list(channels),
+                "engine": {"stats": {"messages": stats.messages, "samples_applied": stats.samples_applied,
+                                     "samples_warmup": stats.samples_warmup, "rejected": dict(stats.rejected),
+                                     "batches": stats.batches, "redelivered": stats.redelivered}},
+                "alarms": alarms_meta, "feed": engine.feed_state()}
+        return arrays, meta
+
+    def checkpoint(self, engine: Engine, *, wait: bool = True) -> bool:
+        """Take a checkpoint (engine thread, or after it stopped); False if the last one is still being written.
+
+        The state is copied and the input log starts a new segment here; encoding and the store's
+        transaction run on a writer thread unless ``wait`` (at stop), so the engine pauses only for
+        the copy (about 16 ms per 1,000 channels with their alarms; tests/benchmarks/test_checkpoint_cost.py).
+        """
+        if self._writer is not None and self._writer.is_alive():
+            if not wait:
+                return False
+            self._writer.join()
+        started = time.perf_counter()
+        arrays, meta = self.state(engine)
+        entries = [] if engine.alarms is None else [e.to_dict() for e in engine.alarms.journal
+                                                     if e.seq > self._handed_seq]
+        if entries:
+            self._handed_seq = int(entries[-1]["seq"])
+        rows = self._history_writing + self._history_rows
+        self._history_writing, self._history_rows = rows, []
+        position = engine.position
+        self.log.start_new_segment()
+        self.last_checkpoint_at = time.time()            # due again in checkpoint_seconds, whatever happens
+
+        def write() -> None:
+            try:
+                body = encode_checkpoint(arrays, meta)
+                self.store.save(body, position, entries, rows)
+                self._history_writing = []
+                # The log is kept from the older of the two kept checkpoints on: should the newest fail
+                # its checksum, the one before still has every record after it.
+                self._positions = [*self._positions, position][-KEEP_CHECKPOINTS:]
+                self.log.discard_through(self._positions[0])
+            except Exception:
+                log.exception("checkpoint at input %d failed; the input log still holds everything", position)
+                self._handed_seq = self.persisted_seq          # hand the entries again next time
+                return
+            self.persisted_seq = max(self.persisted_seq, int(entries[-1]["seq"]) if entries else 0)
+            self.last_checkpoint_seconds = time.perf_counter() - started
+            self.last_checkpoint_bytes = len(body)
+            self.checkpoints += 1
+
+        if wait:
+            write()
+        else:
+            self._writer = threading.Thread(target=write, name="rwls-checkpoint", daemon=True)
+            self._writer.start()
+        return True
+
+    def periodic(self, engine: Engine) -> None:
+        """The engine's once-a-second job: a checkpoint when one is due, history pruning now and then."""
+        now = time.time()
+        if self.last_checkpoint_at is None or now - self.last_checkpoint_at >= self.checkpoint_seconds:
+            self.checkpoint(engine, wait=False)
+        newest = max(self._history_last.values(), default=None)
+        if newest is not None and now - self._last_prune > 600.0:
+            # Retention counts in the rows' own time (sample time): a replayed or compressed-time plant
+            # keeps its last history_retention of history, whatever the wall clock says.
+            self._last_prune = now
+            self.store.prune_history(newest - self.history_retention)
+
+    # --------------------------------------------------------------- recovery
+    def recover(self, engine: Engine) -> dict[str, Any]:
+        """Load the newest good checkpoint and apply the input log after it (before the engine starts)."""
+        report: dict[str, Any] = {"checkpoint": None, "position": 0, "replayed": 0, "fresh_channels": []}
+        for checkpoint in self.store.checkpoints():
+            try:
+                arrays, meta = decode_checkpoint(checkpoint.body)
+                fresh = import_state(engine.bank, arrays, meta["bank"])
+                self._load_engine(engine, arrays, meta)
+            except (CorruptCheckpoint, ValueError, KeyError) as exc:
+                log.warning("checkpoint %d unusable (%s): trying the one before", checkpoint.id, exc)
+                continue
+            report.update(checkpoint=checkpoint.id, position=checkpoint.position, fresh_channels=fresh)
+            engine.position = checkpoint.position
+            break
+        batch: list[Message] = []
+        # The whole kept log is read: records up to the checkpoint only teach the engine what it logged
+        # lately (a broker may redeliver those, see service/broker_link/redelivery.py); the rest are applied.
+        for seq, kind, fields in self.log.read_after(0):
+            if kind == "m":
+                channel, payload, source, topic, received = fields
+                if source == "mqtt" and topic is not None:
+                    engine.recently_logged.add(str(topic), bytes(payload))
+                if seq <= engine.position:
+                    continue
+                batch.append(Message(channel, bytes(payload), str(source), topic, float(received)))
+                if len(batch) >= REPLAY_BATCH:
+                    engine.replay(batch)
+                    batch = []
+            else:
+                if seq <= engine.position:
+                    continue
+                if batch:
+                    engine.replay(batch)
+                    batch = []
+                name, args = fields
+                try:
+                    engine.apply_operation(operation_from_record(str(name), dict(args)))
+                except Exception as exc:          # refused then, refused again now: the same outcome
+                    log.info("replayed operation %s refused again: %s", name, exc)
+            engine.position = seq
+            report["replayed"] += 1
+        if batch:
+            engine.replay(batch)
+        if report["checkpoint"] is not None or report["replayed"]:
+            engine.flush_now()
+        return report
+
+    @staticmethod
+    def _load_engine(engine: Engine, arrays: dict[str, np.ndarray], meta: dict[str, Any]) -> None:
+        engine.stats = EngineStats(**meta["engine"]["stats"])
+        known = set(engine.bank.channel_ids)
+        engine.updated_at = {c: float(t) for c, t in zip(meta["channels"], arrays["engine.updated_at"].tolist(),
+                                                          strict=True) if c in known and t == t}
+        if engine.alarms is not None and meta.get("alarms") is not None:
+            engine.alarms.load(arrays, meta["alarms"])
+            engine.alarms_reloaded()
+        engine.load_feed_state(meta.get("feed") or {})
+
+    # ---------------------------------------------------------------- history
+    def note(self, entries: dict[str, ChannelEntry], now: float) -> None:
+        """A history row for each refreshed channel whose last one is ``history_step`` old (publish hook)."""
+        for cid, entry in entries.items():
+            view = entry.view
+            if view.applied == 0:
+                continue
+            t = view.last_t if view.last_t is not None else now
+            if t - self._history_last.get(cid, -math.inf) < self.history_step:
+                continue
+            self._history_last[cid] = t
+            body = {"parameters": _finite(view.parameters.tolist()), "std_errors": _finite(view.std_errors.tolist()),
+                    "noise_sigma": _finite(view.noise_sigma), "residual_sd": _finite(view.residual_sd),
+                    "quality": entry.quality, "samples": view.applied,
+                    "detectors": {k: _finite(r.statistic) for k, r in view.detectors.items()},
+                    "limits": {k: _finite(r.limit) for k, r in view.detectors.items()},
+                    "residual": _finite(view.last_innovation), "residual_spread": _finite(view.last_spread)}
+            self._history_rows.append((cid, t, body))
+        if len(self._history_rows) >= 10_000:          # between checkpoints, do not let it pile up
+            rows = list(self._history_rows)
+            self.store.save_history(rows)               # stored first, then no longer pending: never unseen
+            del self._history_rows[:len(rows)]
+
+    def history(self, channel: str, since: float | None, until: float | None, limit: int) -> list[dict[str, Any]]:
+        """The newest ``limit`` rows of a channel in [since, until], oldest first: stored, then those on
+        their way to the store (a checkpoint being written), then pending; a row in two places once."""
+        unsaved = [*self._history_writing, *self._history_rows]        # copies: other threads replace them
+        pending = [{"t": t, **body} for cid, t, body in unsaved
+                   if cid == channel and (since is None or t >= since) and (until is None or t <= until)]
+        stored = self.store.history(channel, since, until, limit) if len(pending) < limit else []
+        newest = stored[-1]["t"] if stored else -math.inf
+        return (stored + [row for row in pending if row["t"] > newest])[-limit:]
+
+    # ---------------------------------------------------------------- journal
+    def journal(self, engine: Engine, after: int, limit: int, channel: str | None) -> list[dict[str, Any]]:
+        """Entries with seq > after: the store's, then those not yet in a checkpoint."""
+        found = self.store.journal(after, limit, channel) if after < self.persisted_seq else []
+        if len(found) < limit and engine.alarms is not None:
+            start = max([after, self.persisted_seq, *(e["seq"] for e in found)])
+            found += [e.to_dict() for e in engine.alarms.entries(start, limit - len(found), channel)]
+        return found
+
+
+def _finite(value: Any) -> Any:
+    if isinstance(value, list):
+        return [_finite(v) for v in value]
+    return value if isinstance(value, float) and math.isfinite(value) else (None if isinstance(value, float)
+                                                                           else value)

@@ -1,0 +1,86 @@
+"""The arrows between the parts of ``service/`` run one way, as DEVELOPERS.md draws them.
+
+Each subpackage (and each top-level module) of ``service`` has a floor; a module may import only from its own
+package or from packages on lower floors. An import that points up (or sideways, to a package on the same floor)
+fails this test with the file, the line and the two packages named. Imports are read from the source text (also
+those under ``if TYPE_CHECKING:`` and inside functions), so a cycle cannot hide behind a deferred import.
+"""
+
+from __future__ import annotations
+
+import ast
+from pathlib import Path
+
+import pytest
+
+SERVICE = Path(__file__).resolve().parents[2] / "service"
+
+# Lowest first. The same order, drawn, is in DEVELOPERS.md ("The parts and their arrows").
+FLOORS: dict[str, int] = {
+    "advisory": 0,       # one sentence, shown everywhere
+    "config": 1,         # settings, validated by key
+    "broker_link": 2,    # MQTT client, payload decoding, what it hands over
+    "alarms": 3,         # lifecycle, feed, notifications, what-if
+    "engine": 4,         # the single writer, operations, snapshots
+    "storage": 5,        # input log, store, checkpoints and recovery
+    "fleet": 5,          # replicas and who owns a channel
+    "offline": 6,        # replay, fit, reports
+    "runtime": 7,        # one running service: wires the parts together
+    "api": 8,            # the HTTP face
+    "demo": 9,           # the demo plant and `rwls demo`
+    "cli": 10,           # the `rwls` command
+}
+
+
+def _package_of(path: Path) -> str:
+    parts = path.relative_to(SERVICE).parts
+    return parts[0] if len(parts) > 1 else path.stem
+
+
+def _service_imports(path: Path) -> list[tuple[int, str]]:
+    """(line, first name after ``service.``) of every import of ``service.<name>...`` in the file."""
+    found = []
+    for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        names: list[str] = []
+        if isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+            if node.module == "service":
+                names = [alias.name for alias in node.names]
+            elif node.module.startswith("service."):
+                names = [node.module.split(".")[1]]
+        elif isinstance(node, ast.Import):
+            names = [alias.name.split(".")[1] for alias in node.names if alias.name.startswith("service.")]
+        found += [(node.lineno, name) for name in names]
+    return found
+
+
+def _modules() -> list[Path]:
+    return sorted(p for p in SERVICE.rglob("*.py") if p.name != "__init__.py" or p.parent != SERVICE)
+
+
+def test_every_part_of_service_has_a_floor() -> None:
+    parts = {_package_of(p) for p in _modules()}
+    assert parts == set(FLOORS), f"give these a floor (and a place in DEVELOPERS.md): {parts ^ set(FLOORS)}"
+
+
+@pytest.mark.parametrize("path", _modules(), ids=lambda p: str(p.relative_to(SERVICE)))
+def test_imports_point_down_only(path: Path) -> None:
+    mine = _package_of(path)
+    upward = [f"{path.relative_to(SERVICE.parent)}:{line} ({mine}, floor {FLOORS[mine]}) imports service.{other} "
+              f"(floor {FLOORS.get(other, '?')})"
+              for line, other in _service_imports(path)
+              if other != mine and FLOORS.get(other, 99) >= FLOORS[mine]]
+    assert not upward, "arrows that run up or sideways:\n" + "\n".join(upward)
+
+
+def test_the_floors_are_drawn_in_the_contributor_guide() -> None:
+    guide = (SERVICE.parent / "DEVELOPERS.md").read_text(encoding="utf-8")
+    for part in FLOORS:
+        assert f"`{part}`" in guide, f"DEVELOPERS.md does not name service part `{part}`"
+
+
+def test_a_backward_arrow_would_be_caught(tmp_path: Path) -> None:
+    # The check itself can fail: an engine module importing the API is an arrow pointing up.
+    probe = tmp_path / "probe.py"
+    probe.write_text("from service.api.app import create_app\n")
+    assert _service_imports(probe) == [(1, "api")]
+    assert FLOORS["api"] >= FLOORS["engine"]
