@@ -40,9 +40,17 @@ class Workspace:
         self.wide1 = np.empty((m, capacity))
         self.wide2 = np.empty((m, capacity))
         self.theta = np.empty((n_params, capacity))
-        names = ("a", "r", "t", "c", "s", "csl", "ssl", "cos_product", "h", "l")
-        for name in names:
-            setattr(self, name, np.empty(capacity))
+        # One value per channel of the batch (see the kernels below for what each holds).
+        self.a: FloatArray = np.empty(capacity)
+        self.r: FloatArray = np.empty(capacity)
+        self.t: FloatArray = np.empty(capacity)
+        self.c: FloatArray = np.empty(capacity)
+        self.s: FloatArray = np.empty(capacity)
+        self.csl: FloatArray = np.empty(capacity)
+        self.ssl: FloatArray = np.empty(capacity)
+        self.cos_product: FloatArray = np.empty(capacity)
+        self.h: FloatArray = np.empty(capacity)
+        self.l: FloatArray = np.empty(capacity)
         self.empty = np.empty(capacity, dtype=bool)
         self._views: dict[int, Workspace] = {}
 

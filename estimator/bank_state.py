@@ -184,9 +184,9 @@ def _restore_lanes(group: _Group, info: dict[str, Any], arrays: Arrays, g: int, 
     scalars = arrays[f"g{g}.baselines.scalars"]
     for row in range(scalars.shape[0]):
         lane, version, source, sigma, t, samples, has_model = scalars[row]
-        lane_index = to_lane.get(int(lane))
-        if lane_index is None:
+        owner = to_lane.get(int(lane))
+        if owner is None:
             continue
-        group.watch.histories[lane_index].add(Baseline(
+        group.watch.histories[owner].add(Baseline(
             int(version), _SOURCES[int(source)], params[row], covs[row], float(sigma),
             betas[row] if has_model else None, _none(float(t)), int(samples), info["notes"].get(str(row), "")))

@@ -64,7 +64,7 @@ class PathTuning:
 Leftover = tuple["_Lane", SampleColumns, int]       # lane, its columns, first position for the exact path
 
 
-def _flat(lists: Sequence[list[object]]) -> FloatArray:
+def _flat(lists: Sequence[Sequence[float | None]]) -> FloatArray:
     return np.array(list(chain.from_iterable(lists)), dtype=np.float64)   # None becomes NaN
 
 
@@ -342,7 +342,8 @@ def _run_rounds(group: _Group, prep: _Prepared, runnable: NDArray[np.intp]) -> N
                 alive[stopped] = False
                 done[stopped] = r
                 all_alive = False
-                sel, rows, idx, z, y, w = (a[usable] for a in (sel, rows, idx, z, y, w))
+                sel, rows, idx = sel[usable], rows[usable], idx[usable]
+                z, y, w = z[usable], y[usable], w[usable]
                 if sel.shape[0] == 0:
                     continue
         z_op = prep.Z_op[rows] if prep.Z_op is not None else None

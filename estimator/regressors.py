@@ -24,6 +24,7 @@ import re
 from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import TypedDict
 
 import numpy as np
 from numpy.typing import NDArray
@@ -188,6 +189,14 @@ class RegressorSpec:
         return Z, usable
 
 
+class BuilderState(TypedDict):
+    """A :class:`RegressorBuilder`'s lag buffers as plain lists (checkpoints)."""
+
+    accepted: int
+    outputs: list[float]
+    inputs: dict[str, list[float]]
+
+
 class RegressorBuilder:
     """Streaming regressor rows for one channel, with the channel's lag buffers.
 
@@ -332,16 +341,16 @@ class RegressorBuilder:
         if last_output is not None:
             self._outputs.append(last_output)
 
-    def state(self) -> dict[str, object]:
+    def state(self) -> BuilderState:
         """Lag buffers and count, as plain lists (for checkpoints)."""
         return {"accepted": self._accepted, "outputs": list(self._outputs),
                 "inputs": {name: list(buf) for name, buf in self._inputs.items()}}
 
-    def restore(self, state: Mapping[str, object]) -> None:
+    def restore(self, state: BuilderState) -> None:
         """Load what :meth:`state` returned."""
-        self._accepted = int(state["accepted"])  # type: ignore[arg-type]
+        self._accepted = int(state["accepted"])
         self._outputs.clear()
-        self._outputs.extend(state["outputs"])  # type: ignore[arg-type]
-        for name, values in state["inputs"].items():  # type: ignore[union-attr]
+        self._outputs.extend(state["outputs"])
+        for name, values in state["inputs"].items():
             self._inputs[name].clear()
             self._inputs[name].extend(values)

@@ -92,7 +92,7 @@ def bank_statistics(factor: ArrayLike, effective_count: ArrayLike,
     identifiable = np.all(np.diagonal(R, axis1=1, axis2=2) != 0.0, axis=1)
     safe_R = np.where(identifiable[:, None, None], R, np.eye(n))
     # Triangular solves through LU: no pivoting happens on a triangular matrix.
-    theta = np.linalg.solve(safe_R, q[:, :, None])[:, :, 0]
+    theta: FloatArray = np.asarray(np.linalg.solve(safe_R, q[:, :, None])[:, :, 0], dtype=np.float64)
     R_inv = np.linalg.solve(safe_R, np.broadcast_to(np.eye(n), (k, n, n)))
     P = R_inv @ np.swapaxes(R_inv, 1, 2)
     P = 0.5 * (P + np.swapaxes(P, 1, 2))

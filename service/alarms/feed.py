@@ -20,13 +20,12 @@ from __future__ import annotations
 
 import math
 
-from estimator.channel_bank import ChannelEvent
-from estimator.detectors import KINDS
+from estimator import DETECTOR_KINDS, ChannelEvent
 from service.alarms.lifecycle import AlarmBook, Evidence
 
 __all__ = ["AlarmFeed"]
 
-_DETECTORS = [k for k in KINDS if k != "drift"]
+_DETECTORS = [k for k in DETECTOR_KINDS if k != "drift"]
 
 
 class AlarmFeed:
@@ -42,7 +41,7 @@ class AlarmFeed:
         """At a fresh start: suppress the detector alarms of every channel without a baseline (value False)."""
         for channel, has_baseline in channels.items():
             if not has_baseline:
-                self.book.suppress(channel, KINDS, True, now, "commissioning: no baseline yet")
+                self.book.suppress(channel, DETECTOR_KINDS, True, now, "commissioning: no baseline yet")
 
     def take(self, events: list[ChannelEvent], now: float, baselines: dict[str, int | None]) -> None:
         """Events from :meth:`ChannelBank.take_events`, in order; ``baselines`` maps channel -> version."""
@@ -66,7 +65,7 @@ class AlarmFeed:
                     self.book.suppress(channel, ["drift"], False, at, "baseline in force")
             elif notice.kind == "restart":
                 self.unjudged.discard(channel)
-                self.book.suppress(channel, KINDS, True, at, "reset: commissioning again")
+                self.book.suppress(channel, DETECTOR_KINDS, True, at, "reset: commissioning again")
             elif notice.kind == "judged" and notice.judged is not None:
                 if notice.judged:
                     self.unjudged.discard(channel)

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 
-from estimator.channel_bank import ChannelBank
+from estimator import ChannelBank
 from service.alarms.lifecycle import AlarmBook, Evidence
 from service.config.settings import RwlsConfig
 

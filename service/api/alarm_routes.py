@@ -20,7 +20,7 @@ from fastapi import Depends, FastAPI, Query, Request
 from fastapi.responses import JSONResponse, StreamingResponse
 from pydantic import BaseModel, ConfigDict, Field
 
-from estimator.baseline import Baseline
+from estimator import Baseline
 from service.alarms.lifecycle import AlarmRefused
 from service.api.auth import Access, Principal
 from service.engine.channel_report import finite_or_null

@@ -83,12 +83,14 @@ def _detail(entry: ChannelEntry, cid: str, alarms: list[Alarm]) -> dict[str, obj
     report = channel_report(entry.view)
     if entry.quality == "Bad":
         # Estimates of a Bad channel are not for use: null them rather than show numbers.
-        for key in ("parameters", "std_errors", "intervals_95"):
-            report[key] = dict.fromkeys(report[key])  # type: ignore[arg-type]
+        report["parameters"] = dict.fromkeys(report["parameters"])
+        report["std_errors"] = dict.fromkeys(report["std_errors"])
+        report["intervals_95"] = dict.fromkeys(report["intervals_95"])
         report["covariance"] = None
-    report.update(id=cid, quality=entry.quality, quality_reason=entry.quality_reason,
-                  updated_at=entry.updated_at, t=entry.view.last_t, alarms=[a.to_dict() for a in alarms])
-    return finite_or_null(report)  # type: ignore[return-value]
+    detail: dict[str, object] = {**report, "id": cid, "quality": entry.quality,
+                                 "quality_reason": entry.quality_reason, "updated_at": entry.updated_at,
+                                 "t": entry.view.last_t, "alarms": [a.to_dict() for a in alarms]}
+    return finite_or_null(detail)
 
 
 class _EngineCollector(Collector):
@@ -263,7 +265,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             if request.headers.get("if-none-match") == etag:
                 return Response(status_code=304, headers={"ETag": etag})
             return Response(whole, media_type="application/json", headers={"ETag": etag, "Cache-Control": "no-cache"})
-        return Response(snapshot_cache["body"], media_type="application/json",  # type: ignore[arg-type]
+        return Response(snapshot_cache["body"], media_type="application/json",
                         headers={"ETag": etag, "Cache-Control": "no-cache"})
 
     @app.post("/api/v1/channels/{channel_id}/samples", status_code=202, response_model=None,
@@ -304,7 +306,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
              response_model=None)
     def ready() -> dict[str, object] | JSONResponse:
         state = runtime.readiness()
-        return finite_or_null(state) if state["ready"] else JSONResponse(finite_or_null(state), 503)  # type: ignore
+        return finite_or_null(state) if state["ready"] else JSONResponse(finite_or_null(state), 503)
 
     add_alarm_routes(app, runtime, access)
 

@@ -65,13 +65,13 @@ def add_docs(app: FastAPI, title: str, advisory: str) -> None:
     missing = [name for name, path in files.items() if not path.is_file()]
     if missing:
         raise RuntimeError(f"swagger-ui-py lacks {', '.join(missing)} in {folder}")
-    page = get_swagger_ui_html(
+    page = bytes(get_swagger_ui_html(
         openapi_url=app.openapi_url or "/openapi.json", title=f"{title}: API reference",
         swagger_js_url=f"{ASSETS_URL}/swagger-ui-bundle.js", swagger_css_url=f"{ASSETS_URL}/swagger-ui.css",
         swagger_favicon_url=f"{ASSETS_URL}/favicon-32x32.png",
         # No validator badge: by default Swagger UI would ask a public validator about the document.
         swagger_ui_parameters={"validatorUrl": None},
-    ).body.decode()
+    ).body).decode()
     notice = f'<p role="note"><strong>Advisory use only.</strong> {html.escape(advisory)}</p>'
     page = (page.replace("<html>", '<html lang="en">', 1)
             .replace('<div id="swagger-ui">', notice + '<div id="swagger-ui">', 1)

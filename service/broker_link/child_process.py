@@ -37,6 +37,10 @@ OUTGOING_QUEUE = 10_000         # messages to publish (dead letters, alarms) wai
 DRAIN_SECONDS = 2.0             # at stop, the child publishes what is still waiting for this long at most
 
 
+# One message as the child hands it over: (channel, payload, topic, received, ack, redelivered).
+_Handed = tuple[str | None, bytes, str | None, float, tuple[int, int] | None, bool]
+
+
 class _Batcher:
     """Collects hand-overs in the child and ships them as lists (one pickle per list, not per message).
 
@@ -48,13 +52,13 @@ class _Batcher:
         self._out = out
         self._limit = limit
         self._interval = interval
-        self._items: list[tuple[str | None, bytes, str | None, float]] = []
+        self._items: list[_Handed] = []
         self._cond = threading.Condition()
         self._stop = False
         self._thread = threading.Thread(target=self._ship, name="rwls-ingest-batcher", daemon=True)
         self._thread.start()
 
-    def add(self, item: tuple[str | None, bytes, str | None, float]) -> None:
+    def add(self, item: _Handed) -> None:
         with self._cond:
             while len(self._items) >= self._limit and not self._stop:
                 self._cond.wait(0.1)

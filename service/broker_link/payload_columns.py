@@ -20,10 +20,11 @@ A property test holds this module to the exact decoder.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 
 import msgspec
 
-from estimator.sample_columns import SampleColumns
+from estimator import SampleColumns
 
 __all__ = ["decode_columns"]
 
@@ -47,7 +48,7 @@ _ONE = msgspec.json.Decoder(_Wire)
 _BATCH = msgspec.json.Decoder(_WireBatch)
 
 
-def _present(values: list[float | None] | list[int | None]) -> int:
+def _present(values: Sequence[object]) -> int:
     return len(values) - values.count(None)
 
 
@@ -91,7 +92,7 @@ def decode_columns(payload: bytes, *, input_names: tuple[str, ...], max_bytes: i
     us = [w.u for w in wires]
     given_u, given_sigma, given_weight, given_seq = _present(us), _present(sigma), _present(weight), _present(seq)
     keys = (int(is_batch) + count + _present(t) + given_u + given_sigma + given_weight + given_seq
-            + (sum(map(len, us)) if given_u == count else sum(len(u) for u in us if u is not None)))
+            + sum(len(u) for u in us if u is not None))
     if payload.count(b'"') != 2 * keys:
         return None                                  # a duplicate key, or a null given explicitly
     try:

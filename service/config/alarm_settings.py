@@ -26,13 +26,13 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
-from estimator.detectors import KINDS, ConditionTiming, DetectorSettings
+from estimator import DETECTOR_KINDS, ConditionTiming, DetectorSettings
 
 __all__ = ["ALARM_KINDS", "AlarmKindConfig", "AlarmsConfig", "BaselineConfig", "BudgetConfig", "DetectorConfig",
            "WebhookConfig", "default_priority"]
 
 # Every kind of alarm a channel has: one per detector, and staleness (no data for a while).
-ALARM_KINDS: tuple[str, ...] = (*KINDS, "stale")
+ALARM_KINDS: tuple[str, ...] = (*DETECTOR_KINDS, "stale")
 
 _DEFAULT_PRIORITY = {"noise_level": "medium", "variance": "low", "offset": "high", "drift": "medium",
                      "stale": "low"}
@@ -87,7 +87,7 @@ class DetectorConfig(_Strict):
         budget = budget or {}
         defaults = DetectorSettings()
         timing = tuple((kind, ConditionTiming(a.deadband, a.on_delay, a.off_delay))
-                       for kind, a in alarms.items() if kind in KINDS)
+                       for kind, a in alarms.items() if kind in DETECTOR_KINDS)
         return DetectorSettings(
             commissioning_samples=self.commissioning_samples,
             noise_ratio=self.noise.ratio, noise_high=self.noise.high, noise_half_life=self.noise.half_life,

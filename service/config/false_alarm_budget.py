@@ -31,8 +31,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from estimator.quantiles import chi2_quantile
-from estimator.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
+from estimator import chi2_quantile, offset_arl, threshold_for_arl, variance_arl, variance_reference
 
 __all__ = ["VARIANCE_FIT", "BudgetThresholds", "derive_thresholds"]
 

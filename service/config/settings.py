@@ -34,9 +34,7 @@ from pydantic import (
     model_validator,
 )
 
-from estimator.channel import ChannelSettings, WeightRule
-from estimator.channel_bank import ChannelBank
-from estimator.regressors import RegressorSpec, parse_term
+from estimator import ChannelBank, ChannelSettings, RegressorSpec, WeightRule, parse_term
 from service.config.alarm_settings import (
     ALARM_KINDS,
     AlarmKindConfig,
@@ -198,8 +196,8 @@ class ChannelConfig(_Strict):
 
     def priorities(self) -> dict[str, str]:
         """Priority of each alarm kind of this channel (configured, else the kind's default)."""
-        return {kind: (self.alarms[kind].priority if kind in self.alarms and self.alarms[kind].priority
-                       else default_priority(kind)) for kind in ALARM_KINDS}
+        configured = {kind: alarm.priority for kind, alarm in self.alarms.items() if alarm.priority}
+        return {kind: configured.get(kind) or default_priority(kind) for kind in ALARM_KINDS}
 
     @field_validator("terms")
     @classmethod

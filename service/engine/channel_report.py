@@ -3,29 +3,79 @@
 from __future__ import annotations
 
 import math
+from typing import Any, NotRequired, TypedDict, TypeVar
 
 import numpy as np
 
-from estimator.channel_bank import ChannelView
-from estimator.quantiles import student_t_quantile
+from estimator import ChannelView, student_t_quantile
 
-__all__ = ["INTERVAL_LEVEL", "channel_report", "finite_or_null"]
+__all__ = ["INTERVAL_LEVEL", "BaselineReport", "ChannelReport", "DetectorReport", "channel_report", "finite_or_null"]
 
 INTERVAL_LEVEL = 0.95
 
+J = TypeVar("J")
 
-def finite_or_null(value: object) -> object:
+
+class DetectorReport(TypedDict):
+    statistic: float
+    limit: float
+    active: bool
+
+
+class BaselineReport(TypedDict):
+    version: int
+    source: str
+    parameters: dict[str, float]
+    std_errors: dict[str, float]
+    noise_sigma: float
+    t: float | None
+    samples: int
+    note: str | None
+
+
+class ChannelReport(TypedDict):
+    """A channel's state as `rwls replay --json`, `rwls fit --json` and ``GET /api/v1/channels/{id}`` give it.
+
+    Numbers may be NaN or infinite here; :func:`finite_or_null` makes them null for JSON.
+    """
+
+    terms: list[str]
+    parameters: dict[str, float | None]
+    std_errors: dict[str, float | None]
+    intervals_95: dict[str, list[float] | None]
+    covariance: list[list[float]] | None
+    residual_sd: float
+    residual_sd_scale: str
+    noise_sigma: float
+    samples: int
+    rejected: int
+    rejections: dict[str, int]
+    warmup: int
+    forgetting_factor: float
+    weighting: str
+    covariance_scale: str
+    effective_count: float
+    min_information: float
+    information_condition: float
+    commissioned: int
+    baseline: BaselineReport | None
+    detectors: dict[str, DetectorReport]
+    alarms: NotRequired[list[dict[str, Any]]]     # replay: the transitions its detectors would have made
+    error: NotRequired[str]                       # fit: why there is no estimate
+
+
+def finite_or_null(value: J) -> J:
     """The same structure with every NaN or infinity replaced by None (JSON has neither)."""
     if isinstance(value, float):
-        return value if math.isfinite(value) else None
+        return value if math.isfinite(value) else None  # type: ignore[return-value]
     if isinstance(value, dict):
-        return {k: finite_or_null(v) for k, v in value.items()}
+        return {k: finite_or_null(v) for k, v in value.items()}  # type: ignore[return-value]
     if isinstance(value, list | tuple):
-        return [finite_or_null(v) for v in value]
+        return [finite_or_null(v) for v in value]  # type: ignore[return-value]
     return value
 
 
-def channel_report(view: ChannelView) -> dict[str, object]:
+def channel_report(view: ChannelView) -> ChannelReport:
     """Parameters with standard errors and 95 % intervals (Student t, ``dof`` degrees of freedom),
     covariance, residual and noise levels, counts and settings. Values may be NaN; pass the result
     through :func:`finite_or_null` before serialising."""
@@ -57,12 +107,12 @@ def channel_report(view: ChannelView) -> dict[str, object]:
         "information_condition": float(view.information_condition),
         "commissioned": view.commissioned,
         "baseline": _baseline(view),
-        "detectors": {kind: {"statistic": r.statistic, "limit": r.limit, "active": r.active}
+        "detectors": {kind: DetectorReport(statistic=r.statistic, limit=r.limit, active=r.active)
                       for kind, r in view.detectors.items()},
     }
 
 
-def _baseline(view: ChannelView) -> dict[str, object] | None:
+def _baseline(view: ChannelView) -> BaselineReport | None:
     b = view.baseline
     if b is None:
         return None

@@ -18,8 +18,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any, ClassVar, Generic, Protocol, TypeVar
 
-from estimator.baseline import Baseline
-from estimator.channel_bank import ChannelBank
+from estimator import Baseline, ChannelBank
 from service.alarms.lifecycle import Alarm, AlarmBook, JournalEntry
 
 __all__ = ["OPERATIONS", "Acknowledge", "AlarmChanged", "Inspect", "LearnBaseline", "Operation", "OperationTarget",
@@ -219,6 +218,7 @@ def operation_from_record(name: str, fields: Mapping[str, Any]) -> Operation[obj
     if kind is SetBaseline:
         values["parameters"] = tuple(float(v) for v in values["parameters"])
     try:
-        return kind(**values)  # type: ignore[no-any-return]
+        operation: Operation[object] = kind(**values)
+        return operation
     except TypeError as exc:
         raise ValueError(f"operation {name!r}: {exc}") from None

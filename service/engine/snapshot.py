@@ -13,8 +13,7 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 
-from estimator.channel_bank import ChannelView
-from estimator.statistics import CONDITION_LIMIT
+from estimator import CONDITION_LIMIT, ChannelView
 from service.alarms.lifecycle import Alarm
 
 __all__ = ["CONDITION_LIMIT", "REFUSED_IN_A_ROW", "ChannelEntry", "FragmentWriter", "Snapshot", "channel_quality"]

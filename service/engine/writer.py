@@ -29,9 +29,7 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol, TypeVar
 
-from estimator.channel import ChannelSettings
-from estimator.channel_bank import ChannelBank, ChannelView
-from estimator.sample_columns import SampleColumns
+from estimator import ChannelBank, ChannelSettings, ChannelView, SampleColumns
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import Alarm, AlarmBook, JournalEntry
 from service.broker_link.messages import DeadLetter, Message
@@ -230,8 +228,10 @@ class Engine:
 
     def load_feed_state(self, state: dict[str, object]) -> None:
         if self._feed is not None:
-            self._feed.stale = {str(k): bool(v) for k, v in dict(state.get("stale", {})).items()}  # type: ignore
-            self._feed.unjudged = set(state.get("unjudged", []))  # type: ignore[arg-type]
+            stale = state.get("stale", {})
+            unjudged = state.get("unjudged", [])
+            self._feed.stale = {str(k): bool(v) for k, v in stale.items()} if isinstance(stale, dict) else {}
+            self._feed.unjudged = {str(c) for c in unjudged} if isinstance(unjudged, list) else set()
 
     def flush_now(self) -> None:
         """Take pending events and publish a snapshot now (after recovery, before the thread starts)."""

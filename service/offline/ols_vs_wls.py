@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.batch import NotIdentifiable, fit_wls
+from estimator import NotIdentifiable, fit_wls
 
 __all__ = ["Comparison", "compare"]
 

@@ -16,12 +16,10 @@ from pathlib import Path
 
 import numpy as np
 
-from estimator.batch import NotIdentifiable, fit_wls
-from estimator.channel import Sample
-from estimator.channel_bank import ChannelBank
+from estimator import ChannelBank, NotIdentifiable, Sample, fit_wls
 from service.alarms.what_if import WhatIf
 from service.config.settings import RwlsConfig
-from service.engine.channel_report import channel_report, finite_or_null
+from service.engine.channel_report import ChannelReport, channel_report, finite_or_null
 from service.offline.csv_source import BadRow, CsvSource
 from service.offline.progress import Progress
 from service.offline.trace import ReplayTrace
@@ -35,7 +33,7 @@ MAX_LISTED_ROWS = 1000   # bad rows and rejections listed with line numbers; all
 class RunResult:
     """What a replay or fit produced: per-channel reports and the rows that were refused."""
 
-    channels: dict[str, dict[str, object]]
+    channels: dict[str, ChannelReport]
     rows: int = 0
     bad_rows: int = 0
     listed_problems: list[dict[str, object]] = field(default_factory=list)   # the first MAX_LISTED_ROWS

@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 
+from service.engine.channel_report import ChannelReport
 from service.offline.ols_vs_wls import Comparison, compare
 from service.offline.replay import RunResult
 from service.offline.trace import ChannelTrace, ReplayTrace
@@ -98,13 +99,18 @@ def _summary(result: RunResult, comparisons: dict[str, Comparison | None]) -> st
             f'</tr></thead><tbody>{"".join(rows)}</tbody></table>')
 
 
-def _estimates(ch: dict[str, Any]) -> str:
-    baseline = ch.get("baseline") or {}
-    ref = baseline.get("parameters") or {}
+def _interval(bounds: list[float] | None, end: int) -> float | None:
+    return None if bounds is None else bounds[end]
+
+
+def _estimates(ch: ChannelReport) -> str:
+    baseline = ch["baseline"]
+    ref: dict[str, float] = {} if baseline is None else baseline["parameters"]
     rows = "".join(
         f'<tr data-term="{_e(t)}"><td>{_e(t)}</td><td class="num">{_num(ch["parameters"][t])}</td>'
         f'<td class="num">{_num(ch["std_errors"][t], 6)}</td>'
-        f'<td class="num">{_num(ch["intervals_95"][t][0], 8)} to {_num(ch["intervals_95"][t][1], 8)}</td>'
+        f'<td class="num">{_num(_interval(ch["intervals_95"][t], 0), 8)} to '
+        f'{_num(_interval(ch["intervals_95"][t], 1), 8)}</td>'
         f'<td class="num">{_num(ref.get(t), 8)}</td></tr>' for t in ch["terms"])
     return ('<table class="estimates"><thead><tr><th>Term</th><th class="num">Estimate</th>'
             '<th class="num">Std. error</th><th class="num">95 % interval</th><th class="num">Baseline</th></tr>'
@@ -156,17 +162,18 @@ def _comparison_table(terms: Sequence[str], c: Comparison | None) -> str:
             f"<tbody>{rows}</tbody></table>{note}")
 
 
-def _plots(cid: str, ch: dict[str, Any], trace: ChannelTrace | None) -> str:
+def _plots(cid: str, ch: ChannelReport, trace: ChannelTrace | None) -> str:
     if trace is None or not trace.t:
         return '<p class="muted">No sample was applied: nothing to plot.</p>'
     from service.offline import report_plots as plots  # matplotlib only when a report is asked for
 
-    alarm_times = [float(a["t"]) for a in ch["alarms"] if a["action"] == "condition_on" and "t" in a]
-    baseline = ch.get("baseline") or {}
-    ref = baseline.get("parameters") or {}
+    alarm_times = [float(a["t"]) for a in ch.get("alarms", []) if a["action"] == "condition_on" and "t" in a]
+    baseline = ch["baseline"]
+    ref: dict[str, float] = {} if baseline is None else baseline["parameters"]
     parts = [_img(plots.parameter_plot(trace, j, term, ref.get(term), alarm_times), f"{cid} parameter {term}")
              for j, term in enumerate(ch["terms"])]
-    parts.append(_img(plots.sigma_plot(trace, baseline.get("noise_sigma"), alarm_times), f"{cid} noise sigma"))
+    parts.append(_img(plots.sigma_plot(trace, None if baseline is None else baseline["noise_sigma"], alarm_times),
+                      f"{cid} noise sigma"))
     for kind in ("offset", "variance", "drift"):
         parts.append(_img(plots.detector_plot(trace, kind, alarm_times), f"{cid} {kind} statistic"))
     parts.append(_img(plots.residual_plot(trace, alarm_times), f"{cid} innovations"))

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from datetime import UTC, datetime
 
+from service.engine.channel_report import ChannelReport
 from service.offline.replay import RunResult
 
 __all__ = ["SHOWN_PROBLEMS", "render_text"]
@@ -24,7 +25,7 @@ def _when(item: dict[str, object]) -> str:
     return f"sample {item.get('sample')}"
 
 
-def _alarm_lines(ch: dict[str, object]) -> list[str]:
+def _alarm_lines(ch: ChannelReport) -> list[str]:
     """The baseline and the alarm transitions the detectors would have produced (replay only)."""
     lines = []
     baseline = ch.get("baseline")
@@ -41,7 +42,7 @@ def _alarm_lines(ch: dict[str, object]) -> list[str]:
     return lines
 
 
-def _residual_text(ch: dict[str, object]) -> str:
+def _residual_text(ch: ChannelReport) -> str:
     """The residual sd, saying which: in units of y (unit weights), or of the weighted residuals."""
     if ch.get("residual_sd_scale") == "weighted":
         return (f"weighted residual sd {_num(ch['residual_sd'])} (of residual x sqrt(weight), no unit; "
@@ -59,18 +60,18 @@ def render_text(result: RunResult, command: str) -> str:
             f"{ch['warmup']} warm-up)")
         if "error" in ch:
             out.append(f"  {ch['error']}")
-        width = max(12, *(len(t) for t in ch["terms"]))  # type: ignore[union-attr]
+        width = max(12, *(len(t) for t in ch["terms"]))
         out.append(f"  {'term':<{width}}  {'estimate':>14}  {'std error':>12}  95% interval")
-        for term in ch["terms"]:  # type: ignore[union-attr]
-            low, high = ch["intervals_95"][term]  # type: ignore[index]
-            out.append(f"  {term:<{width}}  {_num(ch['parameters'][term], 10):>14}  "  # type: ignore[index]
-                       f"{_num(ch['std_errors'][term], 4):>12}  [{_num(low)}, {_num(high)}]")  # type: ignore[index]
+        for term in ch["terms"]:
+            low, high = ch["intervals_95"][term] or (None, None)
+            out.append(f"  {term:<{width}}  {_num(ch['parameters'][term], 10):>14}  "
+                       f"{_num(ch['std_errors'][term], 4):>12}  [{_num(low)}, {_num(high)}]")
         out.append(f"  {_residual_text(ch)}   noise sigma {_num(ch['noise_sigma'])} (units of y"
                    f"{', batch estimate' if command == 'fit' else ', tracked'})")
         out.append(f"  effective samples {_num(ch['effective_count'])}   "
                    f"information condition {_num(ch['information_condition'], 3)}")
         if ch["rejections"]:
-            reasons = ", ".join(f"{r} {n}" for r, n in ch["rejections"].items())  # type: ignore[union-attr]
+            reasons = ", ".join(f"{r} {n}" for r, n in ch["rejections"].items())
             out.append(f"  rejected by reason: {reasons}")
         out += _alarm_lines(ch)
         out.append("")

@@ -13,10 +13,11 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
-from estimator.channel_bank import ChannelBank
+from estimator import ChannelBank
 
 __all__ = ["ChannelTrace", "ReplayTrace"]
 
@@ -42,8 +43,9 @@ class ChannelTrace:
     weight: list[float] = field(default_factory=list)
 
     def _thin(self) -> None:
-        for values in (self.t, self.parameters, self.std_errors, self.noise_sigma, self.innovation, self.spread,
-                       *self.statistics.values(), *self.limits.values()):
+        series: list[list[Any]] = [self.t, self.parameters, self.std_errors, self.noise_sigma, self.innovation,
+                                   self.spread, *self.statistics.values(), *self.limits.values()]
+        for values in series:
             del values[1::2]
         self.stride *= 2
 

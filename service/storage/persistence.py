@@ -33,7 +33,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from estimator.bank_state import export_state, import_state
+from estimator import export_state, import_state
 from service.broker_link.messages import Message
 from service.engine.operations import operation_from_record
 from service.engine.snapshot import ChannelEntry
@@ -59,7 +59,8 @@ class CorruptCheckpoint(ValueError):
 def encode_checkpoint(arrays: dict[str, np.ndarray], meta: dict[str, Any]) -> bytes:
     """Arrays (exact, in .npy form) and the JSON-able rest in one .npz blob; no pickles."""
     buffer = io.BytesIO()
-    np.savez(buffer, **arrays, **{_META: np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)})
+    members: dict[str, Any] = {**arrays, _META: np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)}
+    np.savez(buffer, **members)
     return buffer.getvalue()
 
 
@@ -135,10 +136,11 @@ class Persistence:
             self._writer.join()
         started = time.perf_counter()
         arrays, meta = self.state(engine)
-        entries = [] if engine.alarms is None else [e.to_dict() for e in engine.alarms.journal
-                                                     if e.seq > self._handed_seq]
-        if entries:
-            self._handed_seq = int(entries[-1]["seq"])
+        fresh = [] if engine.alarms is None else [e for e in engine.alarms.journal if e.seq > self._handed_seq]
+        newest_seq = fresh[-1].seq if fresh else None
+        entries = [e.to_dict() for e in fresh]
+        if newest_seq is not None:
+            self._handed_seq = newest_seq
         rows = self._history_writing + self._history_rows
         self._history_writing, self._history_rows = rows, []
         position = engine.position
@@ -158,7 +160,7 @@ class Persistence:
                 log.exception("checkpoint at input %d failed; the input log still holds everything", position)
                 self._handed_seq = self.persisted_seq          # hand the entries again next time
                 return
-            self.persisted_seq = max(self.persisted_seq, int(entries[-1]["seq"]) if entries else 0)
+            self.persisted_seq = max(self.persisted_seq, newest_seq or 0)
             self.last_checkpoint_seconds = time.perf_counter() - started
             self.last_checkpoint_bytes = len(body)
             self.checkpoints += 1

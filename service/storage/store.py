@@ -175,7 +175,10 @@ class Store:
         with self.engine.begin() as conn:
             result = conn.execute(insert(checkpoints).values(created_at=time.time(), position=position,
                                                              size=len(body), checksum=digest, body=body))
-            new_id = int(result.inserted_primary_key[0])
+            key = result.inserted_primary_key
+            if key is None:
+                raise RuntimeError("the store gave the new checkpoint no id")
+            new_id = int(key[0])
             _add_journal(conn, entries)
             _add_history(conn, history_rows)
             keep = select(checkpoints.c.id).order_by(checkpoints.c.id.desc()).limit(KEEP_CHECKPOINTS)

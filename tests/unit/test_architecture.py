@@ -84,3 +84,36 @@ def test_a_backward_arrow_would_be_caught(tmp_path: Path) -> None:
     probe.write_text("from service.api.app import create_app\n")
     assert _service_imports(probe) == [(1, "api")]
     assert FLOORS["api"] >= FLOORS["engine"]
+
+
+def _estimator_imports(path: Path) -> list[tuple[int, str]]:
+    """(line, module) of every import of ``estimator`` or one of its modules in the file."""
+    found = []
+    for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        if isinstance(node, ast.ImportFrom) and node.module and node.level == 0 \
+                and (node.module == "estimator" or node.module.startswith("estimator.")):
+            found.append((node.lineno, node.module))
+        elif isinstance(node, ast.Import):
+            found += [(node.lineno, a.name) for a in node.names if a.name.split(".")[0] == "estimator"]
+    return found
+
+
+@pytest.mark.parametrize("path", _modules(), ids=lambda p: str(p.relative_to(SERVICE)))
+def test_service_uses_the_estimator_through_its_front_door_only(path: Path) -> None:
+    side_doors = [f"{path.relative_to(SERVICE.parent)}:{line} imports {module}"
+                  for line, module in _estimator_imports(path) if module != "estimator"]
+    assert not side_doors, ("import these from `estimator` (add them to estimator/__init__.py's exports):\n"
+                            + "\n".join(side_doors))
+
+
+def test_everything_the_front_door_lists_is_there() -> None:
+    import estimator
+
+    missing = [name for name in estimator.__all__ if not hasattr(estimator, name)]
+    assert not missing
+
+
+def test_a_side_door_would_be_caught(tmp_path: Path) -> None:
+    probe = tmp_path / "probe.py"
+    probe.write_text("from estimator.detectors import KINDS\nimport estimator.rwls\nfrom estimator import Sample\n")
+    assert _estimator_imports(probe) == [(1, "estimator.detectors"), (2, "estimator.rwls"), (3, "estimator")]
