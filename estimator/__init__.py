@@ -12,7 +12,6 @@ from estimator.quantiles import chi2_quantile, student_t_quantile
 from estimator.regressors import Factor, NotUsable, RegressorBuilder, RegressorSpec, Term, parse_term
 from estimator.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
 from estimator.rwls import BankState, RecursiveWLSBank, RejectedSample, UpdateResult
-from estimator.rwls_scalar import ScalarRecursiveWLS
 from estimator.sample_columns import SampleColumns
 from estimator.statistics import CONDITION_LIMIT, ChannelStatistics, bank_statistics
 from estimator.variance import NoiseVarianceTracker, TrackerState
@@ -43,7 +42,6 @@ __all__ = [
     "Sample",
     "SampleColumns",
     "SampleOutcome",
-    "ScalarRecursiveWLS",
     "Term",
     "TrackerState",
     "UpdateResult",

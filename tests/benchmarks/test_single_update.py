@@ -35,7 +35,6 @@ from numpy.typing import NDArray
 from statsmodels.regression.recursive_ls import RecursiveLS
 
 from estimator.rwls import RecursiveWLSBank
-from estimator.rwls_scalar import ScalarRecursiveWLS
 from estimator.statistics import bank_statistics
 from tests.benchmarks._common import (
     DIFFUSE_PRIOR,
@@ -47,6 +46,7 @@ from tests.benchmarks._common import (
     print_table,
     regression_pool,
 )
+from tests.support.scalar_rwls import ScalarRecursiveWLS
 
 pytestmark = pytest.mark.benchmark
 

@@ -8,7 +8,8 @@ import math
 import numpy as np
 import pytest
 
-from estimator import BankState, RecursiveWLSBank, RejectedSample, ScalarRecursiveWLS, bank_statistics, fit_wls
+from estimator import BankState, RecursiveWLSBank, RejectedSample, bank_statistics, fit_wls
+from tests.support.scalar_rwls import ScalarRecursiveWLS
 
 
 def _statistics(bank: RecursiveWLSBank, scale: str = "estimated"):

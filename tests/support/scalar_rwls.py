@@ -3,10 +3,9 @@
 For a single channel, numpy's per-call overhead (about 1 us) dominates arrays of
 five numbers; this path keeps the factor as nested lists and does the same IEEE
 operations, in the same order, as the vectorised bank step, so the two give the
-same bits (``tests/unit/test_rwls.py`` holds them to it). It is the estimator
-for a caller with a single channel; :meth:`RecursiveWLSBank.update_one` runs the
-same step on one of a bank's channels (what ``rwls replay`` and the service do
-when a round holds one sample of a group).
+same bits (``tests/unit/test_rwls.py`` holds them to it). No production code uses it: it lives with the
+tests as an independent witness of the scalar kernel that :meth:`RecursiveWLSBank.update_one` runs on one of
+a bank's channels (what ``rwls replay`` and the service do when a round holds one sample of a group).
 """
 
 from __future__ import annotations
