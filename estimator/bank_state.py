@@ -9,7 +9,7 @@ estimator shape (parameters, operating-point model size), and starts afresh
 otherwise (the returned list names those). Settings (forgetting factors,
 limits) are the configuration's, never the saved ones.
 
-Nothing here reads or writes files: :mod:`service.checkpoint` does.
+Nothing here reads or writes files: the service's storage (checkpoints) does.
 """
 
 from __future__ import annotations
