@@ -7,23 +7,38 @@ The innovation is normalised by its baseline spread,
 ``eps_ref = e / sqrt(V_ref (1 + kappa h))`` with ``V_ref`` the baseline's noise
 variance (at the sample's operating point when the channel has a noise model;
 the declared ``sigma^2`` or ``1 / weight`` under ``sample`` weighting):
-~N(0, 1) while the channel is as commissioned. ``d`` is the difference of
-consecutive ``eps_ref``; ``d^2 / 2`` is chi-square with one degree of freedom
-like ``eps^2`` while the noise is as commissioned, but a level shift or a slow
-drift of the mean (which a tracking estimator turns into a transient or a
-steady bias of the innovations) leaves it almost untouched. Two EWMAs of
-``d^2 / 2``, each clipped at ``clip^2`` times its own level so that one spike
-cannot lift it while a real rise still does, measure the noise relative to
-the baseline: ``D`` (half-life ``noise_half_life``) for the noise level, and a
-faster ``F`` (half-life ``offset_scale_half_life``) that scales the offset
-detector to the noise of the moment, ``eps_now = eps_ref / sqrt(F)`` (``F``
-before the sample: no look-ahead).
+unit spread while the channel is as commissioned, but Gaussian only if its
+noise is.
+
+Noise shape. The offset and variance CUSUMs are designed for N(0, 1) input,
+and a heavy-tailed noise of the same variance would make them raise false
+alarms many times too often. So they judge the normal score
+``z = Phi^-1(G(eps_ref))`` through the channel's own calibration
+distribution ``G``, learned from the ``calibration_samples`` samples after
+each baseline (:mod:`estimator.noise_shape`; the CUSUMs are not judged in the
+meantime): close to N(0, 1) in control whatever the noise's shape, so their
+Gaussian thresholds, Markov-chain run lengths and the fleet budget hold.
+``calibration_samples = 0`` takes the noise as Gaussian: ``z = eps_ref``,
+judged from the baseline on (the special case, exactly the detectors as they
+were before the tables).
+
+``d`` is the difference of consecutive ``z``; ``d^2 / 2`` is chi-square with
+one degree of freedom like ``z^2`` while the noise is as calibrated, but a
+level shift or a slow drift of the mean (which a tracking estimator turns
+into a transient or a steady bias of the innovations) leaves it almost
+untouched. Two EWMAs of halved squared differences, each clipped at
+``clip^2`` times its own level so that one spike cannot lift it while a real
+rise still does: ``D`` (half-life ``noise_half_life``, of ``eps_ref``) for
+the noise level in engineering units, and a faster ``F`` (half-life
+``offset_scale_half_life``, of ``z``) that scales the offset detector to the
+noise of the moment, ``z_now = z / sqrt(F)`` (``F`` before the sample: no
+look-ahead).
 
 Detectors (statistics compared with limits; a channel without a baseline, or
 a sample the bank could not predict, leaves them untouched):
 
 ``offset``
-    Two-sided tabular CUSUM on ``eps_now`` with reference value ``k`` and
+    Two-sided tabular CUSUM on ``z_now`` with reference value ``k`` and
     decision interval ``h`` in sigma units (Page 1954; Montgomery, Introduction
     to Statistical Quality Control, ch. 9): ``C+ = max(0, C+ + eps - k)``,
     ``C- = max(0, C- - eps - k)``; statistic ``max(C+, C-)``. The defaults,
@@ -35,8 +50,12 @@ a sample the bank could not predict, leaves them untouched):
     6e-5 chance of a sample beyond it).
 ``variance``
     One-sided CUSUM, tuned to a variance ratio ``rho`` (reference value from
-    :func:`estimator.run_length.variance_reference`), of ``d^2 / 2`` clipped at
-    ``clip^2`` (a spike touches two differences: keep ``h > 2 (clip^2 - k)``):
+    :func:`estimator.run_length.variance_reference`), of ``d^2 / (2 (1 + m))``
+    clipped at ``clip^2`` (a spike touches two differences: keep
+    ``h > 2 (clip^2 - k)``). ``m`` is the margin for the calibration's own
+    sampling error (:func:`estimator.run_length.calibration_margin`, 3.7 %
+    for h = 60 and 1,000 calibration samples; 0 without a table) that keeps
+    the false-alarm rate averaged over channels at the nominal one:
     the variance detector answers the noise, the offset and drift detectors
     the mean. Consecutive differences are correlated, so the
     Markov-chain ARL of the iid chart overstates the in-control ARL (measured
@@ -56,9 +75,15 @@ Alarm conditions. Each statistic becomes a condition with hysteresis and
 delays: it turns active when the statistic has exceeded its limit for
 ``on_delay`` seconds of sample time, and clears when it has stayed below
 ``limit * (1 - deadband)`` for ``off_delay`` seconds. Samples without a time
-take effect at once. Every change is a :class:`ConditionEvent` with its
-evidence (statistic, limit, estimated onset: for a CUSUM the last time it was
-zero, the classical change-point estimate).
+take effect at once. A CUSUM condition that clears restarts its CUSUM from
+zero (Page 1954: the scheme restarts after it acts), so a second raise needs
+a new excursion, as rare in control as the first. The defaults
+(:data:`DEFAULT_TIMING`): deadband 0.5 for the CUSUMs and the drift test, 0.1
+for the noise level; no on-delay; a 30-minute off-delay for every detector,
+so a condition that clears and returns within minutes raises once. Every
+change is a :class:`ConditionEvent` with its evidence (statistic, limit,
+estimated onset: for a CUSUM the last time it was zero, the classical
+change-point estimate).
 """
 
 from __future__ import annotations
