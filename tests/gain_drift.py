@@ -19,7 +19,7 @@ from estimator.detectors import DetectorSettings
 from estimator.sample_columns import SampleColumns
 from tests.noise_shapes import PERIOD, QUANTUM, noise
 
-__all__ = ["first_alarms"]
+__all__ = ["first_alarms", "raises"]
 
 FloatArray = NDArray[np.float64]
 SIGMA = 0.2                 # noise standard deviation, engineering units
@@ -32,6 +32,18 @@ def first_alarms(shape: str, channels: int, seed: int, *, rate: float, before: i
     ``rate``: gain change per sample (the gain starts at 0.5); ``before``: samples before the drift starts,
     commissioning and calibration included; ``after``: samples of drift.
     """
+    first: dict[str, FloatArray] = {}
+    for channel, kind, active, sample in raises(shape, channels, seed, rate=rate, before=before, after=after,
+                                                detectors=detectors):
+        row = first.setdefault(kind, np.full(channels, np.nan))
+        if active and math.isnan(row[channel]):
+            row[channel] = sample - before
+    return first
+
+
+def raises(shape: str, channels: int, seed: int, *, rate: float, before: int, after: int,
+           detectors: DetectorSettings | None = None) -> list[tuple[int, str, bool, float]]:
+    """Every condition change of the run of :func:`first_alarms`: (channel, kind, active, sample), in order."""
     settings = ChannelSettings(terms=("1", "u"), forgetting_factor=0.995,
                                detectors=detectors if detectors is not None else DetectorSettings())
     ids = [f"c{k}" for k in range(channels)]
@@ -39,7 +51,7 @@ def first_alarms(shape: str, channels: int, seed: int, *, rate: float, before: i
     rng = np.random.default_rng(seed)
     phase = rng.uniform(0.0, QUANTUM, channels)
     total = before + after
-    first: dict[str, FloatArray] = {}
+    out: list[tuple[int, str, bool, float]] = []
     block = 500
     for start in range(0, total, block):
         stop = min(start + block, total)
@@ -53,9 +65,6 @@ def first_alarms(shape: str, channels: int, seed: int, *, rate: float, before: i
                                                sigma=none, weight=none, seq=none) for k, cid in enumerate(ids)})
         for event in bank.take_events():
             c = event.condition
-            if c is not None and c.active:
-                row = first.setdefault(c.kind, np.full(channels, np.nan))
-                k = ids.index(event.channel)
-                if math.isnan(row[k]):
-                    row[k] = c.t / PERIOD - before
-    return first
+            if c is not None:
+                out.append((ids.index(event.channel), c.kind, c.active, c.t / PERIOD))
+    return out

@@ -23,12 +23,13 @@ import math
 
 import numpy as np
 import pytest
+from scipy import stats
 
 from estimator.detectors import DEFAULT_TIMING, DetectorSettings
 from estimator.run_length import offset_arl
 from service.fleet_budget import VARIANCE_FIT
-from tests.gain_drift import first_alarms
-from tests.noise_shapes import SHAPES, Run, simulate
+from tests.gain_drift import first_alarms, raises
+from tests.noise_shapes import PERIOD, SHAPES, Run, simulate
 
 SHORT = DetectorSettings(offset_h=2.5, variance_h=16.0)
 NOMINAL = {"offset": offset_arl(2.5, 1.0), "variance": math.exp(VARIANCE_FIT[0] + VARIANCE_FIT[1] * 16.0)}
@@ -149,10 +150,28 @@ def test_a_slow_gain_drift_is_found_as_soon_under_every_noise_shape(shape: str, 
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("shape", SHAPES)
-def test_healthy_channels_stay_silent_at_default_settings(shape: str) -> None:
-    # The experiment through the whole ChannelBank: 12 healthy channels x 20,000 samples at default
-    # settings. Before the noise-shape tables, t_3 and Laplace noise raised 5 alarms in 480,000 channel-samples
-    # (seed 1 of the same set-up); the design rates make the expectation a few hundredths per shape.
-    first = first_alarms(shape, 12, seed=SHAPES.index(shape) + 21, rate=0.0, before=20_000, after=0)
-    assert first == {}, {kind: int(np.isfinite(row).sum()) for kind, row in first.items()}
+def test_healthy_channels_raise_no_more_than_twice_the_nominal_false_alarms_at_default_settings() -> None:
+    # The experiment through the whole ChannelBank: 12 healthy channels of each shape x 20,000 samples
+    # at default settings (18,000 judged after commissioning and calibration). Nominal rates per sample: offset
+    # 1 / 2.2e7 (Markov chain, h = 8, k = 1), variance 1 / 1.9e6 (VARIANCE_FIT at h = 60), drift 1e-6 per check
+    # every 25 samples, noise level none: 0.73 raises expected over the 1.3 million channel-samples. The count
+    # must stay within the 99.9 % Poisson quantile of twice that, 6 (common practice: exact Poisson tail); the
+    # detectors judging raw innovations raised 5 on the t_3 and Laplace channels alone (our own Monte Carlo).
+    settings = DetectorSettings()
+    judged = 20_000 - settings.commissioning_samples - settings.calibration_samples
+    per_sample = 1.0 / offset_arl(8.0, 1.0, states=200) + math.exp(-VARIANCE_FIT[0] - VARIANCE_FIT[1] * 60.0) \
+        + settings.drift_alpha / settings.drift_every
+    expected = per_sample * judged * 12 * len(SHAPES)
+    bound = 0
+    while stats.poisson.sf(bound, 2.0 * expected) > 1e-3:
+        bound += 1
+    count = 0
+    for shape in SHAPES:
+        changes = raises(shape, 12, seed=SHAPES.index(shape) + 21, rate=0.0, before=20_000, after=0)
+        count += sum(1 for _, _, active, _ in changes if active)
+        last: dict[tuple[int, str], float] = {}
+        for channel, kind, active, sample in changes:        # never raised twice within the off-delay
+            if active:
+                assert sample - last.get((channel, kind), -math.inf) >= DEFAULT_TIMING[kind].off_delay / PERIOD
+                last[channel, kind] = sample
+    assert count <= bound, (count, bound, expected)
