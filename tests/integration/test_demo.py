@@ -15,6 +15,8 @@ import pytest
 
 pytestmark = pytest.mark.integration
 
+DEMO_CHANNELS = 6            # service/demo.py's DEMO_CHANNELS_TOML: four with faults, two healthy non-Gaussian
+
 
 def _get(url: str) -> Any:
     with urllib.request.urlopen(url, timeout=5) as response:   # loopback only
@@ -43,7 +45,7 @@ def test_demo_comes_up_and_its_parameters_move(tmp_path: Path) -> None:
             except OSError:              # printed before uvicorn listens: try again shortly
                 time.sleep(0.3)
                 continue
-            if len(channels) == 4 and all(c["samples"] >= 50 for c in channels):
+            if len(channels) == DEMO_CHANNELS and all(c["samples"] >= 50 for c in channels):
                 first = _get(f"{url}/api/v1/snapshot")
                 break
             time.sleep(0.5)
@@ -53,7 +55,7 @@ def test_demo_comes_up_and_its_parameters_move(tmp_path: Path) -> None:
         assert second["version"] > first["version"]
         moved = [cid for cid in first["channels"]
                  if first["channels"][cid]["parameters"] != second["channels"][cid]["parameters"]]
-        assert len(moved) == 4, f"parameters did not move on {set(first['channels']) - set(moved)}"
+        assert len(moved) == DEMO_CHANNELS, f"parameters did not move on {set(first['channels']) - set(moved)}"
         gain = second["channels"]["sub7.flow"]["parameters"]["pump_speed"]
         assert gain is not None and 40.0 < gain < 70.0      # the invented flowmeter's gain is 55
         assert "advisory" in urllib.request.urlopen(f"{url}/", timeout=5).read().decode().lower()
