@@ -57,7 +57,7 @@ def service(mqtt_broker: Any, tmp_path_factory: pytest.TempPathFactory) -> Itera
     topic = f"{unique_prefix}/{CHANNEL}"
     settings = {
         "channels": {CHANNEL: {"topic": topic, "terms": ["1", "pump_speed"], "forgetting_factor": 0.99,
-                               "detectors": {"commissioning_samples": 40}}},
+                               "detectors": {"commissioning_samples": 40, "calibration_samples": 0}}},
         "broker": {"url": f"mqtt://127.0.0.1:{mqtt_broker.port}", "client_id": unique_client_id("rwls-ui"),
                    "dead_letter_topic": f"{unique_prefix}/dead", "reconnect_min_delay": 0.5,
                    "reconnect_max_delay": 1.0},
