@@ -5,8 +5,8 @@ from estimator.baseline import Baseline
 from estimator.batch import BatchFit, NotIdentifiable, fit_wls
 from estimator.channel import ChannelSettings, Sample, SampleOutcome, WeightRule
 from estimator.channel_bank import ChannelBank, ChannelEvent, ChannelView
+from estimator.detectors import DEFAULT_TIMING, ConditionTiming, DetectorSettings
 from estimator.detectors import KINDS as DETECTOR_KINDS
-from estimator.detectors import ConditionTiming, DetectorSettings
 from estimator.log_variance import LogVarianceModel, LogVarianceState
 from estimator.quantiles import chi2_quantile, student_t_quantile
 from estimator.regressors import Factor, NotUsable, RegressorBuilder, RegressorSpec, Term, parse_term
@@ -18,6 +18,7 @@ from estimator.variance import NoiseVarianceTracker, TrackerState
 
 __all__ = [
     "CONDITION_LIMIT",
+    "DEFAULT_TIMING",
     "DETECTOR_KINDS",
     "BankState",
     "Baseline",

@@ -31,8 +31,9 @@ Arrays = dict[str, NDArray[Any]]
 
 # Arrays whose channel axis is the last one (the factors, structure of arrays); the others have it first.
 _CHANNEL_LAST = ("bank.A", "model.A")
-# Arrays a state saved by an earlier version may lack: they keep their fresh value (display only).
-_ADDED_LATER = frozenset({"watch.last_innovation", "watch.last_spread"})
+# Arrays a state saved by an earlier version may lack: they keep their fresh value (the last two are display
+# only; without its noise-shape arrays a channel calibrates its shape anew, judging no CUSUM until it has).
+_ADDED_LATER = frozenset({"watch.last_innovation", "watch.last_spread", "det.shape_count", "det.shape"})
 
 
 def _group_arrays(group: _Group) -> Arrays:
@@ -47,6 +48,7 @@ def _group_arrays(group: _Group) -> Arrays:
         "det.has_baseline": det.has_baseline, "det.sigma_ref": det._sigma_ref, "det.theta_ref": det._theta_ref,
         "det.cov_ref": det._cov_ref, "det.state": det._state, "det.since_drift": det._since_drift,
         "det.active": det._active.T, "det.conditions": det._conditions.transpose(1, 0, 2),
+        "det.shape_count": det._shape_count, "det.shape": det._shape,
     }
     if group.model is not None:
         model_bank = group.model._bank
@@ -151,6 +153,10 @@ def import_state(bank: ChannelBank, arrays: Arrays, meta: dict[str, Any]) -> lis
                         continue
                     raise ValueError(f"saved state lacks {key}")
                 source = arrays[key]
+                if name == "det.state" and source.shape[1] < target.shape[1]:
+                    # Saved before the state gained columns (the previous normal score): those start empty.
+                    source = np.concatenate([source, np.full((source.shape[0], target.shape[1] - source.shape[1]),
+                                                             np.nan)], axis=1)
                 if name in _CHANNEL_LAST:
                     target[..., dst] = source[..., src]
                 else:

@@ -7,23 +7,38 @@ The innovation is normalised by its baseline spread,
 ``eps_ref = e / sqrt(V_ref (1 + kappa h))`` with ``V_ref`` the baseline's noise
 variance (at the sample's operating point when the channel has a noise model;
 the declared ``sigma^2`` or ``1 / weight`` under ``sample`` weighting):
-~N(0, 1) while the channel is as commissioned. ``d`` is the difference of
-consecutive ``eps_ref``; ``d^2 / 2`` is chi-square with one degree of freedom
-like ``eps^2`` while the noise is as commissioned, but a level shift or a slow
-drift of the mean (which a tracking estimator turns into a transient or a
-steady bias of the innovations) leaves it almost untouched. Two EWMAs of
-``d^2 / 2``, each clipped at ``clip^2`` times its own level so that one spike
-cannot lift it while a real rise still does, measure the noise relative to
-the baseline: ``D`` (half-life ``noise_half_life``) for the noise level, and a
-faster ``F`` (half-life ``offset_scale_half_life``) that scales the offset
-detector to the noise of the moment, ``eps_now = eps_ref / sqrt(F)`` (``F``
-before the sample: no look-ahead).
+unit spread while the channel is as commissioned, but Gaussian only if its
+noise is.
+
+Noise shape. The offset and variance CUSUMs are designed for N(0, 1) input,
+and a heavy-tailed noise of the same variance would make them raise false
+alarms many times too often. So they judge the normal score
+``z = Phi^-1(G(eps_ref))`` through the channel's own calibration
+distribution ``G``, learned from the ``calibration_samples`` samples after
+each baseline (:mod:`estimator.noise_shape`; the CUSUMs are not judged in the
+meantime): close to N(0, 1) in control whatever the noise's shape, so their
+Gaussian thresholds, Markov-chain run lengths and the fleet budget hold.
+``calibration_samples = 0`` takes the noise as Gaussian: ``z = eps_ref``,
+judged from the baseline on (the special case, exactly the detectors as they
+were before the tables).
+
+``d`` is the difference of consecutive ``z``; ``d^2 / 2`` is chi-square with
+one degree of freedom like ``z^2`` while the noise is as calibrated, but a
+level shift or a slow drift of the mean (which a tracking estimator turns
+into a transient or a steady bias of the innovations) leaves it almost
+untouched. Two EWMAs of halved squared differences, each clipped at
+``clip^2`` times its own level so that one spike cannot lift it while a real
+rise still does: ``D`` (half-life ``noise_half_life``, of ``eps_ref``) for
+the noise level in engineering units, and a faster ``F`` (half-life
+``offset_scale_half_life``, of ``z``) that scales the offset detector to the
+noise of the moment, ``z_now = z / sqrt(F)`` (``F`` before the sample: no
+look-ahead).
 
 Detectors (statistics compared with limits; a channel without a baseline, or
 a sample the bank could not predict, leaves them untouched):
 
 ``offset``
-    Two-sided tabular CUSUM on ``eps_now`` with reference value ``k`` and
+    Two-sided tabular CUSUM on ``z_now`` with reference value ``k`` and
     decision interval ``h`` in sigma units (Page 1954; Montgomery, Introduction
     to Statistical Quality Control, ch. 9): ``C+ = max(0, C+ + eps - k)``,
     ``C- = max(0, C- - eps - k)``; statistic ``max(C+, C-)``. The defaults,
@@ -35,8 +50,12 @@ a sample the bank could not predict, leaves them untouched):
     6e-5 chance of a sample beyond it).
 ``variance``
     One-sided CUSUM, tuned to a variance ratio ``rho`` (reference value from
-    :func:`estimator.run_length.variance_reference`), of ``d^2 / 2`` clipped at
-    ``clip^2`` (a spike touches two differences: keep ``h > 2 (clip^2 - k)``):
+    :func:`estimator.run_length.variance_reference`), of ``d^2 / (2 (1 + m))``
+    clipped at ``clip^2`` (a spike touches two differences: keep
+    ``h > 2 (clip^2 - k)``). ``m`` is the margin for the calibration's own
+    sampling error (:func:`estimator.run_length.calibration_margin`, 3.7 %
+    for h = 60 and 1,000 calibration samples; 0 without a table) that keeps
+    the false-alarm rate averaged over channels at the nominal one:
     the variance detector answers the noise, the offset and drift detectors
     the mean. Consecutive differences are correlated, so the
     Markov-chain ARL of the iid chart overstates the in-control ARL (measured
@@ -56,9 +75,15 @@ Alarm conditions. Each statistic becomes a condition with hysteresis and
 delays: it turns active when the statistic has exceeded its limit for
 ``on_delay`` seconds of sample time, and clears when it has stayed below
 ``limit * (1 - deadband)`` for ``off_delay`` seconds. Samples without a time
-take effect at once. Every change is a :class:`ConditionEvent` with its
-evidence (statistic, limit, estimated onset: for a CUSUM the last time it was
-zero, the classical change-point estimate).
+take effect at once. A CUSUM condition that clears restarts its CUSUM from
+zero (Page 1954: the scheme restarts after it acts), so a second raise needs
+a new excursion, as rare in control as the first. The defaults
+(:data:`DEFAULT_TIMING`): deadband 0.5 for the CUSUMs and the drift test, 0.1
+for the noise level; no on-delay; a 30-minute off-delay for every detector,
+so a condition that clears and returns within minutes raises once. Every
+change is a :class:`ConditionEvent` with its evidence (statistic, limit,
+estimated onset: for a CUSUM the last time it was zero, the classical
+change-point estimate).
 """
 
 from __future__ import annotations
@@ -70,11 +95,12 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from estimator import noise_shape
 from estimator.baseline import Baseline
 from estimator.quantiles import chi2_quantile
-from estimator.run_length import variance_reference
+from estimator.run_length import calibration_margin, variance_reference
 
-__all__ = ["KINDS", "ConditionEvent", "ConditionTiming", "DetectorBank", "DetectorSettings"]
+__all__ = ["DEFAULT_TIMING", "KINDS", "ConditionEvent", "ConditionTiming", "DetectorBank", "DetectorSettings"]
 
 FloatArray = NDArray[np.float64]
 IndexArray = NDArray[np.intp]
@@ -99,11 +125,21 @@ class ConditionTiming:
                 raise ValueError(f"{name} must be finite and >= 0 seconds, got {value}")
 
 
+# Default hysteresis and delays per detector (module docstring, "Alarm conditions"). A CUSUM clears at half
+# its decision interval and then restarts from zero; every condition must have stayed clear for 30 minutes
+# of sample time before it clears, so a condition that clears and returns within minutes raises once.
+DEFAULT_TIMING = {"noise_level": ConditionTiming(deadband=0.1, off_delay=1800.0),
+                  "variance": ConditionTiming(deadband=0.5, off_delay=1800.0),
+                  "offset": ConditionTiming(deadband=0.5, off_delay=1800.0),
+                  "drift": ConditionTiming(deadband=0.5, off_delay=1800.0)}
+
+
 @dataclass(frozen=True)
 class DetectorSettings:
     """A channel's detector limits (see the module docstring); ``inf`` turns a limit off."""
 
     commissioning_samples: int = 1000
+    calibration_samples: int = 1000
     noise_ratio: float = 2.0
     noise_high: float = math.inf
     variance_ratio: float = 2.0
@@ -121,6 +157,8 @@ class DetectorSettings:
     def __post_init__(self) -> None:
         if self.commissioning_samples < 0:
             raise ValueError(f"commissioning_samples must be >= 0, got {self.commissioning_samples}")
+        if self.calibration_samples < 0:
+            raise ValueError(f"calibration_samples must be >= 0, got {self.calibration_samples}")
         for name in ("noise_ratio", "noise_high", "variance_h", "offset_h", "variance_clip", "offset_clip",
                      "noise_half_life", "offset_scale_half_life"):
             value = getattr(self, name)
@@ -139,7 +177,7 @@ class DetectorSettings:
             raise ValueError(f"timing for unknown detector(s) {unknown}; known: {', '.join(KINDS)}")
 
     def timing_of(self, kind: str) -> ConditionTiming:
-        return dict(self.timing).get(kind, ConditionTiming())
+        return dict(self.timing).get(kind, DEFAULT_TIMING[kind])
 
 
 @dataclass(frozen=True)
@@ -156,11 +194,13 @@ class ConditionEvent:
 
 
 # Columns of the per-channel detector state, one row per channel (one gather and one scatter per round).
-_UP, _DOWN, _VAR, _PREV, _ZUP, _ZDOWN, _ZVAR, _NOISE, _DRIFT, _SCALE = range(10)
+# _PREV is the previous eps_ref (the noise level's differences), _SPREV the previous normal score.
+_UP, _DOWN, _VAR, _PREV, _ZUP, _ZDOWN, _ZVAR, _NOISE, _DRIFT, _SCALE, _SPREV = range(11)
+STATE_COLUMNS = 11
 # Columns of the per-kind condition state.
 _ON, _OFF, _STAT, _ONSET = range(4)
 # Columns of the per-channel constants.
-_K, _H, _VK, _VH, _CLIP2, _RATIO, _HIGH, _SIGMA, _CLIP, _ALPHA, _FAST = range(11)
+_K, _H, _VK, _VH, _CLIP2, _RATIO, _HIGH, _SIGMA, _CLIP, _ALPHA, _FAST, _VSHRINK = range(12)
 
 
 class DetectorBank:
@@ -194,15 +234,24 @@ class DetectorBank:
         self._noise_high = column("noise_high")
         self._drift_limit = np.array([chi2_quantile(1.0 - s.drift_alpha, n_params) for s in settings])
         self._drift_every = np.array([s.drift_every for s in settings], dtype=np.int64)
+        # The variance CUSUM's increments shrink by 1 + m against a reference learned from a finite
+        # calibration sample (estimator.run_length.calibration_margin): the fleet's average rate stays nominal.
+        self._variance_margin = np.array([calibration_margin(s.variance_h, variance_reference(s.variance_ratio),
+                                                             s.calibration_samples) for s in settings])
 
         self.has_baseline = np.zeros(k, dtype=bool)
         self._sigma_ref = np.full(k, np.nan)
         self._theta_ref = np.zeros((k, n_params))
         self._cov_ref = np.zeros((k, n_params, n_params))
         self._beta_ref: FloatArray | None = None
-        self._state = np.full((k, 10), np.nan)
+        self._state = np.full((k, STATE_COLUMNS), np.nan)
         self._state[:, [_UP, _DOWN, _VAR]] = 0.0
         self._since_drift = np.zeros(k, dtype=np.int64)
+        # The noise shape (estimator.noise_shape): calibration values taken since the baseline, and per
+        # channel its binned masses while calibrating, then its score table. A target of 0: no table.
+        self._shape_target = np.array([s.calibration_samples for s in settings], dtype=np.int64)
+        self._shape_count = np.zeros(k, dtype=np.int64)
+        self._shape = np.zeros((k, noise_shape.KNOTS))
         self._active = np.zeros((len(KINDS), k), dtype=bool)
         self._conditions = np.full((len(KINDS), k, 4), np.nan)
         self._timing = np.array([[[t.deadband, t.on_delay, t.off_delay]
@@ -219,7 +268,8 @@ class DetectorBank:
         self._constants = np.stack([self._offset_k, self._offset_h, self._variance_k, self._variance_h,
                                     self._clip2, self._noise_ratio, self._noise_high, self._sigma_ref,
                                     self._offset_clip, -np.expm1(-math.log(2.0) / column("noise_half_life")),
-                                    -np.expm1(-math.log(2.0) / column("offset_scale_half_life"))], axis=1)
+                                    -np.expm1(-math.log(2.0) / column("offset_scale_half_life")),
+                                    1.0 / (1.0 + self._variance_margin)], axis=1)
 
     # -------------------------------------------------------------- baselines
     def set_baseline(self, channel: int, baseline: Baseline) -> None:
@@ -259,6 +309,8 @@ class DetectorBank:
         row[[_ZUP, _ZDOWN, _ZVAR]] = now
         row[[_NOISE, _SCALE]] = 1.0 if self.has_baseline[channel] else np.nan    # D and F start at the baseline
         self._since_drift[channel] = 0
+        self._shape_count[channel] = 0          # a new baseline, a new normalisation: its shape is learned anew
+        self._shape[channel] = 0.0
         for q, kind in enumerate(KINDS):
             if self._active[q, channel]:
                 self.sink.append(ConditionEvent(channel, kind, False, now, math.nan, math.nan, math.nan))
@@ -295,10 +347,19 @@ class DetectorBank:
             return ready                                   # commissioning, or nothing predictable
         s = self._state[idx]
         p = self._constants[idx]
+        target = self._shape_target[idx]
+        shaped = (target > 0) & (self._shape_count[idx] >= target)       # judged through a score table
         with np.errstate(all="ignore"):
             eps_ref = e / np.sqrt(v_ref * (1.0 + kappa * h))
-            eps_now = np.clip(eps_ref / np.sqrt(s[:, _SCALE]), -p[:, _CLIP], p[:, _CLIP])
-            live = ready & np.isfinite(eps_now)
+            referenced = ready & np.isfinite(eps_ref)
+            # What the offset and variance CUSUMs see: eps_ref itself without a shape table (the Gaussian
+            # case), its normal score with one, nothing while the table is being learned.
+            z = np.where(target == 0, eps_ref, np.nan)
+            if shaped.any():
+                z = np.where(shaped, noise_shape.scores(self._shape, idx, eps_ref), z)
+            scored = referenced & np.isfinite(z)
+            eps_now = np.clip(z / np.sqrt(s[:, _SCALE]), -p[:, _CLIP], p[:, _CLIP])
+            live = scored & np.isfinite(eps_now)
             k = p[:, _K]
             up = np.where(live, np.maximum(0.0, s[:, _UP] + eps_now - k), s[:, _UP])
             down = np.where(live, np.maximum(0.0, s[:, _DOWN] - eps_now - k), s[:, _DOWN])
@@ -307,19 +368,22 @@ class DetectorBank:
             s[:, _UP] = up
             s[:, _DOWN] = down
 
-            referenced = ready & np.isfinite(eps_ref)
-            paired = referenced & np.isfinite(s[:, _PREV])
-            d = eps_ref - s[:, _PREV]
-            x = np.minimum(0.5 * d * d, p[:, _CLIP2])
+            paired = scored & np.isfinite(s[:, _SPREV])
+            dz = z - s[:, _SPREV]
+            x = np.minimum(0.5 * dz * dz * p[:, _VSHRINK], p[:, _CLIP2])
             variance = np.where(paired, np.maximum(0.0, s[:, _VAR] + x - p[:, _VK]), s[:, _VAR])
             s[:, _VAR] = variance
             s[:, _ZVAR] = np.where(paired & (variance == 0.0), t, s[:, _ZVAR])
+            s[:, _SPREV] = np.where(scored, z, s[:, _SPREV])
+            # F scales the offset CUSUM's input (the scores' spread of the moment); D is the noise level of
+            # eps_ref itself, in engineering units once multiplied by the baseline sigma.
+            noisy = referenced & np.isfinite(s[:, _PREV])
+            d = eps_ref - s[:, _PREV]
             s[:, _PREV] = np.where(referenced, eps_ref, s[:, _PREV])
-            alpha = p[:, _ALPHA]
-            half = 0.5 * d * d
-            for column, rate in ((_NOISE, alpha), (_SCALE, p[:, _FAST])):
+            for column, rate, half, on in ((_NOISE, p[:, _ALPHA], 0.5 * d * d, noisy),
+                                           (_SCALE, p[:, _FAST], 0.5 * dz * dz, paired)):
                 level = s[:, column]                 # clipped relative to its own level (module docstring)
-                s[:, column] = np.where(paired, (1.0 - rate) * level + rate * np.minimum(half, p[:, _CLIP2] * level),
+                s[:, column] = np.where(on, (1.0 - rate) * level + rate * np.minimum(half, p[:, _CLIP2] * level),
                                         level)
             noise = p[:, _SIGMA] * np.sqrt(s[:, _NOISE])
             self._state[idx] = s
@@ -335,7 +399,12 @@ class DetectorBank:
             onset[0] = np.nan
             onset[1] = s[:, _ZVAR]
             np.copyto(onset[2], np.where(up >= down, s[:, _ZUP], s[:, _ZDOWN]))
-            self._judge(slice(0, 3), idx, t, statistic, limit, onset)
+            fall = self._judge(slice(0, 3), idx, t, statistic, limit, onset)
+            if fall is not None and (fall[1].any() or fall[2].any()):
+                self._restart_cusums(idx, t, fall[1], fall[2])
+            learning = referenced & (target > 0) & ~shaped
+            if learning.any():
+                self._learn_shape(idx[learning], t[learning], eps_ref[learning])
         since = self._since_drift[idx] + ready
         due = ready & (since >= self._drift_every[idx])
         self._since_drift[idx] = np.where(due, 0, since)
@@ -360,12 +429,13 @@ class DetectorBank:
             self._judge(slice(3, 4), idx, t, d2[None], self._drift_limit[idx][None], np.full((1, idx.shape[0]), np.nan))
 
     def _judge(self, kinds: slice, idx: IndexArray, t: FloatArray, statistic: FloatArray, limit: FloatArray,
-               onset: FloatArray) -> None:
+               onset: FloatArray) -> NDArray[np.bool_] | None:
         """Hysteresis and delays of the conditions ``KINDS[kinds]`` (module docstring), all at once.
 
         ``statistic``, ``limit``, ``onset``: (Q, B), one row per kind; NaN statistics hold a condition
         as it is, a NaN onset falls back to the time the statistic first exceeded its limit. Called
-        inside ``np.errstate(all="ignore")``: NaN comparisons are meant.
+        inside ``np.errstate(all="ignore")``: NaN comparisons are meant. Returns which conditions
+        cleared (Q, B), or None when none was active.
         """
         c = self._conditions[kinds][:, idx]                 # (Q, B, 4)
         active = self._active[kinds][:, idx]                # (Q, B)
@@ -376,7 +446,7 @@ class DetectorBank:
             c[..., _STAT] = np.where(valid, statistic, c[..., _STAT])
             c[..., _ON] = np.where(valid, np.nan, c[..., _ON])
             self._put(kinds, idx, c)
-            return
+            return None
         timing = self._timing[kinds][:, idx]                # (Q, B, 3)
         deadband, on_delay, off_delay = timing[..., 0], timing[..., 1], timing[..., 2]
         under = valid & (statistic < limit * (1.0 - deadband))
@@ -399,6 +469,37 @@ class DetectorBank:
                 self.sink.append(ConditionEvent(int(idx[j]), KINDS[first + q], bool(rise[q, j]), float(t[j]),
                                                    float(statistic[q, j]), float(limit[q, j]),
                                                    float(c[q, j, _ONSET])))
+        return fall
+
+    def _restart_cusums(self, idx: IndexArray, t: FloatArray, variance: NDArray[np.bool_],
+                        offset: NDArray[np.bool_]) -> None:
+        """A cleared CUSUM condition restarts its CUSUM from zero (Page 1954: a CUSUM restarts after it acts).
+
+        The condition cleared because its statistic stayed below ``h (1 - deadband)`` for the off-delay;
+        from zero, another raise needs a new excursion as rare as the first (an in-control ARL), not the
+        last stretch of the old one.
+        """
+        for rows, columns in ((variance, ((_VAR, _ZVAR),)), (offset, ((_UP, _ZUP), (_DOWN, _ZDOWN)))):
+            if rows.any():
+                chosen = idx[rows]
+                for column, zero_time in columns:
+                    self._state[chosen, column] = 0.0
+                    self._state[chosen, zero_time] = t[rows]
+
+    def _learn_shape(self, rows: IndexArray, t: FloatArray, eps_ref: FloatArray) -> None:
+        """Calibration values for channels ``rows`` (distinct); a channel whose calibration is complete gets
+        its score table, and its offset and variance CUSUMs start from zero at its last calibration sample."""
+        noise_shape.accumulate(self._shape, rows, eps_ref)
+        self._shape_count[rows] += 1
+        complete = self._shape_count[rows] >= self._shape_target[rows]
+        for j in np.flatnonzero(complete).tolist():
+            channel = int(rows[j])            # one channel at a time: a table's bits never depend on the batch
+            self._shape[channel] = noise_shape.finish(self._shape[channel], int(self._shape_count[channel]))
+            row = self._state[channel]
+            row[[_UP, _DOWN, _VAR]] = 0.0
+            row[[_ZUP, _ZDOWN, _ZVAR]] = t[j]
+            row[_SCALE] = 1.0
+            row[_SPREV] = np.nan
 
     def _put(self, kinds: slice, idx: IndexArray, c: FloatArray) -> None:
         first = kinds.start or 0
@@ -419,10 +520,19 @@ class DetectorBank:
                 "variance": float(self._variance_h[channel]), "offset": float(self._offset_h[channel]),
                 "drift": float(self._drift_limit[channel])}
 
+    def judging(self, idx: IndexArray) -> NDArray[np.bool_]:
+        """Whether the offset and variance CUSUMs of channels ``idx`` are judged (a baseline, no calibration due)."""
+        target = self._shape_target[idx]
+        return self.has_baseline[idx] & ((target == 0) | (self._shape_count[idx] >= target))
+
+    def calibration(self, channel: int) -> tuple[int, int]:
+        """Noise-shape calibration of one channel: (values taken since its baseline, values it needs)."""
+        return int(self._shape_count[channel]), int(self._shape_target[channel])
+
     def statistics(self, channel: int) -> dict[str, float]:
         """Each detector's latest statistic for one channel (NaN when not judged yet)."""
         s = self._state[channel]
-        judged = bool(self.has_baseline[channel])
+        judged = bool(self.judging(np.array([channel], dtype=np.intp))[0])
         noise = float(self._sigma_ref[channel] * math.sqrt(s[_NOISE]))
         return {"noise_level": noise, "variance": float(s[_VAR]) if judged else math.nan,
                 "offset": float(max(s[_UP], s[_DOWN])) if judged else math.nan, "drift": float(s[_DRIFT])}
@@ -430,7 +540,7 @@ class DetectorBank:
     def readings(self, idx: IndexArray) -> list[tuple[list[float], list[float], list[bool]]]:
         """Per channel of ``idx``: (statistics, limits, active), each in KINDS order (whole arrays, then lists)."""
         s = self._state[idx]
-        judged = self.has_baseline[idx]
+        judged = self.judging(idx)
         sigma = self._sigma_ref[idx]
         with np.errstate(invalid="ignore"):
             statistics = np.stack([sigma * np.sqrt(s[:, _NOISE]), np.where(judged, s[:, _VAR], np.nan),
@@ -451,5 +561,5 @@ class DetectorBank:
     def arrays(self) -> list[NDArray[np.generic]]:
         """Every state array (for checkpoints and tests)."""
         return [self.has_baseline, self._sigma_ref, self._theta_ref, self._cov_ref, self._state,
-                self._since_drift, self._active, self._conditions,
+                self._since_drift, self._active, self._conditions, self._shape_count, self._shape,
                 *([self._beta_ref] if self._beta_ref is not None else [])]

@@ -18,14 +18,21 @@ normalised innovations), but :func:`one_sided_arl` takes any distribution.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable
 
 import numpy as np
 from scipy.special import ndtr
 
-__all__ = ["offset_arl", "one_sided_arl", "threshold_for_arl", "variance_arl", "variance_reference"]
+__all__ = ["DIFFERENCED_SLOPE", "calibration_margin", "offset_arl", "one_sided_arl", "threshold_for_arl",
+           "variance_arl", "variance_exponent", "variance_reference"]
 
+# ln ARL0 of the variance detector's CUSUM (on halved squared differences of consecutive scores) grows with h at
+# this share of the exponent theta* of the CUSUM of independent squares: 0.189 per unit of h measured by
+# simulation (the service's false-alarm budget, VARIANCE_FIT: ratio 2, clip 3) against theta* = 1/4 (our own
+# Monte Carlo).
+DIFFERENCED_SLOPE = 0.189 / 0.25
 STATES = 500     # Markov-chain states: the published ARLs below 1,000 to their 3 printed digits
 
 
@@ -123,3 +130,44 @@ def threshold_for_arl(target: float, arl: Callable[[float], float], low: float =
         else:
             low = mid
     return top
+
+
+def variance_exponent(k: float, ratio: float = 1.0) -> float:
+    """theta* > 0 with ``E exp(theta (X - k)) = 1`` for ``X ~ ratio * chi2_1``: ln ARL0 grows as theta* h.
+
+    The root of ``-ln(1 - 2 theta ratio) / 2 = k theta`` in ``(0, 1 / (2 ratio))`` (Wald's
+    identity for a random walk with a reflecting barrier; Siegmund 1985, Sequential Analysis, from
+    memory); it exists while the drift ``ratio - k`` is negative.
+    """
+    if not (ratio > 0.0 and k > ratio):
+        raise ValueError(f"need k > ratio > 0 for an in-control drift, got k={k}, ratio={ratio}")
+    low, high = 0.0, 0.5 / ratio
+    for _ in range(200):                   # bisection to machine precision, bounded
+        mid = 0.5 * (low + high)
+        if -0.5 * math.log1p(-2.0 * mid * ratio) > k * mid:
+            high = mid
+        else:
+            low = mid
+    return 0.5 * (low + high)
+
+
+@functools.lru_cache(maxsize=256)          # one value per distinct setting; a bank of many channels asks often
+def calibration_margin(h: float, k: float, samples: int) -> float:
+    """Relative margin m on the variance detector's increments (divided by 1 + m) for a reference of ``samples``.
+
+    A channel's reference variance, learned from N samples, is wrong by a relative delta with
+    variance 2 / N (the variance of a mean of N squares of N(0, 1) scores). Its in-control ARL then
+    moves as ``exp(-a delta)`` with ``a = -h * DIFFERENCED_SLOPE * d theta* / d ratio`` (the exponent's
+    slope at ratio 1, by implicit differentiation), so the false-alarm rate averaged over channels is
+    ``exp(a^2 sigma^2 / 2)`` times the nominal one (the mean of a log-normal). Shrinking every
+    increment by ``1 + m`` with ``m = a sigma^2 / 2 = a / N`` brings that average back to the nominal
+    rate: the budget holds over the fleet, at the price of a longer run length for a channel whose
+    reference happens to be exact. 0 without a reference sample (``samples`` = 0).
+    """
+    if samples <= 0:
+        return 0.0
+    theta = variance_exponent(k)
+    # d theta / d ratio at ratio 1 from F(theta, r) = -ln(1 - 2 theta r) / 2 - k theta = 0.
+    slope = -(theta / (1.0 - 2.0 * theta)) / (1.0 / (1.0 - 2.0 * theta) - k)
+    a = -h * DIFFERENCED_SLOPE * slope
+    return max(0.0, a / samples)

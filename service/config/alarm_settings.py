@@ -3,13 +3,14 @@
 ```toml
 [channels."sub7.flow".detectors]
 commissioning_samples = 1000            # learn the baseline after this many samples; 0: wait for one
+calibration_samples = 1000              # then learn the noise's shape from this many; 0: take it as Gaussian
 noise = { ratio = 2.0, high = 1.5, half_life = 200 }
 variance = { ratio = 2.0, h = 60, clip = 3.0 }
 offset = { k = 1.0, h = 8, clip = 4.0, scale_half_life = 100 }
 drift = { alpha = 1e-6, every = 25 }
 
 [channels."sub7.flow".alarms]
-drift = { priority = "high", deadband = 0.1, on_delay = 0, off_delay = 3600 }
+drift = { priority = "high", deadband = 0.5, on_delay = 0, off_delay = 3600 }   # defaults: DEFAULT_TIMING
 
 [alarms]
 topic = "rwls/alarms"                   # retained <topic>/state/<channel>/<kind>, events <topic>/event/...
@@ -26,7 +27,7 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
-from estimator import DETECTOR_KINDS, ConditionTiming, DetectorSettings
+from estimator import DEFAULT_TIMING, DETECTOR_KINDS, ConditionTiming, DetectorSettings
 
 __all__ = ["ALARM_KINDS", "AlarmKindConfig", "AlarmsConfig", "BaselineConfig", "BudgetConfig", "DetectorConfig",
            "WebhookConfig", "default_priority"]
@@ -76,6 +77,8 @@ class DetectorConfig(_Strict):
     """``[channels.<id>.detectors]``."""
 
     commissioning_samples: int = Field(default=1000, ge=0)
+    calibration_samples: int = Field(default=1000, ge=0, description="samples after the baseline that teach the "
+                                     "offset and variance detectors the noise's shape; 0: assume Gaussian noise")
     noise: NoiseDetectorConfig = Field(default_factory=NoiseDetectorConfig)
     variance: VarianceDetectorConfig = Field(default_factory=VarianceDetectorConfig)
     offset: OffsetDetectorConfig = Field(default_factory=OffsetDetectorConfig)
@@ -86,10 +89,9 @@ class DetectorConfig(_Strict):
         """The estimator's settings; a value given here wins over the fleet budget's, which wins over defaults."""
         budget = budget or {}
         defaults = DetectorSettings()
-        timing = tuple((kind, ConditionTiming(a.deadband, a.on_delay, a.off_delay))
-                       for kind, a in alarms.items() if kind in DETECTOR_KINDS)
+        timing = tuple((kind, a.timing(kind)) for kind, a in alarms.items() if kind in DETECTOR_KINDS)
         return DetectorSettings(
-            commissioning_samples=self.commissioning_samples,
+            commissioning_samples=self.commissioning_samples, calibration_samples=self.calibration_samples,
             noise_ratio=self.noise.ratio, noise_high=self.noise.high, noise_half_life=self.noise.half_life,
             variance_ratio=self.variance.ratio,
             variance_h=self.variance.h if self.variance.h is not None else budget.get("variance_h",
@@ -135,9 +137,20 @@ class AlarmKindConfig(_Strict):
     """``[channels.<id>.alarms.<kind>]``: the alarm's attributes (ISA-18.2)."""
 
     priority: Priority | None = None
-    deadband: float = Field(default=0.1, ge=0.0, lt=1.0, description="fraction of the limit")
-    on_delay: float = Field(default=0.0, ge=0.0, le=1e9, allow_inf_nan=False, description="seconds")
-    off_delay: float = Field(default=0.0, ge=0.0, le=1e9, allow_inf_nan=False, description="seconds")
+    deadband: float | None = Field(default=None, ge=0.0, lt=1.0,
+                                   description="fraction of the limit; default per detector (0.5 for the CUSUMs "
+                                               "and drift, 0.1 for the noise level)")
+    on_delay: float | None = Field(default=None, ge=0.0, le=1e9, allow_inf_nan=False,
+                                   description="seconds; default 0")
+    off_delay: float | None = Field(default=None, ge=0.0, le=1e9, allow_inf_nan=False,
+                                    description="seconds; default 1800")
+
+    def timing(self, kind: str) -> ConditionTiming:
+        """The detector's hysteresis and delays: what is given here, the detector's defaults for the rest."""
+        default = DEFAULT_TIMING[kind]
+        return ConditionTiming(default.deadband if self.deadband is None else self.deadband,
+                               default.on_delay if self.on_delay is None else self.on_delay,
+                               default.off_delay if self.off_delay is None else self.off_delay)
 
 
 class WebhookConfig(_Strict):

@@ -1,6 +1,7 @@
 """The invented demo plant: Larkspur Valley district heating, substation 7 (fictional).
 
-Four channels, each with a fault that develops over a month of compressed time:
+Four channels, each but the last with a fault that develops over a month of
+compressed time, and two healthy channels whose noise is not Gaussian:
 
 * ``sub7.supply_temp``: supply thermocouple against a reference probe,
   ``y = a + b * ref_temp``; its noise grows slowly (a degrading junction).
@@ -10,6 +11,16 @@ Four channels, each with a fault that develops over a month of compressed time:
   reference transmitter; it picks up an offset step part-way.
 * ``sub7.stack_o2``: flue-gas O2 against boiler load, ARX with one lag; its
   noise depends on the load (operating point).
+* ``sub7.return_temp``: return thermocouple against a reference probe; its
+  noise is heavy-tailed (Student t with 3 degrees of freedom, 0.1 K standard
+  deviation), healthy throughout.
+* ``sub7.level``: expansion-vessel level against the vessel pressure,
+  published in coarse steps of 5 cm (2.5 times its 2 cm noise), healthy
+  throughout.
+
+The two healthy non-Gaussian channels draw from their own generator, spawned
+from ``rng`` (which it does not advance), so the first four channels' samples
+are those of the four-channel plant.
 
 Every number here is invented for the demo; nothing is measured plant data.
 """
@@ -28,6 +39,7 @@ __all__ = ["PlantSample", "larkspur_substation7", "write_csv"]
 
 DAY = 86400.0
 START = 1_780_000_000.0   # an arbitrary epoch second (2026-05-28), the demo month's start
+LEVEL_STEP = 0.05         # m, the level transmitter's published resolution
 
 
 @dataclass(frozen=True)
@@ -43,7 +55,7 @@ class PlantSample:
 
 def larkspur_substation7(rng: np.random.Generator, *, samples: int = 4320, step: float = 600.0,
                          start: float = START) -> Iterator[PlantSample]:
-    """Samples of the four demo channels, interleaved in time order.
+    """Samples of the six demo channels, interleaved in time order.
 
     Parameters
     ----------
@@ -52,6 +64,7 @@ def larkspur_substation7(rng: np.random.Generator, *, samples: int = 4320, step:
     step : seconds between samples of a channel
     """
     o2_previous = 4.0
+    (shaped,) = rng.spawn(1)
     for k in range(samples):
         t = start + k * step
         day = (t - start) / DAY
@@ -78,11 +91,20 @@ def larkspur_substation7(rng: np.random.Generator, *, samples: int = 4320, step:
         o2_previous = o2
         yield PlantSample("sub7.stack_o2", t + 3.0, o2, {"load": load}, k)
 
+        ref_return = 55.0 + 6.0 * daily + shaped.normal(0.0, 1.0)
+        heavy = 0.1 * shaped.standard_t(3.0) / math.sqrt(3.0)            # variance of t_3 is 3
+        yield PlantSample("sub7.return_temp", t + 4.0, 0.2 + 0.998 * ref_return + heavy, {"ref_return": ref_return},
+                          k)
+
+        pressure = 1.5 + 0.1 * daily + shaped.normal(0.0, 0.02)
+        level = 0.4 + 0.9 * pressure + shaped.normal(0.0, 0.02)
+        yield PlantSample("sub7.level", t + 5.0, LEVEL_STEP * round(level / LEVEL_STEP), {"pressure": pressure}, k)
+
 
 def write_csv(path: str | Path, seed: int = 7, samples: int = 4320) -> int:
     """Write the demo history as one CSV with a ``channel`` column; returns the row count."""
     rng = np.random.default_rng(seed)
-    inputs = ["ref_temp", "pump_speed", "ref_dp", "load"]
+    inputs = ["ref_temp", "pump_speed", "ref_dp", "load", "ref_return", "pressure"]
     rows = 0
     with Path(path).open("w", newline="", encoding="utf-8") as handle:
         writer = csv.writer(handle)

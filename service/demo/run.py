@@ -56,6 +56,19 @@ terms = ["1", "y[-1]", "load"]
 forgetting_factor = 0.999
 weighting = "tracked"
 noise = { half_life = 500, model_terms = ["1", "load"], initial_sigma = 0.1 }
+
+[channels."sub7.return_temp"]
+topic = "larkspur/sub7/return_temp"
+terms = ["1", "ref_return"]
+forgetting_factor = 0.999
+weighting = "tracked"
+noise = { half_life = 300, robust = true, initial_sigma = 0.2 }
+
+[channels."sub7.level"]
+topic = "larkspur/sub7/level"
+terms = ["1", "pressure"]
+forgetting_factor = 0.995
+weighting = "unit"
 '''
 
 

@@ -25,7 +25,7 @@ KINDS = ("noise_level", "variance", "offset", "drift", "stale")
 
 def _config(prefix: str, port: int, client: str, store: Path, webhooks: list[dict[str, Any]]) -> RwlsConfig:
     channel = {"terms": ["1", "u"], "forgetting_factor": 0.99, "topic": f"{prefix}/dp",
-               "detectors": {"commissioning_samples": 60, "offset": {"h": 5.0}}}
+               "detectors": {"commissioning_samples": 60, "calibration_samples": 0, "offset": {"h": 5.0}}}
     return parse_config({"channels": {"dp": channel, "quiet": {**channel, "topic": f"{prefix}/quiet"}},
                          "broker": {"url": f"mqtt://127.0.0.1:{port}", "client_id": client,
                                     "dead_letter_topic": f"{prefix}/dead"},

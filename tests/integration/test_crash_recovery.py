@@ -30,7 +30,8 @@ KILLS = 3
 SEED = 20261202
 CHANNELS: dict[str, dict[str, Any]] = {
     **{f"c{k}": {"terms": ["1", "u"], "forgetting_factor": 0.99,
-                 "detectors": {"commissioning_samples": 40, "offset": {"h": 5.0}}} for k in range(3)},
+                 "detectors": {"commissioning_samples": 40, "calibration_samples": 0,   # Gaussian: no table
+                               "offset": {"h": 5.0}}} for k in range(3)},
     "arx": {"terms": ["1", "y[-1]", "u"], "weighting": "tracked", "noise": {"model_terms": ["1", "u"]},
             "detectors": {"commissioning_samples": 40}},
     "lab": {"terms": ["1", "u"], "weighting": "sample", "detectors": {"commissioning_samples": 40}},

@@ -25,9 +25,9 @@ from estimator.sample_columns import SampleColumns
 
 PROPERTY_SETTINGS = settings(max_examples=60, deadline=None, derandomize=True, database=None)
 
-# Touchy detectors that learn their baseline early, so conditions come and go within a short stream.
-WATCH = DetectorSettings(commissioning_samples=12, noise_ratio=1.3, variance_h=2.0, offset_k=0.2, offset_h=1.5,
-                         drift_alpha=0.2, drift_every=3,
+# Touchy detectors that learn their baseline and noise shape early, so conditions come and go within a short stream.
+WATCH = DetectorSettings(commissioning_samples=12, calibration_samples=6, noise_ratio=1.3, variance_h=2.0,
+                         offset_k=0.2, offset_h=1.5, drift_alpha=0.2, drift_every=3,
                          timing=(("offset", ConditionTiming(0.3, 15.0, 25.0)), ("drift", ConditionTiming(0.5))))
 PLANT = {
     "lin": ChannelSettings(terms=("1", "u"), forgetting_factor=0.99, covariance_limit=5.0, detectors=WATCH),

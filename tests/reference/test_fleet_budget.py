@@ -55,8 +55,8 @@ def test_the_budget_sets_thresholds_a_channel_does_not_set_itself() -> None:
 
 @pytest.mark.parametrize("h", [20.0, 25.0])
 def test_variance_chart_fit_matches_simulated_run_lengths(h: float) -> None:
-    # Re-measures the fit VARIANCE_FIT was made from (differences of N(0,1) innovations, ratio 2, clip 3).
-    # Tolerance: 4 standard errors of the simulated mean plus the fit's own 8 % (its worst residual was 3 %).
+    # Re-measures the fit VARIANCE_FIT was made from (differences of N(0,1) innovations, ratio 2, clip 3; our own
+    # Monte Carlo). Tolerance: 4 standard errors of the simulated mean plus the fit's worst residual, 3 %.
     k = variance_reference(2.0)
     rng = np.random.default_rng(int(h))
     runs = 2000
@@ -77,4 +77,4 @@ def test_variance_chart_fit_matches_simulated_run_lengths(h: float) -> None:
     assert not going.any()
     se = length.std(ddof=1) / math.sqrt(runs)
     fitted = math.exp(VARIANCE_FIT[0] + VARIANCE_FIT[1] * h)
-    assert abs(length.mean() - fitted) < 4.0 * se + 0.08 * fitted
+    assert abs(length.mean() - fitted) < 4.0 * se + 0.03 * fitted, (length.mean(), se, fitted)

@@ -21,7 +21,7 @@ from tests.auth_tokens import auth_section, bearer
 
 # One channel that commissions after 60 samples, with a touchy offset detector and no delays.
 CHANNEL = {"terms": ["1", "u"], "forgetting_factor": 0.99,
-           "detectors": {"commissioning_samples": 60, "offset": {"k": 1.0, "h": 5.0}},
+           "detectors": {"commissioning_samples": 60, "calibration_samples": 0, "offset": {"k": 1.0, "h": 5.0}},
            "alarms": {"offset": {"priority": "urgent"}}}
 
 

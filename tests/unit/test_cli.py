@@ -33,10 +33,11 @@ def _write(tmp_path: Path, csv_text: str, toml_text: str) -> tuple[str, str]:
 def test_demo_replay_reports_every_channel(capsys: pytest.CaptureFixture[str]) -> None:
     result = _json(capsys, "replay", str(DEMO_CSV), "--config", str(DEMO_TOML))
     channels = result["channels"]
-    assert sorted(channels) == ["sub7.flow", "sub7.return_dp", "sub7.stack_o2", "sub7.supply_temp"]
+    assert sorted(channels) == ["sub7.flow", "sub7.level", "sub7.return_dp", "sub7.return_temp", "sub7.stack_o2",
+                                "sub7.supply_temp"]
     assert channels["sub7.flow"]["samples"] == 4320
     assert (channels["sub7.stack_o2"]["samples"], channels["sub7.stack_o2"]["warmup"]) == (4319, 1)
-    assert result["rows"] == 4 * 4320 and result["bad_rows"] == 0
+    assert result["rows"] == 6 * 4320 and result["bad_rows"] == 0
     for report in channels.values():
         assert set(report) >= {"terms", "parameters", "std_errors", "covariance", "residual_sd",
                                "noise_sigma", "samples", "rejected"}
@@ -120,7 +121,7 @@ def test_bad_config_is_exit_2_and_names_the_key(tmp_path: Path, capsys: pytest.C
 
 def test_check_config_accepts_the_demo_configuration(capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["check-config", str(DEMO_TOML)]) == 0
-    assert "ok, 4 channel(s)" in capsys.readouterr().out
+    assert "ok, 6 channel(s)" in capsys.readouterr().out
 
 
 def test_forgetting_factor_override_applies_to_every_channel(capsys: pytest.CaptureFixture[str]) -> None:

@@ -36,8 +36,9 @@ def _drift_at(bank: DetectorBank, t: float, d2: float) -> None:
 
 
 def test_offset_cusum_follows_the_tabular_recursion_and_signals_past_h() -> None:
-    # A scale that never moves (half-life 1e15 samples): eps goes into the CUSUM as it is.
-    bank = _bank(DetectorSettings(offset_k=0.5, offset_h=4.0, offset_scale_half_life=1e15))
+    # A scale that never moves (half-life 1e15 samples) and no noise-shape table (the Gaussian case): eps
+    # goes into the CUSUM as it is.
+    bank = _bank(DetectorSettings(calibration_samples=0, offset_k=0.5, offset_h=4.0, offset_scale_half_life=1e15))
     eps = [0.2, 1.4, -0.3, 2.0, 1.5, 1.8, 0.9]
     up = down = 0.0
     for k, x in enumerate(eps):
@@ -53,7 +54,7 @@ def test_offset_cusum_follows_the_tabular_recursion_and_signals_past_h() -> None
 def test_variance_cusum_counts_halved_squared_differences_and_one_spike_cannot_raise_it() -> None:
     # A spike touches two differences, each clipped at clip^2 = 9: with h > 2 (9 - k) it cannot alarm alone.
     k = variance_reference(2.0)
-    bank = _bank(DetectorSettings(variance_h=20.0, variance_clip=3.0))
+    bank = _bank(DetectorSettings(calibration_samples=0, variance_h=20.0, variance_clip=3.0))
     _feed(bank, [0.0, 2.0])
     assert bank.statistics(0)["variance"] == pytest.approx(max(0.0, 2.0 - k))          # (2 - 0)^2 / 2 = 2
     _feed(bank, [0.0, 50.0, 0.0], t0=3.0)            # a spike: each difference is clipped at 3^2 = 9

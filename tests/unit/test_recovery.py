@@ -19,7 +19,8 @@ from service.storage.persistence import Persistence
 from service.storage.store import checkpoints
 
 CHANNELS = {f"c{k}": {"terms": ["1", "u"], "forgetting_factor": 0.99,
-                      "detectors": {"commissioning_samples": 40, "offset": {"h": 5.0}}} for k in range(4)}
+                      "detectors": {"commissioning_samples": 40, "calibration_samples": 0,   # Gaussian: no table
+                                    "offset": {"h": 5.0}}} for k in range(4)}
 CHANNELS["arx"] = {"terms": ["1", "y[-1]", "u"], "weighting": "tracked", "noise": {"model_terms": ["1", "u"]},
                    "detectors": {"commissioning_samples": 40}}
 WALL_CLOCK = {"engine.updated_at"}        # arrival times: what the wall clock said, not the inputs
