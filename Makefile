@@ -33,8 +33,11 @@ test-fast: $(STAMP)
 bench: $(STAMP)
 	$(PY) -m pytest tests/benchmarks -q -s -m benchmark -p no:cacheprovider
 
+## lint: ruff over everything; mypy over estimator/ (strict) and service/ (settings in pyproject.toml)
 lint: $(STAMP)
 	$(VENV)/bin/ruff check estimator service tests
+	$(VENV)/bin/mypy
+	$(VENV)/bin/mypy --strict estimator
 
 clean:
 	rm -rf $(VENV) build *.egg-info .pytest_cache

@@ -1,20 +1,20 @@
 """Pure-numpy recursive weighted least squares for sensor monitoring (no I/O)."""
 
-from estimator.bank_state import export_state, import_state
-from estimator.baseline import Baseline
-from estimator.batch import BatchFit, NotIdentifiable, fit_wls
-from estimator.channel import ChannelSettings, Sample, SampleOutcome, WeightRule
-from estimator.channel_bank import ChannelBank, ChannelEvent, ChannelView
-from estimator.detectors import DEFAULT_TIMING, ConditionTiming, DetectorSettings
-from estimator.detectors import KINDS as DETECTOR_KINDS
-from estimator.log_variance import LogVarianceModel, LogVarianceState
-from estimator.quantiles import chi2_quantile, student_t_quantile
-from estimator.regressors import Factor, NotUsable, RegressorBuilder, RegressorSpec, Term, parse_term
-from estimator.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
-from estimator.rwls import BankState, RecursiveWLSBank, RejectedSample, UpdateResult
-from estimator.sample_columns import SampleColumns
-from estimator.statistics import CONDITION_LIMIT, ChannelStatistics, bank_statistics
-from estimator.variance import NoiseVarianceTracker, TrackerState
+from estimator.channels.bank_state import export_state, import_state
+from estimator.channels.channel import ChannelSettings, Sample, SampleOutcome, WeightRule
+from estimator.channels.channel_bank import ChannelBank, ChannelEvent, ChannelView
+from estimator.channels.regressors import Factor, NotUsable, RegressorBuilder, RegressorSpec, Term, parse_term
+from estimator.channels.sample_columns import SampleColumns
+from estimator.detection.baseline import Baseline
+from estimator.detection.detectors import DEFAULT_TIMING, ConditionTiming, DetectorSettings
+from estimator.detection.detectors import KINDS as DETECTOR_KINDS
+from estimator.detection.quantiles import chi2_quantile, student_t_quantile
+from estimator.detection.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
+from estimator.noise.log_variance import LogVarianceModel, LogVarianceState
+from estimator.noise.variance import NoiseVarianceTracker, TrackerState
+from estimator.recursive.batch import BatchFit, NotIdentifiable, fit_wls
+from estimator.recursive.rwls import BankState, RecursiveWLSBank, RejectedSample, UpdateResult
+from estimator.recursive.statistics import CONDITION_LIMIT, ChannelStatistics, bank_statistics
 
 __all__ = [
     "CONDITION_LIMIT",

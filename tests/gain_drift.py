@@ -13,10 +13,10 @@ import math
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.channel import ChannelSettings
-from estimator.channel_bank import ChannelBank
-from estimator.detectors import DetectorSettings
-from estimator.sample_columns import SampleColumns
+from estimator.channels.channel import ChannelSettings
+from estimator.channels.channel_bank import ChannelBank
+from estimator.channels.sample_columns import SampleColumns
+from estimator.detection.detectors import DetectorSettings
 from tests.noise_shapes import PERIOD, QUANTUM, noise
 
 __all__ = ["first_alarms", "raises"]

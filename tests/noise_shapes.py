@@ -8,7 +8,7 @@ grid phase, the step's variance Delta^2 / 12 included before rescaling); ``spiky
 
 :func:`simulate` feeds innovations straight to a :class:`DetectorBank` (no
 leverage, unit kappa): the channel's baseline sigma is the root mean square of
-its own commissioning block, as :mod:`estimator.group_watch` learns it, then the
+its own commissioning block, as :mod:`estimator.channels.group_watch` learns it, then the
 noise-shape calibration, then the run proper, during which a change may start.
 """
 
@@ -21,8 +21,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.baseline import Baseline
-from estimator.detectors import ConditionEvent, DetectorBank, DetectorSettings
+from estimator.detection.baseline import Baseline
+from estimator.detection.detectors import ConditionEvent, DetectorBank, DetectorSettings
 
 __all__ = ["SHAPES", "Run", "noise", "simulate"]
 

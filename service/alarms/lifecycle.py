@@ -2,7 +2,7 @@
 
 One alarm per channel and kind (``<channel>:<kind>``, kinds: the detectors'
 ``noise_level``, ``variance``, ``offset``, ``drift``, and ``stale``). The
-detectors (``estimator.detectors``) decide when the *condition* is active,
+detectors (``estimator.detection.detectors``) decide when the *condition* is active,
 with deadband and on/off delays applied; this module carries the alarm's
 state as the standard describes it:
 

@@ -4,7 +4,7 @@
 refusal's reason. Most messages break no rule at all, and for those this
 module does the same work several times faster: msgspec parses the JSON into
 typed structs in C, and the samples come out as one list per field
-(:class:`~estimator.sample_columns.SampleColumns`) with no per-sample object.
+(:class:`~estimator.channels.sample_columns.SampleColumns`) with no per-sample object.
 
 It answers None whenever it cannot vouch that the exact decoder would accept
 every sample with the same values; the caller then runs the exact decoder.

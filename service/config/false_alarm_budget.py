@@ -10,7 +10,7 @@ set by the engineer), the budget is shared equally:
 * false-alarm rate allowed per detector: ``r = B / (T * 3 N)`` per second;
 * in-control average run length it needs: ``ARL0 = 1 / (r p)`` samples;
 * offset CUSUM: the smallest h whose two-sided Markov-chain ARL0 (Brook &
-  Evans 1972, :mod:`estimator.run_length`) reaches it, for the channel's k;
+  Evans 1972, :mod:`estimator.detection.run_length`) reaches it, for the channel's k;
 * variance CUSUM (on differences, so its run lengths are correlated and the
   Markov chain does not apply): ``ln ARL0 = a + b h`` fitted to run lengths
   measured by simulation for the default tuning (ratio 2, clip 3):
@@ -24,7 +24,7 @@ set by the engineer), the budget is shared equally:
 Non-Gaussian noise. These are Gaussian results, and they hold on heavy-tailed,
 spiky or quantised noise because the offset and variance CUSUMs judge normal
 scores of the innovations through each channel's own calibration distribution
-(:mod:`estimator.noise_shape`): in control the scores are close to N(0, 1)
+(:mod:`estimator.detection.noise_shape`): in control the scores are close to N(0, 1)
 whatever the noise's shape, so the Markov chain and the fit above apply to
 them. Measured (tests/reference/test_noise_shape_run_lengths.py, our own Monte
 Carlo at shortened thresholds): in-control ARLs within 0.9 to 1.6 times the
@@ -34,7 +34,7 @@ spiky noise of equal variance, where judging the raw innovations gave 0.2 to
 reference is learned from a finite sample (1,000 scores by default), whose
 error would raise the fleet's average false-alarm rate above that of one
 exact channel (the average of a log-normal); the variance CUSUM's increments
-carry the margin that cancels it (:func:`estimator.run_length.calibration_margin`,
+carry the margin that cancels it (:func:`estimator.detection.run_length.calibration_margin`,
 3.7 % at h = 60), and the offset CUSUM scales itself to the scores' spread of
 the moment. What it costs: the CUSUMs judge only after the calibration
 (1,000 samples after the baseline's 1,000), and a doubled variance is found

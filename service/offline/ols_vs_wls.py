@@ -46,7 +46,7 @@ def compare(Z: FloatArray, y: FloatArray, weight: FloatArray) -> Comparison | No
     Raises
     ------
     ValueError
-        Shapes disagree or values are not finite (as :func:`estimator.batch.fit_wls`).
+        Shapes disagree or values are not finite (as :func:`estimator.recursive.batch.fit_wls`).
     """
     Z = np.asarray(Z, dtype=np.float64)
     y = np.asarray(y, dtype=np.float64)

@@ -1,10 +1,10 @@
 """Offline runs over a CSV history: ``replay`` (the recursive estimator) and ``fit`` (batch closed form).
 
 Both read the file through :class:`service.offline.csv_source.CsvSource`, route rows to
-channels, and pass every row through the same :class:`estimator.channel_bank.ChannelBank`
+channels, and pass every row through the same :class:`estimator.channels.channel_bank.ChannelBank`
 the live service uses, so they accept exactly the same samples with exactly the same weights.
 ``fit`` then solves the weighted least squares problem in closed form
-(:func:`estimator.batch.fit_wls`) on the applied samples, forgetting included.
+(:func:`estimator.recursive.batch.fit_wls`) on the applied samples, forgetting included.
 """
 
 from __future__ import annotations

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from estimator import RecursiveWLSBank
-from estimator.statistics import bank_statistics
+from estimator.recursive.statistics import bank_statistics
 from tests.benchmarks._common import (
     Budget,
     Cycler,

@@ -4,7 +4,7 @@
 the bank gives it), on unit-variance Student t (3 dof) innovations:
 
 * ``before``: the detectors as they were before the noise-shape tables
-  (``estimator/detectors.py`` at commit ``BEFORE``, loaded from the repository's
+  (``estimator/detection/detectors.py`` at commit ``BEFORE``, loaded from the repository's
   history; the column is left out where git or that commit is not at hand);
 * ``gaussian``: today's detectors with ``calibration_samples = 0`` (no table);
 * ``calibrating``: today's, while the tables are being learned (linear binning);
@@ -26,8 +26,8 @@ from types import ModuleType
 import numpy as np
 import pytest
 
-from estimator.baseline import Baseline
-from estimator.detectors import DetectorBank, DetectorSettings
+from estimator.detection.baseline import Baseline
+from estimator.detection.detectors import DetectorBank, DetectorSettings
 from tests.benchmarks._common import Budget, best_times, print_header, print_table
 
 pytestmark = pytest.mark.benchmark
@@ -41,7 +41,7 @@ ROUNDS = 64                      # distinct rounds of innovations cycled through
 def _before_module() -> ModuleType | None:
     """The detectors module of commit BEFORE, or None where it cannot be read."""
     try:
-        source = subprocess.run(["git", "show", f"{BEFORE}:estimator/detectors.py"], cwd=ROOT, check=True,
+        source = subprocess.run(["git", "show", f"{BEFORE}:estimator/detection/detectors.py"], cwd=ROOT, check=True,
                                 capture_output=True, text=True, timeout=30).stdout
     except (OSError, subprocess.SubprocessError):
         return None

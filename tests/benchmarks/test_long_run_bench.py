@@ -26,7 +26,7 @@ import numpy as np
 import pytest
 
 from estimator import RecursiveWLSBank
-from estimator.statistics import bank_statistics
+from estimator.recursive.statistics import bank_statistics
 from tests.benchmarks._common import PlainRLSBankSoA, print_header, print_table
 
 pytestmark = pytest.mark.benchmark

@@ -34,8 +34,8 @@ from filterpy.kalman import KalmanFilter
 from numpy.typing import NDArray
 from statsmodels.regression.recursive_ls import RecursiveLS
 
-from estimator.rwls import RecursiveWLSBank
-from estimator.statistics import bank_statistics
+from estimator.recursive.rwls import RecursiveWLSBank
+from estimator.recursive.statistics import bank_statistics
 from tests.benchmarks._common import (
     DIFFUSE_PRIOR,
     Budget,

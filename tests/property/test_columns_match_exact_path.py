@@ -17,11 +17,11 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from estimator.channel import ChannelSettings, Sample, WeightRule
-from estimator.channel_bank import ChannelBank, ChannelEvent
-from estimator.column_rounds import PathTuning
-from estimator.detectors import ConditionTiming, DetectorSettings
-from estimator.sample_columns import SampleColumns
+from estimator.channels.channel import ChannelSettings, Sample, WeightRule
+from estimator.channels.channel_bank import ChannelBank, ChannelEvent
+from estimator.channels.column_rounds import PathTuning
+from estimator.channels.sample_columns import SampleColumns
+from estimator.detection.detectors import ConditionTiming, DetectorSettings
 
 PROPERTY_SETTINGS = settings(max_examples=60, deadline=None, derandomize=True, database=None)
 

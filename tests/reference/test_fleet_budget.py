@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from estimator.run_length import offset_arl, variance_reference
+from estimator.detection.run_length import offset_arl, variance_reference
 from service.config.false_alarm_budget import VARIANCE_FIT, derive_thresholds
 from service.config.settings import ConfigError, parse_config
 

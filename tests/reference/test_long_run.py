@@ -34,7 +34,7 @@ PHASES = [("excite", 0, 2000), ("dead", 2000, 4000), ("excite", 4000, 6000), ("d
 PARAMETER_STEPS = (5000, 9000)
 CHECKPOINTS = range(499, STEPS, 500)
 # Bound between updates once every parameter was checked (derivation in
-# tests/unit/test_rwls.py, from the module docstring of estimator/rwls.py).
+# tests/unit/test_rwls.py, from the module docstring of estimator/recursive/rwls.py).
 P_BOUND = LIMIT / LAMBDA ** (N_PARAMS - 1)
 # Recovery: the largest error over all 300 parameters below 0.05 (about 10 steady-
 # state standard deviations, sigma sqrt((1 - lambda) / (1 + lambda)) = 0.005) and staying there.

@@ -25,8 +25,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from estimator.detectors import DEFAULT_TIMING, DetectorSettings
-from estimator.run_length import offset_arl
+from estimator.detection.detectors import DEFAULT_TIMING, DetectorSettings
+from estimator.detection.run_length import offset_arl
 from service.config.false_alarm_budget import VARIANCE_FIT
 from tests.gain_drift import first_alarms, raises
 from tests.noise_shapes import PERIOD, SHAPES, Run, simulate

@@ -1,6 +1,6 @@
 """CUSUM average run lengths and chi-square quantiles against published tables, cross-checked by simulation.
 
-The chi-square quantile is scipy's (``estimator.quantiles``); the tables here check that we call it right.
+The chi-square quantile is scipy's (``estimator.detection.quantiles``); the tables here check that we call it right.
 """
 
 from __future__ import annotations
@@ -11,8 +11,8 @@ from statistics import NormalDist
 import numpy as np
 import pytest
 
-from estimator.quantiles import chi2_quantile
-from estimator.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
+from estimator.detection.quantiles import chi2_quantile
+from estimator.detection.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
 
 SHIFTS = (0.0, 0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 2.5, 3.0, 4.0)
 # Two-sided tabular CUSUM, k = 0.5, h = 4: Lucas & Crosier (1982), Table 1.

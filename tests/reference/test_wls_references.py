@@ -34,9 +34,9 @@ import statsmodels.api as sm
 from numpy.typing import NDArray
 from statsmodels.datasets import ccard
 
-from estimator.batch import fit_wls
-from estimator.rwls import RecursiveWLSBank
-from estimator.statistics import bank_statistics
+from estimator.recursive.batch import fit_wls
+from estimator.recursive.rwls import RecursiveWLSBank
+from estimator.recursive.statistics import bank_statistics
 from service.cli import main
 from tests.reference.strd import log_relative_error
 
@@ -404,7 +404,7 @@ def test_fit_and_replay_agree_with_forgetting_while_the_covariance_bound_is_idle
     fit = _run("fit", data, config, capsys)
     replay = _run("replay", data, config, capsys)
     # The anti-windup pseudo-observation is added only where P_jj exceeds covariance_limit
-    # (default 1e6; estimator/rwls.py docstring). With rich excitation the unscaled P
+    # (default 1e6; estimator/recursive/rwls.py docstring). With rich excitation the unscaled P
     # (covariance / residual variance; measured max 0.013) stays at least six orders below
     # it, so replay is exactly exponentially weighted WLS and fit solves the same problem
     # in closed form.

@@ -16,8 +16,8 @@ from collections.abc import Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator._givens import scalar_step
-from estimator.rwls import BankState, RecursiveWLSBank, checked_sample
+from estimator.recursive._givens import scalar_step
+from estimator.recursive.rwls import BankState, RecursiveWLSBank, checked_sample
 
 __all__ = ["ScalarRecursiveWLS"]
 

@@ -115,5 +115,43 @@ def test_everything_the_front_door_lists_is_there() -> None:
 
 def test_a_side_door_would_be_caught(tmp_path: Path) -> None:
     probe = tmp_path / "probe.py"
-    probe.write_text("from estimator.detectors import KINDS\nimport estimator.rwls\nfrom estimator import Sample\n")
-    assert _estimator_imports(probe) == [(1, "estimator.detectors"), (2, "estimator.rwls"), (3, "estimator")]
+    probe.write_text("from estimator.detection.detectors import KINDS\nimport estimator.recursive.rwls\n"
+                     "from estimator import Sample\n")
+    assert _estimator_imports(probe) == [(1, "estimator.detection.detectors"), (2, "estimator.recursive.rwls"),
+                                         (3, "estimator")]
+
+
+ESTIMATOR = SERVICE.parent / "estimator"
+
+# The estimator's parts, lowest first (DEVELOPERS.md draws them too).
+ESTIMATOR_FLOORS: dict[str, int] = {
+    "recursive": 0,      # recursive and batch WLS, statistics of a fit
+    "noise": 1,          # noise-variance tracker, operating-point model
+    "detection": 2,      # detectors, noise-shape calibration, run lengths, baselines, quantiles
+    "channels": 3,       # settings and rules per channel, regressors, groups, rounds, whole state
+}
+
+
+def _estimator_modules() -> list[Path]:
+    return sorted(p for p in ESTIMATOR.rglob("*.py") if p.parent != ESTIMATOR)
+
+
+def test_every_module_of_the_estimator_lives_in_a_part() -> None:
+    loose = [p.name for p in ESTIMATOR.glob("*.py") if p.name != "__init__.py"]
+    assert not loose, f"put these in one of {sorted(ESTIMATOR_FLOORS)}: {loose}"
+    assert {p.relative_to(ESTIMATOR).parts[0] for p in _estimator_modules()} == set(ESTIMATOR_FLOORS)
+
+
+@pytest.mark.parametrize("path", _estimator_modules(), ids=lambda p: str(p.relative_to(ESTIMATOR)))
+def test_estimator_imports_point_down_only(path: Path) -> None:
+    mine = path.relative_to(ESTIMATOR).parts[0]
+    upward = []
+    for line, module in _estimator_imports(path):
+        parts = module.split(".")
+        if len(parts) == 1:
+            upward.append(f"{path.relative_to(ESTIMATOR.parent)}:{line} imports the front door from inside")
+            continue
+        other = parts[1]
+        if other != mine and ESTIMATOR_FLOORS.get(other, 99) >= ESTIMATOR_FLOORS[mine]:
+            upward.append(f"{path.relative_to(ESTIMATOR.parent)}:{line} ({mine}) imports {module}")
+    assert not upward, "arrows that run up or sideways:\n" + "\n".join(upward)

@@ -6,8 +6,8 @@ import json
 
 import numpy as np
 
-from estimator.bank_state import export_state, import_state
-from estimator.channel_bank import ChannelBank
+from estimator.channels.bank_state import export_state, import_state
+from estimator.channels.channel_bank import ChannelBank
 from tests.property.test_columns_match_exact_path import PLANT, _equal, _sample, _state
 
 

@@ -1,4 +1,4 @@
-"""Batch weighted least squares (estimator/batch.py) against independent numpy solutions."""
+"""Batch weighted least squares (estimator/recursive/batch.py) against independent numpy solutions."""
 
 from __future__ import annotations
 

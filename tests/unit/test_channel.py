@@ -7,9 +7,9 @@ import math
 import numpy as np
 import pytest
 
-from estimator.channel import ChannelSettings, Sample, SampleOutcome, WeightRule
-from estimator.channel_bank import ChannelBank
-from estimator.rwls import RecursiveWLSBank
+from estimator.channels.channel import ChannelSettings, Sample, SampleOutcome, WeightRule
+from estimator.channels.channel_bank import ChannelBank
+from estimator.recursive.rwls import RecursiveWLSBank
 
 
 class OneChannel:

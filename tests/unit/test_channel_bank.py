@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from estimator.channel import ChannelSettings, Sample, WeightRule
-from estimator.channel_bank import ChannelBank
+from estimator.channels.channel import ChannelSettings, Sample, WeightRule
+from estimator.channels.channel_bank import ChannelBank
 
 SETTINGS = {
     # Same shape (n = 2, sample-count tracker): one group, vectorised together.

@@ -355,7 +355,7 @@ def test_channel_topic_must_be_a_concrete_topic(topic: str) -> None:
 
 
 def test_a_configured_baseline_is_in_force_from_the_start_and_checked_against_the_terms() -> None:
-    from estimator.channel_bank import ChannelBank
+    from estimator.channels.channel_bank import ChannelBank
 
     table = {"terms": ["1", "u"], "baseline": {"parameters": {"1": 2.0, "u": 0.5}, "noise_sigma": 0.1,
                                                 "std_errors": {"1": 0.01, "u": 0.002}}}

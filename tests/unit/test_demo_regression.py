@@ -21,8 +21,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from estimator.channel import Sample
-from estimator.channel_bank import ChannelBank
+from estimator.channels.channel import Sample
+from estimator.channels.channel_bank import ChannelBank
 from service.config.settings import load_config
 from service.demo.plant import DAY, START, larkspur_substation7
 from service.offline.replay import replay_file

@@ -7,12 +7,12 @@ import math
 import numpy as np
 import pytest
 
-from estimator.baseline import Baseline
-from estimator.channel import ChannelSettings, Sample
-from estimator.channel_bank import ChannelBank
-from estimator.detectors import ConditionTiming, DetectorBank, DetectorSettings
-from estimator.quantiles import chi2_quantile
-from estimator.run_length import variance_reference
+from estimator.channels.channel import ChannelSettings, Sample
+from estimator.channels.channel_bank import ChannelBank
+from estimator.detection.baseline import Baseline
+from estimator.detection.detectors import ConditionTiming, DetectorBank, DetectorSettings
+from estimator.detection.quantiles import chi2_quantile
+from estimator.detection.run_length import variance_reference
 
 
 def _bank(settings: DetectorSettings, channels: int = 1, sigma: float = 1.0) -> DetectorBank:

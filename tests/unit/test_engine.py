@@ -8,8 +8,8 @@ from typing import Any
 
 import numpy as np
 
-from estimator.channel import ChannelSettings, Sample
-from estimator.channel_bank import ChannelBank
+from estimator.channels.channel import ChannelSettings, Sample
+from estimator.channels.channel_bank import ChannelBank
 from service.broker_link.messages import DeadLetter, Message
 from service.engine.writer import Engine
 

@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 
 PACKAGE = Path(__file__).resolve().parents[2] / "estimator"
-SOURCES = sorted(PACKAGE.glob("*.py"))
+SOURCES = sorted(PACKAGE.rglob("*.py"))
 
 # Top-level modules the estimator must never import: it never depends on the service layer, and it
 # does no I/O (the direction of dependencies of this project).
@@ -67,13 +67,13 @@ def test_the_scan_sees_every_estimator_module() -> None:
     assert {"__init__.py", "rwls.py", "_givens.py", "regressors.py", "batch.py", "statistics.py"} <= names
 
 
-@pytest.mark.parametrize("path", SOURCES, ids=[p.name for p in SOURCES])
+@pytest.mark.parametrize("path", SOURCES, ids=[str(p.relative_to(PACKAGE)) for p in SOURCES])
 def test_estimator_module_imports_nothing_from_the_outside_world(path: Path) -> None:
     tree = ast.parse(path.read_text(encoding="utf-8"), filename=str(path))
     assert _imports(tree) & FORBIDDEN_IMPORTS == set()
 
 
-@pytest.mark.parametrize("path", SOURCES, ids=[p.name for p in SOURCES])
+@pytest.mark.parametrize("path", SOURCES, ids=[str(p.relative_to(PACKAGE)) for p in SOURCES])
 def test_estimator_module_opens_no_files_and_uses_no_global_random_state(path: Path) -> None:
     tree = ast.parse(path.read_text(encoding="utf-8"), filename=str(path))
     assert _bad_calls(tree) == []

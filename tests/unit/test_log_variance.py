@@ -1,7 +1,7 @@
 """Log-variance model: recovery of a variance function on a simulated plant, floors, twins, state, arguments.
 
 Reference facts used below:
-* v = e^2 / (1 + kappa h) has mean sigma^2 (estimator/variance.py, eq. (1)); under
+* v = e^2 / (1 + kappa h) has mean sigma^2 (estimator/noise/variance.py, eq. (1)); under
   Gaussian noise v / sigma^2 ~ chi2_1.
 * E[ln chi2_1] = psi(1/2) + ln 2 = -(gamma + ln 2) = -1.2704 (Harvey 1976, Econometrica 44;
   psi(1/2) = -gamma - 2 ln 2, Abramowitz & Stegun 6.3.3); Var(ln chi2_1) = pi^2 / 2
@@ -15,8 +15,8 @@ import math
 import numpy as np
 import pytest
 
-from estimator.log_variance import LogVarianceModel, LogVarianceState
-from estimator.rwls import RecursiveWLSBank
+from estimator.noise.log_variance import LogVarianceModel, LogVarianceState
+from estimator.recursive.rwls import RecursiveWLSBank
 from tests.unit.test_variance import SIGMAS, _random_residuals
 
 LOG_CHI2_MEAN = -(0.5772156649015329 + math.log(2.0))   # E[ln chi2_1], Harvey 1976

@@ -9,10 +9,10 @@ import pytest
 from scipy.special import ndtri
 from scipy.stats import norm
 
-from estimator import noise_shape
-from estimator.baseline import Baseline
-from estimator.detectors import DEFAULT_TIMING, DetectorBank, DetectorSettings
-from estimator.run_length import calibration_margin, variance_exponent, variance_reference
+from estimator.detection import noise_shape
+from estimator.detection.baseline import Baseline
+from estimator.detection.detectors import DEFAULT_TIMING, DetectorBank, DetectorSettings
+from estimator.detection.run_length import calibration_margin, variance_exponent, variance_reference
 from service.config.settings import parse_config
 
 

@@ -1,4 +1,4 @@
-"""Term parsing, the batch regressor block and the streaming builder (estimator/regressors.py)."""
+"""Term parsing, the batch regressor block and the streaming builder (estimator/channels/regressors.py)."""
 
 from __future__ import annotations
 

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from estimator.channel import ChannelSettings, Sample
-from estimator.channel_bank import ChannelBank
+from estimator.channels.channel import ChannelSettings, Sample
+from estimator.channels.channel_bank import ChannelBank
 from service.offline.trace import ReplayTrace
 
 

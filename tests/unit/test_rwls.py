@@ -1,4 +1,5 @@
-"""The square-root information RWLS bank (estimator/rwls.py): batch agreement, by-products, paths, rejection, state."""
+"""The square-root information RWLS bank (estimator/recursive/rwls.py): batch agreement, by-products, paths,
+rejection, state."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""Estimates, covariances, standard errors and excitation from a factor (estimator/statistics.py)."""
+"""Estimates, covariances, standard errors and excitation from a factor (estimator/recursive/statistics.py)."""
 
 from __future__ import annotations
 
@@ -146,7 +146,7 @@ def test_bad_scale_and_bad_factor_shape_raise() -> None:
 
 
 # Upper critical values of Student's t (one-sided probability p), three decimals as printed.
-# The quantile itself is scipy's (estimator.quantiles); these check that we call it right.
+# The quantile itself is scipy's (estimator.detection.quantiles); these check that we call it right.
 T_TABLE = [
     (0.975, 5, 2.571),     # NIST/SEMATECH e-Handbook of Statistical Methods, 1.3.6.7.2
     (0.975, 10, 2.228),    # NIST/SEMATECH e-Handbook of Statistical Methods, 1.3.6.7.2

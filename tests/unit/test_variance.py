@@ -1,7 +1,7 @@
 """Noise-variance tracker: unbiasedness on simulated plants, twins, state, arguments.
 
 Reference facts used below:
-* v = e^2 / (1 + kappa h) has mean sigma^2 (estimator/variance.py, eq. (1)); under
+* v = e^2 / (1 + kappa h) has mean sigma^2 (estimator/noise/variance.py, eq. (1)); under
   Gaussian noise v / sigma^2 ~ chi2_1, so Var(v) = 2 sigma^4 (common practice).
 * An EWMA of such samples has variance 2 sigma^4 alpha / (2 - alpha) (Roberts 1959);
   over T samples there are about T alpha / (2 - alpha) independent windows, so the
@@ -15,8 +15,8 @@ import math
 import numpy as np
 import pytest
 
-from estimator.rwls import RecursiveWLSBank
-from estimator.variance import NoiseVarianceTracker, TrackerState
+from estimator.noise.variance import NoiseVarianceTracker, TrackerState
+from estimator.recursive.rwls import RecursiveWLSBank
 
 SIGMAS = 4.0   # every noisy tolerance below is 4 standard errors: a false failure rate of 6e-5 per check
 

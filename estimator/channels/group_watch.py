@@ -1,6 +1,6 @@
 """What a group of channels is judged against: baselines, commissioning, and the detectors after each round.
 
-Both application paths of :class:`~estimator.channel_bank.ChannelBank` call
+Both application paths of :class:`~estimator.channels.channel_bank.ChannelBank` call
 :meth:`GroupWatch.after_round` with the same arrays for every round, so the
 detectors see the same numbers whichever path ran (and give the same bits).
 
@@ -29,13 +29,13 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.baseline import Baseline, BaselineHistory
-from estimator.channel import ChannelSettings
-from estimator.detectors import ConditionEvent, DetectorBank
-from estimator.log_variance import LogVarianceModel
-from estimator.rwls import RecursiveWLSBank
-from estimator.statistics import CONDITION_LIMIT, bank_statistics
-from estimator.variance import NoiseVarianceTracker
+from estimator.channels.channel import ChannelSettings
+from estimator.detection.baseline import Baseline, BaselineHistory
+from estimator.detection.detectors import ConditionEvent, DetectorBank
+from estimator.noise.log_variance import LogVarianceModel
+from estimator.noise.variance import NoiseVarianceTracker
+from estimator.recursive.rwls import RecursiveWLSBank
+from estimator.recursive.statistics import CONDITION_LIMIT, bank_statistics
 
 __all__ = ["MIN_SIGMA_SAMPLES", "GroupWatch", "WatchNotice"]
 

@@ -32,8 +32,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from functools import cached_property
 
-from estimator.detectors import DetectorSettings
-from estimator.regressors import RegressorSpec
+from estimator.channels.regressors import RegressorSpec
+from estimator.detection.detectors import DetectorSettings
 
 __all__ = ["ChannelCounters", "ChannelSettings", "Prepared", "Sample", "SampleOutcome", "WeightRule",
            "check_sample", "sample_weight"]

@@ -59,7 +59,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from estimator._givens import (
+from estimator.recursive._givens import (
     Workspace,
     back_substitute,
     back_substitute_scalar,

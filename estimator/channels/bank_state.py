@@ -19,11 +19,11 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.baseline import Baseline
+from estimator.detection.baseline import Baseline
 
 if TYPE_CHECKING:
-    from estimator.channel_bank import ChannelBank
-    from estimator.channel_group import _Group
+    from estimator.channels.channel_bank import ChannelBank
+    from estimator.channels.channel_group import _Group
 
 __all__ = ["export_state", "import_state"]
 

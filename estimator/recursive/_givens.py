@@ -302,7 +302,7 @@ def scalar_step(A: list[list[float]], zs: list[float], y: float, weight: float, 
                 limit: list[float] | None, inv_limit: list[float] | None) -> tuple[float, float]:
     """One recursive update of one channel's augmented factor (lists, in place).
 
-    The scalar twin of ``RecursiveWLSBank.update`` (see :mod:`estimator.rwls`):
+    The scalar twin of ``RecursiveWLSBank.update`` (see :mod:`estimator.recursive.rwls`):
     data row, residual-sum-of-squares element, covariance bound on parameter
     ``count % n``. ``limit`` is None when no bound applies. Returns
     ``(innovation, leverage)``.

@@ -1,7 +1,7 @@
 """A channel's own noise shape: normal scores of its innovations through their calibration distribution.
 
 The offset and variance CUSUMs are designed for N(0, 1) increments: their
-thresholds, the Markov-chain run lengths of :mod:`estimator.run_length` and
+thresholds, the Markov-chain run lengths of :mod:`estimator.detection.run_length` and
 the fleet budget all assume it. A sensor's noise is rarely Gaussian (heavy
 tails, a peaked centre, values published in coarse steps), and the tails
 decide a CUSUM's false-alarm rate. So each channel learns the distribution

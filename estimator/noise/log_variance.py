@@ -1,11 +1,11 @@
 """Operating-point dependent noise variance: a recursive fit of ``ln sigma^2 = z_op^T beta``.
 
 The targets are the normalised squared a-priori innovations of a
-:class:`~estimator.rwls.RecursiveWLSBank`,
+:class:`~estimator.recursive.rwls.RecursiveWLSBank`,
 
     v_k = e_k^2 / (1 + kappa h_k),
 
-equation (1) of :mod:`estimator.variance` (which derives it and states when it
+equation (1) of :mod:`estimator.noise.variance` (which derives it and states when it
 is unbiased): an unbiased one-sample estimate of ``sigma_k^2`` with
 ``v_k / sigma_k^2 ~ chi2_1`` under Gaussian noise. :class:`LogVarianceModel`
 fits ``ln v_k`` on operating-point regressors ``z_op`` with a second bank and
@@ -15,8 +15,8 @@ innovation, infinite leverage) are skipped.
 
 The vectorised path over channels and the scalar path for one channel perform
 the same IEEE operations in the same order, so their states agree bit for bit;
-the estimates come from the bank's :meth:`~estimator.rwls.RecursiveWLSBank.solution`
-and :meth:`~estimator.rwls.RecursiveWLSBank.solution_one`, which are twins in
+the estimates come from the bank's :meth:`~estimator.recursive.rwls.RecursiveWLSBank.solution`
+and :meth:`~estimator.recursive.rwls.RecursiveWLSBank.solution_one`, which are twins in
 the same sense. Transcendental functions go through numpy's ufuncs in both
 paths: ``math.log`` and ``np.log`` may differ in the last bit where numpy uses
 SIMD kernels.
@@ -36,8 +36,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from estimator.rwls import BankState, RecursiveWLSBank
-from estimator.variance import _check_int, _check_positive, _check_residual_one, _check_residuals
+from estimator.noise.variance import _check_int, _check_positive, _check_residual_one, _check_residuals
+from estimator.recursive.rwls import BankState, RecursiveWLSBank
 
 __all__ = ["LogVarianceModel", "LogVarianceState"]
 
@@ -64,9 +64,9 @@ class LogVarianceState:
 class LogVarianceModel:
     """Operating-point dependent noise variance ``ln sigma^2 = z_op^T beta`` (Harvey 1976).
 
-    Per channel a :class:`~estimator.rwls.RecursiveWLSBank` with unit weights
+    Per channel a :class:`~estimator.recursive.rwls.RecursiveWLSBank` with unit weights
     fits ``z_op^T beta`` to the targets ``ln v_k + 1.2704`` with ``v_k`` from
-    (1) of :mod:`estimator.variance`.
+    (1) of :mod:`estimator.noise.variance`.
     Under Gaussian noise ``ln v_k = ln sigma_k^2 + ln chi2_1``, whose mean is
     ``ln sigma_k^2 - 1.2704`` (``E[ln chi2_1] = psi(1/2) + ln 2``) and whose
     variance ``pi^2 / 2`` does not depend on the operating point, so unit
@@ -89,7 +89,7 @@ class LogVarianceModel:
         K.
     n_terms : int
         m, entries of the operating-point regressor ``z_op`` (e.g. built by
-        :class:`~estimator.regressors.RegressorSpec` from ``["1", "load"]``).
+        :class:`~estimator.channels.regressors.RegressorSpec` from ``["1", "load"]``).
     forgetting_factor : float or ndarray, shape (K,)
         lambda of the log fit, in (0, 1]; memory about ``1 / (1 - lambda)``
         samples (common practice).
@@ -183,7 +183,7 @@ class LogVarianceModel:
             Operating-point regressor rows.
         innovation, leverage : array_like, shape (B,)
         kappa : float or array_like, shape (B,)
-            As for :meth:`~estimator.variance.NoiseVarianceTracker.update`; non-finite innovation or
+            As for :meth:`~estimator.noise.variance.NoiseVarianceTracker.update`; non-finite innovation or
             infinite leverage skips the sample.
 
         Returns

@@ -1,7 +1,7 @@
 """Drift detectors, vectorised over channels: noise level, variance increase, offset step, parameter drift.
 
 Each applied sample brings its innovation ``e``, its leverage ``h = w z^T P z``
-and the bank's ``kappa`` (see :mod:`estimator.rwls`); the innovation's
+and the bank's ``kappa`` (see :mod:`estimator.recursive.rwls`); the innovation's
 variance is about ``V (1 + kappa h)`` with ``V`` the sample's noise variance.
 The innovation is normalised by its baseline spread,
 ``eps_ref = e / sqrt(V_ref (1 + kappa h))`` with ``V_ref`` the baseline's noise
@@ -15,7 +15,7 @@ and a heavy-tailed noise of the same variance would make them raise false
 alarms many times too often. So they judge the normal score
 ``z = Phi^-1(G(eps_ref))`` through the channel's own calibration
 distribution ``G``, learned from the ``calibration_samples`` samples after
-each baseline (:mod:`estimator.noise_shape`; the CUSUMs are not judged in the
+each baseline (:mod:`estimator.detection.noise_shape`; the CUSUMs are not judged in the
 meantime): close to N(0, 1) in control whatever the noise's shape, so their
 Gaussian thresholds, Markov-chain run lengths and the fleet budget hold.
 ``calibration_samples = 0`` takes the noise as Gaussian: ``z = eps_ref``,
@@ -50,10 +50,10 @@ a sample the bank could not predict, leaves them untouched):
     6e-5 chance of a sample beyond it).
 ``variance``
     One-sided CUSUM, tuned to a variance ratio ``rho`` (reference value from
-    :func:`estimator.run_length.variance_reference`), of ``d^2 / (2 (1 + m))``
+    :func:`estimator.detection.run_length.variance_reference`), of ``d^2 / (2 (1 + m))``
     clipped at ``clip^2`` (a spike touches two differences: keep
     ``h > 2 (clip^2 - k)``). ``m`` is the margin for the calibration's own
-    sampling error (:func:`estimator.run_length.calibration_margin`, 3.7 %
+    sampling error (:func:`estimator.detection.run_length.calibration_margin`, 3.7 %
     for h = 60 and 1,000 calibration samples; 0 without a table) that keeps
     the false-alarm rate averaged over channels at the nominal one:
     the variance detector answers the noise, the offset and drift detectors
@@ -91,14 +91,15 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator import noise_shape
-from estimator.baseline import Baseline
-from estimator.quantiles import chi2_quantile
-from estimator.run_length import calibration_margin, variance_reference
+from estimator.detection import noise_shape
+from estimator.detection.baseline import Baseline
+from estimator.detection.quantiles import chi2_quantile
+from estimator.detection.run_length import calibration_margin, variance_reference
 
 __all__ = ["DEFAULT_TIMING", "KINDS", "ConditionEvent", "ConditionTiming", "DetectorBank", "DetectorSettings"]
 
@@ -235,7 +236,7 @@ class DetectorBank:
         self._drift_limit = np.array([chi2_quantile(1.0 - s.drift_alpha, n_params) for s in settings])
         self._drift_every = np.array([s.drift_every for s in settings], dtype=np.int64)
         # The variance CUSUM's increments shrink by 1 + m against a reference learned from a finite
-        # calibration sample (estimator.run_length.calibration_margin): the fleet's average rate stays nominal.
+        # calibration sample (run_length.calibration_margin): the fleet's average rate stays nominal.
         self._variance_margin = np.array([calibration_margin(s.variance_h, variance_reference(s.variance_ratio),
                                                              s.calibration_samples) for s in settings])
 
@@ -247,7 +248,7 @@ class DetectorBank:
         self._state = np.full((k, STATE_COLUMNS), np.nan)
         self._state[:, [_UP, _DOWN, _VAR]] = 0.0
         self._since_drift = np.zeros(k, dtype=np.int64)
-        # The noise shape (estimator.noise_shape): calibration values taken since the baseline, and per
+        # The noise shape (estimator.detection.noise_shape): calibration values taken since the baseline, and per
         # channel its binned masses while calibrating, then its score table. A target of 0: no table.
         self._shape_target = np.array([s.calibration_samples for s in settings], dtype=np.int64)
         self._shape_count = np.zeros(k, dtype=np.int64)
@@ -256,7 +257,8 @@ class DetectorBank:
         self._conditions = np.full((len(KINDS), k, 4), np.nan)
         self._timing = np.array([[[t.deadband, t.on_delay, t.off_delay]
                                   for t in (s.timing_of(kind) for s in settings)] for kind in KINDS])
-        self.sink: list[object] = []          # where condition events go (the owner may share its list)
+        # Where condition events go; the owner may share its own list, holding notices of its own too.
+        self.sink: list[Any] = []
         self._pack(column)
 
     def repack(self) -> None:
@@ -523,7 +525,8 @@ class DetectorBank:
     def judging(self, idx: IndexArray) -> NDArray[np.bool_]:
         """Whether the offset and variance CUSUMs of channels ``idx`` are judged (a baseline, no calibration due)."""
         target = self._shape_target[idx]
-        return self.has_baseline[idx] & ((target == 0) | (self._shape_count[idx] >= target))
+        judged: NDArray[np.bool_] = self.has_baseline[idx] & ((target == 0) | (self._shape_count[idx] >= target))
+        return judged
 
     def calibration(self, channel: int) -> tuple[int, int]:
         """Noise-shape calibration of one channel: (values taken since its baseline, values it needs)."""

@@ -1,4 +1,4 @@
-"""Noise variance from the a-priori residuals of a :class:`~estimator.rwls.RecursiveWLSBank`.
+"""Noise variance from the a-priori residuals of a :class:`~estimator.recursive.rwls.RecursiveWLSBank`.
 
 Normalisation. With weights consistent with the noise (``w_k = c / sigma_k^2``
 for any c > 0) the a-priori innovation ``e_k = y_k - z_k^T theta_{k-1}`` has
@@ -7,7 +7,7 @@ for any c > 0) the a-priori innovation ``e_k = y_k - z_k^T theta_{k-1}`` has
 
 because the estimate's error is independent of the new noise and has
 covariance ``~ kappa c P_{k-1}``; ``kappa = sum lambda^(2(k-i)) / sum lambda^(k-i)``
-is the bank's :meth:`~estimator.rwls.RecursiveWLSBank.kappa`, read before the
+is the bank's :meth:`~estimator.recursive.rwls.RecursiveWLSBank.kappa`, read before the
 update that produced ``e_k``. For lambda = 1 (kappa = 1) the relation is exact
 given the regressors. Hence
 
@@ -24,7 +24,7 @@ innovation, infinite leverage) carry no information and are skipped.
 This module holds :class:`NoiseVarianceTracker`, an EWMA of ``v_k`` per channel
 (Roberts 1959), debiased at start-up, optionally robust (Huber-type clipping),
 and the checks of the bank's by-products that it shares with
-:class:`~estimator.log_variance.LogVarianceModel`, a regression of ``ln v_k``.
+:class:`~estimator.noise.log_variance.LogVarianceModel`, a regression of ``ln v_k``.
 The tracker's vectorised path over channels and its scalar path for one
 channel perform the same IEEE operations in the same order, so their states
 agree bit for bit; ``expm1`` goes through numpy's ufunc in both paths, since
@@ -271,7 +271,7 @@ class NoiseVarianceTracker:
         channels : array_like of int, shape (B,), or None
             Channel indices, each at most once; None means ``arange(K)``.
         innovation, leverage : array_like, shape (B,)
-            From the bank's :class:`~estimator.rwls.UpdateResult`. A sample with
+            From the bank's :class:`~estimator.recursive.rwls.UpdateResult`. A sample with
             A non-finite innovation (NaN, or inf after an overflow)
             or infinite leverage is skipped (not counted).
         kappa : float or array_like, shape (B,)

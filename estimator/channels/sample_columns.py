@@ -2,7 +2,7 @@
 
 A batch payload of a hundred samples decodes most cheaply into one list per
 field rather than a hundred sample objects, and the bank turns lists into
-arrays once per group of channels (:mod:`estimator.column_rounds`). An entry
+arrays once per group of channels (:mod:`estimator.channels.column_rounds`). An entry
 is None where a sample lacks that field; ``samples`` gives back the
 one-object-per-sample form that the exact path (:meth:`ChannelBank.apply`)
 takes, so any micro-batch can fall back to it unchanged.
@@ -13,7 +13,7 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
-from estimator.channel import Sample
+from estimator.channels.channel import Sample
 
 __all__ = ["ColumnsOutcome", "SampleColumns"]
 

@@ -8,7 +8,7 @@ samples, keeps each channel's samples in arrival order, and works in rounds:
 round r holds the r-th sample of every channel that has one, so a round
 touches each channel at most once and is one vectorised step per group.
 
-For each sample of a round, in this order (see :mod:`estimator.channel`):
+For each sample of a round, in this order (see :mod:`estimator.channels.channel`):
 checks, regressor, weight from the tracker state before the sample, the
 recursive update, the tracker and operating-point model, the lag buffers.
 A group with fewer than ``tuning.vector_min`` samples in a round takes the scalar
@@ -28,14 +28,14 @@ from typing import NamedTuple
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.baseline import Baseline
-from estimator.channel import ChannelSettings, Prepared, Sample, SampleOutcome
-from estimator.channel_group import _Group, _Lane, shape_key
-from estimator.column_rounds import PathTuning, apply_group_columns
-from estimator.detectors import KINDS, ConditionEvent
-from estimator.group_watch import WatchNotice
-from estimator.sample_columns import ColumnsOutcome, SampleColumns
-from estimator.statistics import bank_statistics
+from estimator.channels.channel import ChannelSettings, Prepared, Sample, SampleOutcome
+from estimator.channels.channel_group import _Group, _Lane, shape_key
+from estimator.channels.column_rounds import PathTuning, apply_group_columns
+from estimator.channels.group_watch import WatchNotice
+from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
+from estimator.detection.baseline import Baseline
+from estimator.detection.detectors import KINDS, ConditionEvent
+from estimator.recursive.statistics import bank_statistics
 
 __all__ = ["ChannelBank", "ChannelEvent", "ChannelView", "DetectorReading"]
 
@@ -238,7 +238,7 @@ class ChannelBank:
         """Apply each channel's columns in order: the same state and outcomes as :meth:`apply`.
 
         Channels whose columns pass every check in whole-array form run in
-        vectorised rounds (:mod:`estimator.column_rounds`); the others, and
+        vectorised rounds (:mod:`estimator.channels.column_rounds`); the others, and
         any remainder, take :meth:`apply`, which finds each refusal's reason.
         Samples of an unknown channel are rejected ``unknown_channel``.
         """

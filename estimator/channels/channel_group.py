@@ -4,7 +4,7 @@ A group shares one :class:`RecursiveWLSBank`, one :class:`NoiseVarianceTracker`,
 an optional :class:`LogVarianceModel` and a :class:`GroupWatch` (detectors,
 baselines); a lane holds what is per channel and scalar: settings, lag
 buffers, ordering, counters. :meth:`_Group.update` is one round of the exact
-path (see :mod:`estimator.channel_bank`).
+path (see :mod:`estimator.channels.channel_bank`).
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ import math
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.channel import (
+from estimator.channels.channel import (
     ChannelCounters,
     ChannelSettings,
     Prepared,
@@ -23,12 +23,12 @@ from estimator.channel import (
     check_sample,
     sample_weight,
 )
-from estimator.column_rounds import PathTuning
-from estimator.group_watch import GroupWatch
-from estimator.log_variance import LogVarianceModel
-from estimator.regressors import NotUsable, RegressorBuilder, RegressorSpec
-from estimator.rwls import RecursiveWLSBank, RejectedSample
-from estimator.variance import NoiseVarianceTracker
+from estimator.channels.column_rounds import PathTuning
+from estimator.channels.group_watch import GroupWatch
+from estimator.channels.regressors import NotUsable, RegressorBuilder, RegressorSpec
+from estimator.noise.log_variance import LogVarianceModel
+from estimator.noise.variance import NoiseVarianceTracker
+from estimator.recursive.rwls import RecursiveWLSBank, RejectedSample
 
 __all__ = ["declared_variance", "shape_key"]
 

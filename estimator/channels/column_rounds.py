@@ -5,7 +5,7 @@ object: checks, regressor row, weight. Here a group's columns become flat
 arrays once per micro-batch, and everything that does not depend on the
 recursion is done for all samples at once:
 
-1. every check of :func:`estimator.channel.check_sample`, as whole-array
+1. every check of :func:`estimator.channels.channel.check_sample`, as whole-array
    comparisons (time and sequence numbers against the previous sample of the
    same channel, or the channel's last accepted one for the first);
 2. regressor rows by :meth:`RegressorSpec.block` per term list (lag buffers
@@ -35,10 +35,10 @@ from typing import TYPE_CHECKING
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.sample_columns import ColumnsOutcome, SampleColumns
+from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
 
 if TYPE_CHECKING:
-    from estimator.channel_group import _Group, _Lane
+    from estimator.channels.channel_group import _Group, _Lane
 
 __all__ = ["PathTuning", "apply_group_columns"]
 
