@@ -28,9 +28,9 @@ from typing import NamedTuple
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.channels.channel import ChannelSettings, Prepared, Sample, SampleOutcome
+from estimator.channels.channel import ChannelSettings, PathTuning, Prepared, Sample, SampleOutcome
 from estimator.channels.channel_group import _Group, _Lane, shape_key
-from estimator.channels.column_rounds import PathTuning, apply_group_columns
+from estimator.channels.column_rounds import apply_group_columns
 from estimator.channels.group_watch import WatchNotice
 from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
 from estimator.detection.baseline import Baseline

@@ -17,13 +17,13 @@ from numpy.typing import NDArray
 from estimator.channels.channel import (
     ChannelCounters,
     ChannelSettings,
+    PathTuning,
     Prepared,
     Sample,
     SampleOutcome,
     check_sample,
     sample_weight,
 )
-from estimator.channels.column_rounds import PathTuning
 from estimator.channels.group_watch import GroupWatch
 from estimator.channels.regressors import NotUsable, RegressorBuilder, RegressorSpec
 from estimator.noise.log_variance import LogVarianceModel

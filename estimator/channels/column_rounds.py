@@ -18,7 +18,8 @@ the same vectorised steps as the exact path (weights from the tracker state
 before the sample; update; tracker; operating-point model; detectors). Small work is
 left to the exact path, which is as fast there: a group with fewer than
 ``column_min_samples`` samples or ``vector_min`` channels, and the last
-rounds once fewer than ``vector_min`` channels still have samples (:class:`PathTuning`). Elementwise IEEE
+rounds once fewer than ``vector_min`` channels still have samples (``PathTuning``, a channel setting).
+Elementwise IEEE
 arithmetic does not depend on the vector it runs in, so the result is the
 exact path's, bit for bit; a property test holds the two to that. Should a
 tracked weight turn out unusable mid-way, that channel leaves the rounds at
@@ -28,7 +29,6 @@ that sample and its remaining samples go to the exact path.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
 from itertools import chain
 from typing import TYPE_CHECKING
 
@@ -40,27 +40,11 @@ from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
 if TYPE_CHECKING:
     from estimator.channels.channel_group import _Group, _Lane
 
-__all__ = ["PathTuning", "apply_group_columns"]
+__all__ = ["apply_group_columns"]
 
 FloatArray = NDArray[np.float64]
 
 
-@dataclass(frozen=True)
-class PathTuning:
-    """Where the vectorised paths start to pay (speed only: every choice gives the same bits).
-
-    ``vector_min``: fewest channels in a round worth one vectorised step; a step
-    costs some 80 us whatever its width (n = 2, measured), a scalar update some
-    10 us. ``column_min_samples``: fewest samples in a group's micro-batch worth
-    the column path's fixed cost, some 200 us of whole-array preparation.
-    """
-
-    vector_min: int = 8
-    column_min_samples: int = 256
-
-    def __post_init__(self) -> None:
-        if self.vector_min < 1 or self.column_min_samples < 1:
-            raise ValueError(f"vector_min and column_min_samples must be >= 1, got {self}")
 Leftover = tuple["_Lane", SampleColumns, int]       # lane, its columns, first position for the exact path
 
 

@@ -194,25 +194,24 @@ class GroupWatch:
         """Put ``baseline`` in force (its version must be the next one)."""
         self.histories[channel].add(baseline)
         self.detectors.set_baseline(channel, baseline)
+        self._clear_sums(channel)
+        self._events.append(WatchNotice(channel, "baseline", math.nan if baseline.t is None else baseline.t,
+                                        baseline=baseline))
+
+    def _clear_sums(self, channel: int) -> None:
+        """Forget what commissioning gathered towards the next baseline and noise model of ``channel``."""
         self._square_sum[channel] = 0.0
         self._square_count[channel] = 0
         self._ratio_sum[channel] = 0.0
         self._ratio_count[channel] = 0
         if self._candidate is not None:
             self._candidate[channel] = np.nan
-        self._events.append(WatchNotice(channel, "baseline", math.nan if baseline.t is None else baseline.t,
-                                        baseline=baseline))
 
     def restart(self, channel: int, t: float | None) -> None:
         """After a reset: no baseline in force (the history stays), commissioning from zero."""
         self.detectors.clear_baseline(channel, t)
         self.commissioned[channel] = 0
-        self._square_sum[channel] = 0.0
-        self._square_count[channel] = 0
-        self._ratio_sum[channel] = 0.0
-        self._ratio_count[channel] = 0
-        if self._candidate is not None:
-            self._candidate[channel] = np.nan
+        self._clear_sums(channel)
         self._judged[channel] = True
         self.last_innovation[channel] = np.nan
         self.last_spread[channel] = np.nan

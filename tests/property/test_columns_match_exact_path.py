@@ -17,9 +17,8 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from estimator.channels.channel import ChannelSettings, Sample, WeightRule
+from estimator.channels.channel import ChannelSettings, PathTuning, Sample, WeightRule
 from estimator.channels.channel_bank import ChannelBank, ChannelEvent
-from estimator.channels.column_rounds import PathTuning
 from estimator.channels.sample_columns import SampleColumns
 from estimator.detection.detectors import ConditionTiming, DetectorSettings
 
