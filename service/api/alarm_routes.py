@@ -22,6 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from estimator import Baseline
 from service.alarms.lifecycle import AlarmRefused
+from service.api import models
 from service.api.auth import Access, Principal
 from service.engine.channel_report import finite_or_null
 from service.engine.operations import (
@@ -90,6 +91,11 @@ def _actor(who: Principal, body: _Body) -> str:
     return who.name if body.user is None or body.user == who.name else f"{body.user} via {who.name}"
 
 
+# Errors of a write: an unreadable or too large body, no token or role, no such alarm or channel, a state it
+# does not allow, a body that does not validate, busy.
+ACTION_ERRORS = models.errors(400, 401, 403, 404, 409, 413, 422, 503)
+
+
 def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
     """Register the alarm, baseline, reset and event-stream routes (reads, operate and configure checks)."""
     known_alarms = frozenset(alarm.id for alarm in runtime.engine.snapshot.alarms)    # fixed by the configuration
@@ -111,7 +117,8 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
             return _busy(exc)
         return {"entry": changed.entry.to_dict(), "alarm": changed.alarm.to_dict()}
 
-    @app.get("/api/v1/alarms", dependencies=read, summary="Alarms (by default those not Normal), filtered and paged")
+    @app.get("/api/v1/alarms", dependencies=read, summary="Alarms (by default those not Normal), filtered and paged",
+             response_model=models.AlarmList, responses=models.errors(401, 403, 422))
     def alarms(channel: str | None = None, kind: str | None = None, state: str | None = None,
                priority: str | None = None, include_normal: bool = False,
                limit: int = Query(default=100, ge=1, le=10_000),
@@ -122,39 +129,45 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
                   and (state is None or str(a.state) == state) and (priority is None or a.priority == priority)]
         return {"total": len(chosen), "offset": offset, "alarms": [a.to_dict() for a in chosen[offset:offset + limit]]}
 
-    @app.get("/api/v1/alarms/journal", dependencies=read, summary="Alarm transitions with seq > after, oldest first")
+    @app.get("/api/v1/alarms/journal", dependencies=read, summary="Alarm transitions with seq > after, oldest first",
+             response_model=models.Journal, responses=models.errors(401, 403, 422))
     def journal(after: int = Query(default=0, ge=0), limit: int = Query(default=100, ge=1, le=10_000),
                 channel: str | None = None) -> dict[str, object]:
         entries = runtime.journal(after, limit, channel)
         return {"entries": entries, "next": entries[-1]["seq"] if entries else after}
 
-    @app.post("/api/v1/alarms/{alarm_id}/ack", summary="Acknowledge an alarm", response_model=None)
+    @app.post("/api/v1/alarms/{alarm_id}/ack", summary="Acknowledge an alarm",
+              response_model=models.AlarmAction, responses=ACTION_ERRORS)
     def acknowledge(alarm_id: str, body: AckBody,
                     who: Principal = operator) -> dict[str, object] | JSONResponse:
         return alarm_action(Acknowledge, alarm_id, body, who)
 
-    @app.post("/api/v1/alarms/{alarm_id}/shelve", summary="Shelve an alarm for some minutes", response_model=None)
+    @app.post("/api/v1/alarms/{alarm_id}/shelve", summary="Shelve an alarm for some minutes",
+              response_model=models.AlarmAction, responses=ACTION_ERRORS)
     def shelve(alarm_id: str, body: ShelveBody, who: Principal = operator) -> dict[str, object] | JSONResponse:
         return alarm_action(Shelve, alarm_id, body, who, until=time.time() + 60.0 * body.minutes)
 
-    @app.post("/api/v1/alarms/{alarm_id}/unshelve", summary="End an alarm's shelving", response_model=None)
+    @app.post("/api/v1/alarms/{alarm_id}/unshelve", summary="End an alarm's shelving",
+              response_model=models.AlarmAction, responses=ACTION_ERRORS)
     def unshelve(alarm_id: str, body: AckBody,
                  who: Principal = operator) -> dict[str, object] | JSONResponse:
         return alarm_action(Unshelve, alarm_id, body, who)
 
-    @app.post("/api/v1/alarms/{alarm_id}/remove", summary="Take an alarm out of service", response_model=None)
+    @app.post("/api/v1/alarms/{alarm_id}/remove", summary="Take an alarm out of service",
+              response_model=models.AlarmAction, responses=ACTION_ERRORS)
     def remove(alarm_id: str, body: AckBody,
                who: Principal = operator) -> dict[str, object] | JSONResponse:
         return alarm_action(Remove, alarm_id, body, who)
 
-    @app.post("/api/v1/alarms/{alarm_id}/restore", summary="Return an alarm to service", response_model=None)
+    @app.post("/api/v1/alarms/{alarm_id}/restore", summary="Return an alarm to service",
+              response_model=models.AlarmAction, responses=ACTION_ERRORS)
     def restore(alarm_id: str, body: AckBody,
                 who: Principal = operator) -> dict[str, object] | JSONResponse:
         return alarm_action(Restore, alarm_id, body, who)
 
     @app.get("/api/v1/channels/{channel_id}/baselines", dependencies=read,
              summary="Every baseline of a channel, oldest first",
-             response_model=None)
+             response_model=models.Baselines, responses=models.errors(401, 403, 404, 422, 503))
     def baselines(channel_id: str) -> dict[str, object] | JSONResponse:
         entry = runtime.engine.snapshot.channels.get(channel_id)
         if entry is None:
@@ -166,7 +179,8 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
         return {"baselines": [baseline_json(b, entry.view.terms) for b in history],
                 "in_force": None if entry.view.baseline is None else entry.view.baseline.version}
 
-    @app.post("/api/v1/channels/{channel_id}/baseline", response_model=None,
+    @app.post("/api/v1/channels/{channel_id}/baseline", response_model=models.BaselineMade,
+              responses=ACTION_ERRORS,
               summary="Learn a new baseline now from the estimates, or set one (a calibration)")
     def set_baseline(channel_id: str, body: BaselineBody,
                      who: Principal = engineer) -> dict[str, object] | JSONResponse:
@@ -196,7 +210,8 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
                                 status_code=409)
         return {"baseline": baseline_json(made, terms)}
 
-    @app.post("/api/v1/channels/{channel_id}/reset", response_model=None,
+    @app.post("/api/v1/channels/{channel_id}/reset", response_model=models.ResetDone,
+              responses=ACTION_ERRORS,
               summary="Start the channel's estimator afresh (commissioning again; history kept)")
     def reset(channel_id: str, body: AckBody, who: Principal = engineer) -> dict[str, object] | JSONResponse:
         if channel_id not in runtime.engine.bank:
@@ -209,7 +224,11 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
         return {"reset": channel_id, "by": _actor(who, body)}
 
     @app.get("/api/v1/events", dependencies=read, summary="Live alarm transitions (Server-Sent Events)",
-             response_class=StreamingResponse)
+             response_class=StreamingResponse,
+             responses={200: {"content": {"text/event-stream": {"schema": {
+                 "type": "object", "properties": {"data": {"type": "string", "description": "JSON text"}}}}},
+                              "description": "one `data:` line of JSON per alarm state, then per transition"},
+                        **models.errors(401, 403)})
     async def events(request: Request) -> StreamingResponse:
         hub = runtime.events
         hub.bind(asyncio.get_running_loop())

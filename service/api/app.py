@@ -27,6 +27,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.advisory import ADVISORY
 from service.alarms.lifecycle import PRIORITIES, Alarm
+from service.api import models
 from service.api.alarm_routes import add_alarm_routes
 from service.api.auth import Access, Principal
 from service.api.dashboard_routes import add_dashboard
@@ -205,7 +206,8 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
                                 headers={"Retry-After": "5"})
         return Response(answer.body, status_code=answer.status, media_type=answer.content_type or None)
 
-    @app.get("/api/v1/channels", dependencies=read, summary="Every channel with its quality and last update")
+    @app.get("/api/v1/channels", dependencies=read, summary="Every channel with its quality and last update",
+             response_model=list[models.ChannelListEntry], responses=models.errors(401, 403, 422))
     def channels(request: Request, scope: Literal["fleet", "local"] = "fleet") -> list[dict[str, object]]:
         snap = runtime.engine.snapshot
         alarms = _alarms_by_channel(snap)
@@ -215,7 +217,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
         return fleet.channel_list(local, passed_on(request))
 
     @app.get("/api/v1/channels/{channel_id}", dependencies=read, summary="One channel's full state",
-             response_model=None)
+             response_model=models.ChannelDetail, responses=models.errors(401, 403, 404, 422, 503))
     def channel(channel_id: str, request: Request) -> dict[str, object] | Response:
         remote = elsewhere(request, channel_id)
         if remote is not None:
@@ -226,7 +228,8 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             return not_found("unknown channel")
         return _detail(entry, channel_id, _alarms_by_channel(snap).get(channel_id, []))
 
-    @app.get("/api/v1/channels/{channel_id}/history", response_model=None, dependencies=read,
+    @app.get("/api/v1/channels/{channel_id}/history", response_model=models.History, dependencies=read,
+             responses=models.errors(401, 403, 404, 422, 503),
              summary="A channel's parameters, sigma and detector statistics over time (downsampled)")
     def history(channel_id: str, request: Request, since: float | None = Query(default=None, allow_inf_nan=False),
                 until: float | None = Query(default=None, allow_inf_nan=False),
@@ -242,6 +245,9 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
                 "rows": rows}
 
     @app.get("/api/v1/snapshot", dependencies=read,
+             responses={200: {"model": models.SnapshotDocument, "description": "every channel, flat"},
+                        304: {"description": "unchanged since the ETag given in If-None-Match"},
+                        **models.errors(401, 403, 422)},
              summary="All channels, flat, in one call (for SCADA polling; ETag)",
              response_class=Response)
     def snapshot(request: Request, scope: Literal["fleet", "local"] = "fleet") -> Response:
@@ -268,7 +274,8 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
         return Response(snapshot_cache["body"], media_type="application/json",
                         headers={"ETag": etag, "Cache-Control": "no-cache"})
 
-    @app.post("/api/v1/channels/{channel_id}/samples", status_code=202, response_model=None,
+    @app.post("/api/v1/channels/{channel_id}/samples", status_code=202, response_model=models.Queued,
+              responses=models.errors(400, 401, 403, 404, 413, 422, 503),
               summary="Ingest samples over HTTP (the MQTT payload contract, same validation)")
     async def post_samples(channel_id: str, request: Request,
                            _who: Principal = source) -> dict[str, object] | JSONResponse:
@@ -297,13 +304,15 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
         return {"queued": len(decoded),
                 "rejected": [{"index": r.index, "reason": r.reason} for r in rejections]}
 
-    @app.get("/api/v1/health", summary="Liveness: the engine thread runs", response_model=None)
+    @app.get("/api/v1/health", summary="Liveness: the engine thread runs", response_model=models.Health,
+             responses=models.errors(503))
     def health() -> dict[str, object] | JSONResponse:
         ok = runtime.engine.alive() and (runtime.ingest is None or runtime.ingest.alive())
         return {"status": "ok"} if ok else JSONResponse({"detail": "engine or ingest thread down"}, 503)
 
     @app.get("/api/v1/ready", summary="Readiness: broker connected, engine alive, queue not full",
-             response_model=None)
+             response_model=models.Readiness,
+             responses={503: {"model": models.Readiness, "description": "not ready: the same document says why"}})
     def ready() -> dict[str, object] | JSONResponse:
         state = runtime.readiness()
         return finite_or_null(state) if state["ready"] else JSONResponse(finite_or_null(state), 503)
