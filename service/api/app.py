@@ -36,6 +36,7 @@ from service.api.errors import validation_problems
 from service.api.guard import add_guards
 from service.broker_link.payload import decode_payload
 from service.engine.channel_report import channel_report, finite_or_null
+from service.engine.quality import Quality
 from service.engine.snapshot import ChannelEntry, Snapshot
 from service.runtime import Runtime
 
@@ -82,7 +83,7 @@ def _summary(cid: str, entry: ChannelEntry, alarms: list[Alarm]) -> dict[str, ob
 
 def _detail(entry: ChannelEntry, cid: str, alarms: list[Alarm]) -> dict[str, object]:
     report = channel_report(entry.view)
-    if entry.quality == "Bad":
+    if entry.quality == Quality.BAD:
         # Estimates of a Bad channel are not for use: null them rather than show numbers.
         report["parameters"] = dict.fromkeys(report["parameters"])
         report["std_errors"] = dict.fromkeys(report["std_errors"])
@@ -123,7 +124,7 @@ class _EngineCollector(Collector):
         yield GaugeMetricFamily("rwls_last_batch_seconds", "Duration of the latest micro-batch",
                                 value=stats.last_batch_seconds)
         quality = GaugeMetricFamily("rwls_channels", "Channels by quality", labels=["quality"])
-        counts = {"Good": 0, "Uncertain": 0, "Bad": 0}
+        counts = dict.fromkeys(Quality, 0)
         for entry in engine.snapshot.channels.values():
             counts[entry.quality] += 1
         for name, count in counts.items():

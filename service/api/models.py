@@ -13,12 +13,13 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict
 
+from service.engine.quality import Quality, QualityReason
+
 __all__ = ["RESPONSES_BAD_REQUEST", "RESPONSES_BUSY", "RESPONSES_CONFLICT", "RESPONSES_NOT_FOUND", "AlarmAction",
            "AlarmList", "AlarmState", "BaselineMade", "BaselineState", "Baselines", "ChannelDetail",
            "ChannelListEntry", "ErrorBody", "Health", "History", "Journal", "JournalEntryState", "Queued",
            "Readiness", "ResetDone", "SnapshotDocument", "errors"]
 
-Quality = Literal["Good", "Uncertain", "Bad"]
 
 
 class _Model(BaseModel):
@@ -132,7 +133,7 @@ class Commissioning(_Model):
 class ChannelListEntry(_Model):
     id: str
     quality: Quality
-    quality_reason: str
+    quality_reason: QualityReason
     updated_at: float | None
     t: float | None
     samples: int
@@ -163,7 +164,7 @@ class ChannelDetail(_Model):
 
     id: str
     quality: Quality
-    quality_reason: str
+    quality_reason: QualityReason
     updated_at: float | None
     t: float | None
     terms: list[str]
@@ -213,7 +214,7 @@ class History(_Model):
 
 class SnapshotChannel(_Model):
     quality: Quality
-    quality_reason: str
+    quality_reason: QualityReason
     updated_at: float | None
     t: float | None
     samples: int

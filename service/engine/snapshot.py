@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 from estimator import CONDITION_LIMIT, ChannelView
 from service.alarms.lifecycle import Alarm
+from service.engine.quality import Quality, QualityReason
 
 __all__ = ["CONDITION_LIMIT", "REFUSED_IN_A_ROW", "ChannelEntry", "FragmentWriter", "Snapshot", "channel_quality"]
 
@@ -24,8 +25,8 @@ class ChannelEntry:
     """What readers see of one channel."""
 
     view: ChannelView
-    quality: str                 # "Good", "Uncertain" or "Bad" (OPC UA quality families)
-    quality_reason: str
+    quality: Quality
+    quality_reason: QualityReason
     updated_at: float | None     # wall-clock time of the last applied sample
     fragment: bytes              # its member of the flat /snapshot document
 
@@ -46,7 +47,7 @@ REFUSED_IN_A_ROW = 5
 
 
 def channel_quality(view: ChannelView, updated_at: float | None, now: float,
-                    stale_after: float, refused_in_a_row: int = 0) -> tuple[str, str]:
+                    stale_after: float, refused_in_a_row: int = 0) -> tuple[Quality, QualityReason]:
     """Quality family and reason (OPC UA Good / Uncertain / Bad) of a channel's estimates.
 
     ``refused_in_a_row`` counts the channel's samples refused since it last applied one: from
@@ -54,18 +55,18 @@ def channel_quality(view: ChannelView, updated_at: float | None, now: float,
     """
     refusing = refused_in_a_row >= REFUSED_IN_A_ROW
     if view.applied == 0:
-        return "Bad", "samples_refused" if refusing else "no_data"
+        return Quality.BAD, QualityReason.SAMPLES_REFUSED if refusing else QualityReason.NO_DATA
     if not view.identifiable or not all(map(math.isfinite, view.parameters.tolist())):
-        return "Bad", "not_identifiable"
+        return Quality.BAD, QualityReason.NOT_IDENTIFIABLE
     if refusing:
-        return "Uncertain", "samples_refused"
+        return Quality.UNCERTAIN, QualityReason.SAMPLES_REFUSED
     if updated_at is not None and now - updated_at > stale_after:
-        return "Uncertain", "stale"
+        return Quality.UNCERTAIN, QualityReason.STALE
     if not view.dof >= 1.0:
-        return "Uncertain", "warming_up"
+        return Quality.UNCERTAIN, QualityReason.WARMING_UP
     if not view.information_condition <= CONDITION_LIMIT:
-        return "Uncertain", "low_excitation"
-    return "Good", ""
+        return Quality.UNCERTAIN, QualityReason.LOW_EXCITATION
+    return Quality.GOOD, QualityReason.NONE
 
 
 def _number(value: float | None) -> str:
@@ -92,12 +93,12 @@ class FragmentWriter:
                 f'"parameters": {{{members}}}, "std_errors": {{{members}}}, '
                 f'"noise_sigma": %s, "residual_sd": %s}}')
 
-    def write(self, view: ChannelView, quality: str, reason: str, updated_at: float | None) -> bytes:
+    def write(self, view: ChannelView, quality: Quality, reason: QualityReason, updated_at: float | None) -> bytes:
         template = self._templates.get(view.channel)
         if template is None:
             template = self._templates[view.channel] = self._template(view)
         n = len(view.terms)
-        if quality != "Bad":
+        if quality != Quality.BAD:
             estimates = [_number(v) for v in view.parameters.tolist() + view.std_errors.tolist()]
             residual_sd = _number(view.residual_sd)
         else:

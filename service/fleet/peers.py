@@ -20,11 +20,12 @@ from dataclasses import dataclass
 from typing import Any
 
 from service.config.settings import ConfigError, RwlsConfig
+from service.engine.quality import Quality, QualityReason
 from service.fleet.sharding import Shard, owner, parse_shard
 
 __all__ = ["Fleet", "PeerAnswer", "own_share"]
 
-UNREACHABLE = "replica_unreachable"
+UNREACHABLE = QualityReason.REPLICA_UNREACHABLE
 
 
 def own_share(config: RwlsConfig, hostname: str | None = None) -> tuple[RwlsConfig, Shard | None]:
@@ -109,7 +110,7 @@ class Fleet:
         return out
 
     def unreachable_entry(self, channel: str) -> dict[str, object]:
-        return {"quality": "Bad", "quality_reason": UNREACHABLE, "replica": self.owner(channel)}
+        return {"quality": Quality.BAD, "quality_reason": UNREACHABLE, "replica": self.owner(channel)}
 
     def snapshot(self, local: dict[str, Any], headers: Mapping[str, str]) -> dict[str, Any]:
         """The fleet snapshot: this replica's channels, every other replica's, Bad for the silent ones."""
