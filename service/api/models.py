@@ -130,14 +130,19 @@ class Commissioning(_Model):
     needed: int
 
 
-class ChannelListEntry(_Model):
-    id: str
+class _ChannelAtAGlance(_Model):
+    """What every view of a channel starts with: its quality, when it last moved, its counts."""
+
     quality: Quality
     quality_reason: QualityReason
-    updated_at: float | None
-    t: float | None
+    updated_at: float | None       # wall clock of the last applied sample
+    t: float | None                # that sample's own time
     samples: int
     rejected: int
+
+
+class ChannelListEntry(_ChannelAtAGlance):
+    id: str
     alarms: AlarmSummary
     commissioning: Commissioning | None
 
@@ -159,14 +164,10 @@ class BaselineState(_Model):
     note: str | None
 
 
-class ChannelDetail(_Model):
+class ChannelDetail(_ChannelAtAGlance):
     """One channel's full state (the fields of ``rwls replay --json`` plus identity, quality and alarms)."""
 
     id: str
-    quality: Quality
-    quality_reason: QualityReason
-    updated_at: float | None
-    t: float | None
     terms: list[str]
     parameters: dict[str, float | None]
     std_errors: dict[str, float | None]
@@ -175,8 +176,6 @@ class ChannelDetail(_Model):
     residual_sd: float | None
     residual_sd_scale: Literal["y", "weighted"]
     noise_sigma: float | None
-    samples: int
-    rejected: int
     rejections: dict[str, int]
     warmup: int
     forgetting_factor: float
@@ -212,17 +211,19 @@ class History(_Model):
     rows: list[HistoryRow]
 
 
-class SnapshotChannel(_Model):
-    quality: Quality
-    quality_reason: QualityReason
-    updated_at: float | None
-    t: float | None
-    samples: int
-    rejected: int
+class SnapshotChannel(_ChannelAtAGlance):
     parameters: dict[str, float | None]
     std_errors: dict[str, float | None]
     noise_sigma: float | None
     residual_sd: float | None
+
+
+class UnreachableChannel(_Model):
+    """A channel of a fleet replica that did not answer: Bad, ``replica_unreachable``, and which replica."""
+
+    quality: Quality
+    quality_reason: QualityReason
+    replica: int
 
 
 class ReplicaState(_Model):
@@ -236,7 +237,7 @@ class SnapshotDocument(_Model):
 
     version: int | None = None
     created_at: float | None
-    channels: dict[str, SnapshotChannel]
+    channels: dict[str, SnapshotChannel | UnreachableChannel]
     replicas: list[ReplicaState] | None = None
 
 
