@@ -12,7 +12,7 @@ from __future__ import annotations
 import json
 import time
 import urllib.request
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -26,6 +26,7 @@ from playwright.sync_api import expect
 from tests.auth_tokens import TOKENS, auth_section, bearer
 from tests.integration.mqtt_support import free_port, publish_and_wait, unique_client_id, unique_topic_prefix
 from tests.integration.service_process import ServiceProcess
+from tests.support.waits import wait_until
 
 pytestmark = [pytest.mark.browser, pytest.mark.integration]
 
@@ -76,8 +77,8 @@ def _feed(process: ServiceProcess, plants: dict[str, Plant], count: int) -> None
         messages = [m for plant in plants.values() for m in plant.messages(step)]
         publish_and_wait(plants[next(iter(plants))].broker, messages, qos=1, timeout=30.0)
         wanted = {name: plant.k for name, plant in plants.items()}
-        _wait(lambda wanted=wanted: all(c["samples"] >= wanted[c["id"]] for c in process.get("/api/v1/channels")
-                                        if c["id"] in wanted), 30.0, "samples were not applied")
+        wait_until(lambda wanted=wanted: all(c["samples"] >= wanted[c["id"]] for c in process.get("/api/v1/channels")
+                                             if c["id"] in wanted), 30.0, "the samples to be applied")
 
 
 @dataclass
@@ -129,18 +130,6 @@ def _detail(service: ServiceProcess, channel: str) -> Any:
     return service.get(f"/api/v1/channels/{channel}")
 
 
-def _wait(condition: Callable[[], bool], timeout: float, what: str) -> None:
-    """Poll ``condition`` until it holds, failing with ``what`` after ``timeout`` seconds."""
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        try:
-            if condition():
-                return
-        except OSError:
-            pass
-        time.sleep(0.1)
-    raise AssertionError(what)
-
 
 def _alarm(service: ServiceProcess, channel: str, kind: str = "offset") -> dict[str, Any]:
     alarms = service.get(f"/api/v1/alarms?channel={channel}&include_normal=true")["alarms"]
@@ -150,7 +139,8 @@ def _alarm(service: ServiceProcess, channel: str, kind: str = "offset") -> dict[
 def _raise_offset(site: Site, channel: str) -> dict[str, Any]:
     """A 30-sigma step on ``channel``'s meter; returns its offset alarm once Unacknowledged."""
     site.plants[channel].publish(30, offset=3.0)
-    _wait(lambda: _alarm(site.process, channel)["state"] == "Unacknowledged", 20.0, f"no offset alarm on {channel}")
+    wait_until(lambda: _alarm(site.process, channel)["state"] == "Unacknowledged", 20.0,
+               f"an offset alarm on {channel}")
     return _alarm(site.process, channel)
 
 

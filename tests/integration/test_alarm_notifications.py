@@ -17,6 +17,7 @@ import pytest
 from service.config.settings import RwlsConfig, parse_config
 from service.runtime import Runtime
 from tests.integration.mqtt_support import Collector, publish_and_wait
+from tests.support.waits import eventually
 
 pytestmark = pytest.mark.integration
 
@@ -98,14 +99,6 @@ def _run(config: RwlsConfig) -> Runtime:
     return runtime
 
 
-def _wait(condition: Callable[[], bool], timeout: float = 15.0) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if condition():
-            return True
-        time.sleep(0.05)
-    return condition()
-
 
 def test_retained_states_reach_a_late_subscriber_and_events_and_webhooks_get_every_transition(
         mqtt_broker: Any, unique_prefix: str, client_id: Callable[[str], str], tmp_path: Path,
@@ -120,10 +113,10 @@ def test_retained_states_reach_a_late_subscriber_and_events_and_webhooks_get_eve
             already = len(runtime.alarms.journal)          # commissioning suppressions, made at start
             publish_and_wait(mqtt_broker, _messages(unique_prefix, 0, 100), qos=1, timeout=30.0)
             publish_and_wait(mqtt_broker, _messages(unique_prefix, 100, 15, offset=1.0), qos=1, timeout=30.0)
-            assert _wait(lambda: runtime.alarms.get("dp:offset").state == "Unacknowledged")
+            assert eventually(lambda: runtime.alarms.get("dp:offset").state == "Unacknowledged", 15.0)
             journal = list(runtime.alarms.journal)
             got = events.wait_for(len(journal) - already, timeout=15.0)
-            assert _wait(lambda: len(hook.received) >= len(journal))
+            assert eventually(lambda: len(hook.received) >= len(journal), 15.0)
         # Every transition, in order, as an MQTT event (since subscribing) and as a webhook POST (all).
         assert [json.loads(m.payload)["entry"]["seq"] for m in got] == [e.seq for e in journal[already:]]
         assert [r["entry"]["seq"] for r in hook.received] == [e.seq for e in journal]
@@ -159,7 +152,7 @@ def test_a_stalled_webhook_receiver_does_not_hold_up_ingest(
         publish_and_wait(mqtt_broker, _messages(unique_prefix, 0, 100), qos=1, timeout=30.0)
         publish_and_wait(mqtt_broker, _messages(unique_prefix, 100, 300, offset=1.0), qos=1, timeout=30.0)
         # Every sample is applied and the alarm raised while the receivers still hold everything back.
-        assert _wait(lambda: runtime.engine.stats.samples_applied >= 400)
+        assert eventually(lambda: runtime.engine.stats.samples_applied >= 400, 15.0)
         assert runtime.alarms.get("dp:offset").state == "Unacknowledged"
         stats = runtime.webhooks.stats
         assert stats[hook.url].delivered == 0 and hook.received == []

@@ -12,7 +12,6 @@ import shutil
 import ssl
 import subprocess
 import threading
-import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -26,6 +25,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 from service.config.settings import RwlsConfig, parse_config
 from service.runtime import Runtime
 from tests.integration.mqtt_support import LOOPBACK
+from tests.support.waits import eventually
 
 pytestmark = pytest.mark.integration
 
@@ -93,14 +93,6 @@ def _publish_tls(broker: Any, files: TlsFiles, topic: str, payloads: list[bytes]
         publisher.loop_stop()
 
 
-def _wait(condition: Callable[[], bool], timeout: float) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if condition():
-            return True
-        time.sleep(0.05)
-    return condition()
-
 
 @pytest.mark.parametrize("ingest", ["process", "thread"])
 def test_samples_arrive_over_tls_with_password_and_client_certificate(
@@ -114,7 +106,8 @@ def test_samples_arrive_over_tls_with_password_and_client_certificate(
         payloads = [json.dumps({"t": 1000.0 + k, "y": 1.0 + 0.5 * (k % 7), "u": {"u": float(k % 7)},
                                 "seq": k}).encode() for k in range(50)]
         _publish_tls(broker, files, f"{unique_prefix}/dp", payloads, client_id("pub"))
-        assert _wait(lambda: runtime.engine.stats.samples_applied + runtime.engine.stats.samples_warmup == 50, 20.0)
+        engine = runtime.engine
+        assert eventually(lambda: engine.stats.samples_applied + engine.stats.samples_warmup == 50, 20.0)
         view = runtime.engine.bank.view()["dp"]
         assert [round(float(v), 9) for v in view.parameters] == [1.0, 0.5]     # y = 1 + 0.5 u exactly
     finally:

@@ -8,7 +8,6 @@ import re
 import subprocess
 import sys
 import threading
-import time
 import tomllib
 import urllib.request
 from collections.abc import Iterator
@@ -19,6 +18,7 @@ from typing import Any
 import pytest
 
 from service.demo.run import DEMO_CHANNELS_TOML
+from tests.support.waits import wait_until
 
 pytestmark = pytest.mark.integration
 
@@ -75,19 +75,6 @@ def _demo(data_dir: Path) -> Iterator[_Demo]:
             process.stdout.close()
 
 
-def _poll(condition: Any, timeout: float, what: str) -> Any:
-    """``condition()`` until it returns something truthy (OSError: not listening yet), bounded by ``timeout``."""
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        try:
-            value = condition()
-        except OSError:
-            value = None
-        if value:
-            return value
-        time.sleep(0.1)
-    raise AssertionError(f"timed out after {timeout} s waiting for {what}")
-
 
 def _assert_moving(url: str, more_than: dict[str, int]) -> dict[str, int]:
     """Every demo channel gains samples past ``more_than`` and its parameters change; returns the counts."""
@@ -98,7 +85,7 @@ def _assert_moving(url: str, more_than: dict[str, int]) -> dict[str, int]:
             return _get(f"{url}/api/v1/snapshot")
         return None
 
-    first = _poll(filled, 30.0, "the demo channels to fill with new samples")
+    first = wait_until(filled, 30.0, "the demo channels to fill with new samples")
 
     def moved() -> dict[str, Any] | None:
         later = _get(f"{url}/api/v1/snapshot")
@@ -106,7 +93,7 @@ def _assert_moving(url: str, more_than: dict[str, int]) -> dict[str, int]:
                    if later["channels"][cid]["parameters"] != first["channels"][cid]["parameters"]}
         return later if changed == CHANNELS else None
 
-    second = _poll(moved, 20.0, "the parameters of every demo channel to move")
+    second = wait_until(moved, 20.0, "the parameters of every demo channel to move")
     for cid in CHANNELS:
         assert second["channels"][cid]["quality"] != "Bad", cid
         assert second["channels"][cid]["quality_reason"] != "samples_refused", cid
@@ -131,7 +118,7 @@ def test_demo_moves_on_its_first_and_its_second_run_and_starts_quietly(tmp_path:
     # The same data directory again: the state is recovered and the plant carries on after it.
     with _demo(data_dir) as again:
         url = again.wait_url(20.0)
-        listed = _poll(lambda: _get(f"{url}/api/v1/channels"), 20.0, "the service to answer")
+        listed = wait_until(lambda: _get(f"{url}/api/v1/channels"), 20.0, "the service to answer")
         recovered = {c["id"]: c["samples"] for c in listed}
         assert all(recovered[cid] >= counts[cid] for cid in CHANNELS), (recovered, counts)
         _assert_moving(url, recovered)

@@ -20,6 +20,7 @@ import pytest
 from service.fleet.sharding import owner
 from tests.integration.mqtt_support import free_port, publish_and_wait
 from tests.integration.service_process import ServiceProcess
+from tests.support.waits import wait_until
 
 pytestmark = pytest.mark.integration
 
@@ -38,18 +39,6 @@ def _samples(prefix: str, start: int, count: int) -> list[tuple[str, bytes]]:
                     "u": {"u": u}, "seq": k}
             out.append((f"{prefix}/{cid}", json.dumps(body).encode()))
     return out
-
-
-def _wait(condition: Callable[[], bool], timeout: float, what: str) -> float:
-    started = time.monotonic()
-    while time.monotonic() - started < timeout:
-        try:
-            if condition():
-                return time.monotonic() - started
-        except OSError:
-            pass
-        time.sleep(0.1)
-    raise AssertionError(what)
 
 
 def test_three_replicas_share_the_channels_survive_a_kill_and_lose_nothing(
@@ -84,8 +73,9 @@ def test_three_replicas_share_the_channels_survive_a_kill_and_lose_nothing(
 
         publish_and_wait(mqtt_broker, _samples(unique_prefix, 0, FIRST), qos=1, timeout=30.0)
         started = time.monotonic()
-        _wait(lambda: all(e.get("samples") == FIRST for e in replicas[0].get("/api/v1/snapshot")["channels"].values()),
-              30.0, "the fleet did not apply the first samples")
+        wait_until(lambda: all(e.get("samples") == FIRST
+                               for e in replicas[0].get("/api/v1/snapshot")["channels"].values()),
+                   30.0, "the fleet to apply the first samples")
         first_seconds = time.monotonic() - started
 
         # Reads through any replica agree, for every channel (proxied to the owner).
@@ -116,9 +106,9 @@ def test_three_replicas_share_the_channels_survive_a_kill_and_lose_nothing(
         publish_and_wait(mqtt_broker, _samples(unique_prefix, FIRST, SECOND), qos=1, timeout=30.0)
         restarted = time.monotonic()
         victim.start()
-        _wait(lambda: all(e.get("samples") == FIRST + SECOND
-                          for e in replicas[0].get("/api/v1/snapshot")["channels"].values()),
-              60.0, "the restarted replica did not catch up")
+        wait_until(lambda: all(e.get("samples") == FIRST + SECOND
+                               for e in replicas[0].get("/api/v1/snapshot")["channels"].values()),
+                   60.0, "the restarted replica to catch up")
         recovery = time.monotonic() - restarted               # process start, recovery, the broker's backlog
         assert [x["reachable"] for x in replicas[1].get("/api/v1/snapshot")["replicas"]] == [True, True, True]
         stats = victim.get("/api/v1/channels?scope=local")
