@@ -36,7 +36,7 @@ from service.api.errors import validation_problems
 from service.api.guard import add_guards
 from service.broker_link.payload import decode_payload
 from service.engine.channel_report import channel_report, finite_or_null
-from service.engine.quality import Quality
+from service.engine.quality import Quality, estimates_shown
 from service.engine.snapshot import ChannelEntry, Snapshot
 from service.runtime import Runtime
 
@@ -83,7 +83,7 @@ def _summary(cid: str, entry: ChannelEntry, alarms: list[Alarm]) -> dict[str, ob
 
 def _detail(entry: ChannelEntry, cid: str, alarms: list[Alarm]) -> dict[str, object]:
     report = channel_report(entry.view)
-    if entry.quality == Quality.BAD:
+    if not estimates_shown(entry.quality):
         # Estimates of a Bad channel are not for use: null them rather than show numbers.
         report["parameters"] = dict.fromkeys(report["parameters"])
         report["std_errors"] = dict.fromkeys(report["std_errors"])

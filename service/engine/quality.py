@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from enum import StrEnum
 
-__all__ = ["Quality", "QualityReason"]
+__all__ = ["Quality", "QualityReason", "estimates_shown"]
 
 
 class Quality(StrEnum):
@@ -26,3 +26,9 @@ class QualityReason(StrEnum):
     WARMING_UP = "warming_up"                  # Uncertain: too few samples for a standard error
     LOW_EXCITATION = "low_excitation"          # Uncertain: the inputs barely vary
     REPLICA_UNREACHABLE = "replica_unreachable"  # Bad: the replica owning it does not answer (fleet)
+
+
+def estimates_shown(quality: Quality) -> bool:
+    """Whether readers see a channel's estimates: a Bad channel's are not for use, so they read as null
+    (the one rule behind ``/snapshot`` fragments and a channel's detail alike)."""
+    return quality != Quality.BAD

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 from estimator import CONDITION_LIMIT, ChannelView
 from service.alarms.lifecycle import Alarm
-from service.engine.quality import Quality, QualityReason
+from service.engine.quality import Quality, QualityReason, estimates_shown
 
 __all__ = ["CONDITION_LIMIT", "REFUSED_IN_A_ROW", "ChannelEntry", "FragmentWriter", "Snapshot", "channel_quality"]
 
@@ -98,7 +98,7 @@ class FragmentWriter:
         if template is None:
             template = self._templates[view.channel] = self._template(view)
         n = len(view.terms)
-        if quality != Quality.BAD:
+        if estimates_shown(quality):
             estimates = [_number(v) for v in view.parameters.tolist() + view.std_errors.tolist()]
             residual_sd = _number(view.residual_sd)
         else:
