@@ -13,7 +13,7 @@ import asyncio
 import json
 import math
 import time
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Callable
 from typing import Literal
 
 from fastapi import Depends, FastAPI, Query, Request
@@ -136,34 +136,25 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
         entries = runtime.journal(after, limit, channel)
         return {"entries": entries, "next": entries[-1]["seq"] if entries else after}
 
-    @app.post("/api/v1/alarms/{alarm_id}/ack", summary="Acknowledge an alarm",
-              response_model=models.AlarmAction, responses=ACTION_ERRORS)
-    def acknowledge(alarm_id: str, body: AckBody,
-                    who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action(Acknowledge, alarm_id, body, who)
+    def plain_action(action: type[Acknowledge | Unshelve | Remove | Restore]) \
+            -> Callable[[str, AckBody, Principal], dict[str, object] | JSONResponse]:
+        def route(alarm_id: str, body: AckBody, who: Principal = operator) -> dict[str, object] | JSONResponse:
+            return alarm_action(action, alarm_id, body, who)
+        route.__name__ = action.name
+        return route
+
+    # The actions that take only a user and a comment: one route each, the same handler.
+    for path, action, summary in (("ack", Acknowledge, "Acknowledge an alarm"),
+                                  ("unshelve", Unshelve, "End an alarm's shelving"),
+                                  ("remove", Remove, "Take an alarm out of service"),
+                                  ("restore", Restore, "Return an alarm to service")):
+        app.add_api_route(f"/api/v1/alarms/{{alarm_id}}/{path}", plain_action(action), methods=["POST"],
+                          summary=summary, response_model=models.AlarmAction, responses=ACTION_ERRORS)
 
     @app.post("/api/v1/alarms/{alarm_id}/shelve", summary="Shelve an alarm for some minutes",
               response_model=models.AlarmAction, responses=ACTION_ERRORS)
     def shelve(alarm_id: str, body: ShelveBody, who: Principal = operator) -> dict[str, object] | JSONResponse:
         return alarm_action(Shelve, alarm_id, body, who, until=time.time() + 60.0 * body.minutes)
-
-    @app.post("/api/v1/alarms/{alarm_id}/unshelve", summary="End an alarm's shelving",
-              response_model=models.AlarmAction, responses=ACTION_ERRORS)
-    def unshelve(alarm_id: str, body: AckBody,
-                 who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action(Unshelve, alarm_id, body, who)
-
-    @app.post("/api/v1/alarms/{alarm_id}/remove", summary="Take an alarm out of service",
-              response_model=models.AlarmAction, responses=ACTION_ERRORS)
-    def remove(alarm_id: str, body: AckBody,
-               who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action(Remove, alarm_id, body, who)
-
-    @app.post("/api/v1/alarms/{alarm_id}/restore", summary="Return an alarm to service",
-              response_model=models.AlarmAction, responses=ACTION_ERRORS)
-    def restore(alarm_id: str, body: AckBody,
-                who: Principal = operator) -> dict[str, object] | JSONResponse:
-        return alarm_action(Restore, alarm_id, body, who)
 
     @app.get("/api/v1/channels/{channel_id}/baselines", dependencies=read,
              summary="Every baseline of a channel, oldest first",
