@@ -15,6 +15,7 @@ import signal
 import threading
 import time
 from collections import Counter
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import IO
 
@@ -27,8 +28,10 @@ from service.broker_link.messages import DeadLetter, Message
 from service.broker_link.mqtt_client import BrokerSettings, MqttIngest
 from service.broker_link.payload import DecodedSample, Rejection
 from service.config.settings import RwlsConfig
+from service.engine.intake import Intake
 from service.engine.log_throttle import LogThrottle
 from service.engine.operations import Inspect
+from service.engine.publisher import PublishHook
 from service.engine.writer import Engine
 from service.fleet.peers import Fleet, own_share
 from service.storage.input_log import InputLog
@@ -100,13 +103,11 @@ class Runtime:
         if config.alarms.webhooks:
             self.alarms.listen(self.webhooks)
         self.alarms.listen(self.events)
-        self.engine = Engine(
-            config.channel_settings(),
-            queue_size=config.engine.queue_size, max_batch=config.engine.max_batch,
-            max_wait=config.engine.max_wait_ms / 1000.0, max_payload_bytes=config.broker.max_payload_bytes,
-            snapshot_interval=config.engine.snapshot_interval_ms / 1000.0, dead_letter=self._dead_letter,
-            stale_after=config.alarms.stale_after, alarms=self.alarms, prepare=config.apply_baselines,
-            acknowledge=self._acknowledge)
+        # Producers may queue work before start(); the engine, built complete in start() (under the lock,
+        # once the store is open), takes it from there.
+        self.intake = Intake(maxsize=config.engine.queue_size)
+        self.channels = config.channel_settings()            # the channels this replica runs: id -> settings
+        self._engine: Engine | None = None
         ingest_kind = ProcessIngest if config.broker.ingest == "process" else MqttIngest
         settings = broker_settings(config, manual_ack=config.store.durable)
         self.ingest = ingest_kind(settings, self.topics, self._from_mqtt) if mqtt else None
@@ -120,12 +121,30 @@ class Runtime:
         self._http_refusals_lock = threading.Lock()
         self._refusal_log = LogThrottle(log)            # a flood of bad input is counted, not logged line by line
 
+    @property
+    def engine(self) -> Engine:
+        """The single writer; it exists once :meth:`start` has run."""
+        if self._engine is None:
+            raise RuntimeError("the service has not started: Runtime.start() builds the engine")
+        return self._engine
+
+    @property
+    def started(self) -> bool:
+        """:meth:`start` has built the engine."""
+        return self._engine is not None
+
+    def engine_alive(self) -> bool:
+        """The engine exists and its thread runs."""
+        return self._engine is not None and self._engine.alive()
+
     # ------------------------------------------------------------- lifecycle
     def start(self) -> None:
-        """Lock the data directory, recover the state, start the engine, then ingest."""
+        """Lock the data directory, open the store, build the engine and recover its state, then ingest."""
         self._take_lock()
         if self.config.store.durable:
             self._open_persistence()
+        else:
+            self._engine = self._build_engine()
         # Everything built so far (modules, configuration, the bank) lives as long as the process:
         # out of the collector's way, a full collection no longer walks it and stalls the engine
         # (measured: 150 ms pauses at 5,000 samples/s, the whole latency tail).
@@ -149,22 +168,34 @@ class Runtime:
         persistence = Persistence(store, input_log, checkpoint_seconds=store_config.checkpoint_seconds,
                                   history_step=store_config.history_step,
                                   history_retention=store_config.history_retention_days * 86400.0)
-        self.engine.log = input_log
-        self.engine.position = 0                      # no checkpoint: every record of the log applies
-        self.recovery = persistence.recover(self.engine)
+        self._engine = self._build_engine(input_log, periodic=[persistence.periodic],
+                                          publish_hooks=[persistence.note])
+        self.recovery = persistence.recover(self._engine)
         log.info("recovered: checkpoint %s at input %s, %s inputs replayed, channels afresh: %s",
                  self.recovery["checkpoint"], self.recovery["position"], self.recovery["replayed"],
                  self.recovery["fresh_channels"] or "none")
-        self.engine.periodic.append(lambda: persistence.periodic(self.engine))
-        self.engine.publish_hooks.append(persistence.note)
         self.persistence = persistence
+
+    def _build_engine(self, input_log: InputLog | None = None, *,
+                      periodic: Sequence[Callable[[Engine], None]] = (),
+                      publish_hooks: Sequence[PublishHook] = ()) -> Engine:
+        config = self.config
+        return Engine(
+            self.channels,
+            queue_size=config.engine.queue_size, max_batch=config.engine.max_batch,
+            max_wait=config.engine.max_wait_ms / 1000.0, max_payload_bytes=config.broker.max_payload_bytes,
+            snapshot_interval=config.engine.snapshot_interval_ms / 1000.0, dead_letter=self._dead_letter,
+            stale_after=config.alarms.stale_after, alarms=self.alarms, prepare=config.apply_baselines,
+            input_log=input_log, acknowledge=self._acknowledge, intake=self.intake, periodic=periodic,
+            publish_hooks=publish_hooks)
 
     def stop(self) -> None:
         """Stop ingest first (nothing new arrives), let the engine apply what is queued, checkpoint."""
         self.events.close()
         if self.ingest is not None:
             self.ingest.stop()
-        self.engine.stop()
+        if self._engine is not None:
+            self._engine.stop()
         self.webhooks.stop()
         if self.fleet is not None:
             self.fleet.close()
@@ -220,12 +251,12 @@ class Runtime:
     # ------------------------------------------------------------- handovers
     def _from_mqtt(self, message: Message) -> bool:
         # Blocks while the engine queue is full: back-pressure onto the broker.
-        return self.engine.submit(message, timeout=None)
+        return self.intake.offer(message, timeout=None)
 
     def submit_http(self, channel: str | None, payload: bytes,
                     decoded: tuple[list[DecodedSample], list[Rejection]] | None = None) -> bool:
         """Queue an HTTP-posted payload (and its decoding, if done) without waiting; False when full."""
-        return self.engine.submit(Message(channel, payload, "http", decoded=decoded), timeout=0.0)
+        return self.intake.offer(Message(channel, payload, "http", decoded=decoded), timeout=0.0)
 
     def refuse_http(self, reason: str) -> None:
         """Count an HTTP request refused before the engine saw it."""
@@ -236,7 +267,8 @@ class Runtime:
         """Refusals by reason: the engine's and the HTTP handlers' together."""
         with self._http_refusals_lock:
             total = Counter(self._http_refusals)
-        total.update(self.engine.stats.rejected)
+        if self._engine is not None:
+            total.update(self._engine.stats.rejected)
         return dict(total)
 
     def _publish(self, topic: str, payload: bytes, retain: bool) -> None:
@@ -254,8 +286,9 @@ class Runtime:
     # ----------------------------------------------------------------- status
     def readiness(self) -> dict[str, object]:
         """What ``/ready`` reports; ``ready`` is True when every part is up."""
-        engine_alive = self.engine.alive()
-        depth = self.engine.queue_depth
+        engine = self._engine
+        engine_alive = self.engine_alive()
+        depth = self.intake.qsize()
         broker = None if self.ingest is None else {
             "connected": self.ingest.connected, "subscribed": self.ingest.subscribed,
             "thread_alive": self.ingest.alive(), "protocol": self.ingest.protocol,
@@ -267,6 +300,7 @@ class Runtime:
         return {"ready": bool(engine_alive and broker_ok and depth < self.config.engine.queue_size),
                 "engine_alive": engine_alive, "queue_depth": depth,
                 "queue_capacity": self.config.engine.queue_size, "broker": broker,
-                "snapshot_age_seconds": max(0.0, time.time() - self.engine.snapshot.created_at),
+                "snapshot_age_seconds": (None if engine is None
+                                         else max(0.0, time.time() - engine.snapshot.created_at)),
                 "checkpoint_age_seconds": checkpoint_age,
-                "input_log_position": self.engine.position}
+                "input_log_position": 0 if engine is None else engine.position}

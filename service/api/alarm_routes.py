@@ -98,7 +98,7 @@ ACTION_ERRORS = models.errors(400, 401, 403, 404, 409, 413, 422, 503)
 
 def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
     """Register the alarm, baseline, reset and event-stream routes (reads, operate and configure checks)."""
-    known_alarms = frozenset(alarm.id for alarm in runtime.engine.snapshot.alarms)    # fixed by the configuration
+    known_alarms = frozenset(alarm.id for alarm in runtime.alarms.alarms())    # fixed by the configuration
     read = [Depends(access.needs("read"))]
     operator = Depends(access.needs("operate"))
     engineer = Depends(access.needs("configure"))
@@ -205,7 +205,7 @@ def add_alarm_routes(app: FastAPI, runtime: Runtime, access: Access) -> None:
               responses=ACTION_ERRORS,
               summary="Start the channel's estimator afresh (commissioning again; history kept)")
     def reset(channel_id: str, body: AckBody, who: Principal = engineer) -> dict[str, object] | JSONResponse:
-        if channel_id not in runtime.engine.bank:
+        if channel_id not in runtime.channels:
             return JSONResponse({"detail": "unknown channel"}, status_code=404)
 
         try:

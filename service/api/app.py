@@ -38,6 +38,7 @@ from service.broker_link.payload import decode_payload
 from service.engine.channel_report import channel_report, finite_or_null
 from service.engine.quality import Quality, estimates_shown
 from service.engine.snapshot import ChannelEntry, Snapshot
+from service.engine.writer import EngineStats
 from service.runtime import Runtime
 
 __all__ = ["ADVISORY", "create_app"]
@@ -102,8 +103,9 @@ class _EngineCollector(Collector):
         self._runtime = runtime
 
     def collect(self) -> Any:
-        engine, ingest = self._runtime.engine, self._runtime.ingest
-        stats = engine.stats
+        runtime, ingest = self._runtime, self._runtime.ingest
+        engine = runtime.engine if runtime.started else None          # None while the service starts
+        stats = engine.stats if engine is not None else EngineStats()
         yield CounterMetricFamily("rwls_messages", "Messages taken from the ingest queue", value=stats.messages)
         yield CounterMetricFamily("rwls_samples_applied", "Samples applied to an estimator",
                                   value=stats.samples_applied)
@@ -117,7 +119,7 @@ class _EngineCollector(Collector):
         yield rejections
         yield CounterMetricFamily("rwls_dead_letter_failures", "Dead letters the broker did not take",
                                   value=stats.dead_letter_failures)
-        yield GaugeMetricFamily("rwls_queue_depth", "Messages waiting for the engine", value=engine.queue_depth)
+        yield GaugeMetricFamily("rwls_queue_depth", "Messages waiting for the engine", value=runtime.intake.qsize())
         yield CounterMetricFamily("rwls_batches", "Micro-batches applied", value=stats.batches)
         yield CounterMetricFamily("rwls_batch_seconds", "Time spent applying micro-batches",
                                   value=stats.batch_seconds_total)
@@ -125,7 +127,7 @@ class _EngineCollector(Collector):
                                 value=stats.last_batch_seconds)
         quality = GaugeMetricFamily("rwls_channels", "Channels by quality", labels=["quality"])
         counts = dict.fromkeys(Quality, 0)
-        for entry in engine.snapshot.channels.values():
+        for entry in engine.snapshot.channels.values() if engine is not None else ():
             counts[entry.quality] += 1
         for name, count in counts.items():
             quality.add_metric([name], count)
@@ -280,7 +282,8 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
               summary="Ingest samples over HTTP (the MQTT payload contract, same validation)")
     async def post_samples(channel_id: str, request: Request,
                            _who: Principal = source) -> dict[str, object] | JSONResponse:
-        if channel_id not in runtime.engine.bank:
+        settings = runtime.channels.get(channel_id)
+        if settings is None:
             runtime.refuse_http("unknown_channel")
             return not_found("unknown channel")
         declared = request.headers.get("content-length")
@@ -294,7 +297,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             if len(body) > max_payload:
                 runtime.refuse_http("too_large")
                 return JSONResponse({"detail": "payload too large"}, status_code=413)
-        inputs = runtime.engine.bank.settings(channel_id).input_names
+        inputs = settings.input_names
         decoded, rejections = decode_payload(body, max_bytes=max_payload, input_names=inputs)
         if not decoded and rejections and rejections[0].index is None:
             # Refused as a whole: the client hears why; nothing for the engine to do.
@@ -308,7 +311,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     @app.get("/api/v1/health", summary="Liveness: the engine thread runs", response_model=models.Health,
              responses=models.errors(503))
     def health() -> dict[str, object] | JSONResponse:
-        ok = runtime.engine.alive() and (runtime.ingest is None or runtime.ingest.alive())
+        ok = runtime.engine_alive() and (runtime.ingest is None or runtime.ingest.alive())
         return {"status": "ok"} if ok else JSONResponse({"detail": "engine or ingest thread down"}, 503)
 
     @app.get("/api/v1/ready", summary="Readiness: broker connected, engine alive, queue not full",

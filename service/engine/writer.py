@@ -29,15 +29,18 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol, TypeVar
 
-from estimator import ChannelBank, ChannelSettings, ChannelView, SampleColumns
+from estimator import ChannelBank, ChannelSettings, SampleColumns
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import Alarm, AlarmBook, JournalEntry
 from service.broker_link.messages import DeadLetter, Message
 from service.broker_link.payload import decode_payload
 from service.broker_link.payload_columns import decode_columns
 from service.broker_link.redelivery import RecentlyLogged
+from service.engine.activity import ChannelActivity
+from service.engine.intake import Command, Intake
 from service.engine.operations import Operation, operation_record
-from service.engine.snapshot import ChannelEntry, FragmentWriter, Snapshot, channel_quality
+from service.engine.publisher import PublishHook, SnapshotPublisher
+from service.engine.snapshot import Snapshot
 
 __all__ = ["Command", "Engine", "EngineBusy", "EngineStats", "InputRecorder"]
 
@@ -103,14 +106,6 @@ class EngineBusy(RuntimeError):
     """The engine could not take or finish a command in time."""
 
 
-@dataclass(frozen=True)
-class Command:
-    """An operation queued for the engine thread (the single writer), with a future for its result."""
-
-    operation: Operation[object]
-    future: concurrent.futures.Future[object]
-
-
 class Engine:
     """Owns the ChannelBank; applies queued messages in micro-batches on its own thread.
 
@@ -129,6 +124,10 @@ class Engine:
     prepare : called with the new bank before anything else (configured baselines)
     input_log : every message and operation is written and synced here before it applies (recovery)
     acknowledge : called with ``(connection, message id)`` of MQTT messages once they are in the synced log
+    intake : the queue to take work from, when producers need it before the engine exists (else one of
+        ``queue_size``)
+    periodic : jobs the engine thread runs about once a second with the engine (checkpoints)
+    publish_hooks : called with the refreshed entries after each snapshot (history rows)
     """
 
     def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
@@ -137,60 +136,47 @@ class Engine:
                  snapshot_interval: float = 0.002, clock: Callable[[], float] = time.time,
                  alarms: AlarmBook | None = None, prepare: Callable[[ChannelBank], None] | None = None,
                  input_log: InputRecorder | None = None,
-                 acknowledge: Callable[[list[tuple[int, int]]], None] | None = None) -> None:
+                 acknowledge: Callable[[list[tuple[int, int]]], None] | None = None,
+                 intake: Intake | None = None,
+                 periodic: Sequence[Callable[[Engine], None]] = (),
+                 publish_hooks: Sequence[PublishHook] = ()) -> None:
         self.bank = ChannelBank(channels)
         self.log = input_log
-        self.acknowledge = acknowledge
         self.position = 0                                     # last input-log seq applied
         self.recently_logged = RecentlyLogged()                # MQTT messages logged lately (redeliveries)
-        self.periodic: list[Callable[[], None]] = []         # run by the engine thread about once a second
-        # Called with the refreshed entries after each snapshot (history).
-        self.publish_hooks: list[Callable[[dict[str, ChannelEntry], float], None]] = []
         if prepare is not None:
             prepare(self.bank)                 # e.g. baselines from the configuration, before the first snapshot
         self.alarms = alarms
         self._feed = AlarmFeed(alarms, stale_after) if alarms is not None else None
-        self._alarms_changed = alarms is not None
-        if alarms is not None:
-            alarms.listen(self._on_transition)
         self.bank.take_events()                # the configured baselines: in force from the start, not news
         if self._feed is not None:
             self._feed.hold_uncommissioned({c: self.bank.baseline_version(c) is not None
                                             for c in self.bank.channel_ids}, clock())
+        self._acknowledge = acknowledge
+        self._periodic = tuple(periodic)
         self._inputs = {cid: tuple(s.input_names) for cid, s in channels.items()}
-        self._queue: queue.Queue[Message | None] = queue.Queue(maxsize=queue_size)
+        self._queue = intake if intake is not None else Intake(maxsize=queue_size)
         self._max_batch = max_batch
         self._max_wait = max_wait
         self._max_payload = max_payload_bytes
         self._dead_letter = dead_letter
-        self._stale_after = stale_after
-        self._snapshot_interval = snapshot_interval
-        self._pending: set[str] = set()          # channels changed since the last snapshot
-        self._last_publish = 0.0
         self._clock = clock
-        self.updated_at: dict[str, float] = {}
-        # Per channel: samples refused since it last applied one, and the newest refusal's reason (quality).
-        self.refused_in_a_row: dict[str, int] = {}
-        self.last_refusal: dict[str, str] = {}
-        self._fragments = FragmentWriter()
+        self.activity = ChannelActivity()
         self.stats = EngineStats()
         self._thread: threading.Thread | None = None
         self._stopping = threading.Event()
         self._heartbeat = time.monotonic()
         self._last_refresh = time.monotonic()
-        now = clock()
-        entries = self._entries(self.bank.view(), now)
-        self._snapshot = Snapshot(0, now, entries, tuple(alarms.alarms()) if alarms is not None else ())
-        self._alarms_changed = False
+        self.publisher = SnapshotPublisher(self.bank, self.activity, stale_after=stale_after,
+                                           interval=snapshot_interval, clock=clock, alarms=alarms,
+                                           feed=self._feed, hooks=publish_hooks)
+        if alarms is not None:
+            alarms.listen(self._on_transition)      # after the first snapshot, which has every alarm already
 
     # ------------------------------------------------------------- producers
     def submit(self, message: Message, timeout: float | None = None) -> bool:
         """Queue a message; blocks up to ``timeout`` (None: until there is room). False if still full."""
-        try:
-            self._queue.put(message, timeout=timeout)
-        except queue.Full:
-            return False
-        return True
+        return self._queue.offer(message, timeout)
 
     def execute(self, operation: Operation[T], timeout: float = 10.0) -> T:
         """Run an operation (:mod:`service.engine.operations`) on the engine thread, in order with the samples
@@ -205,7 +191,7 @@ class Engine:
         """
         command = Command(operation, concurrent.futures.Future())
         try:
-            self._queue.put(command, timeout=timeout)  # type: ignore[arg-type]
+            self._queue.put(command, timeout=timeout)
         except queue.Full:
             raise EngineBusy("engine queue full") from None
         try:
@@ -214,11 +200,7 @@ class Engine:
             raise EngineBusy(f"engine did not answer within {timeout} s") from None
 
     def _on_transition(self, entry: JournalEntry, alarm: Alarm) -> None:
-        self._alarms_changed = True
-
-    def alarms_reloaded(self) -> None:
-        """The alarm book was loaded from a checkpoint: the next snapshot carries its alarms, not the old ones."""
-        self._alarms_changed = True
+        self.publisher.alarms_changed()
 
     def feed_state(self) -> dict[str, object]:
         """What the alarm feed remembers (for checkpoints)."""
@@ -226,22 +208,35 @@ class Engine:
             return {}
         return {"stale": dict(self._feed.stale), "unjudged": sorted(self._feed.unjudged)}
 
-    def load_feed_state(self, state: dict[str, object]) -> None:
+    def restore(self, *, position: int, stats: EngineStats, updated_at: Mapping[str, float],
+                feed: Mapping[str, object]) -> None:
+        """Take back what a checkpoint kept of the engine's own state (recovery, before the thread starts):
+        the input-log position applied, the counters, each channel's last applied time and the feed's memory.
+        The alarm book was loaded beside it: the next snapshot carries its alarms."""
+        self.position = position
+        self.stats = stats
+        known = set(self.bank.channel_ids)
+        self.activity.updated_at = {c: t for c, t in updated_at.items() if c in known}
         if self._feed is not None:
-            stale = state.get("stale", {})
-            unjudged = state.get("unjudged", [])
+            stale = feed.get("stale", {})
+            unjudged = feed.get("unjudged", [])
             self._feed.stale = {str(k): bool(v) for k, v in stale.items()} if isinstance(stale, dict) else {}
             self._feed.unjudged = {str(c) for c in unjudged} if isinstance(unjudged, list) else set()
+        self.publisher.alarms_changed()
+
+    def applied_through(self, position: int) -> None:
+        """Recovery applied the input log up to ``position`` (including records it skipped as done)."""
+        self.position = position
 
     def flush_now(self) -> None:
         """Take pending events and publish a snapshot now (after recovery, before the thread starts)."""
         self._take_events()
-        self._pending.update(self.bank.channel_ids)
-        self._flush()
+        self.publisher.touch_all()
+        self.publisher.flush()
 
     def touch(self, channel: str) -> None:
         """Mark a channel for the next snapshot (a command changed it)."""
-        self._pending.add(channel)
+        self.publisher.touch(channel)
 
     @property
     def queue_depth(self) -> int:
@@ -250,7 +245,12 @@ class Engine:
     @property
     def snapshot(self) -> Snapshot:
         """The latest snapshot (replaced, never mutated)."""
-        return self._snapshot
+        return self.publisher.snapshot
+
+    @property
+    def updated_at(self) -> dict[str, float]:
+        """Wall clock of each channel's last applied sample."""
+        return self.activity.updated_at
 
     # ------------------------------------------------------------- lifecycle
     def start(self) -> None:
@@ -289,7 +289,7 @@ class Engine:
             try:
                 first = self._queue.get(timeout=0.25)
             except queue.Empty:
-                self._flush()                         # left over from a batch under load
+                self.publisher.flush()                         # left over from a batch under load
                 if self._stopping.is_set():
                     return
                 self._tick()
@@ -309,7 +309,7 @@ class Engine:
                 self._execute(command)
             self._tick()
             if self._stopping.is_set() and self._queue.empty():
-                self._flush()
+                self.publisher.flush()
                 return
 
     def _collect(self, first: Message | Command | None) -> tuple[list[Message], Command | None]:
@@ -346,7 +346,7 @@ class Engine:
             command.future.set_exception(exc)
         finally:
             self._queue.task_done()
-        self._flush()
+        self.publisher.flush()
 
     def apply_operation(self, operation: Operation[T]) -> T:
         """Apply an operation now, not logged (the engine thread, or recovery before it starts)."""
@@ -363,26 +363,19 @@ class Engine:
         now = self._clock()
         if self.alarms is not None:
             self.alarms.expire(now)
-        self._refresh_quality()
-        self._flush()
-        for job in self.periodic:
+        self.publisher.refresh_quality()
+        for job in self._periodic:
             try:
-                job()
+                job(self)
             except Exception:              # a failing checkpoint must not stop the samples
                 log.exception("periodic job failed")
-
-    def _flush(self) -> None:
-        if self._pending or self._alarms_changed:
-            self._publish(sorted(self._pending))
-            self._pending.clear()
 
     def _refuse(self, message: Message, reason: str, detail: str, index: int | None) -> None:
         self.stats.reject(reason)
         cid = message.channel
         if cid is not None and cid in self.bank:
-            self.refused_in_a_row[cid] = self.refused_in_a_row.get(cid, 0) + 1
-            self.last_refusal[cid] = reason
-            self._pending.add(cid)
+            self.activity.refused(cid, reason)
+            self.publisher.touch(cid)
         if self._dead_letter is None:
             return
         letter = DeadLetter(reason, detail, message.channel, message.topic, message.source, index, message.payload)
@@ -437,9 +430,9 @@ class Engine:
             if m.source == "mqtt" and m.topic is not None:
                 self.recently_logged.add(m.topic, m.payload)
         acks = acks + [m.ack for m in batch if m.ack is not None]
-        if acks and self.acknowledge is not None:
+        if acks and self._acknowledge is not None:
             try:
-                self.acknowledge(acks)
+                self._acknowledge(acks)
             except Exception:            # the broker will redeliver; seq/t refuses the repeats
                 log.exception("acknowledgements not sent (%d)", len(acks))
         for m in batch:
@@ -478,70 +471,30 @@ class Engine:
                 columns[cid] = more
                 origins[cid] = _Origins(origin)
         for cid, outcome in self.bank.apply_columns(columns).items():
-            self._pending.add(cid)      # applied, warm-up or refused: its view changed either way
+            self.publisher.touch(cid)   # applied, warm-up or refused: its view changed either way
             self.stats.samples_applied += outcome.applied
             self.stats.samples_warmup += outcome.warmup
             where = origins[cid]
             if outcome.last_applied is not None:
-                self.updated_at[cid] = where.locate(outcome.last_applied)[0].received
-                self.refused_in_a_row[cid] = 0            # the refusals below, after it, count again
+                self.activity.updated_at[cid] = where.locate(outcome.last_applied)[0].received
+                self.activity.refused_in_a_row[cid] = 0            # the refusals below, after it, count again
             for position, reason in outcome.rejected:
                 message, index = where.locate(position)
                 self._refuse(message, reason, f"refused by channel {cid}", index)
             if outcome.last_applied is not None:
-                self.refused_in_a_row[cid] = sum(1 for position, _ in outcome.rejected
+                self.activity.refused_in_a_row[cid] = sum(1 for position, _ in outcome.rejected
                                                  if position > outcome.last_applied)
         self._take_events()
-        if self._queue.empty() or time.monotonic() - self._last_publish >= self._snapshot_interval:
-            self._flush()
+        self.publisher.flush_if_due(self._queue.empty())
         elapsed = time.perf_counter() - started
         self.stats.batches += 1
         self.stats.last_batch_seconds = elapsed
         self.stats.batch_seconds_total += elapsed
 
-    # ------------------------------------------------------------- snapshots
-    def _entries(self, views: Mapping[str, ChannelView], now: float) -> dict[str, ChannelEntry]:
-        entries = {}
-        for cid, view in views.items():
-            updated_at = self.updated_at.get(cid)
-            quality, reason = channel_quality(view, updated_at, now, self._stale_after,
-                                              self.refused_in_a_row.get(cid, 0))
-            entry = ChannelEntry(view, quality, reason, updated_at,
-                                 self._fragments.write(view, quality, reason, updated_at))
-            entries[cid] = entry
-            if self._feed is not None:
-                self._feed.judge_staleness(cid, reason == "stale", updated_at, view.last_t, now)
-        return entries
-
+    # ---------------------------------------------------------------- alarms
     def _take_events(self) -> None:
         """Detector events of the last batch (or command) into the alarm book."""
         events = self.bank.take_events()
         if events and self._feed is not None:
             channels = {e.channel for e in events}
             self._feed.take(events, self._clock(), {c: self.bank.baseline_version(c) for c in channels})
-
-    def _publish(self, channels: list[str]) -> None:
-        self._last_publish = time.monotonic()
-        now = self._clock()
-        entries = dict(self._snapshot.channels)
-        fresh = self._entries(self.bank.view(channels), now)
-        entries.update(fresh)
-        for hook in self.publish_hooks:
-            hook(fresh, now)
-        alarms = self._snapshot.alarms
-        if self._alarms_changed and self.alarms is not None:
-            self._alarms_changed = False
-            alarms = tuple(self.alarms.alarms())
-        self._snapshot = Snapshot(self._snapshot.version + 1, now, entries, alarms)
-
-    def _refresh_quality(self) -> None:
-        """Re-judge staleness while idle; publish only when some channel's quality changed."""
-        now = self._clock()
-        changed = []
-        for cid, entry in self._snapshot.channels.items():
-            quality, reason = channel_quality(entry.view, entry.updated_at, now, self._stale_after,
-                                              self.refused_in_a_row.get(cid, 0))
-            if (quality, reason) != (entry.quality, entry.quality_reason):
-                changed.append(cid)
-        if changed:
-            self._publish(changed)

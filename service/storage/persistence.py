@@ -105,6 +105,7 @@ class Persistence:
         # again with the next checkpoint if this one fails).
         self._history_writing: list[tuple[str, float, dict[str, Any]]] = []
         self._last_prune = 0.0
+        self._recovering = False
 
     # ------------------------------------------------------------ checkpoints
     def state(self, engine: Engine) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
@@ -188,16 +189,23 @@ class Persistence:
     def recover(self, engine: Engine) -> dict[str, Any]:
         """Load the newest good checkpoint and apply the input log after it (before the engine starts)."""
         report: dict[str, Any] = {"checkpoint": None, "position": 0, "replayed": 0, "fresh_channels": []}
+        self._recovering = True
+        try:
+            self._recover(engine, report)
+        finally:
+            self._recovering = False
+        return report
+
+    def _recover(self, engine: Engine, report: dict[str, Any]) -> None:
         for checkpoint in self.store.checkpoints():
             try:
                 arrays, meta = decode_checkpoint(checkpoint.body)
                 fresh = import_state(engine.bank, arrays, meta["bank"])
-                self._load_engine(engine, arrays, meta)
+                self._load_engine(engine, arrays, meta, checkpoint.position)
             except (CorruptCheckpoint, ValueError, KeyError) as exc:
                 log.warning("checkpoint %d unusable (%s): trying the one before", checkpoint.id, exc)
                 continue
             report.update(checkpoint=checkpoint.id, position=checkpoint.position, fresh_channels=fresh)
-            engine.position = checkpoint.position
             break
         batch: list[Message] = []
         # The whole kept log is read: records up to the checkpoint only teach the engine what it logged
@@ -224,28 +232,29 @@ class Persistence:
                     engine.apply_operation(operation_from_record(str(name), dict(args)))
                 except Exception as exc:          # refused then, refused again now: the same outcome
                     log.info("replayed operation %s refused again: %s", name, exc)
-            engine.position = seq
+            engine.applied_through(seq)
             report["replayed"] += 1
         if batch:
             engine.replay(batch)
         if report["checkpoint"] is not None or report["replayed"]:
             engine.flush_now()
-        return report
 
     @staticmethod
-    def _load_engine(engine: Engine, arrays: dict[str, np.ndarray], meta: dict[str, Any]) -> None:
-        engine.stats = EngineStats(**meta["engine"]["stats"])
-        known = set(engine.bank.channel_ids)
-        engine.updated_at = {c: float(t) for c, t in zip(meta["channels"], arrays["engine.updated_at"].tolist(),
-                                                          strict=True) if c in known and t == t}
+    def _load_engine(engine: Engine, arrays: dict[str, np.ndarray], meta: dict[str, Any], position: int) -> None:
         if engine.alarms is not None and meta.get("alarms") is not None:
             engine.alarms.load(arrays, meta["alarms"])
-            engine.alarms_reloaded()
-        engine.load_feed_state(meta.get("feed") or {})
+        updated_at = {c: float(t) for c, t in zip(meta["channels"], arrays["engine.updated_at"].tolist(), strict=True)
+                      if t == t}
+        engine.restore(position=position, stats=EngineStats(**meta["engine"]["stats"]), updated_at=updated_at,
+                       feed=meta.get("feed") or {})
 
     # ---------------------------------------------------------------- history
     def note(self, entries: dict[str, ChannelEntry], now: float) -> None:
-        """A history row for each refreshed channel whose last one is ``history_step`` old (publish hook)."""
+        """A history row for each refreshed channel whose last one is ``history_step`` old (publish hook).
+
+        Not while recovering: the run that first applied those samples noted their rows."""
+        if self._recovering:
+            return
         for cid, entry in entries.items():
             view = entry.view
             if view.applied == 0:

@@ -728,7 +728,7 @@ def test_second_runtime_on_the_same_store_fails_with_already_running(
     with _test_client(create_app(first)):
         with pytest.raises(AlreadyRunning, match="another rwls process owns ingest"):
             second.start()
-        assert not second.engine.alive()
+        assert not second.engine_alive()
         with pytest.raises(AlreadyRunning), _test_client(create_app(second)):
             pass
     # Once the owner stops, the lock is free.

@@ -32,10 +32,23 @@ def _message(k: int, *, redelivered: bool, ack: int | None = None) -> Message:
     return Message("dp", body, "mqtt", "plant/dp", ack=None if ack is None else (1, ack), redelivered=redelivered)
 
 
+class _AckRecorder:
+    """Stands in for the MQTT ingest: keeps the acknowledgements the engine sends."""
+
+    def __init__(self, acks: list[tuple[int, int]]) -> None:
+        self.ack = acks.extend
+
+    def start(self) -> None:
+        pass
+
+    def stop(self) -> None:
+        pass
+
+
 def _runtime(store: Path, acks: list[tuple[int, int]]) -> Runtime:
     config = parse_config({"channels": {"dp": {"terms": ["1", "u"]}}, "store": {"path": str(store)}})
     runtime = Runtime(config, mqtt=False)
-    runtime.engine.acknowledge = acks.extend
+    runtime.ingest = _AckRecorder(acks)  # type: ignore[assignment]
     return runtime
 
 
