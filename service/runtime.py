@@ -93,6 +93,7 @@ class Runtime:
         self.ingest: MqttIngest | ProcessIngest | None = None
         self.alarms = AlarmBook({cid: ch.priorities() for cid, ch in config.channels.items()},
                                 journal_limit=config.alarms.journal_limit)
+        self.alarm_ids = frozenset(alarm.id for alarm in self.alarms.alarms())    # fixed by the configuration
         # Where alarm transitions go (each listener runs on the engine thread and never blocks); listening
         # before the engine exists, so its very first transitions (design suppression) go out too.
         self.events = EventHub()

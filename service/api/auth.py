@@ -32,14 +32,14 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Literal
 
-from fastapi import Depends, HTTPException
+from fastapi import Depends, HTTPException, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from starlette.responses import JSONResponse
 from starlette.types import ASGIApp, Receive, Scope, Send
 
 from service.config.token_settings import AuthConfig
 
-__all__ = ["PERMISSIONS", "Access", "Permission", "Principal", "WriteGate", "new_token", "token_digest"]
+__all__ = ["PERMISSIONS", "Access", "Permission", "Principal", "WriteGate", "new_token", "requires", "token_digest"]
 
 Permission = Literal["read", "ingest", "operate", "configure"]
 PERMISSIONS: dict[str, frozenset[str]] = {
@@ -82,7 +82,7 @@ def _unauthorized(error: str | None, detail: str) -> HTTPException:
 
 
 class Access:
-    """Token verification for one configuration, and a dependency per permission (``needs("operate")``)."""
+    """Token verification for one configuration: who holds a token, and what they may do."""
 
     def __init__(self, config: AuthConfig) -> None:
         self.reads_open = config.reads == "open"
@@ -109,21 +109,27 @@ class Access:
             raise _unauthorized("invalid_token", "invalid token")
         return principal
 
-    def needs(self, permission: Permission) -> Callable[..., Principal]:
-        """A FastAPI dependency: the principal allowed ``permission``, else 401 or 403."""
+    def authorize(self, permission: Permission, credentials: HTTPAuthorizationCredentials | None) -> Principal:
+        """The principal allowed ``permission``; 401 without a (valid) token, 403 for a role without it."""
+        principal = self.identify(credentials)
+        if principal is None:
+            if permission == "read" and self.reads_open:
+                return ANONYMOUS
+            raise _unauthorized(None, "token required")
+        if permission not in principal.permissions:
+            allowed = " or ".join(role for role, granted in PERMISSIONS.items() if permission in granted)
+            raise HTTPException(status_code=403, detail=f"forbidden: {permission} needs the role {allowed}")
+        return principal
 
-        def check(credentials: HTTPAuthorizationCredentials | None = _BEARER) -> Principal:
-            principal = self.identify(credentials)
-            if principal is None:
-                if permission == "read" and self.reads_open:
-                    return ANONYMOUS
-                raise _unauthorized(None, "token required")
-            if permission not in principal.permissions:
-                allowed = " or ".join(role for role, granted in PERMISSIONS.items() if permission in granted)
-                raise HTTPException(status_code=403, detail=f"forbidden: {permission} needs the role {allowed}")
-            return principal
 
-        return check
+def requires(permission: Permission) -> Callable[..., Principal]:
+    """A FastAPI dependency: the caller, allowed ``permission`` by the app's :class:`Access` (``app.state.access``)."""
+
+    def check(request: Request, credentials: HTTPAuthorizationCredentials | None = _BEARER) -> Principal:
+        access: Access = request.app.state.access
+        return access.authorize(permission, credentials)
+
+    return check
 
 
 _READ_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})

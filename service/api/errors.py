@@ -10,7 +10,9 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-__all__ = ["validation_problems"]
+from fastapi.responses import JSONResponse
+
+__all__ = ["not_found", "validation_problems"]
 
 _WHERE = {"path": "path parameter", "query": "query parameter", "header": "header", "body": "body field",
           "cookie": "cookie"}
@@ -59,3 +61,8 @@ def validation_problems(errors: Sequence[Mapping[str, Any]]) -> dict[str, object
     more = f" (and {len(listed) - 1} more)" if len(listed) > 1 else ""
     return {"detail": f"{subject}: {first['problem']}{more}",
             "errors": [{"field": e["field"], "problem": e["problem"]} for e in listed]}
+
+
+def not_found(what: str) -> JSONResponse:
+    """A 404 with the short stable body every route uses: ``{"detail": what}``."""
+    return JSONResponse({"detail": what}, status_code=404)

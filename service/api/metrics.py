@@ -1,0 +1,75 @@
+"""``/metrics``: the engine's and the MQTT client's counters in the Prometheus text format, read at scrape time."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from prometheus_client import CollectorRegistry, generate_latest
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
+from prometheus_client.registry import Collector
+
+from service.engine.quality import Quality
+from service.engine.writer import EngineStats
+from service.runtime import Runtime
+
+__all__ = ["PROMETHEUS_TEXT", "ServiceMetrics"]
+
+PROMETHEUS_TEXT = "text/plain; version=0.0.4; charset=utf-8"
+
+
+class _EngineCollector(Collector):
+    """Reads the engine's and ingest's counters at scrape time."""
+
+    def __init__(self, runtime: Runtime) -> None:
+        self._runtime = runtime
+
+    def collect(self) -> Any:
+        runtime, ingest = self._runtime, self._runtime.ingest
+        engine = runtime.engine if runtime.started else None          # None while the service starts
+        stats = engine.stats if engine is not None else EngineStats()
+        yield CounterMetricFamily("rwls_messages", "Messages taken from the ingest queue", value=stats.messages)
+        yield CounterMetricFamily("rwls_samples_applied", "Samples applied to an estimator",
+                                  value=stats.samples_applied)
+        yield CounterMetricFamily("rwls_samples_warmup", "Samples that only filled lag buffers",
+                                  value=stats.samples_warmup)
+        yield CounterMetricFamily("rwls_redelivered", "Broker redeliveries of messages already logged (not applied)",
+                                  value=stats.redelivered)
+        rejections = CounterMetricFamily("rwls_rejections", "Refused messages or samples", labels=["reason"])
+        for reason, count in sorted(self._runtime.rejections().items()):
+            rejections.add_metric([reason], count)
+        yield rejections
+        yield CounterMetricFamily("rwls_dead_letter_failures", "Dead letters the broker did not take",
+                                  value=stats.dead_letter_failures)
+        yield GaugeMetricFamily("rwls_queue_depth", "Messages waiting for the engine", value=runtime.intake.qsize())
+        yield CounterMetricFamily("rwls_batches", "Micro-batches applied", value=stats.batches)
+        yield CounterMetricFamily("rwls_batch_seconds", "Time spent applying micro-batches",
+                                  value=stats.batch_seconds_total)
+        yield GaugeMetricFamily("rwls_last_batch_seconds", "Duration of the latest micro-batch",
+                                value=stats.last_batch_seconds)
+        quality = GaugeMetricFamily("rwls_channels", "Channels by quality", labels=["quality"])
+        counts = dict.fromkeys(Quality, 0)
+        for entry in engine.snapshot.channels.values() if engine is not None else ():
+            counts[entry.quality] += 1
+        for name, count in counts.items():
+            quality.add_metric([name], count)
+        yield quality
+        if ingest is not None:
+            yield GaugeMetricFamily("rwls_broker_connected", "1 while connected to the broker",
+                                    value=1 if ingest.connected else 0)
+            yield CounterMetricFamily("rwls_broker_reconnects", "Reconnections to the broker",
+                                      value=ingest.reconnects)
+            yield CounterMetricFamily("rwls_mqtt_callback_errors", "Exceptions caught in MQTT callbacks",
+                                      value=ingest.callback_errors)
+            yield CounterMetricFamily("rwls_publish_failures", "Publishes (dead letters, alarms) the MQTT client "
+                                      "refused after waiting out a full queue", value=ingest.publish_failures)
+
+
+class ServiceMetrics:
+    """A registry of one runtime's counters; :meth:`text` is the scrape body."""
+
+    def __init__(self, runtime: Runtime) -> None:
+        self._registry = CollectorRegistry()
+        self._registry.register(_EngineCollector(runtime))
+
+    def text(self) -> bytes:
+        return generate_latest(self._registry)
