@@ -49,7 +49,7 @@ import numpy as np
 from service.config.alarm_settings import ALARM_KINDS
 
 __all__ = ["ALARM_KINDS", "PRIORITIES", "Alarm", "AlarmBook", "AlarmRefused", "AlarmState", "Evidence",
-           "JournalEntry", "replay"]
+           "JournalAction", "JournalEntry", "replay"]
 
 PRIORITIES = ("low", "medium", "high", "urgent")
 
@@ -62,6 +62,34 @@ class AlarmState(StrEnum):
     SHELVED = "Shelved"
     SUPPRESSED = "Suppressed by design"
     OUT_OF_SERVICE = "Out of service"
+
+
+class JournalAction(StrEnum):
+    """What a journal entry records: the condition, design suppression, or an operator's action."""
+
+    CONDITION_ON = "condition_on"
+    CONDITION_OFF = "condition_off"
+    SUPPRESS = "suppress"
+    RELEASE = "release"
+    ACKNOWLEDGE = "acknowledge"
+    SHELVE = "shelve"
+    UNSHELVE = "unshelve"
+    SHELVE_EXPIRED = "shelve_expired"
+    REMOVE = "remove"
+    RESTORE = "restore"
+
+    @property
+    def words(self) -> str:
+        """The action as a person reads it (reports)."""
+        return _ACTION_WORDS[self]
+
+
+_ACTION_WORDS = {
+    JournalAction.CONDITION_ON: "condition raised", JournalAction.CONDITION_OFF: "condition cleared",
+    JournalAction.SUPPRESS: "suppressed by design", JournalAction.RELEASE: "released from suppression",
+    JournalAction.ACKNOWLEDGE: "acknowledged", JournalAction.SHELVE: "shelved", JournalAction.UNSHELVE: "unshelved",
+    JournalAction.SHELVE_EXPIRED: "shelving expired", JournalAction.REMOVE: "removed from service",
+    JournalAction.RESTORE: "returned to service"}
 
 
 _IN_SERVICE = frozenset({AlarmState.NORMAL, AlarmState.UNACKNOWLEDGED, AlarmState.ACKNOWLEDGED,
@@ -98,8 +126,7 @@ class JournalEntry:
     alarm: str
     channel: str
     kind: str
-    action: str                        # condition_on, condition_off, acknowledge, shelve, unshelve,
-                                       # shelve_expired, suppress, release, remove, restore
+    action: JournalAction
     before: str
     after: str
     evidence: Evidence = Evidence()
@@ -281,7 +308,7 @@ class AlarmBook:
             after = AlarmState.NORMAL
         else:
             after = state
-        return self._move(alarm, after, now, "condition_on" if active else "condition_off")
+        return self._move(alarm, after, now, JournalAction.CONDITION_ON if active else JournalAction.CONDITION_OFF)
 
     def suppress(self, channel: str, kinds: Iterable[str], held: bool, now: float, reason: str) -> list[JournalEntry]:
         """Hold alarms back by design (``held``) or release them; ``reason`` goes to the journal."""
@@ -298,7 +325,8 @@ class AlarmBook:
                 after = _returning(alarm)
             else:
                 after = alarm.state              # out of service: journaled, it decides the return
-            entries.append(self._move(alarm, after, now, "suppress" if held else "release", comment=reason))
+            action = JournalAction.SUPPRESS if held else JournalAction.RELEASE
+            entries.append(self._move(alarm, after, now, action, comment=reason))
         return entries
 
     # -------------------------------------------------------- operator actions
@@ -310,7 +338,7 @@ class AlarmBook:
             after = AlarmState.NORMAL
         else:
             raise AlarmRefused("not_acknowledgeable", f"{alarm_id} is {alarm.state}: nothing to acknowledge")
-        return self._move(alarm, after, now, "acknowledge", user=user, comment=comment)
+        return self._move(alarm, after, now, JournalAction.ACKNOWLEDGE, user=user, comment=comment)
 
     def shelve(self, alarm_id: str, user: str, now: float, until: float, comment: str = "") -> JournalEntry:
         alarm = self.get(alarm_id)
@@ -319,14 +347,14 @@ class AlarmBook:
         if not (math.isfinite(until) and until > now):
             raise AlarmRefused("bad_expiry", f"shelving must end after now, got {until}")
         alarm.shelved_until = until
-        return self._move(alarm, AlarmState.SHELVED, now, "shelve", user=user, comment=comment)
+        return self._move(alarm, AlarmState.SHELVED, now, JournalAction.SHELVE, user=user, comment=comment)
 
     def unshelve(self, alarm_id: str, user: str, now: float, comment: str = "") -> JournalEntry:
         alarm = self.get(alarm_id)
         if alarm.state != AlarmState.SHELVED:
             raise AlarmRefused("not_shelved", f"{alarm_id} is {alarm.state}, not shelved")
         alarm.shelved_until = None
-        return self._move(alarm, _returning(alarm), now, "unshelve", user=user, comment=comment)
+        return self._move(alarm, _returning(alarm), now, JournalAction.UNSHELVE, user=user, comment=comment)
 
     def expire(self, now: float) -> list[JournalEntry]:
         """End every shelving whose expiry has passed."""
@@ -334,7 +362,7 @@ class AlarmBook:
         for alarm in self._alarms.values():
             if alarm.state == AlarmState.SHELVED and alarm.shelved_until is not None and now >= alarm.shelved_until:
                 alarm.shelved_until = None
-                entries.append(self._move(alarm, _returning(alarm), now, "shelve_expired"))
+                entries.append(self._move(alarm, _returning(alarm), now, JournalAction.SHELVE_EXPIRED))
         return entries
 
     def remove(self, alarm_id: str, user: str, now: float, comment: str = "") -> JournalEntry:
@@ -343,17 +371,17 @@ class AlarmBook:
         if alarm.state == AlarmState.OUT_OF_SERVICE:
             raise AlarmRefused("already_out_of_service", f"{alarm_id} is already out of service")
         alarm.shelved_until = None
-        return self._move(alarm, AlarmState.OUT_OF_SERVICE, now, "remove", user=user, comment=comment)
+        return self._move(alarm, AlarmState.OUT_OF_SERVICE, now, JournalAction.REMOVE, user=user, comment=comment)
 
     def restore(self, alarm_id: str, user: str, now: float, comment: str = "") -> JournalEntry:
         """Return an alarm to service."""
         alarm = self.get(alarm_id)
         if alarm.state != AlarmState.OUT_OF_SERVICE:
             raise AlarmRefused("not_out_of_service", f"{alarm_id} is {alarm.state}, not out of service")
-        return self._move(alarm, _returning(alarm), now, "restore", user=user, comment=comment)
+        return self._move(alarm, _returning(alarm), now, JournalAction.RESTORE, user=user, comment=comment)
 
     # ---------------------------------------------------------------- journal
-    def _move(self, alarm: Alarm, after: AlarmState, now: float, action: str, *, user: str | None = None,
+    def _move(self, alarm: Alarm, after: AlarmState, now: float, action: JournalAction, *, user: str | None = None,
               comment: str | None = None, evidence: Evidence | None = None) -> JournalEntry:
         self._seq += 1
         entry = JournalEntry(self._seq, now, alarm.id, alarm.channel, alarm.kind, action,
@@ -384,24 +412,25 @@ def replay(priorities: Mapping[str, Mapping[str, str]], journal: Iterable[Journa
         alarm = book.get(entry.alarm)
         if str(alarm.state) != entry.before:
             raise ValueError(f"journal entry {entry.seq}: {entry.alarm} was {alarm.state}, journal says {entry.before}")
-        action = entry.action
-        if action in ("condition_on", "condition_off"):
-            made = book.condition(entry.channel, entry.kind, action == "condition_on", entry.time, entry.evidence)
-        elif action in ("suppress", "release"):
-            made = next(iter(book.suppress(entry.channel, [entry.kind], action == "suppress", entry.time,
+        action = JournalAction(entry.action)
+        if action in (JournalAction.CONDITION_ON, JournalAction.CONDITION_OFF):
+            made = book.condition(entry.channel, entry.kind, action == JournalAction.CONDITION_ON, entry.time,
+                                  entry.evidence)
+        elif action in (JournalAction.SUPPRESS, JournalAction.RELEASE):
+            made = next(iter(book.suppress(entry.channel, [entry.kind], action == JournalAction.SUPPRESS, entry.time,
                                            entry.comment or "")), None)
-        elif action == "acknowledge":
+        elif action == JournalAction.ACKNOWLEDGE:
             made = book.acknowledge(entry.alarm, entry.user or "", entry.time, entry.comment or "")
-        elif action == "shelve":
+        elif action == JournalAction.SHELVE:
             made = book.shelve(entry.alarm, entry.user or "", entry.time, entry.shelved_until or math.inf,
                                entry.comment or "")
-        elif action == "unshelve":
+        elif action == JournalAction.UNSHELVE:
             made = book.unshelve(entry.alarm, entry.user or "", entry.time, entry.comment or "")
-        elif action == "shelve_expired":
+        elif action == JournalAction.SHELVE_EXPIRED:
             made = next((e for e in book.expire(entry.time) if e.alarm == entry.alarm), None)
-        elif action == "remove":
+        elif action == JournalAction.REMOVE:
             made = book.remove(entry.alarm, entry.user or "", entry.time, entry.comment or "")
-        elif action == "restore":
+        elif action == JournalAction.RESTORE:
             made = book.restore(entry.alarm, entry.user or "", entry.time, entry.comment or "")
         else:
             raise ValueError(f"journal entry {entry.seq}: unknown action {action!r}")

@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 
+from service.alarms.lifecycle import JournalAction
 from service.engine.channel_report import ChannelReport
 from service.offline.ols_vs_wls import Comparison, compare
 from service.offline.replay import RunResult
@@ -84,7 +85,7 @@ def _summary(result: RunResult, comparisons: dict[str, Comparison | None]) -> st
         params = "<br>".join(f"{_e(term)} = <span class=\"estimate\" data-term=\"{_e(term)}\">"
                              f"{_num(ch['parameters'][term])}</span> \u00b1 {_num(ch['std_errors'][term], 4)}"
                              for term in ch["terms"])
-        fired = [a for a in ch["alarms"] if a["action"] == "condition_on"]
+        fired = [a for a in ch["alarms"] if a["action"] == JournalAction.CONDITION_ON]
         kinds = ", ".join(sorted({str(a["kind"]) for a in fired})) or "none"
         rows.append(
             f'<tr data-channel="{_e(cid)}"><td><a href="#channel-{_e(cid)}">{_e(cid)}</a></td>'
@@ -117,19 +118,12 @@ def _estimates(ch: ChannelReport) -> str:
             f"</thead><tbody>{rows}</tbody></table>")
 
 
-# Journal actions in words for people (the JSON keeps the codes).
-_TRANSITIONS = {"condition_on": "condition raised", "condition_off": "condition cleared",
-                "suppress": "suppressed by design", "release": "released from suppression",
-                "acknowledge": "acknowledged", "shelve": "shelved", "unshelve": "unshelved",
-                "shelve_expired": "shelving expired", "remove": "removed from service",
-                "restore": "returned to service"}
-
-
 def _alarm_table(alarms: Sequence[dict[str, Any]]) -> str:
     if not alarms:
         return '<p class="alarms-none">No alarm would have been raised.</p>'
     rows = "".join(
-        f'<tr><td>{_e(a["kind"])}</td><td>{_e(_TRANSITIONS.get(a["action"], a["action"]))}</td>'
+        # Journal actions in words for people (the JSON keeps the codes).
+        f'<tr><td>{_e(a["kind"])}</td><td>{_e(JournalAction(a["action"]).words)}</td>'
         f'<td>{_e(a["state"])}</td>'
         f'<td>{_when(a.get("t", a.get("sample")))}</td><td class="num">{_num(a.get("statistic"), 6)}</td>'
         f'<td class="num">{_num(a.get("limit"), 6)}</td><td>{_when(a.get("onset"))}</td>'
@@ -167,7 +161,8 @@ def _plots(cid: str, ch: ChannelReport, trace: ChannelTrace | None) -> str:
         return '<p class="muted">No sample was applied: nothing to plot.</p>'
     from service.offline import report_plots as plots  # matplotlib only when a report is asked for
 
-    alarm_times = [float(a["t"]) for a in ch.get("alarms", []) if a["action"] == "condition_on" and "t" in a]
+    alarm_times = [float(a["t"]) for a in ch.get("alarms", [])
+                   if a["action"] == JournalAction.CONDITION_ON and "t" in a]
     baseline = ch["baseline"]
     ref: dict[str, float] = {} if baseline is None else baseline["parameters"]
     parts = [_img(plots.parameter_plot(trace, j, term, ref.get(term), alarm_times), f"{cid} parameter {term}")
