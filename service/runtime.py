@@ -172,8 +172,8 @@ class Runtime:
         self._engine = self._build_engine(input_log, periodic=[persistence.periodic],
                                           publish_hooks=[persistence.note])
         self.recovery = persistence.recover(self._engine)
-        log.info("recovered: checkpoint %s at input %s, %s inputs replayed, channels afresh: %s",
-                 self.recovery["checkpoint"], self.recovery["position"], self.recovery["replayed"],
+        log.info("recovered: checkpoint %s at input %s, %s inputs reapplied, channels afresh: %s",
+                 self.recovery["checkpoint"], self.recovery["position"], self.recovery["reapplied"],
                  self.recovery["fresh_channels"] or "none")
         self.persistence = persistence
 

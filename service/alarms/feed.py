@@ -1,6 +1,6 @@
 """From the bank's detector events to the alarm book (engine thread only).
 
-Everything here follows the samples, in their order, so a run replayed from
+Everything here follows the samples, in their order, so a run reapplied from
 a checkpoint and its input log journals exactly the transitions the
 uninterrupted run journaled (with the same times: a transition's time is its
 sample's, when the sample has one):

@@ -33,7 +33,7 @@ the alarm comes back in the right state.
 
 Every transition is one :class:`JournalEntry` (time, channel, kind, action,
 statistic, limit, baseline version, onset, state before and after, user,
-comment); :func:`replay` runs a journal through the state machine again and
+comment); :func:`rerun_journal` runs a journal through the state machine again and
 gives back the states it ends in.
 """
 
@@ -49,7 +49,7 @@ import numpy as np
 from service.config.alarm_settings import ALARM_KINDS
 
 __all__ = ["ALARM_KINDS", "PRIORITIES", "Alarm", "AlarmBook", "AlarmRefused", "AlarmState", "Evidence",
-           "JournalAction", "JournalEntry", "replay"]
+           "JournalAction", "JournalEntry", "rerun_journal"]
 
 PRIORITIES = ("low", "medium", "high", "urgent")
 
@@ -399,7 +399,8 @@ class AlarmBook:
         return entry
 
 
-def replay(priorities: Mapping[str, Mapping[str, str]], journal: Iterable[JournalEntry]) -> dict[str, AlarmState]:
+def rerun_journal(priorities: Mapping[str, Mapping[str, str]],
+                  journal: Iterable[JournalEntry]) -> dict[str, AlarmState]:
     """Run a journal through a fresh book: every entry must give its recorded state; returns the states.
 
     Raises
@@ -435,6 +436,6 @@ def replay(priorities: Mapping[str, Mapping[str, str]], journal: Iterable[Journa
         else:
             raise ValueError(f"journal entry {entry.seq}: unknown action {action!r}")
         if made is None or made.after != entry.after:
-            raise ValueError(f"journal entry {entry.seq}: replay gives {made and made.after}, "
+            raise ValueError(f"journal entry {entry.seq}: a rerun gives {made and made.after}, "
                              f"journal says {entry.after}")
     return {a.id: a.state for a in book.alarms()}

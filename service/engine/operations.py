@@ -2,7 +2,7 @@
 
 An operation is a frozen dataclass with a ``name`` and JSON-able fields (who, when, what). The engine
 writes a changing operation to the input log, by name and fields, in order with the samples before it,
-and only then applies it, so recovery replays it exactly: the same transition, with the same user,
+and only then applies it, so recovery reapplies it exactly: the same transition, with the same user,
 comment and time, lands in the journal once. Each operation applies itself against
 :class:`OperationTarget`, the little it may touch (the bank, the alarm book, the mark for the next
 snapshot), and returns what changed, so a caller never reads live state to learn the outcome.

@@ -10,8 +10,8 @@ engine replaces after a batch (at once when the queue runs empty, at most every
 Per message: decode into columns (``service.broker_link.payload_columns`` for a plain
 message, else the exact ``service.broker_link.payload``); then every channel's columns of
 a micro-batch go to :meth:`ChannelBank.apply_columns` together, which also
-refuses a ``seq`` or ``t`` that does not advance the channel's (redeliveries,
-replays).
+refuses a ``seq`` or ``t`` that does not advance the channel's (broker
+redeliveries, a source that sends again).
 Every refused message or sample is counted by reason and handed to the
 dead-letter callback with that reason; nothing is dropped silently.
 """
@@ -439,7 +439,7 @@ class Engine:
             if m.durable is not None:
                 m.durable.set()
 
-    def replay(self, batch: list[Message]) -> None:
+    def reapply(self, batch: list[Message]) -> None:
         """Apply messages from the input log (recovery): not logged again, no dead letters sent again."""
         dead_letter, self._dead_letter = self._dead_letter, None
         try:

@@ -15,7 +15,7 @@ Recovery is exact because the state is a function of the inputs in order:
    was not acknowledged, and per-channel ``seq``/``t`` refuses what the log
    already held.
 
-Alarm notifications (MQTT, webhooks, the event stream) of the replayed part
+Alarm notifications (MQTT, webhooks, the event stream) of the reapplied part
 may go out a second time: at least once. The stale alarm follows the wall
 clock, not the inputs.
 """
@@ -188,7 +188,7 @@ class Persistence:
     # --------------------------------------------------------------- recovery
     def recover(self, engine: Engine) -> dict[str, Any]:
         """Load the newest good checkpoint and apply the input log after it (before the engine starts)."""
-        report: dict[str, Any] = {"checkpoint": None, "position": 0, "replayed": 0, "fresh_channels": []}
+        report: dict[str, Any] = {"checkpoint": None, "position": 0, "reapplied": 0, "fresh_channels": []}
         self._recovering = True
         try:
             self._recover(engine, report)
@@ -219,24 +219,24 @@ class Persistence:
                     continue
                 batch.append(Message(channel, bytes(payload), str(source), topic, float(received)))
                 if len(batch) >= REPLAY_BATCH:
-                    engine.replay(batch)
+                    engine.reapply(batch)
                     batch = []
             else:
                 if seq <= engine.position:
                     continue
                 if batch:
-                    engine.replay(batch)
+                    engine.reapply(batch)
                     batch = []
                 name, args = fields
                 try:
                     engine.apply_operation(operation_from_record(str(name), dict(args)))
                 except Exception as exc:          # refused then, refused again now: the same outcome
-                    log.info("replayed operation %s refused again: %s", name, exc)
+                    log.info("reapplied operation %s refused again: %s", name, exc)
             engine.applied_through(seq)
-            report["replayed"] += 1
+            report["reapplied"] += 1
         if batch:
-            engine.replay(batch)
-        if report["checkpoint"] is not None or report["replayed"]:
+            engine.reapply(batch)
+        if report["checkpoint"] is not None or report["reapplied"]:
             engine.flush_now()
 
     @staticmethod

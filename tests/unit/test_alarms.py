@@ -1,4 +1,4 @@
-"""Alarm lifecycle (ANSI/ISA-18.2 states) as a hypothesis state machine, the journal, and its replay."""
+"""Alarm lifecycle (ANSI/ISA-18.2 states) as a hypothesis state machine, the journal, and its rerun."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ from hypothesis import settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, rule
 
-from service.alarms.lifecycle import AlarmBook, AlarmRefused, AlarmState, Evidence, replay
+from service.alarms.lifecycle import AlarmBook, AlarmRefused, AlarmState, Evidence, rerun_journal
 
 N, U, A, R = (AlarmState.NORMAL, AlarmState.UNACKNOWLEDGED, AlarmState.ACKNOWLEDGED,
               AlarmState.RETURNED_UNACKNOWLEDGED)
@@ -98,7 +98,7 @@ class Lifecycle(RuleBasedStateMachine):
     def book_agrees_and_journal_replays(self) -> None:
         assert self.book.get("flow:drift").state == self.state
         assert self.book.get("flow:offset").state == N           # untouched alarms stay put
-        assert replay(PRIORITIES, self.book.journal) == {a.id: a.state for a in self.book.alarms()}
+        assert rerun_journal(PRIORITIES, self.book.journal) == {a.id: a.state for a in self.book.alarms()}
         seqs = [e.seq for e in self.book.journal]
         assert seqs == list(range(1, len(seqs) + 1))
 

@@ -113,7 +113,7 @@ def test_a_crash_after_any_checkpoint_recovers_the_uninterrupted_state(tmp_path:
 
     second = _runtime(tmp_path / "crashed")
     second.start()
-    assert second.recovery is not None and second.recovery["replayed"] > 0
+    assert second.recovery is not None and second.recovery["reapplied"] > 0
     _feed(second, chunks[3])
     second.engine.execute(Acknowledge(alarm="c1:offset", user="ana", comment="seen", time=9.0))
     try:
@@ -144,7 +144,7 @@ def test_a_torn_newest_checkpoint_falls_back_to_the_one_before(tmp_path: Path, a
     again = _runtime(tmp_path / "torn")
     again.start()
     assert again.recovery is not None and again.recovery["checkpoint"] != newest
-    assert again.recovery["replayed"] > 0            # the input log from the older checkpoint on
+    assert again.recovery["reapplied"] > 0            # the input log from the older checkpoint on
     try:
         _same(whole, again)
     finally:
@@ -163,7 +163,7 @@ def test_a_clean_stop_checkpoints_and_restarts_without_replay(tmp_path: Path, ar
     again = _runtime(tmp_path / "store")
     again.start()
     try:
-        assert again.recovery is not None and again.recovery["replayed"] == 0
+        assert again.recovery is not None and again.recovery["reapplied"] == 0
         assert _state(again)[0]["g0.bank.A"].tobytes() == before.tobytes()
         persistence = again.persistence
         assert isinstance(persistence, Persistence)

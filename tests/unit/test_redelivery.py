@@ -89,7 +89,7 @@ def test_after_a_restart_redeliveries_of_messages_before_the_checkpoint_are_stil
     again = _runtime(tmp_path / "store", acks)
     again.start()
     try:
-        assert again.recovery is not None and again.recovery["replayed"] == 0
+        assert again.recovery is not None and again.recovery["reapplied"] == 0
         for k in range(5, 10):
             assert again.engine.submit(_message(k, redelivered=True, ack=50 + k))
         assert again.engine.drain(5.0)
