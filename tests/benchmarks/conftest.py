@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 
 import numpy as np
 import pytest
 
 from tests.benchmarks._common import environment_line
+from tests.benchmarks._mqtt_load import BROKER_LIMITS, Broker
+from tests.benchmarks._raw_paho import RawFigures, measure_raw
+from tests.support.mqtt_brokers import find_mosquitto, mosquitto_version, start_private_mosquitto
 
 
 def pytest_report_header() -> str:
@@ -22,3 +25,27 @@ def make_rng() -> Callable[[int], np.random.Generator]:
         return np.random.default_rng(seed)
 
     return factory
+
+
+@pytest.fixture(scope="session")
+def bench_broker(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Broker]:
+    """A private Mosquitto for the service benchmarks, with the queue limits set deliberately
+    (``tests/benchmarks/_mqtt_load.py`` says why); stopped by PID."""
+    binary = find_mosquitto()
+    if binary is None:
+        pytest.skip("no mosquitto binary for a private broker")
+    started = start_private_mosquitto(binary, tmp_path_factory.mktemp("bench-mosquitto"), persistence=False,
+                                      max_queued_messages=None, extra_config=BROKER_LIMITS)
+    settings = [line for line in started.config_path.read_text().splitlines()
+                if line and not line.startswith(("#", "log_"))]
+    description = f"{mosquitto_version(binary)}, private, pid {started.pid}, config: {'; '.join(settings)}"
+    try:
+        yield Broker(started.port, started.pid, description)
+    finally:
+        started.stop()
+
+
+@pytest.fixture(scope="session")
+def raw(bench_broker: Broker) -> RawFigures:
+    """The bare paho subscriber's figures, measured once per run and printed beside every service figure."""
+    return measure_raw(bench_broker)

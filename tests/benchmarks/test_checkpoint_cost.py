@@ -19,12 +19,12 @@ import numpy as np
 import pytest
 
 from service.broker_link.messages import Message
-from service.config.settings import parse_config
 from service.engine.operations import Inspect
 from service.runtime import Runtime
 from service.storage.persistence import encode_checkpoint
 from service.storage.store import Store, store_url
 from tests.benchmarks._common import environment_line
+from tests.support.runtimes import offline_runtime
 
 pytestmark = pytest.mark.benchmark
 
@@ -37,8 +37,7 @@ TERMS = ["1", "u", "v", "u*v"]  # n = 4
 def _runtime(k: int, data: Path) -> Runtime:
     channels = {f"ch{i:05d}": {"terms": TERMS, "topic": f"bench/ch{i:05d}",
                                "detectors": {"commissioning_samples": 40}} for i in range(k)}
-    config = parse_config({"channels": channels, "store": {"path": str(data), "checkpoint_seconds": 86400.0}})
-    runtime = Runtime(config, mqtt=False)
+    runtime = offline_runtime(channels, data, store_options={"checkpoint_seconds": 86400.0})
     runtime.start()
     rng = np.random.default_rng(7)
     for i in range(k):

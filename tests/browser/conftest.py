@@ -15,7 +15,6 @@ from typing import Any
 import pytest
 
 from tests.ci import in_ci
-from tests.integration.conftest import mqtt_broker  # noqa: F401 (the session's broker, a fixture)
 
 CHROMIUM = Path("/usr/bin/chromium")
 ARTIFACTS = Path(__file__).resolve().parents[2] / "build" / "test-artifacts" / "browser"

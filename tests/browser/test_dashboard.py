@@ -23,9 +23,11 @@ import numpy as np
 import pytest
 from playwright.sync_api import expect
 
-from tests.auth_tokens import TOKENS, auth_section, bearer
-from tests.integration.mqtt_support import free_port, publish_and_wait, unique_client_id, unique_topic_prefix
-from tests.integration.service_process import ServiceProcess
+from tests.support.addresses import free_port, unique_client_id, unique_topic_prefix
+from tests.support.auth_tokens import TOKENS, auth_section, bearer
+from tests.support.configs import QUICK_RECONNECT, alarms_table, mqtt_settings
+from tests.support.mqtt_clients import publish_and_wait
+from tests.support.service_process import ServiceProcess
 from tests.support.waits import wait_until
 
 pytestmark = [pytest.mark.browser, pytest.mark.integration]
@@ -91,8 +93,8 @@ class Site:
         return self.process.url
 
 
-def _channel(topic: str, commissioning: int) -> dict[str, Any]:
-    return {"topic": topic, "terms": ["1", "pump_speed"], "forgetting_factor": 0.99,
+def _channel(commissioning: int) -> dict[str, Any]:
+    return {"terms": ["1", "pump_speed"], "forgetting_factor": 0.99,
             # No noise-shape table: the offset alarms these tests raise follow a short commissioning at once.
             "detectors": {"commissioning_samples": commissioning, "calibration_samples": 0}}
 
@@ -101,19 +103,14 @@ def _channel(topic: str, commissioning: int) -> dict[str, Any]:
 def site(mqtt_broker: Any, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Site]:
     prefix = unique_topic_prefix()
     commissioned = [CHANNEL, *ALARMING.values()]
-    channels = {name: _channel(f"{prefix}/{name}", COMMISSIONING_SAMPLES) for name in commissioned}
-    channels[COMMISSIONING] = _channel(f"{prefix}/{COMMISSIONING}", 1000)
-    settings = {
-        "channels": channels,
-        "broker": {"url": f"mqtt://127.0.0.1:{mqtt_broker.port}", "client_id": unique_client_id("rwls-ui"),
-                   "dead_letter_topic": f"{prefix}/dead", "reconnect_min_delay": 0.5,
-                   "reconnect_max_delay": 1.0},
-        "store": {"path": str(tmp_path_factory.mktemp("ui-data")), "history_step": 1.0},
-        "alarms": {"topic": f"{prefix}/alarms"},
-        "auth": auth_section(),
-    }
+    channels = {name: _channel(COMMISSIONING_SAMPLES) for name in commissioned}
+    channels[COMMISSIONING] = _channel(1000)
+    settings = mqtt_settings(channels, prefix=prefix, port=mqtt_broker.port, client_id=unique_client_id("rwls-ui"),
+                             broker=QUICK_RECONNECT, store=tmp_path_factory.mktemp("ui-data"),
+                             store_options={"history_step": 1.0}, alarms=alarms_table(prefix), auth=auth_section())
     process = ServiceProcess(settings, tmp_path_factory.mktemp("ui-service"), port=free_port()).start()
-    plants = {name: Plant(mqtt_broker, channels[name]["topic"], seed) for seed, name in enumerate(channels, 3)}
+    plants = {name: Plant(mqtt_broker, settings["channels"][name]["topic"], seed)
+              for seed, name in enumerate(channels, 3)}
     try:
         process.wait_subscribed()
         _feed(process, {name: plants[name] for name in commissioned}, NORMAL_SAMPLES)

@@ -17,6 +17,7 @@ from service.config.settings import parse_config
 from service.runtime import Runtime
 from service.storage.persistence import decode_checkpoint
 from service.storage.store import Store, store_url
+from tests.support.runtimes import feed
 
 WALL_CLOCK = {"engine.updated_at"}        # when messages arrived: the wall clock, not the inputs
 
@@ -41,9 +42,8 @@ def uninterrupted_state(settings: dict[str, Any], data: Path,
     runtime = Runtime(config, mqtt=False)
     runtime.start()
     try:
-        for cid, topic, payload in stream:
-            assert runtime.engine.submit(Message(cid, payload, "mqtt", topic), timeout=10.0)
-        assert runtime.engine.drain(60.0)
+        feed(runtime, (Message(cid, payload, "mqtt", topic) for cid, topic, payload in stream), submit_timeout=10.0,
+             drain_timeout=60.0)
     finally:
         runtime.stop()
     return final_state(data, "")

@@ -15,8 +15,9 @@ import numpy as np
 import pytest
 
 from service.config.settings import RwlsConfig, parse_config
-from service.runtime import Runtime
-from tests.integration.mqtt_support import Collector, publish_and_wait
+from tests.support.configs import alarms_table, mqtt_settings
+from tests.support.mqtt_clients import Collector, publish_and_wait
+from tests.support.runtimes import start_subscribed
 from tests.support.waits import eventually
 
 pytestmark = pytest.mark.integration
@@ -25,13 +26,10 @@ KINDS = ("noise_level", "variance", "offset", "drift", "stale")
 
 
 def _config(prefix: str, port: int, client: str, store: Path, webhooks: list[dict[str, Any]]) -> RwlsConfig:
-    channel = {"terms": ["1", "u"], "forgetting_factor": 0.99, "topic": f"{prefix}/dp",
+    channel = {"terms": ["1", "u"], "forgetting_factor": 0.99,
                "detectors": {"commissioning_samples": 60, "calibration_samples": 0, "offset": {"h": 5.0}}}
-    return parse_config({"channels": {"dp": channel, "quiet": {**channel, "topic": f"{prefix}/quiet"}},
-                         "broker": {"url": f"mqtt://127.0.0.1:{port}", "client_id": client,
-                                    "dead_letter_topic": f"{prefix}/dead"},
-                         "alarms": {"topic": f"{prefix}/alarms", "webhooks": webhooks},
-                         "store": {"path": str(store)}})
+    return parse_config(mqtt_settings({"dp": channel, "quiet": channel}, prefix=prefix, port=port, client_id=client,
+                                      store=store, alarms=alarms_table(prefix, webhooks=webhooks)))
 
 
 def _messages(prefix: str, first: int, count: int, offset: float = 0.0) -> list[tuple[str, bytes]]:
@@ -92,21 +90,13 @@ def receivers() -> Iterator[Callable[..., _Receiver]]:
         receiver.close()
 
 
-def _run(config: RwlsConfig) -> Runtime:
-    runtime = Runtime(config)
-    runtime.start()
-    assert runtime.ingest is not None and runtime.ingest.wait_subscribed(10.0)
-    return runtime
-
-
-
 def test_retained_states_reach_a_late_subscriber_and_events_and_webhooks_get_every_transition(
         mqtt_broker: Any, unique_prefix: str, client_id: Callable[[str], str], tmp_path: Path,
         receivers: Callable[..., _Receiver]) -> None:
     hook = receivers()
     config = _config(unique_prefix, mqtt_broker.port, client_id("rwls"), tmp_path / "store",
                      [{"url": hook.url, "timeout": 2.0, "retries": 2}])
-    runtime = _run(config)
+    runtime = start_subscribed(config)
     try:
         with Collector(mqtt_broker, client_id("events")) as events:
             events.connect([f"{unique_prefix}/alarms/event/#"])
@@ -147,7 +137,7 @@ def test_a_stalled_webhook_receiver_does_not_hold_up_ingest(
     config = _config(unique_prefix, mqtt_broker.port, client_id("rwls"), tmp_path / "store",
                      [{"url": hook.url, "timeout": 20.0, "retries": 0},
                       {"url": f"http://127.0.0.1:{dead_port.getsockname()[1]}/", "timeout": 1.0, "retries": 50}])
-    runtime = _run(config)
+    runtime = start_subscribed(config)
     try:
         publish_and_wait(mqtt_broker, _messages(unique_prefix, 0, 100), qos=1, timeout=30.0)
         publish_and_wait(mqtt_broker, _messages(unique_prefix, 100, 300, offset=1.0), qos=1, timeout=30.0)

@@ -24,7 +24,8 @@ from paho.mqtt.enums import CallbackAPIVersion
 
 from service.config.settings import RwlsConfig, parse_config
 from service.runtime import Runtime
-from tests.integration.mqtt_support import LOOPBACK
+from tests.support.addresses import LOOPBACK
+from tests.support.configs import QUICK_RECONNECT
 from tests.support.waits import eventually
 
 pytestmark = pytest.mark.integration
@@ -124,7 +125,7 @@ def test_the_broker_refuses_a_client_without_every_credential(
         what: str, change: dict[str, Any]) -> None:
     broker, files = tls_broker
     config = _config(broker, files, tmp_path / "store", unique_prefix, client_id("rwls"), ingest="thread",
-                     reconnect_min_delay=0.5, reconnect_max_delay=1.0, protocol="3.1.1", **change)
+                     protocol="3.1.1", **QUICK_RECONNECT, **change)
     runtime = Runtime(config)
     runtime.start()
     try:

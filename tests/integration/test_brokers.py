@@ -13,15 +13,8 @@ import paho.mqtt.client as mqtt
 import pytest
 
 from service.demo.embedded_broker import EmbeddedBroker, EmbeddedBrokerError
-from tests.integration.mqtt_support import (
-    BrokerInfo,
-    Collector,
-    PrivateMosquitto,
-    connect_packet,
-    new_client,
-    probe_mqtt,
-    publish_and_wait,
-)
+from tests.support.mqtt_brokers import BrokerInfo, PrivateMosquitto, connect_packet, probe_mqtt
+from tests.support.mqtt_clients import Collector, new_client, publish_and_wait
 
 pytestmark = pytest.mark.integration
 

@@ -20,8 +20,9 @@ import numpy as np
 import pytest
 
 from tests.integration.final_state import assert_same_state, final_state, uninterrupted_state
-from tests.integration.mqtt_support import publish_and_wait
-from tests.integration.service_process import ServiceProcess
+from tests.support.configs import QUICK_RECONNECT, alarms_table, mqtt_settings
+from tests.support.mqtt_clients import publish_and_wait
+from tests.support.service_process import ServiceProcess
 
 pytestmark = pytest.mark.integration
 
@@ -60,12 +61,8 @@ def _stream(prefix: str) -> list[tuple[str, str, bytes]]:
 
 
 def _settings(prefix: str, broker_port: int, client: str, data: Path, url: str) -> dict[str, Any]:
-    return {"channels": {cid: {**table, "topic": f"{prefix}/{cid}"} for cid, table in CHANNELS.items()},
-            "broker": {"url": f"mqtt://127.0.0.1:{broker_port}", "client_id": client,
-                       "dead_letter_topic": f"{prefix}/dead", "reconnect_min_delay": 0.5,
-                       "reconnect_max_delay": 1.0},
-            "store": {"path": str(data), "url": url, "checkpoint_seconds": 1.0},
-            "alarms": {"topic": f"{prefix}/alarms"}}
+    return mqtt_settings(CHANNELS, prefix=prefix, port=broker_port, client_id=client, broker=QUICK_RECONNECT,
+                         store=data, store_options={"url": url, "checkpoint_seconds": 1.0}, alarms=alarms_table(prefix))
 
 
 def _applied(service: ServiceProcess) -> int:

@@ -18,8 +18,10 @@ import numpy as np
 import pytest
 
 from service.fleet.sharding import owner
-from tests.integration.mqtt_support import free_port, publish_and_wait
-from tests.integration.service_process import ServiceProcess
+from tests.support.addresses import free_port
+from tests.support.configs import QUICK_RECONNECT, alarms_table, mqtt_settings
+from tests.support.mqtt_clients import publish_and_wait
+from tests.support.service_process import ServiceProcess
 from tests.support.waits import wait_until
 
 pytestmark = pytest.mark.integration
@@ -49,15 +51,11 @@ def test_three_replicas_share_the_channels_survive_a_kill_and_lose_nothing(
     base_id = client_id("rwls-fleet")
     replicas = []
     for k in range(REPLICAS):
-        settings = {
-            "channels": {c: {"topic": f"{unique_prefix}/{c}", "terms": ["1", "u"]} for c in CHANNELS},
-            "broker": {"url": f"mqtt://127.0.0.1:{mqtt_broker.port}", "client_id": f"{base_id}-{k}",
-                       "dead_letter_topic": f"{unique_prefix}/dead", "reconnect_min_delay": 0.5,
-                       "reconnect_max_delay": 1.0},
-            "store": {"path": str(tmp_path / f"data-{k}"), "url": postgres_url, "checkpoint_seconds": 1.0},
-            "alarms": {"topic": f"{unique_prefix}/alarms"},
-            "fleet": {"shard": f"{k}/{REPLICAS}", "replicas": urls, "peer_timeout": 1.0},
-        }
+        settings = mqtt_settings(
+            {c: {"terms": ["1", "u"]} for c in CHANNELS}, prefix=unique_prefix, port=mqtt_broker.port,
+            client_id=f"{base_id}-{k}", broker=QUICK_RECONNECT, store=tmp_path / f"data-{k}",
+            store_options={"url": postgres_url, "checkpoint_seconds": 1.0}, alarms=alarms_table(unique_prefix),
+            fleet={"shard": f"{k}/{REPLICAS}", "replicas": urls, "peer_timeout": 1.0})
         replicas.append(ServiceProcess(settings, tmp_path / f"replica-{k}", port=ports[k]))
     try:
         for r in replicas:

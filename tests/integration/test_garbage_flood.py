@@ -18,8 +18,9 @@ import numpy as np
 import pytest
 
 from tests.integration.final_state import assert_same_state, final_state, uninterrupted_state
-from tests.integration.mqtt_support import Collector, publish_and_wait
-from tests.integration.service_process import ServiceProcess
+from tests.support.configs import mqtt_settings
+from tests.support.mqtt_clients import Collector, publish_and_wait
+from tests.support.service_process import ServiceProcess
 
 pytestmark = [pytest.mark.integration, pytest.mark.slow]
 
@@ -111,10 +112,8 @@ def test_garbage_flood_leaves_the_clean_state_counts_every_refusal_and_stays_bou
     broker = private_mosquitto(persistence=False, max_queued_messages=200_000)
     good, published, expected = _streams(unique_prefix)
     assert sum(expected.values()) == GARBAGE
-    settings = {"channels": {cid: {**table, "topic": f"{unique_prefix}/{cid}"} for cid, table in CHANNELS.items()},
-                "broker": {"url": f"mqtt://127.0.0.1:{broker.port}", "client_id": client_id("rwls"),
-                           "dead_letter_topic": f"{unique_prefix}/dead"},
-                "store": {"path": str(tmp_path / "data"), "checkpoint_seconds": 2.0}}
+    settings = mqtt_settings(CHANNELS, prefix=unique_prefix, port=broker.port, client_id=client_id("rwls"),
+                             store=tmp_path / "data", store_options={"checkpoint_seconds": 2.0})
     dead = Collector(broker.url, client_id("dead"))
     dead.connect([f"{unique_prefix}/dead"], qos=1)
     service = ServiceProcess(settings, tmp_path / "service").start()

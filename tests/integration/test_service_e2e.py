@@ -11,7 +11,7 @@ import csv
 import json
 import time
 from collections import Counter
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -22,7 +22,8 @@ from service.broker_link.mqtt_client import MqttIngest
 from service.config.settings import RwlsConfig, parse_config
 from service.offline.replay import replay_file
 from service.runtime import Runtime
-from tests.integration.mqtt_support import Collector, publish_and_wait
+from tests.support.configs import QUICK_RECONNECT, mqtt_settings
+from tests.support.mqtt_clients import Collector, publish_and_wait
 
 pytestmark = pytest.mark.integration
 
@@ -35,12 +36,8 @@ CHANNELS: dict[str, dict[str, Any]] = {
 
 
 def _config(prefix: str, port: int, client: str, store: Path, **broker_overrides: Any) -> RwlsConfig:
-    channels = {cid: {**table, "topic": f"{prefix}/{cid}"} for cid, table in CHANNELS.items()}
-    return parse_config({"channels": channels,
-                         "broker": {"url": f"mqtt://127.0.0.1:{port}", "client_id": client,
-                                    "dead_letter_topic": f"{prefix}/dead", "max_payload_bytes": 4096,
-                                    **broker_overrides},
-                         "store": {"path": str(store)}})
+    return parse_config(mqtt_settings(CHANNELS, prefix=prefix, port=port, client_id=client, store=store,
+                                      broker={"max_payload_bytes": 4096, **broker_overrides}))
 
 
 def _samples(seed: int, count: int) -> list[tuple[str, dict[str, Any]]]:
@@ -78,22 +75,6 @@ def _wait_applied(runtime: Runtime, count: int, timeout: float = 30.0) -> None:
     stats = runtime.engine.stats
     raise AssertionError(f"timed out: {stats.samples_applied} applied, {stats.samples_warmup} warm-up, "
                          f"{stats.rejected} rejected of {count}")
-
-
-@pytest.fixture
-def start_runtime(tmp_path: Path) -> Iterator[Callable[[RwlsConfig], Runtime]]:
-    started: list[Runtime] = []
-
-    def start(config: RwlsConfig) -> Runtime:
-        runtime = Runtime(config)
-        runtime.start()
-        started.append(runtime)
-        assert runtime.ingest is not None and runtime.ingest.wait_subscribed(10.0)
-        return runtime
-
-    yield start
-    for runtime in started:
-        runtime.stop()
 
 
 def _views(runtime: Runtime) -> dict[str, Any]:
@@ -199,8 +180,7 @@ def test_broker_restart_mid_stream_loses_no_sample(private_mosquitto: Callable[.
                                                    client_id: Callable[[str], str], tmp_path: Path,
                                                    start_runtime: Callable[[RwlsConfig], Runtime]) -> None:
     broker = private_mosquitto(persistence=True)
-    config = _config(unique_prefix, broker.port, client_id("rwls"), tmp_path / "store",
-                     reconnect_min_delay=0.5, reconnect_max_delay=1.0)
+    config = _config(unique_prefix, broker.port, client_id("rwls"), tmp_path / "store", **QUICK_RECONNECT)
     runtime = start_runtime(config)
     assert runtime.ingest is not None
     samples = _samples(seed=13, count=120)

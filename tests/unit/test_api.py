@@ -9,8 +9,7 @@ import itertools
 import json
 import math
 import re
-import warnings
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import fields, is_dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -21,15 +20,18 @@ from fastapi import FastAPI
 from prometheus_client.parser import text_string_to_metric_families
 
 from service.api.app import create_app
-from service.config.settings import parse_config
 from service.offline.replay import replay_file
 from service.runtime import AlreadyRunning, Runtime
-from tests.auth_tokens import auth_section, bearer
+from tests.support.auth_tokens import auth_section, bearer
+from tests.support.clients import api_client
+from tests.support.configs import offline_config
+from tests.support.runtimes import offline_runtime
 
 if TYPE_CHECKING:
     from fastapi.testclient import TestClient
 
 DRAIN_SECONDS = 10.0
+SOURCE = "source"          # the role of every client here: reads and posts samples
 MAX_PAYLOAD = 4096
 
 # Two channels share an estimator shape (one group, vectorised rounds); the other two have groups of their own.
@@ -50,16 +52,6 @@ IDENTITY_FIELDS = {"id", "quality", "quality_reason", "updated_at", "t"}
 
 
 # ----------------------------------------------------------------- helpers
-def _test_client(app: FastAPI, role: str = "source", **kwargs: Any) -> TestClient:
-    """A client whose requests carry the test token of ``role`` (source: reads and posts samples)."""
-    # Starlette 1.x warns once, at import, that its TestClient prefers httpx2 over httpx; the test
-    # extra pins httpx, so that one deprecation is silenced here and nowhere else.
-    with warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=r"Using `httpx` with `starlette\.testclient` is deprecated")
-        from fastapi.testclient import TestClient
-    return TestClient(app, headers=bearer(role), **kwargs)
-
-
 def _no_constant(name: str) -> object:
     raise AssertionError(f"{name} in a JSON response")
 
@@ -156,20 +148,19 @@ def make_runtime(tmp_path: Path) -> Callable[..., Runtime]:
     def make(name: str = "store", **engine: Any) -> Runtime:
         if "queue_size" in engine:
             engine.setdefault("max_batch", engine["queue_size"])
-        config = parse_config({"channels": CHANNELS, "store": {"path": str(tmp_path / name)},
-                               "broker": {"max_payload_bytes": MAX_PAYLOAD}, "engine": engine,
-                               "auth": auth_section()})
-        return Runtime(config, mqtt=False)
+        return offline_runtime(CHANNELS, tmp_path / name, broker={"max_payload_bytes": MAX_PAYLOAD}, engine=engine,
+                               auth=auth_section())
 
     return make
 
 
 @pytest.fixture
-def served(make_runtime: Callable[..., Runtime]) -> Iterator[tuple[Runtime, TestClient]]:
-    """A started runtime (through the app's lifespan) and a client for its app."""
+def served(make_runtime: Callable[..., Runtime],
+           serve: Callable[..., TestClient]) -> tuple[Runtime, TestClient]:
+    """A started runtime (through the app's lifespan) and a client for its app, with the source token (reads
+    and posts samples)."""
     runtime = make_runtime()
-    with _test_client(create_app(runtime)) as client:
-        yield runtime, client
+    return runtime, serve(runtime, SOURCE)
 
 
 def _drain(runtime: Runtime) -> None:
@@ -239,7 +230,7 @@ def test_api_report_equals_replay_of_the_same_samples_bit_for_bit(make_runtime: 
     # one micro-batch, so "flow" and "flow.b" (one group) take the vectorised rounds, replay the scalar path.
     runtime = make_runtime()
     history = _history(seed=13, n=80)
-    with _test_client(create_app(runtime, manage_runtime=False)) as client:
+    with api_client(create_app(runtime, manage_runtime=False), SOURCE) as client:
         if not queued_before_start:
             runtime.start()
         try:
@@ -341,7 +332,7 @@ def test_snapshot_etag_from_before_a_restart_does_not_match(make_runtime: Callab
     etags = []
     for sample in history:          # two processes in turn on one store, each reaching the same version
         runtime = make_runtime("restarted")
-        with _test_client(create_app(runtime)) as client:
+        with api_client(create_app(runtime), SOURCE) as client:
             assert client.post("/api/v1/channels/temp/samples", json=sample).status_code == 202
             _drain(runtime)
             if etags:
@@ -484,12 +475,12 @@ def test_bad_samples_are_listed_counted_and_leave_the_estimators_bit_identical(
     history = _history(seed=18, n=4 * ROUNDS)
 
     clean = make_runtime("clean")
-    with _test_client(create_app(clean)) as client:
+    with api_client(create_app(clean), SOURCE) as client:
         _post_history(client, history, batch=4)
         _drain(clean)
 
     dirty = make_runtime("dirty")
-    with _test_client(create_app(dirty)) as client:
+    with api_client(create_app(dirty), SOURCE) as client:
         for start in range(0, 4 * ROUNDS, 4):
             for cid, samples in history.items():
                 chunk = samples[start:start + 4]
@@ -534,7 +525,7 @@ def test_bad_samples_are_listed_counted_and_leave_the_estimators_bit_identical(
 def test_full_queue_is_503_with_retry_after_and_nothing_is_lost(make_runtime: Callable[..., Runtime]) -> None:
     runtime = make_runtime(queue_size=1)
     samples = _history(seed=19, n=2)["temp"]
-    with _test_client(create_app(runtime, manage_runtime=False)) as client:   # the engine is not started
+    with api_client(create_app(runtime, manage_runtime=False), SOURCE) as client:   # the engine is not started
         assert client.post("/api/v1/channels/temp/samples", json=samples[0]).status_code == 202
         busy = client.post("/api/v1/channels/temp/samples", json=samples[1])
         assert busy.status_code == 503
@@ -559,11 +550,10 @@ def test_full_queue_is_503_with_retry_after_and_nothing_is_lost(make_runtime: Ca
 
 # ---------------------------------------------------------------- history
 def test_history_is_downsampled_filtered_and_survives_a_restart(tmp_path: Path) -> None:
-    config = parse_config({"channels": CHANNELS, "store": {"path": str(tmp_path / "h"), "history_step": 600.0},
-                           "auth": auth_section()})
+    config = offline_config(CHANNELS, tmp_path / "h", store_options={"history_step": 600.0}, auth=auth_section())
     history = _history(seed=5, n=120)                  # samples 60 s apart: two hours
     runtime = Runtime(config, mqtt=False)
-    with _test_client(create_app(runtime)) as client:
+    with api_client(create_app(runtime), SOURCE) as client:
         _post_history(client, history, batch=4)
         _drain(runtime)
         live = _strict_json(client.get("/api/v1/channels/flow/history").text)
@@ -579,7 +569,7 @@ def test_history_is_downsampled_filtered_and_survives_a_restart(tmp_path: Path) 
     assert rows[-1]["parameters"] == pytest.approx([1.0, 0.6, 0.4], abs=0.2)
 
     again = Runtime(config, mqtt=False)                # rows come back from the store after a restart
-    with _test_client(create_app(again)) as client:
+    with api_client(create_app(again), SOURCE) as client:
         stored = _strict_json(client.get("/api/v1/channels/flow/history").text)["rows"]
         assert stored == rows
         middle = _strict_json(client.get("/api/v1/channels/flow/history",
@@ -631,7 +621,7 @@ def test_invalid_path_or_query_parameter_is_422_naming_each_field(make_runtime: 
     def probe(number: int, limit: int = 10) -> dict[str, int]:
         return {"number": number, "limit": limit}
 
-    with _test_client(app) as client:
+    with api_client(app, SOURCE) as client:
         assert client.get("/api/v1/probe/3?limit=4").json() == {"number": 3, "limit": 4}
         expected = {
             "/api/v1/probe/three": {"detail": "invalid path parameter number: must be an integer",
@@ -649,7 +639,7 @@ def test_invalid_path_or_query_parameter_is_422_naming_each_field(make_runtime: 
 
 
 def test_a_422_names_the_field_and_the_problem_never_the_value(make_runtime: Callable[..., Runtime]) -> None:
-    with _test_client(create_app(make_runtime())) as client:
+    with api_client(create_app(make_runtime()), SOURCE) as client:
         response = client.get("/api/v1/channels/flow/history", params={"limit": 0})
         assert response.status_code == 422
         assert response.json() == {"detail": "invalid query parameter limit: must be at least 1",
@@ -667,7 +657,7 @@ def test_unhandled_error_is_500_internal_error_without_traceback(make_runtime: C
     def explode() -> None:
         raise RuntimeError("secret internals")
 
-    with _test_client(app, raise_server_exceptions=False) as client:
+    with api_client(app, SOURCE, raise_server_exceptions=False) as client:
         response = client.get("/api/v1/explode")
     assert response.status_code == 500
     assert response.json() == {"detail": "internal error"}
@@ -725,11 +715,11 @@ def test_second_runtime_on_the_same_store_fails_with_already_running(
         make_runtime: Callable[..., Runtime]) -> None:
     first = make_runtime("shared")
     second = make_runtime("shared")
-    with _test_client(create_app(first)):
+    with api_client(create_app(first), SOURCE):
         with pytest.raises(AlreadyRunning, match="another rwls process owns ingest"):
             second.start()
         assert not second.engine_alive()
-        with pytest.raises(AlreadyRunning), _test_client(create_app(second)):
+        with pytest.raises(AlreadyRunning), api_client(create_app(second), SOURCE):
             pass
     # Once the owner stops, the lock is free.
     second.start()

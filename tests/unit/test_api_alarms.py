@@ -5,8 +5,7 @@ from __future__ import annotations
 import json
 import threading
 import time
-import warnings
-from collections.abc import Iterator
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -14,32 +13,23 @@ import numpy as np
 import pytest
 
 from service.api.app import create_app
-from service.config.settings import parse_config
 from service.engine.operations import Inspect
 from service.runtime import Runtime
-from tests.auth_tokens import auth_section, bearer
+from tests.support.auth_tokens import auth_section, bearer
+from tests.support.clients import api_client
+from tests.support.runtimes import offline_runtime
 
 # One channel that commissions after 60 samples, with a touchy offset detector and no delays.
 CHANNEL = {"terms": ["1", "u"], "forgetting_factor": 0.99,
            "detectors": {"commissioning_samples": 60, "calibration_samples": 0, "offset": {"k": 1.0, "h": 5.0}},
            "alarms": {"offset": {"priority": "urgent"}}}
-
-
-def _client(app: Any, role: str = "engineer") -> Any:
-    """A client whose requests carry the test token of ``role``."""
-    with warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=r"Using `httpx` with `starlette\.testclient` is deprecated")
-        from fastapi.testclient import TestClient
-    return TestClient(app, headers=bearer(role))
+ROLE = "engineer"          # the role of every client here: reads, posts, operates and configures
 
 
 @pytest.fixture
-def served(tmp_path: Path) -> Iterator[tuple[Runtime, Any]]:
-    config = parse_config({"channels": {"dp": CHANNEL}, "store": {"path": str(tmp_path / "store")},
-                           "auth": auth_section()})
-    runtime = Runtime(config, mqtt=False)
-    with _client(create_app(runtime)) as client:
-        yield runtime, client
+def served(tmp_path: Path, serve: Callable[..., Any]) -> tuple[Runtime, Any]:
+    runtime = offline_runtime({"dp": CHANNEL}, tmp_path / "store", auth=auth_section())
+    return runtime, serve(runtime, ROLE)
 
 
 def _post(client: Any, samples: list[dict[str, Any]]) -> None:
@@ -153,11 +143,9 @@ def test_baseline_learn_set_and_reset(served: tuple[Runtime, Any]) -> None:
 
 def test_event_stream_sends_the_alarms_then_each_transition_and_ends_when_the_service_stops(
         tmp_path: Path) -> None:
-    config = parse_config({"channels": {"dp": CHANNEL}, "store": {"path": str(tmp_path / "store")},
-                           "auth": auth_section()})
-    runtime = Runtime(config, mqtt=False)
+    runtime = offline_runtime({"dp": CHANNEL}, tmp_path / "store", auth=auth_section())
     events: list[dict[str, Any]] = []
-    with _client(create_app(runtime)) as client:
+    with api_client(create_app(runtime), ROLE) as client:
         def listen() -> None:
             with client.stream("GET", "/api/v1/events") as response:
                 assert response.headers["content-type"].startswith("text/event-stream")

@@ -11,7 +11,6 @@ fails under pytest 9 (it reads the private ``Function._nodeid``).
 from __future__ import annotations
 
 import json
-import warnings
 from collections.abc import Iterator
 from typing import TYPE_CHECKING, Any
 
@@ -23,9 +22,10 @@ from hypothesis import strategies as st
 
 from service.api.app import create_app
 from service.broker_link.payload import REASONS
-from service.config.settings import parse_config
 from service.runtime import Runtime
-from tests.auth_tokens import auth_section, bearer
+from tests.support.auth_tokens import auth_section, bearer
+from tests.support.clients import api_client
+from tests.support.runtimes import offline_runtime
 
 if TYPE_CHECKING:
     from fastapi.testclient import TestClient
@@ -42,14 +42,8 @@ GENERATED = settings(max_examples=40, deadline=None, derandomize=True, database=
                      suppress_health_check=[HealthCheck.too_slow])
 
 
-def _runtime(store: str) -> Runtime:
-    config = parse_config({"channels": CHANNELS, "store": {"path": store},
-                           "broker": {"max_payload_bytes": MAX_PAYLOAD}, "auth": auth_section()})
-    return Runtime(config, mqtt=False)
-
-
 def _app(store: str) -> tuple[Runtime, FastAPI]:
-    runtime = _runtime(store)
+    runtime = offline_runtime(CHANNELS, store, broker={"max_payload_bytes": MAX_PAYLOAD}, auth=auth_section())
     return runtime, create_app(runtime, manage_runtime=False)
 
 
@@ -130,19 +124,10 @@ _OVERSIZED = st.integers(MAX_PAYLOAD + 1, MAX_PAYLOAD + 64).map(lambda n: b'{"y"
 _BODY = st.one_of(_DOCUMENT.map(_encode), st.binary(max_size=64), _OVERSIZED)
 
 
-def _test_client(app: FastAPI) -> TestClient:
-    """A client carrying the source token (reads and posts samples)."""
-    # Starlette 1.x warns once, at import, that its TestClient prefers httpx2 over httpx; the test
-    # extra pins httpx, so that one deprecation is silenced here and nowhere else.
-    with warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=r"Using `httpx` with `starlette\.testclient` is deprecated")
-        from fastapi.testclient import TestClient
-    return TestClient(app, headers=bearer("source"))
-
-
 @pytest.fixture(scope="module")
 def ingest_client(served: tuple[Runtime, FastAPI]) -> Iterator[TestClient]:
-    with _test_client(served[1]) as client:
+    """A client carrying the source token (reads and posts samples)."""
+    with api_client(served[1], "source") as client:
         yield client
 
 

@@ -3,8 +3,7 @@
 from __future__ import annotations
 
 import logging
-import warnings
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -15,7 +14,9 @@ from service.api.auth import PERMISSIONS, Access, new_token, token_digest
 from service.config.settings import ConfigError, load_config, parse_config
 from service.config.token_settings import AuthConfig
 from service.runtime import Runtime
-from tests.auth_tokens import TOKENS, auth_section, bearer
+from tests.support.auth_tokens import TOKENS, auth_section, bearer
+from tests.support.clients import api_client
+from tests.support.runtimes import offline_runtime
 
 CHANNELS = {"dp": {"terms": ["1", "u"], "detectors": {"commissioning_samples": 20}}}
 SAMPLE = b'{"t": 1.0, "y": 1.0, "u": {"u": 0.5}, "seq": 1}'
@@ -38,28 +39,17 @@ ROLE_GRANTS = {"viewer": {"read"}, "source": {"read", "ingest"}, "operator": {"r
                "engineer": {"read", "ingest", "operate", "configure"}}
 
 
-def _client(app: Any, **kwargs: Any) -> Any:
-    with warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=r"Using `httpx` with `starlette\.testclient` is deprecated")
-        from fastapi.testclient import TestClient
-    return TestClient(app, **kwargs)
-
-
-def _serve(directory: Path, **sections: Any) -> Iterator[tuple[Runtime, Any]]:
-    config = parse_config({"channels": CHANNELS, "store": {"path": str(directory)}, **sections})
-    runtime = Runtime(config, mqtt=False)
-    with _client(create_app(runtime)) as client:
-        yield runtime, client
+# Clients here carry no token of their own: each request says whose it is.
+@pytest.fixture
+def served(tmp_path: Path, serve: Callable[..., Any]) -> tuple[Runtime, Any]:
+    runtime = offline_runtime(CHANNELS, tmp_path / "open", auth=auth_section())
+    return runtime, serve(runtime)
 
 
 @pytest.fixture
-def served(tmp_path: Path) -> Iterator[tuple[Runtime, Any]]:
-    yield from _serve(tmp_path / "open", auth=auth_section())
-
-
-@pytest.fixture
-def closed(tmp_path: Path) -> Iterator[tuple[Runtime, Any]]:
-    yield from _serve(tmp_path / "closed", auth=auth_section(reads="token"))
+def closed(tmp_path: Path, serve: Callable[..., Any]) -> tuple[Runtime, Any]:
+    runtime = offline_runtime(CHANNELS, tmp_path / "closed", auth=auth_section(reads="token"))
+    return runtime, serve(runtime)
 
 
 # ------------------------------------------------------------ the checks
@@ -124,7 +114,7 @@ def test_each_role_may_do_what_it_is_granted_and_gets_403_for_the_rest(served: t
 
 
 def test_no_tokens_configured_means_no_writes_at_all(tmp_path: Path) -> None:
-    for _, client in _serve(tmp_path / "none"):
+    with api_client(create_app(offline_runtime(CHANNELS, tmp_path / "none"))) as client:
         assert client.get("/api/v1/channels").status_code == 200
         for path, body, _ in WRITES:
             assert client.post(path, **body).status_code == 401, path
@@ -201,8 +191,8 @@ def test_cors_is_off_by_default_and_allows_only_the_configured_origins(served: t
     _, client = served
     plain = client.get("/api/v1/channels", headers={"Origin": "http://evil.example"})
     assert "access-control-allow-origin" not in plain.headers
-    for _, allowing in _serve(tmp_path / "cors", http={"cors_origins": ["http://hmi.plant.example:8443"]},
-                              auth=auth_section()):
+    with api_client(create_app(offline_runtime(CHANNELS, tmp_path / "cors", auth=auth_section(),
+                                              http={"cors_origins": ["http://hmi.plant.example:8443"]}))) as allowing:
         ours = allowing.get("/api/v1/channels", headers={"Origin": "http://hmi.plant.example:8443"})
         assert ours.headers["access-control-allow-origin"] == "http://hmi.plant.example:8443"
         theirs = allowing.get("/api/v1/channels", headers={"Origin": "http://evil.example"})

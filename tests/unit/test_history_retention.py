@@ -6,18 +6,17 @@ import json
 from pathlib import Path
 
 from service.broker_link.messages import Message
-from service.config.settings import parse_config
 from service.engine.operations import Inspect
 from service.runtime import Runtime
+from tests.support.runtimes import offline_runtime
 
 T0 = 1_704_067_200.0          # 2024-01-01: long before the wall clock of any test run
 DAY = 86400.0
 
 
 def _runtime(data: Path) -> Runtime:
-    config = parse_config({"channels": {"a": {"topic": "t/a", "terms": ["1", "u"]}},
-                           "store": {"path": str(data), "history_step": 3600.0, "history_retention_days": 2.0}})
-    return Runtime(config, mqtt=False)
+    return offline_runtime({"a": {"topic": "t/a", "terms": ["1", "u"]}}, data,
+                           store_options={"history_step": 3600.0, "history_retention_days": 2.0})
 
 
 def _feed(runtime: Runtime, start: int, days: float) -> int:

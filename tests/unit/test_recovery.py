@@ -1,4 +1,4 @@
-"""Recovery in-process: a crash after any checkpoint, the input log replayed, the state of an uninterrupted run."""
+"""Recovery in-process: a crash after any checkpoint, the input log reapplied, the state of an uninterrupted run."""
 
 from __future__ import annotations
 
@@ -12,11 +12,11 @@ import pytest
 from sqlalchemy import update
 
 from service.broker_link.messages import Message
-from service.config.settings import parse_config
 from service.engine.operations import Acknowledge, Inspect
 from service.runtime import Runtime
 from service.storage.persistence import Persistence
 from service.storage.store import checkpoints
+from tests.support.runtimes import feed, offline_runtime
 
 CHANNELS = {f"c{k}": {"terms": ["1", "u"], "forgetting_factor": 0.99,
                       "detectors": {"commissioning_samples": 40, "calibration_samples": 0,   # Gaussian: no table
@@ -33,8 +33,7 @@ def arrival() -> float:
 
 
 def _runtime(store: Path) -> Runtime:
-    config = parse_config({"channels": CHANNELS, "store": {"path": str(store), "checkpoint_seconds": 3600}})
-    return Runtime(config, mqtt=False)
+    return offline_runtime(CHANNELS, store, store_options={"checkpoint_seconds": 3600})
 
 
 def _messages(first: int, count: int, arrival: float) -> list[Message]:
@@ -48,12 +47,6 @@ def _messages(first: int, count: int, arrival: float) -> list[Message]:
                     "seq": k}
             out.append(Message(cid, json.dumps(body).encode(), "http", received=arrival + k / 100.0))
     return out
-
-
-def _feed(runtime: Runtime, messages: list[Message]) -> None:
-    for m in messages:
-        assert runtime.engine.submit(m, timeout=5.0)
-    assert runtime.engine.drain(20.0)
 
 
 def _checkpoint(runtime: Runtime) -> None:
@@ -99,14 +92,14 @@ def test_a_crash_after_any_checkpoint_recovers_the_uninterrupted_state(tmp_path:
     whole = _runtime(tmp_path / "whole")
     whole.start()
     for chunk in chunks:
-        _feed(whole, chunk)
+        feed(whole, chunk)
     ack = whole.engine.execute(Acknowledge(alarm="c1:offset", user="ana", comment="seen", time=9.0))
     assert ack.entry.after == "Acknowledged"
 
     first = _runtime(tmp_path / "crashed")
     first.start()
     for k, chunk in enumerate(chunks[:3]):
-        _feed(first, chunk)
+        feed(first, chunk)
         if k < crash_after:
             _checkpoint(first)
     _crash(first)                                        # chunk 3 never checkpointed: only in the input log
@@ -114,7 +107,7 @@ def test_a_crash_after_any_checkpoint_recovers_the_uninterrupted_state(tmp_path:
     second = _runtime(tmp_path / "crashed")
     second.start()
     assert second.recovery is not None and second.recovery["reapplied"] > 0
-    _feed(second, chunks[3])
+    feed(second, chunks[3])
     second.engine.execute(Acknowledge(alarm="c1:offset", user="ana", comment="seen", time=9.0))
     try:
         _same(whole, second)
@@ -130,8 +123,8 @@ def test_a_torn_newest_checkpoint_falls_back_to_the_one_before(tmp_path: Path, a
     crashed.start()
     for k in range(3):
         chunk = _messages(60 * k, 60, arrival)
-        _feed(whole, chunk)
-        _feed(crashed, chunk)
+        feed(whole, chunk)
+        feed(crashed, chunk)
         _checkpoint(crashed)
     persistence = crashed.persistence
     assert persistence is not None
@@ -155,7 +148,7 @@ def test_a_torn_newest_checkpoint_falls_back_to_the_one_before(tmp_path: Path, a
 def test_a_clean_stop_checkpoints_and_restarts_without_replay(tmp_path: Path, arrival: float) -> None:
     runtime = _runtime(tmp_path / "store")
     runtime.start()
-    _feed(runtime, _messages(0, 80, arrival))
+    feed(runtime, _messages(0, 80, arrival))
     before = _state(runtime)[0]["g0.bank.A"].copy()
     stopped = runtime.persistence                          # the runtime lets go of it at stop
     assert isinstance(stopped, Persistence)
@@ -184,7 +177,7 @@ def test_readers_see_the_recovered_alarm_states_not_those_of_the_fresh_start(tmp
                                                                              arrival: float) -> None:
     runtime = _runtime(tmp_path / "store")
     runtime.start()
-    _feed(runtime, _messages(0, 200, arrival))           # c1's offset step raises its alarm
+    feed(runtime, _messages(0, 200, arrival))           # c1's offset step raises its alarm
     raised = {a.id: str(a.state) for a in runtime.engine.snapshot.alarms}
     assert raised["c1:offset"] == "Unacknowledged"
     runtime.engine.execute(Acknowledge(alarm="c1:offset", user="ana", comment="", time=5.0))

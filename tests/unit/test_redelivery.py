@@ -9,8 +9,8 @@ import pytest
 
 from service.broker_link.messages import Message
 from service.broker_link.redelivery import RecentlyLogged
-from service.config.settings import parse_config
 from service.runtime import Runtime
+from tests.support.runtimes import offline_runtime
 
 
 def test_window_keeps_the_newest_fingerprints_only() -> None:
@@ -46,8 +46,7 @@ class _AckRecorder:
 
 
 def _runtime(store: Path, acks: list[tuple[int, int]]) -> Runtime:
-    config = parse_config({"channels": {"dp": {"terms": ["1", "u"]}}, "store": {"path": str(store)}})
-    runtime = Runtime(config, mqtt=False)
+    runtime = offline_runtime({"dp": {"terms": ["1", "u"]}}, store)
     runtime.ingest = _AckRecorder(acks)  # type: ignore[assignment]
     return runtime
 

@@ -18,7 +18,7 @@ def _statistics(bank: RecursiveWLSBank, scale: str = "estimated"):
 
 
 def _feed(bank: RecursiveWLSBank, data, channel: int = 0) -> None:
-    """Apply a RegressionData history (tests/conftest.py) sample by sample."""
+    """Apply a RegressionData history (tests/support/regression_data.py) sample by sample."""
     for z, y, w in zip(data.Z, data.y, data.weight, strict=True):
         bank.update_one(channel, z, y, w)
 

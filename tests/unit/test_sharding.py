@@ -12,7 +12,7 @@ import pytest
 from service.config.settings import ConfigError, parse_config
 from service.fleet.peers import Fleet, own_share
 from service.fleet.sharding import Shard, owner, parse_shard
-from tests.integration.mqtt_support import free_port
+from tests.support.addresses import free_port
 
 CHANNELS = [f"plant{p}.line{k}.sensor" for p in range(3) for k in range(20)]
 
@@ -91,8 +91,8 @@ def test_the_fleet_snapshot_marks_the_channels_of_a_silent_replica_bad() -> None
 def test_a_replica_in_redirect_mode_sends_reads_of_other_channels_to_their_owner(tmp_path: object) -> None:
     from service.api.app import create_app
     from service.runtime import Runtime
-    from tests.auth_tokens import auth_section
-    from tests.unit.test_api import _test_client
+    from tests.support.auth_tokens import auth_section
+    from tests.support.clients import api_client
 
     urls = ["http://rwls-0.peers:8080", "http://rwls-1.peers:8080", "http://rwls-2.peers:8080"]
     config = parse_config({"channels": {c: {"terms": ["1", "u"]} for c in CHANNELS},
@@ -100,7 +100,7 @@ def test_a_replica_in_redirect_mode_sends_reads_of_other_channels_to_their_owner
                            "store": {"path": str(tmp_path)}, "auth": auth_section()})
     runtime = Runtime(config, mqtt=False)
     assert set(runtime.config.channels) == {c for c in CHANNELS if owner(c, 3) == 0}
-    with _test_client(create_app(runtime), follow_redirects=False) as client:
+    with api_client(create_app(runtime), "source", follow_redirects=False) as client:
         theirs = next(c for c in CHANNELS if owner(c, 3) == 2)
         answer = client.get(f"/api/v1/channels/{theirs}/history?limit=5")
         assert answer.status_code == 307

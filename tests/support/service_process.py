@@ -21,11 +21,10 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from tests.integration.mqtt_support import signal_and_wait
+from tests.support.addresses import LOOPBACK
+from tests.support.child_processes import signal_and_wait
 
 __all__ = ["ServiceProcess", "toml_text"]
-
-LOOPBACK = "127.0.0.1"
 
 
 def _value(value: Any) -> str:

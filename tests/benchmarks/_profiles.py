@@ -1,0 +1,73 @@
+"""cProfile of the service's own threads, when a benchmark misses its goal: what takes the time."""
+
+from __future__ import annotations
+
+import contextlib
+import cProfile
+import pstats
+import time
+from pathlib import Path
+
+from service.runtime import Runtime
+from tests.benchmarks._common import print_table
+
+__all__ = ["ThreadProfiles", "print_profile"]
+
+REPO = Path(__file__).parents[2]
+
+
+class ThreadProfiles:
+    """cProfile (CPU time of the thread, ``time.thread_time``) around the engine's and ingest's thread bodies.
+
+    Installed on the instances before ``Runtime.start`` (they are the threads' targets): no service code changes.
+    """
+
+    def __init__(self, runtime: Runtime) -> None:
+        self.engine = cProfile.Profile(time.thread_time)
+        self.ingest = cProfile.Profile(time.thread_time)
+        self._wrap(runtime.engine, "_run", self.engine)
+        if runtime.ingest is not None:
+            # In-process ingest: paho's loop; process ingest: the reader thread that feeds the engine.
+            self._wrap(runtime.ingest, "_loop" if hasattr(runtime.ingest, "_loop") else "_read", self.ingest)
+
+    @staticmethod
+    def _wrap(owner: object, name: str, profile: cProfile.Profile) -> None:
+        body = getattr(owner, name)
+
+        def profiled() -> None:
+            profile.enable()
+            try:
+                body()
+            finally:
+                profile.disable()
+
+        setattr(owner, name, profiled)
+
+
+def label(func: tuple[str, int, str]) -> str:
+    filename, line, name = func
+    if filename == "~":
+        return name
+    path = Path(filename)
+    with contextlib.suppress(ValueError):
+        return f"{path.relative_to(REPO)}:{line}({name})"
+    return f"{path.parent.name}/{path.name}:{line}({name})"
+
+
+def print_profile(title: str, profile: cProfile.Profile, samples: int, top: int = 16) -> None:
+    stats = pstats.Stats(profile).stats  # type: ignore[attr-defined]
+    total = sum(entry[2] for entry in stats.values())
+    if total <= 0:
+        print(f"   {title}: nothing recorded")
+        return
+    print(f"   {title}: {total:.2f} s thread CPU ({total / max(samples, 1) * 1e6:.1f} us per sample under cProfile);"
+          " by own time (cumulative beside):")
+    ordered = sorted(stats.items(), key=lambda item: item[1][2], reverse=True)[:top]
+    rows = [[f"{entry[2] / total:.1%}", f"{min(entry[3] / total, 1.0):.1%}", f"{entry[1]:,}", label(func)]
+            for func, entry in ordered]
+    print_table(["own", "cumulative", "calls", "function"], rows)
+    print(f"   {title}: by cumulative time (own beside):")
+    ordered = sorted(stats.items(), key=lambda item: item[1][3], reverse=True)[:top]
+    rows = [[f"{min(entry[3] / total, 1.0):.1%}", f"{entry[2] / total:.1%}", f"{entry[1]:,}", label(func)]
+            for func, entry in ordered]
+    print_table(["cumulative", "own", "calls", "function"], rows)
