@@ -153,15 +153,15 @@ def test_kill_9_at_random_moments_then_restart_reaches_the_uninterrupted_state(
         service.kill()
     assert service.starts == KILLS + 1
     assert all(0 < n < len(stream) for n in before_kill), before_kill     # every kill landed mid-stream
-    replayed = [int(line.split(" inputs replayed")[0].rsplit(" ", 1)[1])
-                for line in service.log_path.read_text().splitlines() if " inputs replayed" in line]
-    assert len(replayed) == KILLS + 1
+    reapplied = [int(line.split(" inputs reapplied")[0].rsplit(" ", 1)[1])
+                 for line in service.log_path.read_text().splitlines() if " inputs reapplied" in line]
+    assert len(reapplied) == KILLS + 1
     crashed = final_state(tmp_path / "data", url)
     stats = crashed[1]["engine"]["stats"]
     # How much each start took from the input log and how many DUP redeliveries it recognised depend on
     # where the kill fell relative to a checkpoint and an acknowledgement: printed, not asserted.
-    print(f"\n{backend}: {len(stream)} messages, kills after {before_kill} applied; inputs replayed from the "
-          f"log at each start {replayed}; broker redeliveries recognised {stats['redelivered']}")
+    print(f"\n{backend}: {len(stream)} messages, kills after {before_kill} applied; inputs reapplied from the "
+          f"log at each start {reapplied}; broker redeliveries recognised {stats['redelivered']}")
     assert stats["rejected"] == {}, stats                    # no redelivery taken for a plant's repeat
     assert_same_state(crashed, uninterrupted_state(settings, tmp_path / "whole", stream))
     assert any(e["action"] == "condition_on" for e in crashed[2])      # the offset step was journaled
