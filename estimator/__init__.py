@@ -15,6 +15,7 @@ from estimator.noise.variance import NoiseVarianceTracker, TrackerState
 from estimator.recursive.batch import BatchFit, NotIdentifiable, fit_wls
 from estimator.recursive.rwls import BankState, RecursiveWLSBank, RejectedSample, UpdateResult
 from estimator.recursive.statistics import CONDITION_LIMIT, ChannelStatistics, bank_statistics
+from estimator.recursive.weight_rule import sigma_is_usable, usable_sigmas, usable_weights, weight_is_usable
 
 __all__ = [
     "CONDITION_LIMIT",
@@ -54,8 +55,12 @@ __all__ = [
     "import_state",
     "offset_arl",
     "parse_term",
+    "sigma_is_usable",
     "student_t_quantile",
     "threshold_for_arl",
+    "usable_sigmas",
+    "usable_weights",
     "variance_arl",
     "variance_reference",
+    "weight_is_usable",
 ]

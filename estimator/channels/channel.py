@@ -34,6 +34,7 @@ from functools import cached_property
 
 from estimator.channels.regressors import RegressorSpec
 from estimator.detection.detectors import DetectorSettings
+from estimator.recursive.weight_rule import sigma_is_usable, weight_is_usable
 
 __all__ = ["ChannelCounters", "ChannelSettings", "PathTuning", "Prepared", "Sample", "SampleOutcome", "WeightRule",
            "check_sample", "sample_weight"]
@@ -156,9 +157,9 @@ def check_sample(settings: ChannelSettings, sample: Sample, last_t: float | None
         values.append(sample.weight)
     if not all(math.isfinite(v) for v in values):
         return "non_finite"
-    if sample.sigma is not None and not (sample.sigma > 0.0 and 0.0 < sample.sigma * sample.sigma < math.inf):
+    if sample.sigma is not None and not sigma_is_usable(sample.sigma):
         return "bad_sigma"         # sigma <= 0, or so small or large that 1 / sigma^2 is no weight
-    if sample.weight is not None and sample.weight <= 0.0:
+    if sample.weight is not None and not weight_is_usable(sample.weight):
         return "bad_weight"
     t = sample.t
     if t is not None and not math.isfinite(t):

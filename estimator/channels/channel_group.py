@@ -29,6 +29,7 @@ from estimator.channels.regressors import NotUsable, RegressorBuilder, Regressor
 from estimator.noise.log_variance import LogVarianceModel
 from estimator.noise.variance import NoiseVarianceTracker
 from estimator.recursive.rwls import RecursiveWLSBank, RejectedSample
+from estimator.recursive.weight_rule import weight_is_usable
 
 __all__ = ["declared_variance", "shape_key"]
 
@@ -76,7 +77,7 @@ class _Lane:
         w = sample_weight(self.settings, sample, self.group.variance_before(self.index, z_noise))
         if w is None:
             return self.reject("missing_weight")
-        if not (math.isfinite(w) and w > 0.0):
+        if not weight_is_usable(w):
             return self.reject("bad_weight")
         return Prepared(sample, z, z_noise, w)
 

@@ -36,6 +36,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
+from estimator.recursive.weight_rule import usable_sigmas, usable_weights
 
 if TYPE_CHECKING:
     from estimator.channels.channel_group import _Group, _Lane
@@ -114,11 +115,8 @@ class _Prepared:
         self.weight = _Optional([c.weight for c in columns], lengths, starts)
         self.t = _Optional([c.t for c in columns], lengths, starts)
         refused |= self.sigma.refused | self.weight.refused | self.t.refused
-        s = self.sigma.values
-        with np.errstate(over="ignore", invalid="ignore"):
-            s2 = s * s
-            bad |= self.sigma.given & ~((s > 0.0) & (s2 > 0.0) & (s2 < np.inf))     # non_finite, bad_sigma
-        bad |= self.weight.given & ~((self.weight.values > 0.0) & (self.weight.values < np.inf))
+        bad |= self.sigma.given & ~usable_sigmas(self.sigma.values)         # non_finite, bad_sigma
+        bad |= self.weight.given & ~usable_weights(self.weight.values)      # non_finite, bad_weight
         t = self.t.values
         last_t = np.array([np.nan if lane.last_t is None else lane.last_t for lane in lanes])
         previous_t = np.empty_like(t)
@@ -240,8 +238,7 @@ class _Prepared:
                 self.factor[k, q] = rule.factor
         w = self.apply_rules(w, np.arange(total), self.lane_of)
         fixed = ~self.tracked[self.lane_of]
-        with np.errstate(invalid="ignore"):
-            unusable = fixed & self.fitted & ~((w > 0.0) & (w < np.inf))                # bad_weight
+        unusable = fixed & self.fitted & ~usable_weights(w)                             # bad_weight
         self.refused |= _per_lane_any(unusable, self.starts)
         self.w = w
 
@@ -370,9 +367,7 @@ def _tracked_weights(group: _Group, prep: _Prepared, w: FloatArray, rows: NDArra
     tracked_w = prep.apply_rules(tracked_w, rows[tracked], lanes[tracked])
     w = w.copy()
     w[tracked] = tracked_w
-    with np.errstate(invalid="ignore"):
-        usable = (w > 0.0) & (w < np.inf)
-    return w, usable
+    return w, usable_weights(w)
 
 
 def _finish_lanes(prep: _Prepared, lanes: list[int], accepted: list[int], fitted: list[int]

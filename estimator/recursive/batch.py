@@ -17,6 +17,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from estimator.recursive.weight_rule import usable_weights
+
 __all__ = ["BatchFit", "NotIdentifiable", "fit_wls"]
 
 FloatArray = NDArray[np.float64]
@@ -104,7 +106,7 @@ def fit_wls(Z: ArrayLike, y: ArrayLike, weight: ArrayLike | None = None,
         raise ValueError(f"forgetting_factor must be in (0, 1], got {forgetting_factor}")
     if not (np.isfinite(Z).all() and np.isfinite(y).all()):
         raise ValueError("Z and y must be finite")
-    if not (np.isfinite(w).all() and (w > 0.0).all()):
+    if not usable_weights(w).all():
         raise ValueError("weight must be finite and > 0")
     if count < n:
         raise NotIdentifiable(f"{count} samples for {n} parameters")

@@ -67,6 +67,7 @@ from estimator.recursive._givens import (
     rotate_rows,
     scalar_step,
 )
+from estimator.recursive.weight_rule import usable_weights, weight_is_usable
 
 __all__ = ["BankState", "RecursiveWLSBank", "RejectedSample", "UpdateResult"]
 
@@ -97,7 +98,7 @@ def checked_sample(z: Sequence[float], y: float, weight: float, n: int) -> tuple
         raise RejectedSample("bad_shape", f"z must have length {n}, got {len(zs)}")
     if not (all(math.isfinite(v) for v in zs) and math.isfinite(y)):
         raise RejectedSample("non_finite", "z and y must be finite")
-    if not (math.isfinite(weight) and weight > 0.0):
+    if not weight_is_usable(weight):
         raise RejectedSample("bad_weight", f"weight must be finite and > 0, got {weight}")
     return zs, y, weight
 
@@ -232,7 +233,7 @@ class RecursiveWLSBank:
         if not (math.isfinite(float(z.sum()) + float(y.sum()))
                 or (np.isfinite(z).all() and np.isfinite(y).all())):
             raise RejectedSample("non_finite", "z and y must be finite")
-        if b and not (w.min() > 0.0 and w.max() < np.inf):     # a NaN fails both comparisons
+        if not usable_weights(w).all():
             raise RejectedSample("bad_weight", "weight must be finite and > 0")
 
     # ---------------------------------------------------------------- updates

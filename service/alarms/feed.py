@@ -1,4 +1,4 @@
-"""From the bank's detector events to the alarm book (engine thread only).
+"""From the bank's detector events to the alarm book (the engine thread; offline, the what-if on sample time).
 
 Everything here follows the samples, in their order, so a run reapplied from
 a checkpoint and its input log journals exactly the transitions the

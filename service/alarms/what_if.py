@@ -1,55 +1,98 @@
 """Offline what-if: the alarm transitions the detectors would have produced on a history.
 
 ``rwls replay`` runs the same detectors, with the same channel tables, as the
-live service; this feeds their condition changes to an alarm book with no
-operator (nobody acknowledges, nothing is shelved), so an engineer can tune
-limits on last month's data before going live. Times are the samples' own
-(a history without times counts samples instead).
+live service, and this drives the same :class:`~service.alarms.feed.AlarmFeed`
+the engine drives, so an engineer can tune limits on last month's data before
+going live and see what the operators would have seen. It runs on sample time:
+a transition's time is its sample's own ``t`` (a history without times counts
+each channel's applied samples instead, from 0). Design suppression applies as
+it does live: a channel without a baseline has its detector alarms held until
+commissioning gives it one, and the drift alarm is held while the drift test
+cannot judge the estimates. Nobody acknowledges or shelves, and staleness is
+not judged: it is the wall clock's judgement of a live feed, not of a history.
 """
 
 from __future__ import annotations
 
-import math
-
 from estimator import ChannelBank
-from service.alarms.lifecycle import AlarmBook, Evidence
+from service.alarms.feed import AlarmFeed
+from service.alarms.lifecycle import Alarm, AlarmBook, AlarmState, JournalEntry
 from service.config.settings import RwlsConfig
 
 __all__ = ["WhatIf"]
 
+# Holding back or releasing an alarm that is quiet either way changes nothing an operator sees: not listed.
+_QUIET = frozenset({AlarmState.NORMAL, AlarmState.SUPPRESSED})
+
+
+def _listed(entry: JournalEntry) -> bool:
+    """Condition changes, and design suppressions that hide or bring back an alarm an operator would see."""
+    return entry.action in ("condition_on", "condition_off") or not {entry.before, entry.after} <= _QUIET
+
 
 class WhatIf:
-    """Collects the alarm transitions of an offline run, per channel."""
+    """Collects the alarm transitions of an offline run, per channel.
+
+    Call :meth:`start` once the configured baselines are in force, then
+    :meth:`observe` after every applied sample.
+    """
 
     def __init__(self, config: RwlsConfig) -> None:
         self._book = AlarmBook({cid: ch.priorities() for cid, ch in config.channels.items()})
+        self._feed = AlarmFeed(self._book, config.alarms.stale_after)
         self._samples: dict[str, int] = {}
+        self._held: dict[str, bool] | None = None     # channel -> has a baseline, until the first sample
+        self._timed = False                           # whether the sample being observed has a time
+        self._heard: list[tuple[JournalEntry, bool]] = []   # each transition, and whether its time is a t
+        self._book.listen(self._hear)
+
+    def start(self, bank: ChannelBank) -> None:
+        """As the engine starts: the configured baselines are not news; channels without one are held.
+
+        The hold is journaled at the first sample's time, the start of the history.
+        """
+        bank.take_events()
+        self._held = {c: bank.baseline_version(c) is not None for c in bank.channel_ids}
 
     def observe(self, bank: ChannelBank, channel: str, t: float | None) -> None:
-        """After one sample of ``channel``: take the bank's detector events."""
+        """After one applied sample of ``channel`` at sample time ``t`` (None: unknown): take the bank's events."""
         index = self._samples.get(channel, 0)
         self._samples[channel] = index + 1
-        for event in bank.take_events():
-            c = event.condition
-            if c is None:
-                continue
-            at = c.t if not math.isnan(c.t) else float(index)
-            self._book.condition(event.channel, c.kind, c.active, at,
-                                 Evidence(c.statistic, c.limit, None if math.isnan(c.onset) else c.onset,
-                                          bank.baseline_version(event.channel), None if math.isnan(c.t) else c.t))
+        now = float(index) if t is None else t
+        self._timed = t is not None
+        if self._held is not None:
+            self._feed.hold_uncommissioned(self._held, now)
+            self._held = None
+        events = bank.take_events()
+        if events:
+            self._feed.take(events, now, {c: bank.baseline_version(c) for c in {e.channel for e in events}})
+
+    @property
+    def journal(self) -> list[JournalEntry]:
+        """Every transition of the run, in order (a copy), as the live alarm book journals them."""
+        return list(self._book.journal)
 
     def transitions(self, channel: str) -> list[dict[str, object]]:
-        """``[{"kind", "state", "t" or "sample", "statistic", "limit", "onset"}]`` in time order."""
+        """``[{"kind", "state", "action", "t" or "sample", "statistic", "limit", "onset", "baseline"}]`` in order.
+
+        Design suppressions carry their ``reason`` too, and the evidence of the condition they set aside or
+        bring back; those of an alarm quiet before and after are left out.
+        """
         out: list[dict[str, object]] = []
-        for entry in self._book.journal:
-            if entry.channel != channel:
+        for entry, timed in self._heard:
+            if entry.channel != channel or not _listed(entry):
                 continue
             e = entry.evidence
             item: dict[str, object] = {"kind": entry.kind, "state": entry.after, "action": entry.action}
-            if e.t is not None:
-                item["t"] = e.t
+            if timed:
+                item["t"] = entry.time
             else:
                 item["sample"] = int(entry.time)
             item.update(statistic=e.statistic, limit=e.limit, onset=e.onset, baseline=e.baseline)
+            if entry.action in ("suppress", "release"):
+                item["reason"] = entry.comment
             out.append(item)
         return out
+
+    def _hear(self, entry: JournalEntry, alarm: Alarm) -> None:
+        self._heard.append((entry, self._timed))

@@ -69,6 +69,7 @@ from collections.abc import Collection
 from dataclasses import dataclass
 from typing import Any
 
+from estimator import sigma_is_usable, weight_is_usable
 from service.broker_link.text_values import parse_time
 
 __all__ = ["MAX_DEPTH", "REASONS", "DecodedSample", "Rejection", "decode_payload"]
@@ -279,15 +280,14 @@ def _decode_sample(raw: object, input_names: tuple[str, ...] | None, index: int 
     sigma = _finite(fields["sigma"], "sigma", "non_finite") if "sigma" in fields else None
     weight = _finite(fields["weight"], "weight", "non_finite") if "weight" in fields else None
 
-    if sigma is not None:
+    # The estimator's rule (sigma_is_usable, weight_is_usable); here only to name the reason.
+    if sigma is not None and not sigma_is_usable(sigma):
         if sigma <= 0.0:
             raise _SampleError("bad_sigma", f"sigma must be > 0, got {sigma!r}")
-        variance = sigma * sigma
         # w = 1 / sigma^2 must be a finite positive weight: the square may under- or overflow.
-        if not (variance > 0.0 and math.isfinite(variance) and math.isfinite(1.0 / variance)):
-            raise _SampleError("bad_sigma", f"sigma {sigma!r} gives no finite weight 1/sigma^2")
-    if weight is not None and weight <= 0.0:
-        raise _SampleError("bad_weight", f"weight must be > 0, got {weight!r}")
+        raise _SampleError("bad_sigma", f"sigma {sigma!r} gives no finite weight 1/sigma^2")
+    if weight is not None and not weight_is_usable(weight):
+        raise _SampleError("bad_weight", f"weight must be > 0, got {weight!r}")   # finite: checked above
 
     if input_names is not None:
         missing = [name for name in input_names if name not in inputs]

@@ -19,12 +19,11 @@ A property test holds this module to the exact decoder.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 
 import msgspec
 
-from estimator import SampleColumns
+from estimator import SampleColumns, sigma_is_usable, weight_is_usable
 
 __all__ = ["decode_columns"]
 
@@ -99,9 +98,9 @@ def decode_columns(payload: bytes, *, input_names: tuple[str, ...], max_bytes: i
         inputs: dict[str, list[float | None]] = {name: [u[name] for u in us] for name in input_names}  # type: ignore[index]
     except (KeyError, TypeError):
         return None                                  # missing_input
-    if given_sigma and not all(_usable_sigma(s) for s in sigma if s is not None):
+    if given_sigma and not all(sigma_is_usable(s) for s in sigma if s is not None):
         return None
-    if given_weight and not all(w > 0.0 for w in weight if w is not None):
+    if given_weight and not all(weight_is_usable(w) for w in weight if w is not None):
         return None
     if given_seq and not all(0 <= s < _SEQ_LIMIT for s in seq if s is not None):
         return None
@@ -121,13 +120,9 @@ def _single(payload: bytes, w: _Wire, input_names: tuple[str, ...]) -> tuple[Sam
         inputs: dict[str, list[float | None]] = {name: [u[name]] for name in input_names}
     else:
         inputs = {}
-    if (w.sigma is not None and not _usable_sigma(w.sigma)) or (w.weight is not None and not w.weight > 0.0) \
+    if (w.sigma is not None and not sigma_is_usable(w.sigma)) \
+            or (w.weight is not None and not weight_is_usable(w.weight)) \
             or (w.seq is not None and not 0 <= w.seq < _SEQ_LIMIT):
         return None
     return SampleColumns(y=[w.y], inputs=inputs, t=[w.t], sigma=[w.sigma], weight=[w.weight], seq=[w.seq]), False
 
-
-def _usable_sigma(sigma: float) -> bool:
-    """The exact decoder's test: sigma > 0 and ``1 / sigma^2`` a finite positive weight."""
-    variance = sigma * sigma
-    return sigma > 0.0 and variance > 0.0 and math.isfinite(variance) and math.isfinite(1.0 / variance)

@@ -68,6 +68,8 @@ def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool |
          what_if: WhatIf | None = None, trace: ReplayTrace | None = None) -> tuple[ChannelBank, RunResult]:
     bank = ChannelBank(config.channel_settings())
     config.apply_baselines(bank)
+    if what_if is not None:
+        what_if.start(bank)
     inputs = {name for cid in bank.channel_ids for name in bank.settings(cid).input_names}
     only = bank.channel_ids[0] if len(bank.channel_ids) == 1 else None
     source = CsvSource(data, inputs, need_channel=only is None)

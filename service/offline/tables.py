@@ -37,8 +37,9 @@ def _alarm_lines(ch: ChannelReport) -> list[str]:
         if not alarms:
             lines.append("  alarms: none")
         for item in alarms:
+            reason = f"   ({item['reason']})" if item.get("reason") else ""      # a design suppression's
             lines.append(f"  alarm {item['kind']:<11} {item['state']:<31} {_when(item)}   "
-                         f"statistic {_num(item['statistic'], 4)} limit {_num(item['limit'], 4)}")
+                         f"statistic {_num(item['statistic'], 4)} limit {_num(item['limit'], 4)}{reason}")
     return lines
 
 

@@ -17,11 +17,9 @@ from typing import Any
 
 import numpy as np
 
-from estimator import ChannelBank
+from estimator import DETECTOR_KINDS, ChannelBank
 
 __all__ = ["ChannelTrace", "ReplayTrace"]
-
-DETECTOR_KINDS = ("noise_level", "variance", "offset", "drift")
 
 
 @dataclass
