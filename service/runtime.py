@@ -170,7 +170,7 @@ class Runtime:
                                   history_step=store_config.history_step,
                                   history_retention=store_config.history_retention_days * 86400.0)
         self._engine = self._build_engine(input_log, periodic=[persistence.periodic],
-                                          publish_hooks=[persistence.note])
+                                          publish_hooks=[persistence.note], publish_when=persistence.row_due)
         self.recovery = persistence.recover(self._engine)
         log.info("recovered: checkpoint %s at input %s, %s inputs reapplied, channels afresh: %s",
                  self.recovery["checkpoint"], self.recovery["position"], self.recovery["reapplied"],
@@ -179,7 +179,8 @@ class Runtime:
 
     def _build_engine(self, input_log: InputLog | None = None, *,
                       periodic: Sequence[Callable[[Engine], None]] = (),
-                      publish_hooks: Sequence[PublishHook] = ()) -> Engine:
+                      publish_hooks: Sequence[PublishHook] = (),
+                      publish_when: Callable[[str, float], bool] | None = None) -> Engine:
         config = self.config
         return Engine(
             self.channels,
@@ -188,7 +189,7 @@ class Runtime:
             snapshot_interval=config.engine.snapshot_interval_ms / 1000.0, dead_letter=self._dead_letter,
             stale_after=config.alarms.stale_after, alarms=self.alarms, prepare=config.apply_baselines,
             input_log=input_log, acknowledge=self._acknowledge, intake=self.intake, periodic=periodic,
-            publish_hooks=publish_hooks)
+            publish_hooks=publish_hooks, publish_when=publish_when)
 
     def stop(self) -> None:
         """Stop ingest first (nothing new arrives), let the engine apply what is queued, checkpoint."""

@@ -128,6 +128,8 @@ class Engine:
         ``queue_size``)
     periodic : jobs the engine thread runs about once a second with the engine (checkpoints)
     publish_hooks : called with the refreshed entries after each snapshot (history rows)
+    publish_when : ``(channel, t)`` of a channel's newest applied sample; True publishes at once, however
+        busy (a history row is due: rows follow sample time, not how batches happened to coalesce)
     """
 
     def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
@@ -139,7 +141,8 @@ class Engine:
                  acknowledge: Callable[[list[tuple[int, int]]], None] | None = None,
                  intake: Intake | None = None,
                  periodic: Sequence[Callable[[Engine], None]] = (),
-                 publish_hooks: Sequence[PublishHook] = ()) -> None:
+                 publish_hooks: Sequence[PublishHook] = (),
+                 publish_when: Callable[[str, float], bool] | None = None) -> None:
         self.bank = ChannelBank(channels)
         self.log = input_log
         self.position = 0                                     # last input-log seq applied
@@ -154,6 +157,7 @@ class Engine:
                                             for c in self.bank.channel_ids}, clock())
         self._acknowledge = acknowledge
         self._periodic = tuple(periodic)
+        self._publish_when = publish_when
         self._inputs = {cid: tuple(s.input_names) for cid, s in channels.items()}
         self._queue = intake if intake is not None else Intake(maxsize=queue_size)
         self._max_batch = max_batch
@@ -470,6 +474,7 @@ class Engine:
             else:
                 columns[cid] = more
                 origins[cid] = _Origins(origin)
+        urgent = False
         for cid, outcome in self.bank.apply_columns(columns).items():
             self.publisher.touch(cid)   # applied, warm-up or refused: its view changed either way
             self.stats.samples_applied += outcome.applied
@@ -478,6 +483,9 @@ class Engine:
             if outcome.last_applied is not None:
                 self.activity.updated_at[cid] = where.locate(outcome.last_applied)[0].received
                 self.activity.refused_in_a_row[cid] = 0            # the refusals below, after it, count again
+                if self._publish_when is not None:
+                    t = columns[cid].t[outcome.last_applied]
+                    urgent = self._publish_when(cid, self._clock() if t is None else t) or urgent
             for position, reason in outcome.rejected:
                 message, index = where.locate(position)
                 self._refuse(message, reason, f"refused by channel {cid}", index)
@@ -485,7 +493,7 @@ class Engine:
                 self.activity.refused_in_a_row[cid] = sum(1 for position, _ in outcome.rejected
                                                  if position > outcome.last_applied)
         self._take_events()
-        self.publisher.flush_if_due(self._queue.empty())
+        self.publisher.flush_if_due(self._queue.empty() or urgent)
         elapsed = time.perf_counter() - started
         self.stats.batches += 1
         self.stats.last_batch_seconds = elapsed

@@ -249,6 +249,10 @@ class Persistence:
                        feed=meta.get("feed") or {})
 
     # ---------------------------------------------------------------- history
+    def row_due(self, channel: str, t: float) -> bool:
+        """A sample at ``t`` is ``history_step`` after the channel's last row (never while recovering)."""
+        return not self._recovering and t - self._history_last.get(channel, -math.inf) >= self.history_step
+
     def note(self, entries: dict[str, ChannelEntry], now: float) -> None:
         """A history row for each refreshed channel whose last one is ``history_step`` old (publish hook).
 
@@ -260,7 +264,7 @@ class Persistence:
             if view.applied == 0:
                 continue
             t = view.last_t if view.last_t is not None else now
-            if t - self._history_last.get(cid, -math.inf) < self.history_step:
+            if not self.row_due(cid, t):
                 continue
             self._history_last[cid] = t
             body = {"parameters": _finite(view.parameters.tolist()), "std_errors": _finite(view.std_errors.tolist()),
