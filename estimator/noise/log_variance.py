@@ -36,7 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from estimator.noise.variance import _check_int, _check_positive, _check_residual_one, _check_residuals
+from estimator.noise.residual_checks import check_int, check_positive, check_residual_one, check_residuals
 from estimator.recursive.rwls import BankState, RecursiveWLSBank
 
 __all__ = ["LogVarianceModel", "LogVarianceState"]
@@ -107,12 +107,12 @@ class LogVarianceModel:
 
     def __init__(self, n_channels: int, n_terms: int, forgetting_factor: ArrayLike = 0.999,
                  floor_ratio: float = 1e-6, warmup: int | None = None) -> None:
-        k = _check_int(n_channels, "n_channels", 1)
-        m = _check_int(n_terms, "n_terms", 1)
-        ratio = _check_positive(floor_ratio, "floor_ratio")
+        k = check_int(n_channels, "n_channels", 1)
+        m = check_int(n_terms, "n_terms", 1)
+        ratio = check_positive(floor_ratio, "floor_ratio")
         if not ratio < 1.0:
             raise ValueError(f"floor_ratio must be in (0, 1), got {ratio}")
-        self.warmup = 50 * m if warmup is None else _check_int(warmup, "warmup", 1)
+        self.warmup = 50 * m if warmup is None else check_int(warmup, "warmup", 1)
         self._bank = RecursiveWLSBank(k, m, forgetting_factor)
         self.n_channels = k
         self.n_terms = m
@@ -197,7 +197,7 @@ class LogVarianceModel:
             Shapes, channel indices or values out of their domain, ``z_op`` not
             finite; nothing is applied then.
         """
-        idx, e, h, kap = _check_residuals(self.n_channels, channels, innovation, leverage, kappa)
+        idx, e, h, kap = check_residuals(self.n_channels, channels, innovation, leverage, kappa)
         return self.update_trusted(idx, self._check_z(z_op, e.shape[0]), e, h, kap)
 
     def update_trusted(self, idx: IndexArray, z: FloatArray, e: FloatArray, h: FloatArray,
@@ -235,7 +235,7 @@ class LogVarianceModel:
         ValueError
             As :meth:`update`; the state is untouched then.
         """
-        e, h, kap = _check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
+        e, h, kap = check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
         z = self._check_z_one(z_op)
         if not math.isfinite(e) or h == math.inf:
             return False
