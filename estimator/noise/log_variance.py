@@ -54,11 +54,15 @@ _LOG_MAX = math.log(float(np.finfo(np.float64).max))   # exp overflows above thi
 
 @dataclass(frozen=True)
 class LogVarianceState:
-    """Copy of a :class:`LogVarianceModel`: the state of its bank and its settings."""
+    """Copy of a :class:`LogVarianceModel`: the state of its bank, its settings and the samples fitted.
+
+    ``sample_count`` has shape (K,); it counts what the model fitted, as ``bank.sample_count`` does.
+    """
 
     bank: BankState
     floor_ratio: float
     warmup: int
+    sample_count: NDArray[np.int64]
 
 
 class LogVarianceModel:
@@ -291,14 +295,31 @@ class LogVarianceModel:
         return np.where(identifiable[:, None], beta.T, np.nan)
 
     def state(self) -> LogVarianceState:
-        """Copy of the bank's arrays and the settings; see :class:`LogVarianceState`."""
-        return LogVarianceState(bank=self._bank.state(), floor_ratio=self.floor_ratio, warmup=self.warmup)
+        """Copy of the bank's arrays, the settings and the counts; see :class:`LogVarianceState`."""
+        return LogVarianceState(bank=self._bank.state(), floor_ratio=self.floor_ratio, warmup=self.warmup,
+                                sample_count=self._count.copy())
 
     @classmethod
     def from_state(cls, state: LogVarianceState) -> LogVarianceModel:
         """Rebuild a model exactly from :meth:`state`."""
         k, m1, _ = state.bank.factor.shape
         model = cls(k, m1 - 1, state.bank.forgetting_factor, state.floor_ratio, state.warmup)
-        model._bank = RecursiveWLSBank.from_state(state.bank)
-        model._count = state.bank.sample_count.copy()
+        model.restore(state)
         return model
+
+    def restore(self, state: LogVarianceState) -> None:
+        """Take back a :meth:`state` of a model of this shape and these settings; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            Arrays of another shape, or settings other than this model's; nothing is changed then.
+        """
+        if np.shape(state.sample_count) != (self.n_channels,):
+            raise ValueError(f"state.sample_count must have shape ({self.n_channels},), "
+                             f"got {np.shape(state.sample_count)}")
+        if state.floor_ratio != self.floor_ratio or state.warmup != self.warmup:
+            raise ValueError(f"state holds floor_ratio {state.floor_ratio} and warmup {state.warmup}, this model "
+                             f"{self.floor_ratio} and {self.warmup}")
+        self._bank.restore(state.bank)
+        self._count[...] = state.sample_count

@@ -353,10 +353,25 @@ class NoiseVarianceTracker:
         k = np.shape(state.half_life)[0] if np.ndim(state.half_life) == 1 else 0
         tracker = cls(k, state.half_life, time_based=state.time_based, robust=state.robust,
                       clip=state.clip, warmup=state.warmup)
+        tracker.restore(state)
+        return tracker
+
+    def restore(self, state: TrackerState) -> None:
+        """Take back a :meth:`state` of a tracker with these settings; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            An array of another shape, or settings other than this tracker's; nothing is changed then.
+        """
+        k = self.n_channels
         for name in ("weighted_sum", "weight_sum", "sample_count"):
             if np.shape(getattr(state, name)) != (k,):
                 raise ValueError(f"state.{name} must have shape ({k},), got {np.shape(getattr(state, name))}")
-        tracker._S = np.array(state.weighted_sum, dtype=np.float64)
-        tracker._C = np.array(state.weight_sum, dtype=np.float64)
-        tracker._count = np.array(state.sample_count, dtype=np.int64)
-        return tracker
+        if not (np.array_equal(state.half_life, self._half_life) and state.time_based == self.time_based
+                and state.robust == self.robust and state.clip == self.clip and state.warmup == self.warmup):
+            raise ValueError("state holds other settings (half-life, time base, robustness, clip, warmup) than "
+                             "this tracker's")
+        self._S[...] = state.weighted_sum
+        self._C[...] = state.weight_sum
+        self._count[...] = state.sample_count
