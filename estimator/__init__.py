@@ -2,11 +2,21 @@
 
 from estimator.channels.bank_state import export_state, import_state
 from estimator.channels.channel import ChannelSettings, Sample, SampleOutcome, WeightRule
-from estimator.channels.channel_bank import ChannelBank, ChannelEvent, ChannelView
-from estimator.channels.regressors import Factor, NotUsable, RegressorBuilder, RegressorSpec, Term, parse_term
+from estimator.channels.channel_bank import ChannelBank, ChannelBankState, ChannelEvent, ChannelView
+from estimator.channels.channel_group import GroupState, LaneState
+from estimator.channels.group_watch import WatchState
+from estimator.channels.regressors import (
+    BuilderState,
+    Factor,
+    NotUsable,
+    RegressorBuilder,
+    RegressorSpec,
+    Term,
+    parse_term,
+)
 from estimator.channels.sample_columns import SampleColumns
 from estimator.detection.baseline import Baseline
-from estimator.detection.detectors import DEFAULT_TIMING, ConditionTiming, DetectorSettings
+from estimator.detection.detectors import DEFAULT_TIMING, ConditionTiming, DetectorSettings, DetectorState
 from estimator.detection.detectors import KINDS as DETECTOR_KINDS
 from estimator.detection.quantiles import chi2_quantile, student_t_quantile
 from estimator.detection.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
@@ -24,14 +34,19 @@ __all__ = [
     "BankState",
     "Baseline",
     "BatchFit",
+    "BuilderState",
     "ChannelBank",
+    "ChannelBankState",
     "ChannelEvent",
     "ChannelSettings",
     "ChannelStatistics",
     "ChannelView",
     "ConditionTiming",
     "DetectorSettings",
+    "DetectorState",
     "Factor",
+    "GroupState",
+    "LaneState",
     "LogVarianceModel",
     "LogVarianceState",
     "NoiseVarianceTracker",
@@ -47,6 +62,7 @@ __all__ = [
     "Term",
     "TrackerState",
     "UpdateResult",
+    "WatchState",
     "WeightRule",
     "bank_statistics",
     "chi2_quantile",

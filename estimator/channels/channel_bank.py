@@ -29,7 +29,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from estimator.channels.channel import ChannelSettings, PathTuning, Prepared, Sample, SampleOutcome
-from estimator.channels.channel_group import _Group, _Lane, shape_key
+from estimator.channels.channel_group import ChannelGroup, GroupState, Lane, shape_key
 from estimator.channels.column_rounds import apply_group_columns
 from estimator.channels.group_watch import WatchNotice
 from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
@@ -37,7 +37,7 @@ from estimator.detection.baseline import Baseline
 from estimator.detection.detectors import KINDS, ConditionEvent
 from estimator.recursive.statistics import bank_statistics
 
-__all__ = ["ChannelBank", "ChannelEvent", "ChannelView", "DetectorReading"]
+__all__ = ["ChannelBank", "ChannelBankState", "ChannelEvent", "ChannelView", "DetectorReading"]
 
 FloatArray = NDArray[np.float64]
 
@@ -98,6 +98,17 @@ class ChannelEvent:
         return self.notice.baseline if self.notice is not None else None
 
 
+@dataclass(frozen=True)
+class ChannelBankState:
+    """Copy of a :class:`ChannelBank`'s whole state: one :class:`GroupState` per group of channels of one shape.
+
+    Everything the bank learns and holds is in it (settings are the configuration's, events not yet
+    taken are not state); :mod:`estimator.channels.bank_state` writes it as arrays and JSON.
+    """
+
+    groups: tuple[GroupState, ...]
+
+
 def _time_key(event: ChannelEvent) -> float:
     t = event.condition.t if event.condition is not None else event.notice.t if event.notice is not None else math.nan
     return t if t == t else math.inf
@@ -121,8 +132,8 @@ class ChannelBank:
         shapes: dict[tuple[object, ...], list[tuple[str, ChannelSettings]]] = {}
         for cid, settings in channels.items():
             shapes.setdefault(shape_key(settings), []).append((cid, settings))
-        self._groups = [_Group(members, tuning) for members in shapes.values()]
-        self._lanes: dict[str, _Lane] = {lane.channel: lane for g in self._groups for lane in g.lanes}
+        self._groups = [ChannelGroup(members, tuning) for members in shapes.values()]
+        self._lanes: dict[str, Lane] = {lane.channel: lane for g in self._groups for lane in g.lanes}
         self.channel_ids: tuple[str, ...] = tuple(channels)
         self._order = {cid: k for k, cid in enumerate(self.channel_ids)}
 
@@ -131,6 +142,30 @@ class ChannelBank:
 
     def settings(self, channel: str) -> ChannelSettings:
         return self._lanes[channel].settings
+
+    # -------------------------------------------------------------- state
+    def state(self) -> ChannelBankState:
+        """Copy of every group's state; see :class:`ChannelBankState`."""
+        return ChannelBankState(tuple(group.state() for group in self._groups))
+
+    def restore(self, state: ChannelBankState) -> None:
+        """Take back a :meth:`state` of a bank of this configuration; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            A state of other groups, channels, shapes or settings; the bank is left as it was.
+        """
+        if len(state.groups) != len(self._groups):
+            raise ValueError(f"state of {len(state.groups)} groups; this bank has {len(self._groups)}")
+        before = self.state()
+        try:
+            for group, group_state in zip(self._groups, state.groups, strict=True):
+                group.restore(group_state)
+        except ValueError:
+            for group, group_state in zip(self._groups, before.groups, strict=True):
+                group.restore(group_state)             # a part refused: every part as it was
+            raise
 
     # -------------------------------------------------------- baselines, events
     def take_events(self) -> list[ChannelEvent]:
@@ -215,7 +250,7 @@ class ChannelBank:
             else:
                 outcomes[pos] = SampleOutcome("rejected", "unknown_channel")
         while queues:
-            by_group: dict[int, list[tuple[_Lane, Prepared, int]]] = {}
+            by_group: dict[int, list[tuple[Lane, Prepared, int]]] = {}
             for cid in list(queues):
                 queue = queues[cid]
                 pos = queue.popleft()
@@ -243,14 +278,14 @@ class ChannelBank:
         Samples of an unknown channel are rejected ``unknown_channel``.
         """
         outcomes: dict[str, ColumnsOutcome] = {}
-        by_group: dict[int, list[tuple[_Lane, SampleColumns]]] = {}
+        by_group: dict[int, list[tuple[Lane, SampleColumns]]] = {}
         for cid, cols in columns.items():
             lane = self._lanes.get(cid)
             if lane is None:
                 outcomes[cid] = ColumnsOutcome(rejected=[(k, "unknown_channel") for k in range(len(cols))])
             else:
                 by_group.setdefault(id(lane.group), []).append((lane, cols))
-        leftovers: list[tuple[_Lane, SampleColumns, int]] = []
+        leftovers: list[tuple[Lane, SampleColumns, int]] = []
         for entries in by_group.values():
             done, rest = apply_group_columns(entries[0][0].group, entries)
             outcomes.update(done)

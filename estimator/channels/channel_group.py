@@ -3,13 +3,16 @@
 A group shares one :class:`RecursiveWLSBank`, one :class:`NoiseVarianceTracker`,
 an optional :class:`LogVarianceModel` and a :class:`GroupWatch` (detectors,
 baselines); a lane holds what is per channel and scalar: settings, lag
-buffers, ordering, counters. :meth:`_Group.update` is one round of the exact
-path (see :mod:`estimator.channels.channel_bank`).
+buffers, ordering, counters. :meth:`ChannelGroup.update` is one round of the exact
+path (see :mod:`estimator.channels.channel_bank`). Both export their state
+(:class:`LaneState`, :class:`GroupState`, made of the parts' own states) and take it back.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
+from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
@@ -24,20 +27,53 @@ from estimator.channels.channel import (
     check_sample,
     sample_weight,
 )
-from estimator.channels.group_watch import GroupWatch
-from estimator.channels.regressors import NotUsable, RegressorBuilder, RegressorSpec
-from estimator.noise.log_variance import LogVarianceModel
-from estimator.noise.variance import NoiseVarianceTracker
-from estimator.recursive.rwls import RecursiveWLSBank, RejectedSample
+from estimator.channels.group_watch import GroupWatch, WatchState
+from estimator.channels.regressors import BuilderState, NotUsable, RegressorBuilder, RegressorSpec
+from estimator.noise.log_variance import LogVarianceModel, LogVarianceState
+from estimator.noise.variance import NoiseVarianceTracker, TrackerState
+from estimator.recursive.rwls import BankState, RecursiveWLSBank, RejectedSample
 from estimator.recursive.weight_rule import weight_is_usable
 
-__all__ = ["declared_variance", "shape_key"]
+__all__ = ["ChannelGroup", "GroupState", "Lane", "LaneState", "declared_variance", "shape_key"]
 
 
-class _Lane:
-    """Per-channel scalar state: lag buffers, ordering, counters."""
+@dataclass(frozen=True, slots=True)      # slots: one per channel at every checkpoint
+class LaneState:
+    """Copy of a :class:`Lane`'s per-channel scalars: counters, ordering and lag buffers.
 
-    def __init__(self, channel: str, settings: ChannelSettings, group: _Group, index: int) -> None:
+    ``channel`` names the lane's channel; ``rejected`` counts refusals by reason; ``last_t`` and
+    ``last_seq`` belong to the last accepted sample, ``last_tracked_t`` to the last the noise tracker
+    took (None before any); ``builders`` are the regressor builders' states, the noise model's second.
+    """
+
+    channel: str
+    applied: int
+    warmup: int
+    rejected: Mapping[str, int]
+    last_t: float | None
+    last_seq: int | None
+    last_tracked_t: float | None
+    builders: tuple[BuilderState, ...]
+
+
+@dataclass(frozen=True)
+class GroupState:
+    """Copy of a :class:`ChannelGroup`: its estimators' states and one :class:`LaneState` per channel.
+
+    ``model`` is None for a group without an operating-point noise model. Lanes in channel-index order.
+    """
+
+    bank: BankState
+    tracker: TrackerState
+    model: LogVarianceState | None
+    watch: WatchState
+    lanes: tuple[LaneState, ...]
+
+
+class Lane:
+    """One channel of a group: its settings and scalar state (lag buffers, ordering, counters)."""
+
+    def __init__(self, channel: str, settings: ChannelSettings, group: ChannelGroup, index: int) -> None:
         self.channel = channel
         self.settings = settings
         self.spec = RegressorSpec(settings.terms)
@@ -96,8 +132,35 @@ class _Lane:
             return None
         return t - self.last_tracked_t
 
+    def state(self) -> LaneState:
+        """Copy of the counters, the ordering and the lag buffers; see :class:`LaneState`."""
+        counters = self.counters
+        return LaneState(self.channel, counters.applied, counters.warmup, dict(counters.rejected), self.last_t,
+                         self.last_seq, self.last_tracked_t, tuple([b.state() for b in self.builders]))
 
-class _Group:
+    def check(self, state: LaneState) -> None:
+        """``ValueError`` unless ``state`` is one of this lane's channel with as many builders."""
+        if state.channel != self.channel or len(state.builders) != len(self.builders):
+            raise ValueError(f"state of channel {state.channel!r} with {len(state.builders)} builders; this lane: "
+                             f"{self.channel!r} with {len(self.builders)}")
+
+    def restore(self, state: LaneState) -> None:
+        """Take back a :meth:`state` of this channel; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            A state of another channel, or builders of other lags (see :meth:`RegressorBuilder.restore`).
+        """
+        self.check(state)
+        for builder, builder_state in zip(self.builders, state.builders, strict=True):
+            builder.restore(builder_state)
+        self.counters.applied, self.counters.warmup = state.applied, state.warmup
+        self.counters.rejected = dict(state.rejected)
+        self.last_t, self.last_seq, self.last_tracked_t = state.last_t, state.last_seq, state.last_tracked_t
+
+
+class ChannelGroup:
     """Channels of one estimator shape: a bank, a tracker and an optional operating-point model."""
 
     def __init__(self, members: list[tuple[str, ChannelSettings]], tuning: PathTuning) -> None:
@@ -114,8 +177,34 @@ class _Group:
         m = len(first.noise_model_terms)
         self.model = (LogVarianceModel(k, m, [s.noise_model_forgetting_factor for _, s in members])
                       if m else None)
-        self.lanes = [_Lane(cid, s, self, i) for i, (cid, s) in enumerate(members)]
+        self.lanes = [Lane(cid, s, self, i) for i, (cid, s) in enumerate(members)]
         self.watch = GroupWatch([s for _, s in members], self.bank, self.tracker, self.model)
+
+    def state(self) -> GroupState:
+        """Copy of the estimators' states and each lane's; see :class:`GroupState`."""
+        return GroupState(self.bank.state(), self.tracker.state(), None if self.model is None else self.model.state(),
+                          self.watch.state(), tuple([lane.state() for lane in self.lanes]))
+
+    def restore(self, state: GroupState) -> None:
+        """Take back a :meth:`state` of a group of these channels and settings; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            A state of other channels, shapes or settings (each part's ``restore`` names what differs).
+        """
+        if len(state.lanes) != len(self.lanes) or (state.model is None) != (self.model is None):
+            raise ValueError(f"state of {len(state.lanes)} channels, model {state.model is not None}; this group: "
+                             f"{len(self.lanes)} channels, model {self.model is not None}")
+        for lane, lane_state in zip(self.lanes, state.lanes, strict=True):
+            lane.check(lane_state)
+        self.bank.restore(state.bank)
+        self.tracker.restore(state.tracker)
+        if self.model is not None and state.model is not None:
+            self.model.restore(state.model)
+        self.watch.restore(state.watch)
+        for lane, lane_state in zip(self.lanes, state.lanes, strict=True):
+            lane.restore(lane_state)
 
     def variance_before(self, index: int, z_noise: list[float] | None) -> float:
         """Noise variance known before the next sample of a channel: the model's, else the tracker's."""
@@ -125,7 +214,7 @@ class _Group:
                 return variance
         return self.tracker.variance_one(index)
 
-    def update(self, items: list[tuple[_Lane, Prepared]]) -> list[SampleOutcome]:
+    def update(self, items: list[tuple[Lane, Prepared]]) -> list[SampleOutcome]:
         """One round for samples of distinct channels of this group: update, tracker, model, detectors."""
         idx = np.array([lane.index for lane, _ in items], dtype=np.intp)
         z_op = np.array([p.z_noise for _, p in items], dtype=np.float64) if self.model is not None else None
@@ -142,7 +231,7 @@ class _Group:
                                    None if z_op is None else z_op[applied])
         return outcomes
 
-    def _recursion(self, items: list[tuple[_Lane, Prepared]], idx: NDArray[np.intp], kappa: NDArray[np.float64]
+    def _recursion(self, items: list[tuple[Lane, Prepared]], idx: NDArray[np.intp], kappa: NDArray[np.float64]
                    ) -> list[SampleOutcome]:
         if len(items) < self.tuning.vector_min:
             return [self._update_one(lane, p) for lane, p in items]
@@ -169,7 +258,7 @@ class _Group:
             outcomes.append(self._applied(lane, p, float(result.innovation[k]), float(result.leverage[k])))
         return outcomes
 
-    def _update_one(self, lane: _Lane, p: Prepared) -> SampleOutcome:
+    def _update_one(self, lane: Lane, p: Prepared) -> SampleOutcome:
         i = lane.index
         kappa = self.bank.kappa_one(i)
         try:
@@ -184,7 +273,7 @@ class _Group:
         return self._applied(lane, p, innovation, leverage)
 
     @staticmethod
-    def _applied(lane: _Lane, p: Prepared, innovation: float, leverage: float) -> SampleOutcome:
+    def _applied(lane: Lane, p: Prepared, innovation: float, leverage: float) -> SampleOutcome:
         lane.accept(p.sample)
         lane.counters.applied += 1
         return SampleOutcome("applied", innovation=innovation, leverage=leverage, weight=p.weight,

@@ -39,14 +39,14 @@ from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
 from estimator.recursive.weight_rule import usable_sigmas, usable_weights
 
 if TYPE_CHECKING:
-    from estimator.channels.channel_group import _Group, _Lane
+    from estimator.channels.channel_group import ChannelGroup, Lane
 
 __all__ = ["apply_group_columns"]
 
 FloatArray = NDArray[np.float64]
 
 
-Leftover = tuple["_Lane", SampleColumns, int]       # lane, its columns, first position for the exact path
+Leftover = tuple["Lane", SampleColumns, int]       # lane, its columns, first position for the exact path
 
 
 def _flat(lists: Sequence[Sequence[float | None]]) -> FloatArray:
@@ -77,7 +77,7 @@ class _Optional:
 class _Prepared:
     """Flat arrays of one group's micro-batch and the lanes that may run in rounds."""
 
-    def __init__(self, group: _Group, entries: list[tuple[_Lane, SampleColumns]]) -> None:
+    def __init__(self, group: ChannelGroup, entries: list[tuple[Lane, SampleColumns]]) -> None:
         # Lanes with the same term lists side by side: one regressor block per term list.
         entries = sorted(entries, key=lambda e: e[0].terms_key)
         self.entries = entries
@@ -146,7 +146,7 @@ class _Prepared:
         start = int(self.starts[k])
         return slice(start, start + int(self.lengths[k]))
 
-    def _regressors(self, group: _Group, entries: list[tuple[_Lane, SampleColumns]]) -> None:
+    def _regressors(self, group: ChannelGroup, entries: list[tuple[Lane, SampleColumns]]) -> None:
         """Z (N, n), Z_op (N, m) and the warm-up rows (lags not filled) of each lane."""
         total = self.y.shape[0]
         n = group.bank.n_params
@@ -176,7 +176,7 @@ class _Prepared:
             finite &= np.isfinite(self.Z_op).all(axis=1)
         self.refused |= _per_lane_any(fitted & ~finite, self.starts)
 
-    def _rows_of(self, lane: _Lane, members: list[int], *, fill_warmup: bool) -> None:
+    def _rows_of(self, lane: Lane, members: list[int], *, fill_warmup: bool) -> None:
         """Regressor rows of lanes that share ``lane``'s term lists (one lane when its terms have lags)."""
         chosen = np.zeros(len(self.entries), dtype=bool)
         chosen[members] = True
@@ -202,7 +202,7 @@ class _Prepared:
         if fill_warmup:
             self.warmup[members[0]] = int(np.count_nonzero(~usable))
 
-    def _weights(self, entries: list[tuple[_Lane, SampleColumns]]) -> None:
+    def _weights(self, entries: list[tuple[Lane, SampleColumns]]) -> None:
         """Fixed weights (unit, sample) for every sample; tracked lanes get theirs per round."""
         total = self.y.shape[0]
         count = len(entries)
@@ -250,7 +250,7 @@ class _Prepared:
         return w
 
 
-def apply_group_columns(group: _Group, entries: list[tuple[_Lane, SampleColumns]]
+def apply_group_columns(group: ChannelGroup, entries: list[tuple[Lane, SampleColumns]]
                         ) -> tuple[dict[str, ColumnsOutcome], list[Leftover]]:
     """Apply the columns of distinct lanes of ``group``; return their outcomes and what the exact path must do.
 
@@ -282,7 +282,7 @@ def apply_group_columns(group: _Group, entries: list[tuple[_Lane, SampleColumns]
     return outcomes, leftovers
 
 
-def _run_rounds(group: _Group, prep: _Prepared, runnable: NDArray[np.intp]) -> NDArray[np.intp]:
+def _run_rounds(group: ChannelGroup, prep: _Prepared, runnable: NDArray[np.intp]) -> NDArray[np.intp]:
     """The recursion, round by round; returns how many samples each runnable lane fitted."""
     fit_start = prep.starts[runnable] + prep.warmup[runnable]
     fit_count = prep.lengths[runnable] - prep.warmup[runnable]
@@ -348,7 +348,7 @@ def _run_rounds(group: _Group, prep: _Prepared, runnable: NDArray[np.intp]) -> N
     return result_done
 
 
-def _tracked_weights(group: _Group, prep: _Prepared, w: FloatArray, rows: NDArray[np.intp],
+def _tracked_weights(group: ChannelGroup, prep: _Prepared, w: FloatArray, rows: NDArray[np.intp],
                      lanes: NDArray[np.intp], tracked: NDArray[np.bool_], idx: NDArray[np.intp]
                      ) -> tuple[FloatArray, NDArray[np.bool_]]:
     """Weights ``1 / sigma_hat^2`` from the state before this round (``sample_weight``), then the rules."""

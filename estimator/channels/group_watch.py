@@ -31,13 +31,13 @@ from numpy.typing import NDArray
 
 from estimator.channels.channel import ChannelSettings
 from estimator.detection.baseline import Baseline, BaselineHistory
-from estimator.detection.detectors import ConditionEvent, DetectorBank
+from estimator.detection.detectors import ConditionEvent, DetectorBank, DetectorState
 from estimator.noise.log_variance import LogVarianceModel
 from estimator.noise.variance import NoiseVarianceTracker
 from estimator.recursive.rwls import RecursiveWLSBank
 from estimator.recursive.statistics import CONDITION_LIMIT, bank_statistics
 
-__all__ = ["MIN_SIGMA_SAMPLES", "GroupWatch", "WatchNotice"]
+__all__ = ["MIN_SIGMA_SAMPLES", "GroupWatch", "WatchNotice", "WatchState"]
 
 MIN_SIGMA_SAMPLES = 30      # fewer samples since the last baseline: the tracker's sigma is taken instead
 
@@ -58,6 +58,33 @@ class WatchNotice:
     t: float                        # sample time (NaN when unknown)
     baseline: Baseline | None = None
     judged: bool | None = None
+
+
+@dataclass(frozen=True)
+class WatchState:
+    """Copy of what a :class:`GroupWatch` gathers and holds; its settings are the configuration's.
+
+    Channel axis first, each (K,) unless said: ``commissioned`` (int64), samples since the start or the
+    last reset; ``square_sum`` and ``square_count`` (int64), the squares towards the next baseline's
+    sigma; ``candidate`` (K, m), the operating-point model's coefficients when commissioning ended (None
+    without a model), with ``ratio_sum`` and ``ratio_count`` (int64) calibrating its level; ``judged``
+    (bool), whether the drift test could judge at its last check; ``last_innovation`` and
+    ``last_spread``, the newest applied sample's innovation and its predicted spread. ``detectors``:
+    the detectors' state; ``baselines``: each channel's baselines, oldest first. Events not yet taken
+    are no state: the owner takes them after every batch.
+    """
+
+    commissioned: NDArray[np.int64]
+    square_sum: FloatArray
+    square_count: NDArray[np.int64]
+    candidate: FloatArray | None
+    ratio_sum: FloatArray
+    ratio_count: NDArray[np.int64]
+    judged: NDArray[np.bool_]
+    last_innovation: FloatArray
+    last_spread: FloatArray
+    detectors: DetectorState
+    baselines: tuple[tuple[Baseline, ...], ...]
 
 
 class GroupWatch:
@@ -216,6 +243,55 @@ class GroupWatch:
         self.last_innovation[channel] = np.nan
         self.last_spread[channel] = np.nan
         self._events.append(WatchNotice(channel, "restart", math.nan if t is None else t))
+
+    # ------------------------------------------------------------------ state
+    def state(self) -> WatchState:
+        """Copy of every array, the detectors' state and the baselines; see :class:`WatchState`."""
+        return WatchState(
+            commissioned=self.commissioned.copy(), square_sum=self._square_sum.copy(),
+            square_count=self._square_count.copy(),
+            candidate=None if self._candidate is None else self._candidate.copy(),
+            ratio_sum=self._ratio_sum.copy(), ratio_count=self._ratio_count.copy(), judged=self._judged.copy(),
+            last_innovation=self.last_innovation.copy(), last_spread=self.last_spread.copy(),
+            detectors=self.detectors.state(), baselines=tuple(tuple(h.versions) for h in self.histories))
+
+    def restore(self, state: WatchState) -> None:
+        """Take back a :meth:`state` of a watch over as many channels; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            An array of another shape, a candidate where this group has no operating-point model (or
+            none where it has), baselines not numbered 1, 2, ...; nothing is changed then.
+        """
+        k = len(self.histories)
+        for name in ("commissioned", "square_sum", "square_count", "ratio_sum", "ratio_count", "judged",
+                     "last_innovation", "last_spread"):
+            if np.shape(getattr(state, name)) != (k,):
+                raise ValueError(f"state.{name} must have shape ({k},), got {np.shape(getattr(state, name))}")
+        wanted = None if self._candidate is None else self._candidate.shape
+        given = None if state.candidate is None else np.shape(state.candidate)
+        if given != wanted:
+            raise ValueError(f"state.candidate must have shape {wanted}, got {given}")
+        if len(state.baselines) != k:
+            raise ValueError(f"state.baselines must list {k} channels, got {len(state.baselines)}")
+        for channel, versions in enumerate(state.baselines):
+            numbers = [b.version for b in versions]
+            if numbers != list(range(1, len(numbers) + 1)):
+                raise ValueError(f"state.baselines of channel {channel} must be versions 1, 2, ..., got {numbers}")
+        self.detectors.restore(state.detectors)
+        self.commissioned[...] = state.commissioned
+        self._square_sum[...] = state.square_sum
+        self._square_count[...] = state.square_count
+        if self._candidate is not None and state.candidate is not None:
+            self._candidate[...] = state.candidate
+        self._ratio_sum[...] = state.ratio_sum
+        self._ratio_count[...] = state.ratio_count
+        self._judged[...] = state.judged
+        self.last_innovation[...] = state.last_innovation
+        self.last_spread[...] = state.last_spread
+        for history, versions in zip(self.histories, state.baselines, strict=True):
+            history.versions[:] = versions
 
     def take(self) -> list[ConditionEvent | WatchNotice]:
         """Condition changes and notices since the last call, in order."""

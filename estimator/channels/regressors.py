@@ -24,12 +24,11 @@ import re
 from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import TypedDict
 
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["Factor", "NotUsable", "RegressorBuilder", "RegressorSpec", "Term", "parse_term"]
+__all__ = ["BuilderState", "Factor", "NotUsable", "RegressorBuilder", "RegressorSpec", "Term", "parse_term"]
 
 OUTPUT_NAME = "y"
 _FACTOR = re.compile(r"^(?P<name>[A-Za-z_][A-Za-z0-9_.]*)(?:\[-(?P<lag>\d+)\])?(?:\^(?P<power>\d+))?$")
@@ -189,12 +188,19 @@ class RegressorSpec:
         return Z, usable
 
 
-class BuilderState(TypedDict):
-    """A :class:`RegressorBuilder`'s lag buffers as plain lists (checkpoints)."""
+@dataclass(frozen=True, slots=True)      # slots: one per channel at every checkpoint
+class BuilderState:
+    """Copy of a :class:`RegressorBuilder`'s count and lag buffers (oldest value first).
+
+    ``outputs`` holds the last ``max(output_lag, 1)`` outputs, ``inputs`` the last ``lag`` values of each
+    lagged input. ``keeps_history`` is the builder's :attr:`RegressorBuilder.keeps_history`: without it
+    the state is a count and the last output.
+    """
 
     accepted: int
-    outputs: list[float]
-    inputs: dict[str, list[float]]
+    outputs: tuple[float, ...]
+    inputs: Mapping[str, tuple[float, ...]]
+    keeps_history: bool
 
 
 class RegressorBuilder:
@@ -332,25 +338,26 @@ class RegressorBuilder:
         """The last output pushed (None before the first)."""
         return self._outputs[-1] if self._outputs else None
 
-    def restore_simple(self, accepted: int, last_output: float | None) -> None:
-        """Load the state of a builder that does not :attr:`keeps_history`: a count and the last output."""
-        if self.keeps_history:
-            raise ValueError("this builder keeps lag history: use restore")
-        self._accepted = accepted
-        self._outputs.clear()
-        if last_output is not None:
-            self._outputs.append(last_output)
-
     def state(self) -> BuilderState:
-        """Lag buffers and count, as plain lists (for checkpoints)."""
-        return {"accepted": self._accepted, "outputs": list(self._outputs),
-                "inputs": {name: list(buf) for name, buf in self._inputs.items()}}
+        """Copy of the count and the lag buffers; see :class:`BuilderState`."""
+        inputs = {name: tuple(buf) for name, buf in self._inputs.items()} if self._inputs else {}
+        return BuilderState(self._accepted, tuple(self._outputs), inputs, self.keeps_history)
 
     def restore(self, state: BuilderState) -> None:
-        """Load what :meth:`state` returned."""
-        self._accepted = int(state["accepted"])
+        """Take back a :meth:`state` of a builder with the same lags; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            A state with or without lag history where this builder has the other, or with other lagged
+            inputs; nothing is changed then.
+        """
+        if state.keeps_history != self.keeps_history or set(state.inputs) != set(self._inputs):
+            raise ValueError(f"state of a builder with lagged inputs {sorted(state.inputs)} and history "
+                             f"{state.keeps_history}; this one has {sorted(self._inputs)} and {self.keeps_history}")
+        self._accepted = int(state.accepted)
         self._outputs.clear()
-        self._outputs.extend(state["outputs"])
-        for name, values in state["inputs"].items():
+        self._outputs.extend(state.outputs)
+        for name, values in state.inputs.items():
             self._inputs[name].clear()
             self._inputs[name].extend(values)

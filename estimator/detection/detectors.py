@@ -101,7 +101,8 @@ from estimator.detection.baseline import Baseline
 from estimator.detection.quantiles import chi2_quantile
 from estimator.detection.run_length import calibration_margin, variance_reference
 
-__all__ = ["DEFAULT_TIMING", "KINDS", "ConditionEvent", "ConditionTiming", "DetectorBank", "DetectorSettings"]
+__all__ = ["DEFAULT_TIMING", "KINDS", "ConditionEvent", "ConditionTiming", "DetectorBank", "DetectorSettings",
+           "DetectorState"]
 
 FloatArray = NDArray[np.float64]
 IndexArray = NDArray[np.intp]
@@ -194,6 +195,33 @@ class ConditionEvent:
     onset: float             # estimated start of the change (sample time; NaN when unknown)
 
 
+@dataclass(frozen=True)
+class DetectorState:
+    """Copy of everything a :class:`DetectorBank` learns and holds; its settings are the configuration's.
+
+    Channel axis first. ``has_baseline`` (K,) bool; ``sigma_ref`` (K,), the baseline noise sigma in
+    engineering units (NaN without a baseline); ``theta_ref`` (K, n) and ``cov_ref`` (K, n, n), the baseline
+    parameters and their covariance; ``beta_ref`` (K, m), the baseline's operating-point model (None when
+    no channel has room for one); ``running`` (K, 11), each channel's running statistics (CUSUMs, their
+    last zero times, the noise and scale levels, the previous scores, the drift statistic);
+    ``since_drift`` (K,) int64, samples since the last drift check; ``active`` (K, 4) bool and
+    ``conditions`` (K, 4, 4), each alarm condition (kinds in ``KINDS`` order) and its pending times,
+    statistic and onset; ``shape_count`` (K,) int64 and ``shape`` (K, 65), the noise-shape calibration.
+    """
+
+    has_baseline: NDArray[np.bool_]
+    sigma_ref: FloatArray
+    theta_ref: FloatArray
+    cov_ref: FloatArray
+    beta_ref: FloatArray | None
+    running: FloatArray
+    since_drift: NDArray[np.int64]
+    active: NDArray[np.bool_]
+    conditions: FloatArray
+    shape_count: NDArray[np.int64]
+    shape: FloatArray
+
+
 # Columns of the per-channel detector state, one row per channel (one gather and one scatter per round).
 # _PREV is the previous eps_ref (the noise level's differences), _SPREV the previous normal score.
 _UP, _DOWN, _VAR, _PREV, _ZUP, _ZDOWN, _ZVAR, _NOISE, _DRIFT, _SCALE, _SPREV = range(11)
@@ -260,10 +288,6 @@ class DetectorBank:
         # Where condition events go; the owner may share its own list, holding notices of its own too.
         self.sink: list[Any] = []
         self._pack(column)
-
-    def repack(self) -> None:
-        """After the arrays were loaded from a saved state: the packed copy of the reference sigma."""
-        self._constants[:, _SIGMA] = self._sigma_ref
 
     def _pack(self, column: Callable[[str], FloatArray]) -> None:
         """The per-channel constants side by side: one gather per round."""
@@ -561,8 +585,43 @@ class DetectorBank:
         """Estimated onset of an active condition (sample time; NaN when unknown)."""
         return float(self._conditions[KINDS.index(kind), channel, _ONSET])
 
-    def arrays(self) -> list[NDArray[np.generic]]:
-        """Every state array (for checkpoints and tests)."""
-        return [self.has_baseline, self._sigma_ref, self._theta_ref, self._cov_ref, self._state,
-                self._since_drift, self._active, self._conditions, self._shape_count, self._shape,
-                *([self._beta_ref] if self._beta_ref is not None else [])]
+    def state(self) -> DetectorState:
+        """Copy of every array the detectors learn and hold (channel axis first); see :class:`DetectorState`."""
+        return DetectorState(
+            has_baseline=self.has_baseline.copy(), sigma_ref=self._sigma_ref.copy(),
+            theta_ref=self._theta_ref.copy(), cov_ref=self._cov_ref.copy(),
+            beta_ref=None if self._beta_ref is None else self._beta_ref.copy(), running=self._state.copy(),
+            since_drift=self._since_drift.copy(), active=self._active.T.copy(),
+            conditions=self._conditions.transpose(1, 0, 2).copy(), shape_count=self._shape_count.copy(),
+            shape=self._shape.copy())
+
+    def restore(self, state: DetectorState) -> None:
+        """Take back a :meth:`state` of detectors of this shape; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            An array of another shape; nothing is changed then.
+        """
+        k, n = self.n_channels, self.n_params
+        expected = {"has_baseline": (k,), "sigma_ref": (k,), "theta_ref": (k, n), "cov_ref": (k, n, n),
+                    "running": self._state.shape, "since_drift": (k,), "active": (k, len(KINDS)),
+                    "conditions": (k, len(KINDS), self._conditions.shape[2]), "shape_count": (k,),
+                    "shape": self._shape.shape}
+        for name, shape in expected.items():
+            if np.shape(getattr(state, name)) != shape:
+                raise ValueError(f"state.{name} must have shape {shape}, got {np.shape(getattr(state, name))}")
+        if state.beta_ref is not None and (np.ndim(state.beta_ref) != 2 or np.shape(state.beta_ref)[0] != k):
+            raise ValueError(f"state.beta_ref must have shape ({k}, m), got {np.shape(state.beta_ref)}")
+        self.has_baseline[...] = state.has_baseline
+        self._sigma_ref[...] = state.sigma_ref
+        self._constants[:, _SIGMA] = self._sigma_ref          # the packed copy the rounds read
+        self._theta_ref[...] = state.theta_ref
+        self._cov_ref[...] = state.cov_ref
+        self._beta_ref = None if state.beta_ref is None else np.array(state.beta_ref, dtype=np.float64)
+        self._state[...] = state.running
+        self._since_drift[...] = state.since_drift
+        self._active[...] = np.transpose(state.active)
+        self._conditions[...] = np.transpose(state.conditions, (1, 0, 2))
+        self._shape_count[...] = state.shape_count
+        self._shape[...] = state.shape

@@ -36,7 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from estimator.noise.variance import _check_int, _check_positive, _check_residual_one, _check_residuals
+from estimator.noise.residual_checks import check_int, check_positive, check_residual_one, check_residuals
 from estimator.recursive.rwls import BankState, RecursiveWLSBank
 
 __all__ = ["LogVarianceModel", "LogVarianceState"]
@@ -54,11 +54,15 @@ _LOG_MAX = math.log(float(np.finfo(np.float64).max))   # exp overflows above thi
 
 @dataclass(frozen=True)
 class LogVarianceState:
-    """Copy of a :class:`LogVarianceModel`: the state of its bank and its settings."""
+    """Copy of a :class:`LogVarianceModel`: the state of its bank, its settings and the samples fitted.
+
+    ``sample_count`` has shape (K,); it counts what the model fitted, as ``bank.sample_count`` does.
+    """
 
     bank: BankState
     floor_ratio: float
     warmup: int
+    sample_count: NDArray[np.int64]
 
 
 class LogVarianceModel:
@@ -107,12 +111,12 @@ class LogVarianceModel:
 
     def __init__(self, n_channels: int, n_terms: int, forgetting_factor: ArrayLike = 0.999,
                  floor_ratio: float = 1e-6, warmup: int | None = None) -> None:
-        k = _check_int(n_channels, "n_channels", 1)
-        m = _check_int(n_terms, "n_terms", 1)
-        ratio = _check_positive(floor_ratio, "floor_ratio")
+        k = check_int(n_channels, "n_channels", 1)
+        m = check_int(n_terms, "n_terms", 1)
+        ratio = check_positive(floor_ratio, "floor_ratio")
         if not ratio < 1.0:
             raise ValueError(f"floor_ratio must be in (0, 1), got {ratio}")
-        self.warmup = 50 * m if warmup is None else _check_int(warmup, "warmup", 1)
+        self.warmup = 50 * m if warmup is None else check_int(warmup, "warmup", 1)
         self._bank = RecursiveWLSBank(k, m, forgetting_factor)
         self.n_channels = k
         self.n_terms = m
@@ -197,7 +201,7 @@ class LogVarianceModel:
             Shapes, channel indices or values out of their domain, ``z_op`` not
             finite; nothing is applied then.
         """
-        idx, e, h, kap = _check_residuals(self.n_channels, channels, innovation, leverage, kappa)
+        idx, e, h, kap = check_residuals(self.n_channels, channels, innovation, leverage, kappa)
         return self.update_trusted(idx, self._check_z(z_op, e.shape[0]), e, h, kap)
 
     def update_trusted(self, idx: IndexArray, z: FloatArray, e: FloatArray, h: FloatArray,
@@ -235,7 +239,7 @@ class LogVarianceModel:
         ValueError
             As :meth:`update`; the state is untouched then.
         """
-        e, h, kap = _check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
+        e, h, kap = check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
         z = self._check_z_one(z_op)
         if not math.isfinite(e) or h == math.inf:
             return False
@@ -291,14 +295,31 @@ class LogVarianceModel:
         return np.where(identifiable[:, None], beta.T, np.nan)
 
     def state(self) -> LogVarianceState:
-        """Copy of the bank's arrays and the settings; see :class:`LogVarianceState`."""
-        return LogVarianceState(bank=self._bank.state(), floor_ratio=self.floor_ratio, warmup=self.warmup)
+        """Copy of the bank's arrays, the settings and the counts; see :class:`LogVarianceState`."""
+        return LogVarianceState(bank=self._bank.state(), floor_ratio=self.floor_ratio, warmup=self.warmup,
+                                sample_count=self._count.copy())
 
     @classmethod
     def from_state(cls, state: LogVarianceState) -> LogVarianceModel:
         """Rebuild a model exactly from :meth:`state`."""
         k, m1, _ = state.bank.factor.shape
         model = cls(k, m1 - 1, state.bank.forgetting_factor, state.floor_ratio, state.warmup)
-        model._bank = RecursiveWLSBank.from_state(state.bank)
-        model._count = state.bank.sample_count.copy()
+        model.restore(state)
         return model
+
+    def restore(self, state: LogVarianceState) -> None:
+        """Take back a :meth:`state` of a model of this shape and these settings; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            Arrays of another shape, or settings other than this model's; nothing is changed then.
+        """
+        if np.shape(state.sample_count) != (self.n_channels,):
+            raise ValueError(f"state.sample_count must have shape ({self.n_channels},), "
+                             f"got {np.shape(state.sample_count)}")
+        if state.floor_ratio != self.floor_ratio or state.warmup != self.warmup:
+            raise ValueError(f"state holds floor_ratio {state.floor_ratio} and warmup {state.warmup}, this model "
+                             f"{self.floor_ratio} and {self.warmup}")
+        self._bank.restore(state.bank)
+        self._count[...] = state.sample_count

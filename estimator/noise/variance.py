@@ -22,9 +22,9 @@ lambda = 0.995, 1.002 at 0.95, 0.993 at 0.9 and 0.973 at 0.8 (raw ``e^2``:
 innovation, infinite leverage) carry no information and are skipped.
 
 This module holds :class:`NoiseVarianceTracker`, an EWMA of ``v_k`` per channel
-(Roberts 1959), debiased at start-up, optionally robust (Huber-type clipping),
-and the checks of the bank's by-products that it shares with
-:class:`~estimator.noise.log_variance.LogVarianceModel`, a regression of ``ln v_k``.
+(Roberts 1959), debiased at start-up, optionally robust (Huber-type clipping);
+:class:`~estimator.noise.log_variance.LogVarianceModel`, a regression of ``ln v_k``,
+checks the bank's by-products as it does (:mod:`estimator.noise.residual_checks`).
 The tracker's vectorised path over channels and its scalar path for one
 channel perform the same IEEE operations in the same order, so their states
 agree bit for bit; ``expm1`` goes through numpy's ufunc in both paths, since
@@ -46,6 +46,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from estimator.noise.residual_checks import batch_vector, check_int, check_positive, check_residual_one, check_residuals
+
 __all__ = ["NoiseVarianceTracker", "TrackerState"]
 
 FloatArray = NDArray[np.float64]
@@ -54,79 +56,6 @@ IndexArray = NDArray[np.intp]
 _LN2 = math.log(2.0)
 
 
-# ------------------------------------------ checks (shared with log_variance)
-def _check_int(value: object, name: str, minimum: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, int | np.integer) or value < minimum:
-        raise ValueError(f"{name} must be an integer >= {minimum}, got {value!r}")
-    return int(value)
-
-
-def _check_positive(value: object, name: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float | np.integer | np.floating):
-        raise ValueError(f"{name} must be a number, got {value!r}")
-    x = float(value)
-    if not (math.isfinite(x) and x > 0.0):
-        raise ValueError(f"{name} must be finite and > 0, got {x}")
-    return x
-
-
-def _batch_vector(value: ArrayLike, b: int, name: str) -> FloatArray:
-    arr = np.asarray(value, dtype=np.float64)
-    if arr.ndim == 0:
-        return np.full(b, float(arr))
-    if arr.shape != (b,):
-        raise ValueError(f"{name} must be a scalar or shape ({b},), got {arr.shape}")
-    return arr
-
-
-def _check_residuals(n_channels: int, channels: ArrayLike | None, innovation: ArrayLike,
-                     leverage: ArrayLike, kappa: ArrayLike
-                     ) -> tuple[IndexArray, FloatArray, FloatArray, FloatArray]:
-    """Validate a batch of bank by-products; return (channels, e, h, kappa), each (B,)."""
-    e = np.asarray(innovation, dtype=np.float64)
-    if e.ndim != 1:
-        raise ValueError(f"innovation must have shape (B,), got {e.shape}")
-    b = e.shape[0]
-    if channels is None:
-        if b != n_channels:
-            raise ValueError(f"without channels, innovation must have shape ({n_channels},), got {e.shape}")
-        idx = np.arange(n_channels)
-    else:
-        raw = np.asarray(channels)
-        if raw.shape != (b,) or (b and raw.dtype.kind not in "iu"):
-            raise ValueError(f"channels must be integers of shape ({b},), got {raw.dtype} {raw.shape}")
-        idx = raw.astype(np.intp)
-        if b and (idx.min() < 0 or idx.max() >= n_channels):
-            bad = idx[(idx < 0) | (idx >= n_channels)][0]
-            raise ValueError(f"channels must be in 0..{n_channels - 1}, got {bad}")
-        if np.unique(idx).shape[0] != b:
-            raise ValueError("channels must be distinct in one vectorised update; apply repeats in order")
-    h = np.asarray(leverage, dtype=np.float64)
-    if h.shape != (b,):
-        raise ValueError(f"leverage must have shape ({b},), got {h.shape}")
-    if not (h >= 0.0).all():
-        raise ValueError(f"leverage must be >= 0 (inf while not identifiable), got {h[~(h >= 0.0)][0]}")
-    kap = _batch_vector(kappa, b, "kappa")
-    good = np.isfinite(kap) & (kap > 0.0)
-    if not good.all():
-        raise ValueError(f"kappa must be finite and > 0, got {kap[~good][0]}")
-    return idx, e, h, kap
-
-
-def _check_residual_one(n_channels: int, channel: int, innovation: float, leverage: float,
-                        kappa: float) -> tuple[float, float, float]:
-    """Scalar twin of :func:`_check_residuals`."""
-    if isinstance(channel, bool) or not isinstance(channel, int | np.integer) or not 0 <= channel < n_channels:
-        raise ValueError(f"channel must be an integer in 0..{n_channels - 1}, got {channel!r}")
-    e, h, kap = float(innovation), float(leverage), float(kappa)
-    if not h >= 0.0:
-        raise ValueError(f"leverage must be >= 0 (inf while not identifiable), got {h}")
-    if not (math.isfinite(kap) and kap > 0.0):
-        raise ValueError(f"kappa must be finite and > 0, got {kap}")
-    return e, h, kap
-
-
-# ---------------------------------------------------------------- tracker
 def _clipped_chi2_1_mean(clip: float) -> float:
     """``E[min(X, c^2)]`` for X ~ chi2_1, in closed form.
 
@@ -208,7 +137,7 @@ class NoiseVarianceTracker:
 
     def __init__(self, n_channels: int, half_life: ArrayLike = 200.0, *, time_based: bool = False,
                  robust: bool = False, clip: float = 3.0, warmup: int = 10) -> None:
-        k = _check_int(n_channels, "n_channels", 1)
+        k = check_int(n_channels, "n_channels", 1)
         hl = np.asarray(half_life, dtype=np.float64)
         if hl.ndim == 0:
             hl = np.full(k, float(hl))
@@ -221,12 +150,12 @@ class NoiseVarianceTracker:
             raise ValueError(f"time_based must be a bool, got {time_based!r}")
         if not isinstance(robust, bool):
             raise ValueError(f"robust must be a bool, got {robust!r}")
-        c = _check_positive(clip, "clip")
+        c = check_positive(clip, "clip")
         self.n_channels = k
         self.time_based = time_based
         self.robust = robust
         self.clip = c
-        self.warmup = _check_int(warmup, "warmup", 1)
+        self.warmup = check_int(warmup, "warmup", 1)
         self._half_life: FloatArray = hl.copy()
         # alpha = 1 - 2^(-1/H) = -expm1(-ln2 / H): expm1 keeps the digits when H is long.
         self._alpha: FloatArray = -np.expm1(-_LN2 * (1.0 / hl))
@@ -257,7 +186,7 @@ class NoiseVarianceTracker:
                 raise ValueError("elapsed is required when time_based=True once a channel has tracked samples, "
                                  "got None")
             return np.full(idx.shape[0], np.inf)   # first samples: alpha is not used
-        dt = _batch_vector(elapsed, idx.shape[0], "elapsed")
+        dt = batch_vector(elapsed, idx.shape[0], "elapsed")
         if not (dt > 0.0).all():
             raise ValueError(f"elapsed must be > 0 seconds (inf when unknown), got {dt[~(dt > 0.0)][0]}")
         return dt
@@ -293,7 +222,7 @@ class NoiseVarianceTracker:
             Shapes, channel indices or values out of their domain; nothing is
             applied then.
         """
-        idx, e, h, kap = _check_residuals(self.n_channels, channels, innovation, leverage, kappa)
+        idx, e, h, kap = check_residuals(self.n_channels, channels, innovation, leverage, kappa)
         return self.update_trusted(idx, e, h, kap, self._check_elapsed(elapsed, idx))
 
     def update_trusted(self, idx: IndexArray, e: FloatArray, h: FloatArray, kap: FloatArray,
@@ -345,7 +274,7 @@ class NoiseVarianceTracker:
         ValueError
             As :meth:`update`; the state is untouched then.
         """
-        e, h, kap = _check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
+        e, h, kap = check_residual_one(self.n_channels, channel, innovation, leverage, kappa)
         dt = math.inf
         if self.time_based:
             if elapsed is None:
@@ -424,10 +353,25 @@ class NoiseVarianceTracker:
         k = np.shape(state.half_life)[0] if np.ndim(state.half_life) == 1 else 0
         tracker = cls(k, state.half_life, time_based=state.time_based, robust=state.robust,
                       clip=state.clip, warmup=state.warmup)
+        tracker.restore(state)
+        return tracker
+
+    def restore(self, state: TrackerState) -> None:
+        """Take back a :meth:`state` of a tracker with these settings; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            An array of another shape, or settings other than this tracker's; nothing is changed then.
+        """
+        k = self.n_channels
         for name in ("weighted_sum", "weight_sum", "sample_count"):
             if np.shape(getattr(state, name)) != (k,):
                 raise ValueError(f"state.{name} must have shape ({k},), got {np.shape(getattr(state, name))}")
-        tracker._S = np.array(state.weighted_sum, dtype=np.float64)
-        tracker._C = np.array(state.weight_sum, dtype=np.float64)
-        tracker._count = np.array(state.sample_count, dtype=np.int64)
-        return tracker
+        if not (np.array_equal(state.half_life, self._half_life) and state.time_based == self.time_based
+                and state.robust == self.robust and state.clip == self.clip and state.warmup == self.warmup):
+            raise ValueError("state holds other settings (half-life, time base, robustness, clip, warmup) than "
+                             "this tracker's")
+        self._S[...] = state.weighted_sum
+        self._C[...] = state.weight_sum
+        self._count[...] = state.sample_count

@@ -430,11 +430,31 @@ class RecursiveWLSBank:
         """Rebuild a bank exactly from :meth:`state`."""
         k, m, _ = state.factor.shape
         bank = cls(k, m - 1, state.forgetting_factor, state.covariance_limit)
-        bank._A = np.moveaxis(state.factor, 0, 2).copy()   # a copy also when K = 1 (see state())
-        bank._n_eff = state.effective_count.copy()
-        bank._n_eff_sq = state.effective_count_sq.copy()
-        bank._count = state.sample_count.copy()
+        bank.restore(state)
         return bank
+
+    def restore(self, state: BankState) -> None:
+        """Take back a :meth:`state` of a bank of this shape and these settings; ``state()`` then equals it.
+
+        Raises
+        ------
+        ValueError
+            An array of another shape, or settings (forgetting factors, covariance limits) other than
+            this bank's; nothing is changed then.
+        """
+        k, m = self.n_channels, self.n_params + 1
+        expected = {"factor": (k, m, m), "forgetting_factor": (k,), "covariance_limit": (k, m - 1),
+                    "effective_count": (k,), "effective_count_sq": (k,), "sample_count": (k,)}
+        for name, shape in expected.items():
+            if np.shape(getattr(state, name)) != shape:
+                raise ValueError(f"state.{name} must have shape {shape}, got {np.shape(getattr(state, name))}")
+        if not (np.array_equal(state.forgetting_factor, self._lambda)
+                and np.array_equal(state.covariance_limit, self._limit.T)):
+            raise ValueError("state holds other forgetting factors or covariance limits than this bank's")
+        self._A[...] = np.moveaxis(state.factor, 0, 2)
+        self._n_eff[...] = state.effective_count
+        self._n_eff_sq[...] = state.effective_count_sq
+        self._count[...] = state.sample_count
 
     def factor(self, channels: ArrayLike | None = None) -> FloatArray:
         """Augmented factor ``[[R, q], [0, rho]]`` per channel, shape (B, n+1, n+1) (a copy).

@@ -49,7 +49,7 @@ def uninterrupted_state(settings: dict[str, Any], data: Path,
     return final_state(data, "")
 
 
-def assert_same_state(got: FinalState, want: FinalState) -> None:
+def assert_same_checkpoint(got: FinalState, want: FinalState) -> None:
     """Every array equal bit for bit (but arrival times), the same metadata, the same journal entries."""
     arrays_a, meta_a, journal_a = got
     arrays_b, meta_b, journal_b = want

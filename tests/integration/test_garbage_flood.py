@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from tests.integration.final_state import assert_same_state, final_state, uninterrupted_state
+from tests.integration.final_state import assert_same_checkpoint, final_state, uninterrupted_state
 from tests.support.configs import mqtt_settings
 from tests.support.mqtt_clients import Collector, publish_and_wait
 from tests.support.service_process import ServiceProcess
@@ -154,4 +154,4 @@ def test_garbage_flood_leaves_the_clean_state_counts_every_refusal_and_stays_bou
     assert reasons == expected                              # ... with its reason
     # Bounded: past the half-way point only the redelivery window (65,535 fingerprints, ~8 MB) may still fill.
     assert growth < 24 * 2**20, [round(r / 2**20) for r in rss]
-    assert_same_state(flooded, uninterrupted_state(settings, tmp_path / "clean", good))
+    assert_same_checkpoint(flooded, uninterrupted_state(settings, tmp_path / "clean", good))

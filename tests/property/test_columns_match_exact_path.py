@@ -5,22 +5,29 @@ weighting, rules, forgetting, time-based half-lives, operating-point models),
 a stream with refusals mixed in (NaN, missing inputs, repeated or backward
 seq and t, bad sigma and weight, mixed presence of fields), and a split into
 micro-batches. One bank takes each micro-batch sample by sample, the other
-as columns; every array, counter and lag buffer must be equal afterwards.
+as columns; their whole exported states (``ChannelBank.state()``: every array,
+counter and lag buffer, whatever fields the states come to have) must be the
+same bits afterwards.
 """
 
 from __future__ import annotations
 
+import dataclasses
+import functools
 import itertools
 import math
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from estimator.channels.channel import ChannelSettings, PathTuning, Sample, WeightRule
-from estimator.channels.channel_bank import ChannelBank, ChannelEvent
+from estimator.channels.channel_bank import ChannelBank, ChannelBankState, ChannelEvent
+from estimator.channels.group_watch import WatchState
 from estimator.channels.sample_columns import SampleColumns
 from estimator.detection.detectors import ConditionTiming, DetectorSettings
+from tests.support.state_equality import assert_same_state
 
 PROPERTY_SETTINGS = settings(max_examples=60, deadline=None, derandomize=True, database=None)
 
@@ -105,42 +112,6 @@ def streams(draw) -> tuple[list[Sample], list[int], PathTuning]:
     return samples, cuts, PathTuning(draw(st.integers(1, 9)), draw(st.integers(1, 300)))
 
 
-def _state(bank: ChannelBank) -> list[object]:
-    out: list[object] = []
-    for group in bank._groups:
-        state = group.bank.state()
-        out += [state.factor, state.effective_count, state.effective_count_sq, state.sample_count]
-        out += [v for v in vars(group.tracker.state()).values() if isinstance(v, np.ndarray)]
-        if group.model is not None:
-            model = group.model.state()
-            out += [model.bank.factor, model.bank.sample_count]
-        out += group.watch.detectors.arrays()
-        out += [group.watch.commissioned, group.watch._judged, group.watch._square_sum, group.watch._square_count,
-                group.watch._ratio_sum, group.watch._ratio_count,
-                *([group.watch._candidate] if group.watch._candidate is not None else [])]
-        for history in group.watch.histories:
-            for b in history.versions:
-                out += [b.version, b.source, b.parameters, b.covariance, b.noise_sigma, b.t, b.samples,
-                        b.noise_model if b.noise_model is not None else np.zeros(0)]
-        for lane in group.lanes:
-            out += [lane.channel, lane.counters.applied, lane.counters.warmup, sorted(lane.counters.rejected.items()),
-                    lane.last_t, lane.last_seq, lane.last_tracked_t, lane.builder.state(),
-                    lane.noise_builder.state() if lane.noise_builder is not None else None]
-    return out
-
-
-def _equal(a: list[object], b: list[object]) -> bool:
-    if len(a) != len(b):
-        return False
-    for x, y in zip(a, b, strict=True):
-        if isinstance(x, np.ndarray):
-            if not (isinstance(y, np.ndarray) and x.shape == y.shape and np.array_equal(x, y, equal_nan=True)):
-                return False
-        elif x != y and not (isinstance(x, float) and isinstance(y, float) and math.isnan(x) and math.isnan(y)):
-            return False
-    return True
-
-
 def _columns(batch: list[Sample]) -> dict[str, SampleColumns]:
     by_channel: dict[str, list[Sample]] = {}
     for s in batch:
@@ -169,7 +140,7 @@ def test_columns_give_the_bits_and_outcomes_of_the_exact_path(
             applied = [k for k, o in enumerate(mine) if o.status == "applied"]
             assert result.last_applied == (applied[-1] if applied else None)
         assert _by_channel(exact.take_events()) == _by_channel(columnar.take_events())
-    assert _equal(_state(exact), _state(columnar))
+    assert_same_state(columnar.state(), exact.state())
 
 
 def _by_channel(events: list[ChannelEvent]) -> dict[str, list[str]]:
@@ -192,4 +163,61 @@ def test_clean_columns_take_the_vectorised_rounds() -> None:
     assert sum(o.applied + o.warmup for o in outcomes.values()) == len(batch)
     reference = ChannelBank(PLANT)
     reference.apply(batch)
-    assert _equal(_state(reference), _state(bank))
+    assert_same_state(bank.state(), reference.state())
+
+
+def _both_paths() -> tuple[ChannelBank, ChannelBank]:
+    """A stream with refusals through the exact path and through the columns: banks with the same state."""
+    rng = np.random.default_rng(8)
+    batch = [_sample(rng, cid, k, str(rng.choice(FAULTS)) if rng.random() < 0.05 else None)
+             for k in range(1, 60) for cid in PLANT]
+    exact, columnar = ChannelBank(PLANT, PathTuning(1, 1)), ChannelBank(PLANT, PathTuning(1, 1))
+    exact.apply(batch)
+    columnar.apply_columns(_columns(batch))
+    return exact, columnar
+
+
+@functools.cache
+def _grown_watch_state(names: tuple[str, ...]) -> type:
+    return dataclasses.make_dataclass("WatchState", [(name, object) for name in names], bases=(WatchState,),
+                                      frozen=True)
+
+
+def _grown(state: ChannelBankState, **extra: object) -> ChannelBankState:
+    """``state`` as if the watch's state class had gained the fields ``extra`` (a later version of it)."""
+    if not extra:
+        return state
+    watch = state.groups[0].watch
+    grown = _grown_watch_state(tuple(extra))
+    group = dataclasses.replace(state.groups[0], watch=grown(
+        **{f.name: getattr(watch, f.name) for f in dataclasses.fields(watch)}, **extra))
+    return dataclasses.replace(state, groups=(group, *state.groups[1:]))
+
+
+@pytest.mark.parametrize(("exact_extra", "columnar_extra", "reported"), [
+    ({}, {"sweeps": 3}, r"groups\[0\]\.watch\.sweeps: only in actual"),
+    ({"sweeps": 3}, {}, r"groups\[0\]\.watch\.sweeps: only in expected"),
+    ({"sweeps": 3}, {"sweeps": 4}, r"groups\[0\]\.watch\.sweeps: 4, expected 3"),
+], ids=["only_columns_export_it", "only_the_exact_path_exports_it", "both_export_it_unequal"])
+def test_a_field_the_paths_export_differently_fails_the_comparison_naming_it(
+        monkeypatch: pytest.MonkeyPatch, exact_extra: dict[str, object], columnar_extra: dict[str, object],
+        reported: str) -> None:
+    # The comparison walks the states' own fields: a field added to a state class, and listed nowhere
+    # in this test, is compared all the same.
+    exact, columnar = _both_paths()
+    assert_same_state(columnar.state(), exact.state())
+    for bank, extra in ((exact, exact_extra), (columnar, columnar_extra)):
+        monkeypatch.setattr(bank, "state", lambda own=bank.state, extra=extra: _grown(own(), **extra))
+    with pytest.raises(AssertionError, match=reported):
+        assert_same_state(columnar.state(), exact.state())
+
+
+def test_one_changed_bit_deep_in_one_path_fails_the_comparison_naming_where() -> None:
+    exact, columnar = _both_paths()
+    state = columnar.state()
+    running = state.groups[0].watch.detectors.running.copy()
+    running[0, 0] = np.nextafter(running[0, 0], np.inf)               # the next float up: one bit
+    changed = dataclasses.replace(state.groups[0].watch.detectors, running=running)
+    group = dataclasses.replace(state.groups[0], watch=dataclasses.replace(state.groups[0].watch, detectors=changed))
+    with pytest.raises(AssertionError, match=r"groups\[0\]\.watch\.detectors\.running\[0, 0\]"):
+        assert_same_state(dataclasses.replace(state, groups=(group, *state.groups[1:])), exact.state())

@@ -32,8 +32,8 @@ from typing import TYPE_CHECKING, Any
 import pytest
 
 from tests.ci import in_ci
+from tests.support import state_equality
 from tests.support.addresses import LOOPBACK, unique_client_id, unique_topic_prefix
-from tests.support.bank_states import assert_same_bank_state
 from tests.support.clients import api_client
 from tests.support.mqtt_brokers import (
     BrokerInfo,
@@ -205,5 +205,5 @@ def make_regression() -> Callable[..., RegressionData]:
 
 @pytest.fixture
 def assert_same_state() -> Callable[[BankState, BankState], None]:
-    """Assert every array of two :class:`BankState` snapshots is identical bit for bit (dtype, shape, bytes)."""
-    return assert_same_bank_state
+    """Assert two exported states are identical bit for bit (:func:`tests.support.state_equality.assert_same_state`)."""
+    return state_equality.assert_same_state

@@ -8,7 +8,8 @@ import numpy as np
 
 from estimator.channels.bank_state import export_state, import_state
 from estimator.channels.channel_bank import ChannelBank
-from tests.property.test_columns_match_exact_path import PLANT, _equal, _sample, _state
+from tests.property.test_columns_match_exact_path import PLANT, _sample
+from tests.support.state_equality import assert_same_state
 
 
 def _stream(seed: int, rounds: int, faults: float = 0.05) -> list:
@@ -34,9 +35,9 @@ def test_restored_bank_continues_bit_for_bit_with_detectors_baselines_and_lag_bu
     assert any(first.baseline_version(c) for c in PLANT)             # some baselines and conditions exist
     restored, fresh = _roundtrip(first)
     assert fresh == []
-    assert _equal(_state(restored), _state(first))
+    assert_same_state(restored.state(), first.state())
     restored.apply(samples[300:])
-    assert _equal(_state(restored), _state(whole))
+    assert_same_state(restored.state(), whole.state())
     for cid in PLANT:
         assert [b.version for b in restored.baselines(cid)] == [b.version for b in whole.baselines(cid)]
 

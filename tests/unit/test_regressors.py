@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from estimator import Factor, NotUsable, RegressorBuilder, RegressorSpec, parse_term
+from estimator import BuilderState, Factor, NotUsable, RegressorBuilder, RegressorSpec, parse_term
 
 
 @pytest.mark.parametrize(
@@ -207,11 +207,11 @@ def test_state_is_a_copy_of_the_buffers() -> None:
     builder.push({"u": 1.0}, 2.0)
     snapshot = builder.state()
     builder.push({"u": 3.0}, 4.0)
-    assert snapshot == {"accepted": 1, "outputs": [2.0], "inputs": {"u": [1.0]}}
+    assert snapshot == BuilderState(accepted=1, outputs=(2.0,), inputs={"u": (1.0,)}, keeps_history=True)
 
 
 def test_lag_buffers_keep_only_what_the_terms_need() -> None:
     builder = RegressorBuilder(RegressorSpec(["u[-2]", "y[-1]", "v"]))
     for k in range(5):
         builder.push({"u": float(k), "v": -1.0}, float(10 + k))
-    assert builder.state() == {"accepted": 5, "outputs": [14.0], "inputs": {"u": [3.0, 4.0]}}
+    assert builder.state() == BuilderState(accepted=5, outputs=(14.0,), inputs={"u": (3.0, 4.0)}, keeps_history=True)
