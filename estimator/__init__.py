@@ -1,7 +1,7 @@
 """Pure-numpy recursive weighted least squares for sensor monitoring (no I/O)."""
 
 from estimator.channels.bank_state import export_state, import_state
-from estimator.channels.channel import ChannelSettings, Sample, SampleOutcome, WeightRule
+from estimator.channels.channel import WEIGHTINGS, ChannelSettings, Sample, SampleOutcome, Weighting, WeightRule
 from estimator.channels.channel_bank import ChannelBank, ChannelBankState, ChannelEvent, ChannelView
 from estimator.channels.channel_group import GroupState, LaneState
 from estimator.channels.group_watch import WatchState
@@ -31,6 +31,7 @@ __all__ = [
     "CONDITION_LIMIT",
     "DEFAULT_TIMING",
     "DETECTOR_KINDS",
+    "WEIGHTINGS",
     "BankState",
     "Baseline",
     "BatchFit",
@@ -64,6 +65,7 @@ __all__ = [
     "UpdateResult",
     "WatchState",
     "WeightRule",
+    "Weighting",
     "bank_statistics",
     "chi2_quantile",
     "export_state",

@@ -30,16 +30,25 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from enum import StrEnum
 from functools import cached_property
 
 from estimator.channels.regressors import RegressorSpec
 from estimator.detection.detectors import DetectorSettings
 from estimator.recursive.weight_rule import sigma_is_usable, weight_is_usable
 
-__all__ = ["ChannelCounters", "ChannelSettings", "PathTuning", "Prepared", "Sample", "SampleOutcome", "WeightRule",
-           "check_sample", "sample_weight"]
+__all__ = ["WEIGHTINGS", "ChannelCounters", "ChannelSettings", "PathTuning", "Prepared", "Sample", "SampleOutcome",
+           "WeightRule", "Weighting", "check_sample", "sample_weight"]
 
-WEIGHTINGS = ("unit", "sample", "tracked")
+class Weighting(StrEnum):
+    """Where a sample's weight comes from (W = R^-1, one diagonal entry per sample)."""
+
+    UNIT = "unit"          # every sample weight 1: ordinary least squares
+    SAMPLE = "sample"      # the sample's own sigma or weight, from its message
+    TRACKED = "tracked"    # 1 / the noise-variance tracker's estimate
+
+
+WEIGHTINGS = tuple(Weighting)
 
 
 @dataclass(frozen=True)
@@ -64,7 +73,7 @@ class ChannelSettings:
 
     terms: tuple[str, ...]
     forgetting_factor: float = 1.0
-    weighting: str = "unit"
+    weighting: Weighting = Weighting.UNIT
     weight_rules: tuple[WeightRule, ...] = ()
     covariance_limit: float = 1e6
     covariance_scale: str = "estimated"
@@ -180,9 +189,9 @@ def sample_weight(settings: ChannelSettings, sample: Sample, tracked_variance: f
     ``tracked_variance`` is the noise variance known before this sample (NaN
     when there is none yet), used by ``tracked`` weighting.
     """
-    if settings.weighting == "unit":
+    if settings.weighting == Weighting.UNIT:
         w = 1.0
-    elif settings.weighting == "sample":
+    elif settings.weighting == Weighting.SAMPLE:
         if sample.sigma is not None:
             w = 1.0 / (sample.sigma * sample.sigma)
         elif sample.weight is not None:

@@ -24,6 +24,7 @@ from estimator.channels.channel import (
     Prepared,
     Sample,
     SampleOutcome,
+    Weighting,
     check_sample,
     sample_weight,
 )
@@ -282,7 +283,7 @@ class ChannelGroup:
 
 def declared_variance(settings: ChannelSettings, sample: Sample) -> float:
     """The noise variance a sample declares under ``sample`` weighting (``sigma^2`` or ``1 / weight``), else NaN."""
-    if settings.weighting != "sample":
+    if settings.weighting != Weighting.SAMPLE:
         return math.nan
     if sample.sigma is not None:
         return sample.sigma * sample.sigma

@@ -35,6 +35,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from numpy.typing import NDArray
 
+from estimator.channels.channel import Weighting
 from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
 from estimator.recursive.weight_rule import usable_sigmas, usable_weights
 
@@ -207,10 +208,10 @@ class _Prepared:
         total = self.y.shape[0]
         count = len(entries)
         weighting = [lane.settings.weighting for lane, _ in entries]
-        self.tracked = np.array([w == "tracked" for w in weighting], dtype=bool)
+        self.tracked = np.array([w == Weighting.TRACKED for w in weighting], dtype=bool)
         self.initial_variance = np.array([lane.settings.initial_sigma ** 2 for lane, _ in entries])
         w = np.ones(total)
-        sample_lanes = np.array([x == "sample" for x in weighting], dtype=bool)
+        sample_lanes = np.array([x == Weighting.SAMPLE for x in weighting], dtype=bool)
         self.declared = np.full(total, np.nan)          # declared_variance() of each sample
         if sample_lanes.any():
             on = sample_lanes[self.lane_of]

@@ -34,7 +34,7 @@ from pydantic import (
     model_validator,
 )
 
-from estimator import ChannelBank, ChannelSettings, RegressorSpec, WeightRule, parse_term
+from estimator import ChannelBank, ChannelSettings, RegressorSpec, Weighting, WeightRule, parse_term
 from service.config.alarm_settings import (
     ALARM_KINDS,
     AlarmKindConfig,
@@ -170,7 +170,7 @@ class ChannelConfig(_Strict):
 
     terms: list[TermText] = Field(min_length=1)
     forgetting_factor: float = 1.0
-    weighting: Literal["unit", "sample", "tracked"] = "unit"
+    weighting: Weighting = Weighting.UNIT
     weight_rules: list[WeightRuleConfig] = Field(default_factory=list)
     covariance_limit: float = Field(default=1e6, gt=0.0)
     covariance_scale: Literal["estimated", "known"] = "estimated"

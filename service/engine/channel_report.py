@@ -7,7 +7,7 @@ from typing import Any, NotRequired, TypedDict, TypeVar
 
 import numpy as np
 
-from estimator import ChannelView, student_t_quantile
+from estimator import ChannelView, Weighting, student_t_quantile
 
 __all__ = ["INTERVAL_LEVEL", "BaselineReport", "ChannelReport", "DetectorReport", "channel_report", "finite_or_null"]
 
@@ -93,7 +93,7 @@ def channel_report(view: ChannelView) -> ChannelReport:
         "residual_sd": float(view.residual_sd),
         # "y": the residuals' own sd in units of y (every weight 1); "weighted": the sd of residual * sqrt(weight),
         # dimensionless, about 1 when the weights are the inverse noise variances.
-        "residual_sd_scale": "y" if settings.weighting == "unit" and not settings.weight_rules else "weighted",
+        "residual_sd_scale": "y" if settings.weighting == Weighting.UNIT and not settings.weight_rules else "weighted",
         "noise_sigma": float(view.noise_sigma),
         "samples": view.applied,
         "rejected": sum(view.rejected.values()),
