@@ -16,7 +16,7 @@ from estimator.channels.regressors import (
 )
 from estimator.channels.sample_columns import SampleColumns
 from estimator.detection.baseline import Baseline
-from estimator.detection.detectors import DEFAULT_TIMING, ConditionTiming, DetectorSettings, DetectorState
+from estimator.detection.detectors import DEFAULT_TIMING, ConditionTiming, DetectorKind, DetectorSettings, DetectorState
 from estimator.detection.detectors import KINDS as DETECTOR_KINDS
 from estimator.detection.quantiles import chi2_quantile, student_t_quantile
 from estimator.detection.run_length import offset_arl, threshold_for_arl, variance_arl, variance_reference
@@ -43,6 +43,7 @@ __all__ = [
     "ChannelStatistics",
     "ChannelView",
     "ConditionTiming",
+    "DetectorKind",
     "DetectorSettings",
     "DetectorState",
     "Factor",

@@ -91,6 +91,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from enum import StrEnum
 from typing import Any
 
 import numpy as np
@@ -101,13 +102,30 @@ from estimator.detection.baseline import Baseline
 from estimator.detection.quantiles import chi2_quantile
 from estimator.detection.run_length import calibration_margin, variance_reference
 
-__all__ = ["DEFAULT_TIMING", "KINDS", "ConditionEvent", "ConditionTiming", "DetectorBank", "DetectorSettings",
-           "DetectorState"]
+__all__ = [
+    "DEFAULT_TIMING",
+    "KINDS",
+    "ConditionEvent",
+    "ConditionTiming",
+    "DetectorBank",
+    "DetectorKind",
+    "DetectorSettings",
+    "DetectorState",
+]
 
 FloatArray = NDArray[np.float64]
 IndexArray = NDArray[np.intp]
 
-KINDS = ("noise_level", "variance", "offset", "drift")
+class DetectorKind(StrEnum):
+    """What a detector judges; the channel's alarm of that kind has the same name."""
+
+    NOISE_LEVEL = "noise_level"
+    VARIANCE = "variance"
+    OFFSET = "offset"
+    DRIFT = "drift"
+
+
+KINDS = tuple(DetectorKind)        # the order of the condition rows
 
 
 @dataclass(frozen=True)

@@ -46,7 +46,7 @@ from enum import StrEnum
 
 import numpy as np
 
-from service.config.alarm_settings import ALARM_KINDS
+from service.config.alarm_settings import ALARM_KINDS, AlarmKind
 
 __all__ = ["ALARM_KINDS", "PRIORITIES", "Alarm", "AlarmBook", "AlarmRefused", "AlarmState", "Evidence",
            "JournalAction", "JournalEntry", "rerun_journal"]
@@ -125,7 +125,7 @@ class JournalEntry:
     time: float                        # wall-clock (or, offline, sample) time it was made
     alarm: str
     channel: str
-    kind: str
+    kind: AlarmKind
     action: JournalAction
     before: str
     after: str
@@ -147,7 +147,7 @@ class Alarm:
     """The state of one alarm."""
 
     channel: str
-    kind: str
+    kind: AlarmKind
     priority: str
     state: AlarmState = AlarmState.NORMAL
     active: bool = False               # the condition, followed also while set aside
@@ -206,7 +206,7 @@ class AlarmBook:
                     raise ValueError(f"alarm kind must be one of {', '.join(ALARM_KINDS)}, got {kind!r}")
                 if priority not in PRIORITIES:
                     raise ValueError(f"priority must be one of {', '.join(PRIORITIES)}, got {priority!r}")
-                alarm = Alarm(channel, kind, priority)
+                alarm = Alarm(channel, AlarmKind(kind), priority)
                 self._alarms[alarm.id] = alarm
         # A copy of each alarm as of its last transition: readers get these, never the live objects.
         self._views: dict[str, Alarm] = {key: replace(a) for key, a in self._alarms.items()}

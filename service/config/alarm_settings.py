@@ -23,26 +23,38 @@ webhooks = [{ url = "http://127.0.0.1:9000/rwls", timeout = 5, retries = 5 }]
 from __future__ import annotations
 
 import math
+from enum import StrEnum
 from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
-from estimator import DEFAULT_TIMING, DETECTOR_KINDS, ConditionTiming, DetectorSettings
+from estimator import DEFAULT_TIMING, DETECTOR_KINDS, ConditionTiming, DetectorKind, DetectorSettings
 
-__all__ = ["ALARM_KINDS", "AlarmKindConfig", "AlarmsConfig", "BaselineConfig", "BudgetConfig", "DetectorConfig",
-           "WebhookConfig", "default_priority"]
+__all__ = ["ALARM_KINDS", "AlarmKind", "AlarmKindConfig", "AlarmsConfig", "BaselineConfig", "BudgetConfig",
+           "DetectorConfig", "WebhookConfig", "default_priority"]
 
-# Every kind of alarm a channel has: one per detector, and staleness (no data for a while).
-ALARM_KINDS: tuple[str, ...] = (*DETECTOR_KINDS, "stale")
 
-_DEFAULT_PRIORITY = {"noise_level": "medium", "variance": "low", "offset": "high", "drift": "medium",
-                     "stale": "low"}
+class AlarmKind(StrEnum):
+    """Every kind of alarm a channel has: one per detector, named as the detector (its values come from the
+    estimator's :class:`DetectorKind`; a test holds the two together), and staleness."""
+
+    NOISE_LEVEL = DetectorKind.NOISE_LEVEL.value
+    VARIANCE = DetectorKind.VARIANCE.value
+    OFFSET = DetectorKind.OFFSET.value
+    DRIFT = DetectorKind.DRIFT.value
+    STALE = "stale"            # no data for alarms.stale_after seconds (wall clock)
+
+
+ALARM_KINDS: tuple[AlarmKind, ...] = tuple(AlarmKind)
+
+_DEFAULT_PRIORITY = {AlarmKind.NOISE_LEVEL: "medium", AlarmKind.VARIANCE: "low", AlarmKind.OFFSET: "high",
+                     AlarmKind.DRIFT: "medium", AlarmKind.STALE: "low"}
 
 Priority = Literal["low", "medium", "high", "urgent"]
 
 
 def default_priority(kind: str) -> str:
-    return _DEFAULT_PRIORITY[kind]
+    return _DEFAULT_PRIORITY[AlarmKind(kind)]
 
 
 class _Strict(BaseModel):
