@@ -23,7 +23,8 @@ from estimator.detection.run_length import offset_arl, threshold_for_arl, varian
 from estimator.noise.log_variance import LogVarianceModel, LogVarianceState
 from estimator.noise.variance import NoiseVarianceTracker, TrackerState
 from estimator.recursive.batch import BatchFit, NotIdentifiable, fit_wls
-from estimator.recursive.rwls import BankState, RecursiveWLSBank, RejectedSample, UpdateResult
+from estimator.recursive.rwls import BankState, RecursiveWLSBank, SampleRefused, UpdateResult
+from estimator.recursive.sample_refusal import SampleRefusal
 from estimator.recursive.statistics import CONDITION_LIMIT, ChannelStatistics, bank_statistics
 from estimator.recursive.weight_rule import sigma_is_usable, usable_sigmas, usable_weights, weight_is_usable
 
@@ -57,10 +58,11 @@ __all__ = [
     "RecursiveWLSBank",
     "RegressorBuilder",
     "RegressorSpec",
-    "RejectedSample",
     "Sample",
     "SampleColumns",
     "SampleOutcome",
+    "SampleRefusal",
+    "SampleRefused",
     "Term",
     "TrackerState",
     "UpdateResult",

@@ -24,9 +24,9 @@ import numpy as np
 from service.alarms.lifecycle import AlarmBook
 from service.alarms.notify import EventHub, MqttAlarms, WebhookSender
 from service.broker_link.child_process import ProcessIngest
-from service.broker_link.messages import DeadLetter, Message
+from service.broker_link.messages import DeadLetter, Message, RefusalReason
 from service.broker_link.mqtt_client import BrokerSettings, MqttIngest
-from service.broker_link.payload import DecodedSample, Rejection
+from service.broker_link.payload import DecodedSample, Refusal
 from service.config.settings import RwlsConfig
 from service.engine.intake import Intake
 from service.engine.log_throttle import LogThrottle
@@ -256,21 +256,21 @@ class Runtime:
         return self.intake.offer(message, timeout=None)
 
     def submit_http(self, channel: str | None, payload: bytes,
-                    decoded: tuple[list[DecodedSample], list[Rejection]] | None = None) -> bool:
+                    decoded: tuple[list[DecodedSample], list[Refusal]] | None = None) -> bool:
         """Queue an HTTP-posted payload (and its decoding, if done) without waiting; False when full."""
         return self.intake.offer(Message(channel, payload, "http", decoded=decoded), timeout=0.0)
 
-    def refuse_http(self, reason: str) -> None:
+    def refuse_http(self, reason: RefusalReason) -> None:
         """Count an HTTP request refused before the engine saw it."""
         with self._http_refusals_lock:
             self._http_refusals[reason] += 1
 
-    def rejections(self) -> dict[str, int]:
+    def refusals(self) -> dict[str, int]:
         """Refusals by reason: the engine's and the HTTP handlers' together."""
         with self._http_refusals_lock:
             total = Counter(self._http_refusals)
         if self._engine is not None:
-            total.update(self._engine.stats.rejected)
+            total.update(self._engine.stats.refused)
         return dict(total)
 
     def _publish(self, topic: str, payload: bytes, retain: bool) -> None:

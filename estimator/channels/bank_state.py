@@ -118,7 +118,7 @@ def export_state(bank: ChannelBank) -> tuple[Arrays, dict[str, object]]:
         arrays[f"g{g}.lane.builders"] = np.array(simple, dtype=np.float64).reshape(len(simple), 2)
         history = {str(i): [_builder_json(b) if b.keeps_history else None for b in lane.builders]
                    for i, lane in enumerate(lanes) if any(b.keeps_history for b in lane.builders)}
-        rejected = {str(i): dict(lane.rejected) for i, lane in enumerate(lanes) if lane.rejected}
+        refused = {str(i): dict(lane.refused) for i, lane in enumerate(lanes) if lane.refused}
         n, m = _shape(state)
         rows = [(i, b) for i, versions in enumerate(state.watch.baselines) for b in versions]
         arrays[f"g{g}.baselines.parameters"] = np.array([b.parameters for _, b in rows]).reshape(len(rows), n)
@@ -130,7 +130,7 @@ def export_state(bank: ChannelBank) -> tuple[Arrays, dict[str, object]]:
              for lane, b in rows], dtype=np.float64).reshape(len(rows), 7)
         notes = {str(k): b.note for k, (_, b) in enumerate(rows) if b.note}
         groups.append({"shape": [n, m], "channels": [lane.channel for lane in lanes],
-                       "rejected": rejected, "builders": history, "notes": notes})
+                       "rejected": refused, "builders": history, "notes": notes})
     return arrays, {"format": 2, "groups": groups}
 
 
@@ -249,8 +249,8 @@ def _saved_lane(current: LaneState, info: dict[str, Any], arrays: Arrays, g: int
             accepted, last_output = simple[saved_index * width + k]
             builders.append(BuilderState(int(accepted), () if math.isnan(last_output) else (float(last_output),),
                                          {}, False))
-    rejected = {str(k): int(v) for k, v in info["rejected"].get(str(saved_index), {}).items()}
-    return LaneState(current.channel, applied, warmup, rejected, last_t, int(seq[0]) if seq[1] else None,
+    refused = {str(k): int(v) for k, v in info["rejected"].get(str(saved_index), {}).items()}
+    return LaneState(current.channel, applied, warmup, refused, last_t, int(seq[0]) if seq[1] else None,
                      last_tracked_t, tuple(builders))
 
 

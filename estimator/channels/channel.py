@@ -35,6 +35,7 @@ from functools import cached_property
 
 from estimator.channels.regressors import RegressorSpec
 from estimator.detection.detectors import DetectorSettings
+from estimator.recursive.sample_refusal import SampleRefusal
 from estimator.recursive.weight_rule import sigma_is_usable, weight_is_usable
 
 __all__ = ["WEIGHTINGS", "ChannelCounters", "ChannelSettings", "PathTuning", "Prepared", "Sample", "SampleOutcome",
@@ -106,7 +107,7 @@ class ChannelSettings:
 
 @dataclass
 class SampleOutcome:
-    """What happened to one sample: ``applied``, ``warmup`` or ``rejected`` (with a reason)."""
+    """What happened to one sample: ``applied``, ``warmup`` or ``refused`` (with a reason)."""
 
     status: str
     reason: str = ""
@@ -131,11 +132,11 @@ class Sample:
 
 @dataclass
 class ChannelCounters:
-    """Samples applied, held for lag warm-up, and rejected by reason."""
+    """Samples applied, held for lag warm-up, and refused by reason."""
 
     applied: int = 0
     warmup: int = 0
-    rejected: dict[str, int] = field(default_factory=dict)
+    refused: dict[str, int] = field(default_factory=dict)
 
 
 @dataclass
@@ -149,7 +150,7 @@ class Prepared:
 
 
 def check_sample(settings: ChannelSettings, sample: Sample, last_t: float | None,
-                 last_seq: int | None = None) -> str | None:
+                 last_seq: int | None = None) -> SampleRefusal | None:
     """The reason a sample is refused before any regressor is built, or None.
 
     Order: sequence number (a redelivered or replayed message), non-finite
@@ -158,28 +159,28 @@ def check_sample(settings: ChannelSettings, sample: Sample, last_t: float | None
     accepted sample, so a refused sample never blocks the ones after it.
     """
     if sample.seq is not None and last_seq is not None and sample.seq <= last_seq:
-        return "duplicate_seq" if sample.seq == last_seq else "out_of_order_seq"
+        return SampleRefusal.DUPLICATE_SEQ if sample.seq == last_seq else SampleRefusal.OUT_OF_ORDER_SEQ
     values = [sample.y, *sample.inputs.values()]
     if sample.sigma is not None:
         values.append(sample.sigma)
     if sample.weight is not None:
         values.append(sample.weight)
     if not all(math.isfinite(v) for v in values):
-        return "non_finite"
+        return SampleRefusal.NON_FINITE
     if sample.sigma is not None and not sigma_is_usable(sample.sigma):
-        return "bad_sigma"         # sigma <= 0, or so small or large that 1 / sigma^2 is no weight
+        return SampleRefusal.BAD_SIGMA         # sigma <= 0, or so small or large that 1 / sigma^2 is no weight
     if sample.weight is not None and not weight_is_usable(sample.weight):
-        return "bad_weight"
+        return SampleRefusal.BAD_WEIGHT
     t = sample.t
     if t is not None and not math.isfinite(t):
-        return "bad_time"
+        return SampleRefusal.BAD_TIME
     if t is not None and last_t is not None and t <= last_t:
-        return "duplicate_time" if t == last_t else "out_of_order"
+        return SampleRefusal.DUPLICATE_TIME if t == last_t else SampleRefusal.OUT_OF_ORDER
     if t is None and settings.noise_half_life_in_seconds:
-        return "missing_time"          # a half-life in seconds needs the sample's time
+        return SampleRefusal.MISSING_TIME          # a half-life in seconds needs the sample's time
     for name in settings.input_names:
         if name not in sample.inputs:
-            return "missing_input"
+            return SampleRefusal.MISSING_INPUT
     return None
 
 

@@ -35,6 +35,7 @@ from estimator.channels.group_watch import WatchNotice
 from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
 from estimator.detection.baseline import Baseline
 from estimator.detection.detectors import KINDS, ConditionEvent
+from estimator.recursive.sample_refusal import SampleRefusal
 from estimator.recursive.statistics import bank_statistics
 
 __all__ = ["ChannelBank", "ChannelBankState", "ChannelEvent", "ChannelView", "DetectorReading"]
@@ -66,7 +67,7 @@ class ChannelView:
     identifiable: bool
     applied: int
     warmup: int
-    rejected: dict[str, int]
+    refused: dict[str, int]
     last_t: float | None
     settings: ChannelSettings
     baseline: Baseline | None = None
@@ -231,10 +232,10 @@ class ChannelBank:
         group.watch.restart(lane.index, t)
 
     def apply_one(self, sample: Sample) -> SampleOutcome:
-        """Apply one sample (scalar paths); an unknown channel is rejected ``unknown_channel``."""
+        """Apply one sample (scalar paths); an unknown channel is refused ``unknown_channel``."""
         lane = self._lanes.get(sample.channel)
         if lane is None:
-            return SampleOutcome("rejected", "unknown_channel")
+            return SampleOutcome("refused", SampleRefusal.UNKNOWN_CHANNEL)
         prepared = lane.prepare(sample)
         if isinstance(prepared, SampleOutcome):
             return prepared
@@ -248,7 +249,7 @@ class ChannelBank:
             if sample.channel in self._lanes:
                 queues.setdefault(sample.channel, deque()).append(pos)
             else:
-                outcomes[pos] = SampleOutcome("rejected", "unknown_channel")
+                outcomes[pos] = SampleOutcome("refused", SampleRefusal.UNKNOWN_CHANNEL)
         while queues:
             by_group: dict[int, list[tuple[Lane, Prepared, int]]] = {}
             for cid in list(queues):
@@ -267,7 +268,7 @@ class ChannelBank:
                 results = group.update([(lane, p) for lane, p, _ in items])
                 for (_, _, pos), outcome in zip(items, results, strict=True):
                     outcomes[pos] = outcome
-        return [o if o is not None else SampleOutcome("rejected", "internal") for o in outcomes]
+        return [o if o is not None else SampleOutcome("refused", SampleRefusal.INTERNAL) for o in outcomes]
 
     def apply_columns(self, columns: Mapping[str, SampleColumns]) -> dict[str, ColumnsOutcome]:
         """Apply each channel's columns in order: the same state and outcomes as :meth:`apply`.
@@ -275,14 +276,14 @@ class ChannelBank:
         Channels whose columns pass every check in whole-array form run in
         vectorised rounds (:mod:`estimator.channels.column_rounds`); the others, and
         any remainder, take :meth:`apply`, which finds each refusal's reason.
-        Samples of an unknown channel are rejected ``unknown_channel``.
+        Samples of an unknown channel are refused ``unknown_channel``.
         """
         outcomes: dict[str, ColumnsOutcome] = {}
         by_group: dict[int, list[tuple[Lane, SampleColumns]]] = {}
         for cid, cols in columns.items():
             lane = self._lanes.get(cid)
             if lane is None:
-                outcomes[cid] = ColumnsOutcome(rejected=[(k, "unknown_channel") for k in range(len(cols))])
+                outcomes[cid] = ColumnsOutcome(refused=[(k, SampleRefusal.UNKNOWN_CHANNEL) for k in range(len(cols))])
             else:
                 by_group.setdefault(id(lane.group), []).append((lane, cols))
         leftovers: list[tuple[Lane, SampleColumns, int]] = []
@@ -306,7 +307,7 @@ class ChannelBank:
             elif outcome.status == "warmup":
                 result.warmup += 1
             else:
-                result.rejected.append((pos, outcome.reason))
+                result.refused.append((pos, outcome.reason))
         return outcomes
 
     def view(self, channels: Sequence[str] | None = None) -> dict[str, ChannelView]:
@@ -341,7 +342,7 @@ class ChannelBank:
                     covariance=cov[k], residual_sd=rsd, dof=dof, noise_sigma=sigma, effective_count=n_eff,
                     min_information=min_info, information_condition=condition, identifiable=ident,
                     applied=lane.counters.applied, warmup=lane.counters.warmup,
-                    rejected=dict(lane.counters.rejected), last_t=lane.last_t, settings=lane.settings,
+                    refused=dict(lane.counters.refused), last_t=lane.last_t, settings=lane.settings,
                     baseline=baseline, commissioned=int(watch.commissioned[i]),
                     detectors=dict(zip(KINDS, map(DetectorReading, *readings[k]), strict=True)),
                     last_innovation=float(watch.last_innovation[i]), last_spread=float(watch.last_spread[i]))

@@ -32,7 +32,8 @@ from estimator.channels.group_watch import GroupWatch, WatchState
 from estimator.channels.regressors import BuilderState, NotUsable, RegressorBuilder, RegressorSpec
 from estimator.noise.log_variance import LogVarianceModel, LogVarianceState
 from estimator.noise.variance import NoiseVarianceTracker, TrackerState
-from estimator.recursive.rwls import BankState, RecursiveWLSBank, RejectedSample
+from estimator.recursive.rwls import BankState, RecursiveWLSBank, SampleRefused
+from estimator.recursive.sample_refusal import SampleRefusal
 from estimator.recursive.weight_rule import weight_is_usable
 
 __all__ = ["ChannelGroup", "GroupState", "Lane", "LaneState", "declared_variance", "shape_key"]
@@ -42,7 +43,7 @@ __all__ = ["ChannelGroup", "GroupState", "Lane", "LaneState", "declared_variance
 class LaneState:
     """Copy of a :class:`Lane`'s per-channel scalars: counters, ordering and lag buffers.
 
-    ``channel`` names the lane's channel; ``rejected`` counts refusals by reason; ``last_t`` and
+    ``channel`` names the lane's channel; ``refused`` counts refusals by reason; ``last_t`` and
     ``last_seq`` belong to the last accepted sample, ``last_tracked_t`` to the last the noise tracker
     took (None before any); ``builders`` are the regressor builders' states, the noise model's second.
     """
@@ -50,7 +51,7 @@ class LaneState:
     channel: str
     applied: int
     warmup: int
-    rejected: Mapping[str, int]
+    refused: Mapping[str, int]
     last_t: float | None
     last_seq: int | None
     last_tracked_t: float | None
@@ -93,29 +94,29 @@ class Lane:
         self.last_seq: int | None = None
         self.last_tracked_t: float | None = None
 
-    def reject(self, reason: str) -> SampleOutcome:
-        self.counters.rejected[reason] = self.counters.rejected.get(reason, 0) + 1
-        return SampleOutcome("rejected", reason)
+    def refuse(self, reason: str) -> SampleOutcome:
+        self.counters.refused[reason] = self.counters.refused.get(reason, 0) + 1
+        return SampleOutcome("refused", reason)
 
     def prepare(self, sample: Sample) -> Prepared | SampleOutcome:
         """Checks, regressor and weight; an outcome when the sample goes no further."""
         reason = check_sample(self.settings, sample, self.last_t, self.last_seq)
         if reason is not None:
-            return self.reject(reason)
+            return self.refuse(reason)
         try:
             z = self.builder.row(sample.inputs)
             z_noise = self.noise_builder.row(sample.inputs) if self.noise_builder is not None else None
         except NotUsable as exc:
             if exc.reason != "lags_not_filled":
-                return self.reject(exc.reason)
+                return self.refuse(exc.reason)
             self.accept(sample)
             self.counters.warmup += 1
             return SampleOutcome("warmup")
         w = sample_weight(self.settings, sample, self.group.variance_before(self.index, z_noise))
         if w is None:
-            return self.reject("missing_weight")
+            return self.refuse(SampleRefusal.MISSING_WEIGHT)
         if not weight_is_usable(w):
-            return self.reject("bad_weight")
+            return self.refuse(SampleRefusal.BAD_WEIGHT)
         return Prepared(sample, z, z_noise, w)
 
     def accept(self, sample: Sample) -> None:
@@ -136,7 +137,7 @@ class Lane:
     def state(self) -> LaneState:
         """Copy of the counters, the ordering and the lag buffers; see :class:`LaneState`."""
         counters = self.counters
-        return LaneState(self.channel, counters.applied, counters.warmup, dict(counters.rejected), self.last_t,
+        return LaneState(self.channel, counters.applied, counters.warmup, dict(counters.refused), self.last_t,
                          self.last_seq, self.last_tracked_t, tuple([b.state() for b in self.builders]))
 
     def check(self, state: LaneState) -> None:
@@ -157,7 +158,7 @@ class Lane:
         for builder, builder_state in zip(self.builders, state.builders, strict=True):
             builder.restore(builder_state)
         self.counters.applied, self.counters.warmup = state.applied, state.warmup
-        self.counters.rejected = dict(state.rejected)
+        self.counters.refused = dict(state.refused)
         self.last_t, self.last_seq, self.last_tracked_t = state.last_t, state.last_seq, state.last_tracked_t
 
 
@@ -241,7 +242,7 @@ class ChannelGroup:
         w = np.array([p.weight for _, p in items], dtype=np.float64)
         try:
             result = self.bank.update(Z, y, w, idx)
-        except RejectedSample:
+        except SampleRefused:
             # Some row overflowed (e.g. a power of a huge input): apply one by one
             # so only the offending samples are refused.
             return [self._update_one(lane, p) for lane, p in items]
@@ -264,8 +265,8 @@ class ChannelGroup:
         kappa = self.bank.kappa_one(i)
         try:
             innovation, leverage = self.bank.update_one(i, p.z, p.sample.y, p.weight)
-        except RejectedSample as exc:
-            return lane.reject(exc.reason)
+        except SampleRefused as exc:
+            return lane.refuse(exc.reason)
         elapsed = _or_inf(lane.elapsed(p.sample.t)) if self.time_based else None
         if self.tracker.update_one(i, innovation, leverage, kappa, elapsed) and p.sample.t is not None:
             lane.last_tracked_t = p.sample.t

@@ -9,7 +9,7 @@ defines ``z_k``. Grammar (whitespace ignored)::
 
 ``y[-k]`` is the channel's own output k accepted samples back (ARX structure);
 the output at lag 0 is never a regressor. Lags count accepted samples of the
-channel: a rejected sample does not advance them.
+channel: a refused sample does not advance them.
 
 Two evaluators share one arithmetic (powers by repeated multiplication, products
 left to right), so they agree bit for bit:

@@ -93,11 +93,11 @@ class SampleColumns:
 class ColumnsOutcome:
     """What happened to one channel's columns.
 
-    ``rejected`` lists ``(position, reason)`` in position order; ``last_applied``
+    ``refused`` lists ``(position, reason)`` in position order; ``last_applied``
     is the position of the last sample fitted (None if none was).
     """
 
     applied: int = 0
     warmup: int = 0
-    rejected: list[tuple[int, str]] = field(default_factory=list)
+    refused: list[tuple[int, str]] = field(default_factory=list)
     last_applied: int | None = None

@@ -67,39 +67,39 @@ from estimator.recursive._givens import (
     rotate_rows,
     scalar_step,
 )
+from estimator.recursive.sample_refusal import SampleRefusal
 from estimator.recursive.weight_rule import usable_weights, weight_is_usable
 
-__all__ = ["BankState", "RecursiveWLSBank", "RejectedSample", "UpdateResult"]
+__all__ = ["BankState", "RecursiveWLSBank", "SampleRefused", "UpdateResult"]
 
 FloatArray = NDArray[np.float64]
 
 
-class RejectedSample(ValueError):
+class SampleRefused(ValueError):
     """A sample the estimator refuses; the state is left untouched.
 
     Attributes
     ----------
-    reason : str
-        Stable reason code: ``non_finite``, ``bad_weight``, ``bad_shape``,
-        ``bad_channel`` or ``duplicate_channel``.
+    reason : SampleRefusal
+        ``non_finite``, ``bad_weight``, ``bad_shape``, ``bad_channel`` or ``duplicate_channel``.
     """
 
-    def __init__(self, reason: str, message: str) -> None:
+    def __init__(self, reason: SampleRefusal, message: str) -> None:
         super().__init__(message)
         self.reason = reason
 
 
 def checked_sample(z: Sequence[float], y: float, weight: float, n: int) -> tuple[list[float], float, float]:
-    """One sample as floats, or :class:`RejectedSample` (``bad_shape``, ``non_finite``, ``bad_weight``)."""
+    """One sample as floats, or :class:`SampleRefused` (``bad_shape``, ``non_finite``, ``bad_weight``)."""
     zs = [float(v) for v in z]
     y = float(y)
     weight = float(weight)
     if len(zs) != n:
-        raise RejectedSample("bad_shape", f"z must have length {n}, got {len(zs)}")
+        raise SampleRefused(SampleRefusal.BAD_SHAPE, f"z must have length {n}, got {len(zs)}")
     if not (all(math.isfinite(v) for v in zs) and math.isfinite(y)):
-        raise RejectedSample("non_finite", "z and y must be finite")
+        raise SampleRefused(SampleRefusal.NON_FINITE, "z and y must be finite")
     if not weight_is_usable(weight):
-        raise RejectedSample("bad_weight", f"weight must be finite and > 0, got {weight}")
+        raise SampleRefused(SampleRefusal.BAD_WEIGHT, f"weight must be finite and > 0, got {weight}")
     return zs, y, weight
 
 
@@ -210,31 +210,32 @@ class RecursiveWLSBank:
                      channels: NDArray[np.intp] | None) -> None:
         b = y.shape[0] if y.ndim == 1 else -1
         if z.shape != (b, self.n_params) or y.shape != (b,) or w.shape != (b,):
-            raise RejectedSample(
-                "bad_shape",
+            raise SampleRefused(
+                SampleRefusal.BAD_SHAPE,
                 f"z must be (B, {self.n_params}) and y, weight (B,); got "
                 f"{z.shape}, {y.shape}, {w.shape}")
         if channels is not None:
             if channels.shape != (b,):
-                raise RejectedSample("bad_shape", f"channels must have shape ({b},), got {channels.shape}")
+                raise SampleRefused(SampleRefusal.BAD_SHAPE, f"channels must have shape ({b},), got {channels.shape}")
             if b and (channels.min() < 0 or channels.max() >= self.n_channels):
-                raise RejectedSample("bad_channel",
+                raise SampleRefused(SampleRefusal.BAD_CHANNEL,
                                      f"channel index out of range 0..{self.n_channels - 1}")
             seen = np.zeros(self.n_channels, dtype=bool)
             seen[channels] = True
             if np.count_nonzero(seen) != b:
-                raise RejectedSample("duplicate_channel",
+                raise SampleRefused(SampleRefusal.DUPLICATE_CHANNEL,
                                      "a channel may appear once per vectorised step; apply in order")
         elif b != self.n_channels:
-            raise RejectedSample("bad_shape", f"without channels, B must equal K = {self.n_channels}, got {b}")
+            raise SampleRefused(SampleRefusal.BAD_SHAPE,
+                                f"without channels, B must equal K = {self.n_channels}, got {b}")
         # A sum of finite numbers is finite unless it overflows, and NaN or inf
         # propagate into it: one pass decides the common case, the full scan
         # only runs when the sum is not finite.
         if not (math.isfinite(float(z.sum()) + float(y.sum()))
                 or (np.isfinite(z).all() and np.isfinite(y).all())):
-            raise RejectedSample("non_finite", "z and y must be finite")
+            raise SampleRefused(SampleRefusal.NON_FINITE, "z and y must be finite")
         if not usable_weights(w).all():
-            raise RejectedSample("bad_weight", "weight must be finite and > 0")
+            raise SampleRefused(SampleRefusal.BAD_WEIGHT, "weight must be finite and > 0")
 
     # ---------------------------------------------------------------- updates
     def update(
@@ -263,7 +264,7 @@ class RecursiveWLSBank:
 
         Raises
         ------
-        RejectedSample
+        SampleRefused
             Any row non-finite, a weight not positive, shapes or channel
             indices wrong. Nothing is applied then.
         """
@@ -274,7 +275,7 @@ class RecursiveWLSBank:
         given = None if full else np.asarray(channels)
         if given is not None:
             if given.dtype.kind not in "iu":
-                raise RejectedSample("bad_channel", f"channels must be integers, got dtype {given.dtype}")
+                raise SampleRefused(SampleRefusal.BAD_CHANNEL, f"channels must be integers, got dtype {given.dtype}")
             given = given.astype(np.intp, copy=False)
         self._check_batch(zz, yy, ww, given)
         return self._step(None if full else given, zz, yy, ww)
@@ -384,12 +385,13 @@ class RecursiveWLSBank:
 
         Raises
         ------
-        RejectedSample
+        SampleRefused
             As :meth:`update`; the state is untouched then.
         """
         if (isinstance(channel, bool) or not isinstance(channel, int | np.integer)
                 or not 0 <= channel < self.n_channels):
-            raise RejectedSample("bad_channel", f"channel must be in 0..{self.n_channels - 1}, got {channel!r}")
+            raise SampleRefused(SampleRefusal.BAD_CHANNEL,
+                                f"channel must be in 0..{self.n_channels - 1}, got {channel!r}")
         zs, y, weight = checked_sample(z, y, weight, self.n_params)
         A = self._A[:, :, channel].tolist()
         count = int(self._count[channel]) + 1

@@ -57,7 +57,7 @@ def _commissioning(entry: ChannelEntry) -> dict[str, int] | None:
 def _summary(cid: str, entry: ChannelEntry, alarms: list[Alarm]) -> dict[str, object]:
     return {"id": cid, "quality": entry.quality, "quality_reason": entry.quality_reason,
             "updated_at": entry.updated_at, "t": entry.view.last_t, "samples": entry.view.applied,
-            "rejected": sum(entry.view.rejected.values()), "alarms": _alarm_summary(alarms),
+            "rejected": sum(entry.view.refused.values()), "alarms": _alarm_summary(alarms),
             "commissioning": _commissioning(entry)}
 
 

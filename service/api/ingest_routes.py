@@ -5,10 +5,11 @@ from __future__ import annotations
 from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse
 
+from estimator import SampleRefusal
 from service.api import models
 from service.api.dependencies import INGEST, ServiceRuntime
 from service.api.errors import not_found
-from service.broker_link.payload import decode_payload
+from service.broker_link.payload import PayloadRefusal, decode_payload
 
 __all__ = ["router"]
 
@@ -25,25 +26,25 @@ def _too_large() -> JSONResponse:
 async def post_samples(channel_id: str, request: Request, runtime: ServiceRuntime) -> dict[str, object] | JSONResponse:
     settings = runtime.channels.get(channel_id)
     if settings is None:
-        runtime.refuse_http("unknown_channel")
+        runtime.refuse_http(SampleRefusal.UNKNOWN_CHANNEL)
         return not_found("unknown channel")
     max_payload = runtime.config.broker.max_payload_bytes
     declared = request.headers.get("content-length")
     # ASCII digits only ("²" passes isdigit); 12 leading digits bound int() and are already > 16 MiB.
     if declared is not None and declared.isascii() and declared.isdigit() and int(declared[:12]) > max_payload:
-        runtime.refuse_http("too_large")
+        runtime.refuse_http(PayloadRefusal.TOO_LARGE)
         return _too_large()
     body = b""
     async for chunk in request.stream():
         body += chunk
         if len(body) > max_payload:
-            runtime.refuse_http("too_large")
+            runtime.refuse_http(PayloadRefusal.TOO_LARGE)
             return _too_large()
-    decoded, rejections = decode_payload(body, max_bytes=max_payload, input_names=settings.input_names)
-    if not decoded and rejections and rejections[0].index is None:
+    decoded, refusals = decode_payload(body, max_bytes=max_payload, input_names=settings.input_names)
+    if not decoded and refusals and refusals[0].index is None:
         # Refused as a whole: the client hears why; nothing for the engine to do.
-        runtime.refuse_http(rejections[0].reason)
-        return JSONResponse({"detail": rejections[0].reason}, status_code=400)
-    if not runtime.submit_http(channel_id, body, (decoded, rejections)):
+        runtime.refuse_http(refusals[0].reason)
+        return JSONResponse({"detail": refusals[0].reason}, status_code=400)
+    if not runtime.submit_http(channel_id, body, (decoded, refusals)):
         return JSONResponse({"detail": "busy, retry later"}, status_code=503, headers={"Retry-After": "1"})
-    return {"queued": len(decoded), "rejected": [{"index": r.index, "reason": r.reason} for r in rejections]}
+    return {"queued": len(decoded), "rejected": [{"index": r.index, "reason": r.reason} for r in refusals]}

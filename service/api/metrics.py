@@ -34,10 +34,10 @@ class _EngineCollector(Collector):
                                   value=stats.samples_warmup)
         yield CounterMetricFamily("rwls_redelivered", "Broker redeliveries of messages already logged (not applied)",
                                   value=stats.redelivered)
-        rejections = CounterMetricFamily("rwls_rejections", "Refused messages or samples", labels=["reason"])
-        for reason, count in sorted(self._runtime.rejections().items()):
-            rejections.add_metric([reason], count)
-        yield rejections
+        refusals = CounterMetricFamily("rwls_rejections", "Refused messages or samples", labels=["reason"])
+        for reason, count in sorted(self._runtime.refusals().items()):
+            refusals.add_metric([reason], count)
+        yield refusals
         yield CounterMetricFamily("rwls_dead_letter_failures", "Dead letters the broker did not take",
                                   value=stats.dead_letter_failures)
         yield GaugeMetricFamily("rwls_queue_depth", "Messages waiting for the engine", value=runtime.intake.qsize())

@@ -6,10 +6,22 @@ import json
 import threading
 import time
 from dataclasses import dataclass, field
+from enum import StrEnum
 
-from service.broker_link.payload import DecodedSample, Rejection
+from estimator import SampleRefusal
+from service.broker_link.payload import DecodedSample, PayloadRefusal, Refusal
 
-__all__ = ["DeadLetter", "Message"]
+__all__ = ["DeadLetter", "EngineRefusal", "Message", "RefusalReason"]
+
+
+class EngineRefusal(StrEnum):
+    """Why the engine itself refuses a message (beside the payload's and the estimator's reasons)."""
+
+    INTERNAL_ERROR = "internal_error"      # the engine failed on the message's batch (a bug; logged)
+
+
+# Every reason a message or sample is refused for: counted in /metrics and carried by its dead letter.
+RefusalReason = PayloadRefusal | SampleRefusal | EngineRefusal
 
 
 @dataclass(frozen=True)
@@ -25,7 +37,7 @@ class Message:
     source: str                  # "mqtt" or "http"
     topic: str | None = None
     received: float = field(default_factory=time.time)
-    decoded: tuple[list[DecodedSample], list[Rejection]] | None = None
+    decoded: tuple[list[DecodedSample], list[Refusal]] | None = None
     ack: tuple[int, int] | None = None        # (connection, message id): acknowledge once in the synced log
     durable: threading.Event | None = None    # set once the message is in the synced log (HTTP waits on it)
     redelivered: bool = False                 # the broker's DUP flag: it may have sent this one before
@@ -35,7 +47,7 @@ class Message:
 class DeadLetter:
     """A refused message or sample, with its reason, for the dead-letter topic."""
 
-    reason: str
+    reason: RefusalReason
     detail: str
     channel: str | None
     topic: str | None

@@ -67,22 +67,37 @@ import math
 import re
 from collections.abc import Collection
 from dataclasses import dataclass
+from enum import StrEnum
 from typing import Any
 
-from estimator import sigma_is_usable, weight_is_usable
+from estimator import SampleRefusal, sigma_is_usable, weight_is_usable
 from service.broker_link.text_values import parse_time
 
-__all__ = ["MAX_DEPTH", "REASONS", "DecodedSample", "Rejection", "decode_payload"]
+__all__ = ["MAX_DEPTH", "REASONS", "DecodedSample", "PayloadRefusal", "Refusal", "decode_payload"]
 
 MAX_DEPTH = 8
 """Deepest nesting of arrays and objects accepted; a batch of samples with inputs needs 4."""
 
-REASONS = frozenset({
-    "too_large", "bad_encoding", "too_deep", "malformed_json", "bad_structure",
-    "bad_type", "unknown_field", "missing_field", "bad_time", "non_finite",
-    "bad_sigma", "bad_weight", "missing_input",
-})
+class PayloadRefusal(StrEnum):
+    """Why a payload, or one sample in it, is refused before the estimator sees it (the module docstring)."""
 
+    TOO_LARGE = "too_large"
+    BAD_ENCODING = "bad_encoding"
+    TOO_DEEP = "too_deep"
+    MALFORMED_JSON = "malformed_json"
+    BAD_STRUCTURE = "bad_structure"
+    BAD_TYPE = "bad_type"
+    UNKNOWN_FIELD = "unknown_field"
+    MISSING_FIELD = "missing_field"
+    # The estimator's own reasons (estimator.SampleRefusal), found here already.
+    BAD_TIME = SampleRefusal.BAD_TIME.value
+    NON_FINITE = SampleRefusal.NON_FINITE.value
+    BAD_SIGMA = SampleRefusal.BAD_SIGMA.value
+    BAD_WEIGHT = SampleRefusal.BAD_WEIGHT.value
+    MISSING_INPUT = SampleRefusal.MISSING_INPUT.value
+
+
+REASONS = frozenset(PayloadRefusal)
 FIELDS = ("t", "y", "u", "sigma", "weight", "seq")
 _FIELD_SET = frozenset(FIELDS)
 
@@ -111,10 +126,10 @@ class DecodedSample:
 
 
 @dataclass(frozen=True)
-class Rejection:
-    """A refused message or sample: ``reason`` is one of ``REASONS``, ``detail`` is short text."""
+class Refusal:
+    """A refused message or sample: its reason, and ``detail``, short text."""
 
-    reason: str
+    reason: PayloadRefusal
     detail: str
     index: int | None
 
@@ -124,7 +139,7 @@ class _Refused(ValueError):
 
 
 class _SampleError(Exception):
-    def __init__(self, reason: str, detail: str) -> None:
+    def __init__(self, reason: PayloadRefusal, detail: str) -> None:
         super().__init__(reason, detail)
         self.reason = reason
         self.detail = detail
@@ -196,7 +211,7 @@ def _is_number(value: object) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
 
-def _finite(value: int | float, name: str, reason: str) -> float:
+def _finite(value: int | float, name: str, reason: PayloadRefusal) -> float:
     try:
         number = float(value)
     except OverflowError:
@@ -238,71 +253,74 @@ def _decode_sample(raw: object, input_names: tuple[str, ...] | None, index: int 
     if plain is not None:
         return plain
     if not isinstance(raw, dict):
-        raise _SampleError("bad_type", f"sample must be an object, got {type(raw).__name__}")
+        raise _SampleError(PayloadRefusal.BAD_TYPE, f"sample must be an object, got {type(raw).__name__}")
     unknown = [key for key in raw if key not in FIELDS]
     if unknown:
-        raise _SampleError("unknown_field", f"unknown field(s): {_short(unknown)}")
+        raise _SampleError(PayloadRefusal.UNKNOWN_FIELD, f"unknown field(s): {_short(unknown)}")
     fields = {key: value for key, value in raw.items() if value is not None}
     if "y" not in fields:
-        raise _SampleError("missing_field", "y is required")
+        raise _SampleError(PayloadRefusal.MISSING_FIELD, "y is required")
 
     # Types of every field first, so the reason does not depend on key order.
     for name in ("y", "sigma", "weight"):
         if name in fields and not _is_number(fields[name]):
-            raise _SampleError("bad_type", f"{name} must be a number, got {type(fields[name]).__name__}")
+            raise _SampleError(PayloadRefusal.BAD_TYPE, f"{name} must be a number, got {type(fields[name]).__name__}")
     t_raw = fields.get("t")
     if t_raw is not None and not (_is_number(t_raw) or isinstance(t_raw, str)):
-        raise _SampleError("bad_type", f"t must be a number or an ISO 8601 string, got {type(t_raw).__name__}")
+        raise _SampleError(PayloadRefusal.BAD_TYPE,
+                           f"t must be a number or an ISO 8601 string, got {type(t_raw).__name__}")
     u_raw = fields.get("u", {})
     if not isinstance(u_raw, dict):
-        raise _SampleError("bad_type", f"u must be an object, got {type(u_raw).__name__}")
+        raise _SampleError(PayloadRefusal.BAD_TYPE, f"u must be an object, got {type(u_raw).__name__}")
     u_present = {name: value for name, value in u_raw.items() if value is not None}
     for name, value in u_present.items():
         if not _is_number(value):
-            raise _SampleError("bad_type", f"input {_short(name)} must be a number, got {type(value).__name__}")
+            raise _SampleError(PayloadRefusal.BAD_TYPE,
+                               f"input {_short(name)} must be a number, got {type(value).__name__}")
     seq = fields.get("seq")
     if seq is not None and not (isinstance(seq, int) and not isinstance(seq, bool) and 0 <= seq < _SEQ_LIMIT):
-        raise _SampleError("bad_type", f"seq must be an integer in [0, 2**63), got {_short(seq)}")
+        raise _SampleError(PayloadRefusal.BAD_TYPE, f"seq must be an integer in [0, 2**63), got {_short(seq)}")
 
     t: float | None = None
     if isinstance(t_raw, str):
         try:
             t = parse_time(t_raw)
         except (ValueError, OverflowError, OSError):
-            raise _SampleError("bad_time", f"cannot read time {_short(t_raw)}") from None
+            raise _SampleError(PayloadRefusal.BAD_TIME, f"cannot read time {_short(t_raw)}") from None
         if not math.isfinite(t):
-            raise _SampleError("bad_time", f"time {_short(t_raw)} is not finite")
+            raise _SampleError(PayloadRefusal.BAD_TIME, f"time {_short(t_raw)} is not finite")
     elif t_raw is not None:
-        t = _finite(t_raw, "t", "bad_time")
+        t = _finite(t_raw, "t", PayloadRefusal.BAD_TIME)
 
-    y = _finite(fields["y"], "y", "non_finite")
-    inputs = {name: _finite(value, f"input {_short(name)}", "non_finite") for name, value in u_present.items()}
-    sigma = _finite(fields["sigma"], "sigma", "non_finite") if "sigma" in fields else None
-    weight = _finite(fields["weight"], "weight", "non_finite") if "weight" in fields else None
+    y = _finite(fields["y"], "y", PayloadRefusal.NON_FINITE)
+    inputs = {name: _finite(value, f"input {_short(name)}", PayloadRefusal.NON_FINITE)
+              for name, value in u_present.items()}
+    sigma = _finite(fields["sigma"], "sigma", PayloadRefusal.NON_FINITE) if "sigma" in fields else None
+    weight = _finite(fields["weight"], "weight", PayloadRefusal.NON_FINITE) if "weight" in fields else None
 
     # The estimator's rule (sigma_is_usable, weight_is_usable); here only to name the reason.
     if sigma is not None and not sigma_is_usable(sigma):
         if sigma <= 0.0:
-            raise _SampleError("bad_sigma", f"sigma must be > 0, got {sigma!r}")
+            raise _SampleError(PayloadRefusal.BAD_SIGMA, f"sigma must be > 0, got {sigma!r}")
         # w = 1 / sigma^2 must be a finite positive weight: the square may under- or overflow.
-        raise _SampleError("bad_sigma", f"sigma {sigma!r} gives no finite weight 1/sigma^2")
+        raise _SampleError(PayloadRefusal.BAD_SIGMA, f"sigma {sigma!r} gives no finite weight 1/sigma^2")
     if weight is not None and not weight_is_usable(weight):
-        raise _SampleError("bad_weight", f"weight must be > 0, got {weight!r}")   # finite: checked above
+        raise _SampleError(PayloadRefusal.BAD_WEIGHT, f"weight must be > 0, got {weight!r}")   # finite: checked above
 
     if input_names is not None:
         missing = [name for name in input_names if name not in inputs]
         if missing:
-            raise _SampleError("missing_input", f"missing input(s): {_short(missing)}")
+            raise _SampleError(PayloadRefusal.MISSING_INPUT, f"missing input(s): {_short(missing)}")
         inputs = {name: inputs[name] for name in input_names}
     return DecodedSample(t, y, inputs, sigma, weight, seq, index)
 
 
-def _whole(reason: str, detail: str) -> tuple[list[DecodedSample], list[Rejection]]:
-    return [], [Rejection(reason, detail, None)]
+def _whole(reason: PayloadRefusal, detail: str) -> tuple[list[DecodedSample], list[Refusal]]:
+    return [], [Refusal(reason, detail, None)]
 
 
 def decode_payload(payload: bytes | str, *, max_bytes: int = 65536, max_batch: int = 10000,
-                   input_names: Collection[str] | None = None) -> tuple[list[DecodedSample], list[Rejection]]:
+                   input_names: Collection[str] | None = None) -> tuple[list[DecodedSample], list[Refusal]]:
     """Decode one message into samples and rejections; never raises on the message's content.
 
     Parameters
@@ -321,7 +339,7 @@ def decode_payload(payload: bytes | str, *, max_bytes: int = 65536, max_batch: i
     -------
     samples : list of DecodedSample
         The accepted samples, in message order (``index`` tells their position).
-    rejections : list of Rejection
+    refusals : list of Refusal
         One per refused sample, in message order; or exactly one with
         ``index=None`` (and no samples) when the whole message is refused.
         Each ``reason`` is in ``REASONS``.
@@ -342,22 +360,22 @@ def decode_payload(payload: bytes | str, *, max_bytes: int = 65536, max_batch: i
     if isinstance(payload, str):
         # Every character takes at least one UTF-8 byte: a long string is refused without encoding it.
         if len(payload) > max_bytes:
-            return _whole("too_large", f"more than {max_bytes} bytes")
+            return _whole(PayloadRefusal.TOO_LARGE, f"more than {max_bytes} bytes")
         try:
             size = len(payload.encode("utf-8"))
         except UnicodeEncodeError as exc:
-            return _whole("bad_encoding", f"not encodable as UTF-8 at character {exc.start}")
+            return _whole(PayloadRefusal.BAD_ENCODING, f"not encodable as UTF-8 at character {exc.start}")
         if size > max_bytes:
-            return _whole("too_large", f"{size} bytes, limit {max_bytes}")
+            return _whole(PayloadRefusal.TOO_LARGE, f"{size} bytes, limit {max_bytes}")
         text = payload
     elif isinstance(payload, bytes | bytearray | memoryview):
         size = memoryview(payload).nbytes
         if size > max_bytes:
-            return _whole("too_large", f"{size} bytes, limit {max_bytes}")
+            return _whole(PayloadRefusal.TOO_LARGE, f"{size} bytes, limit {max_bytes}")
         try:
             text = bytes(payload).decode("utf-8")
         except UnicodeDecodeError as exc:
-            return _whole("bad_encoding", f"not UTF-8 at byte {exc.start}")
+            return _whole(PayloadRefusal.BAD_ENCODING, f"not UTF-8 at byte {exc.start}")
     else:
         raise TypeError(f"payload must be bytes or str, got {type(payload).__name__}")
 
@@ -366,7 +384,7 @@ def decode_payload(payload: bytes | str, *, max_bytes: int = 65536, max_batch: i
     # measured, which is cheaper than scanning the text of a large batch. A document that
     # does not parse is scanned, so a deep malformed one is still reported as too deep.
     shallow = text.count("[") + text.count("{") <= MAX_DEPTH
-    too_deep = _whole("too_deep", f"nested deeper than {MAX_DEPTH}")
+    too_deep = _whole(PayloadRefusal.TOO_DEEP, f"nested deeper than {MAX_DEPTH}")
     try:
         document = json.loads(text, parse_constant=_refuse_constant, object_pairs_hook=_no_duplicates,
                               parse_int=_parse_int)
@@ -376,32 +394,32 @@ def decode_payload(payload: bytes | str, *, max_bytes: int = 65536, max_batch: i
         if not shallow and _too_deep(text, MAX_DEPTH):
             return too_deep
         if isinstance(exc, json.JSONDecodeError):
-            return _whole("malformed_json", f"{exc.msg} (line {exc.lineno}, column {exc.colno})")
-        return _whole("malformed_json", str(exc) if isinstance(exc, _Refused) else type(exc).__name__)
+            return _whole(PayloadRefusal.MALFORMED_JSON, f"{exc.msg} (line {exc.lineno}, column {exc.colno})")
+        return _whole(PayloadRefusal.MALFORMED_JSON, str(exc) if isinstance(exc, _Refused) else type(exc).__name__)
     if not shallow and _nested_deeper(text, MAX_DEPTH):
         return too_deep
 
     if not isinstance(document, dict):
-        return _whole("bad_structure", f"top level must be an object, got {type(document).__name__}")
+        return _whole(PayloadRefusal.BAD_STRUCTURE, f"top level must be an object, got {type(document).__name__}")
     if "samples" not in document:
         raws: list[object] = [document]
         indexes: list[int | None] = [None]
     else:
         batch = document["samples"]
         if len(document) != 1:
-            return _whole("bad_structure", "a batch object holds only 'samples'")
+            return _whole(PayloadRefusal.BAD_STRUCTURE, "a batch object holds only 'samples'")
         if not isinstance(batch, list) or not batch:
-            return _whole("bad_structure", "samples must be a non-empty list")
+            return _whole(PayloadRefusal.BAD_STRUCTURE, "samples must be a non-empty list")
         if len(batch) > max_batch:
-            return _whole("bad_structure", f"{len(batch)} samples, limit {max_batch}")
+            return _whole(PayloadRefusal.BAD_STRUCTURE, f"{len(batch)} samples, limit {max_batch}")
         raws = batch
         indexes = list(range(len(batch)))
 
     samples: list[DecodedSample] = []
-    rejections: list[Rejection] = []
+    refusals: list[Refusal] = []
     for index, raw in zip(indexes, raws, strict=True):
         try:
             samples.append(_decode_sample(raw, names, index))
         except _SampleError as exc:
-            rejections.append(Rejection(exc.reason, exc.detail, index))
-    return samples, rejections
+            refusals.append(Refusal(exc.reason, exc.detail, index))
+    return samples, refusals

@@ -105,5 +105,5 @@ class FragmentWriter:
             estimates = ["null"] * (2 * n)
             residual_sd = "null"
         values = (quality, reason, _number(updated_at), _number(view.last_t), view.applied,
-                  sum(view.rejected.values()), *estimates, _number(view.noise_sigma), residual_sd)
+                  sum(view.refused.values()), *estimates, _number(view.noise_sigma), residual_sd)
         return (template % values).encode()

@@ -29,10 +29,10 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol, TypeVar
 
-from estimator import ChannelBank, ChannelSettings, SampleColumns
+from estimator import ChannelBank, ChannelSettings, SampleColumns, SampleRefusal
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import Alarm, AlarmBook, JournalEntry
-from service.broker_link.messages import DeadLetter, Message
+from service.broker_link.messages import DeadLetter, EngineRefusal, Message, RefusalReason
 from service.broker_link.payload import decode_payload
 from service.broker_link.payload_columns import decode_columns
 from service.broker_link.redelivery import RecentlyLogged
@@ -56,15 +56,15 @@ class EngineStats:
     messages: int = 0
     samples_applied: int = 0
     samples_warmup: int = 0
-    rejected: dict[str, int] = field(default_factory=dict)
+    refused: dict[str, int] = field(default_factory=dict)
     batches: int = 0
     last_batch_seconds: float = 0.0
     batch_seconds_total: float = 0.0
     dead_letter_failures: int = 0
     redelivered: int = 0            # broker redeliveries of messages already logged: acknowledged, not applied
 
-    def reject(self, reason: str) -> None:
-        self.rejected[reason] = self.rejected.get(reason, 0) + 1
+    def refuse(self, reason: str) -> None:
+        self.refused[reason] = self.refused.get(reason, 0) + 1
 
 
 @dataclass(frozen=True)
@@ -305,7 +305,7 @@ class Engine:
                 except Exception:          # the loop must outlive any bug in one batch
                     log.exception("engine batch failed; %d messages dead-lettered", len(batch))
                     for message in batch:
-                        self._refuse(message, "internal_error", "engine failed on this batch", None)
+                        self._refuse(message, EngineRefusal.INTERNAL_ERROR, "engine failed on this batch", None)
                 finally:
                     for _ in batch:
                         self._queue.task_done()
@@ -374,8 +374,8 @@ class Engine:
             except Exception:              # a failing checkpoint must not stop the samples
                 log.exception("periodic job failed")
 
-    def _refuse(self, message: Message, reason: str, detail: str, index: int | None) -> None:
-        self.stats.reject(reason)
+    def _refuse(self, message: Message, reason: RefusalReason, detail: str, index: int | None) -> None:
+        self.stats.refuse(reason)
         cid = message.channel
         if cid is not None and cid in self.bank:
             self.activity.refused(cid, reason)
@@ -397,10 +397,10 @@ class Engine:
         if fast is not None:
             columns, is_batch = fast
             return columns, _Origin(message, None if not is_batch else range(len(columns)))
-        decoded, rejections = message.decoded or decode_payload(
+        decoded, refusals = message.decoded or decode_payload(
             message.payload, max_bytes=self._max_payload, input_names=names)
-        for rejection in rejections:
-            self._refuse(message, rejection.reason, rejection.detail, rejection.index)
+        for refusal in refusals:
+            self._refuse(message, refusal.reason, refusal.detail, refusal.index)
         if not decoded:
             return None
         columns = SampleColumns()
@@ -462,7 +462,7 @@ class Engine:
             self.stats.messages += 1
             cid = message.channel
             if cid is None or cid not in self.bank:
-                self._refuse(message, "unknown_channel", "no channel for this topic or id", None)
+                self._refuse(message, SampleRefusal.UNKNOWN_CHANNEL, "no channel for this topic or id", None)
                 continue
             decoded = self._decode(message, cid)
             if decoded is None:
@@ -486,11 +486,11 @@ class Engine:
                 if self._publish_when is not None:
                     t = columns[cid].t[outcome.last_applied]
                     urgent = self._publish_when(cid, self._clock() if t is None else t) or urgent
-            for position, reason in outcome.rejected:
+            for position, reason in outcome.refused:
                 message, index = where.locate(position)
-                self._refuse(message, reason, f"refused by channel {cid}", index)
+                self._refuse(message, SampleRefusal(reason), f"refused by channel {cid}", index)
             if outcome.last_applied is not None:
-                self.activity.refused_in_a_row[cid] = sum(1 for position, _ in outcome.rejected
+                self.activity.refused_in_a_row[cid] = sum(1 for position, _ in outcome.refused
                                                  if position > outcome.last_applied)
         self._take_events()
         self.publisher.flush_if_due(self._queue.empty() or urgent)

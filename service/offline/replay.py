@@ -89,7 +89,7 @@ def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool |
             _note(result, row.line, cid, "unknown_channel")
             continue
         outcome = bank.apply_one(Sample(cid, row.y, row.inputs, row.t, row.sigma, row.weight))
-        if outcome.status == "rejected":
+        if outcome.status == "refused":
             _note(result, row.line, cid, outcome.reason)
         elif outcome.status == "applied":
             if on_applied is not None and outcome.regressor is not None:

@@ -119,7 +119,7 @@ class Persistence:
             arrays.update(alarm_arrays)
         meta = {"format": 1, "position": engine.position, "bank": bank_meta, "channels": list(channels),
                 "engine": {"stats": {"messages": stats.messages, "samples_applied": stats.samples_applied,
-                                     "samples_warmup": stats.samples_warmup, "rejected": dict(stats.rejected),
+                                     "samples_warmup": stats.samples_warmup, "rejected": dict(stats.refused),
                                      "batches": stats.batches, "redelivered": stats.redelivered}},
                 "alarms": alarms_meta, "feed": engine.feed_state()}
         return arrays, meta
@@ -245,7 +245,9 @@ class Persistence:
             engine.alarms.load(arrays, meta["alarms"])
         updated_at = {c: float(t) for c, t in zip(meta["channels"], arrays["engine.updated_at"].tolist(), strict=True)
                       if t == t}
-        engine.restore(position=position, stats=EngineStats(**meta["engine"]["stats"]), updated_at=updated_at,
+        # The checkpoint keeps the refusal counts under their first name, "rejected".
+        saved = {("refused" if name == "rejected" else name): value for name, value in meta["engine"]["stats"].items()}
+        engine.restore(position=position, stats=EngineStats(**saved), updated_at=updated_at,
                        feed=meta.get("feed") or {})
 
     # ---------------------------------------------------------------- history

@@ -75,19 +75,19 @@ class Counts:
     messages: int
     applied: int
     warmup: int
-    rejected: int
+    refused: int
     batches: int
     batch_seconds: float
 
     @property
     def processed(self) -> int:
-        return self.applied + self.warmup + self.rejected
+        return self.applied + self.warmup + self.refused
 
 
 def counts(runtime: Runtime) -> Counts:
     stats = runtime.engine.stats
     return Counts(runtime.ingest.received if runtime.ingest is not None else 0, stats.messages,
-                  stats.samples_applied, stats.samples_warmup, sum(dict(stats.rejected).values()),
+                  stats.samples_applied, stats.samples_warmup, sum(dict(stats.refused).values()),
                   stats.batches, stats.batch_seconds_total)
 
 
@@ -99,7 +99,7 @@ def await_subscription(runtime: Runtime, port: int, topic: str, timeout: float =
         publish_and_wait(port, [(topic, b"probe")], qos=1, timeout=5.0)
         until = time.monotonic() + 0.5
         while time.monotonic() < until:
-            if runtime.engine.stats.rejected.get("malformed_json", 0) > 0:
+            if runtime.engine.stats.refused.get("malformed_json", 0) > 0:
                 assert runtime.engine.drain(10.0)
                 return
             time.sleep(0.01)
@@ -150,12 +150,12 @@ def ingest_result(how: str, *, messages: int, batch: int, published: dict[str, A
     applied_window = (done - first_applied) if first_applied is not None and done is not None else math.nan
     return {"how": how, "batch": batch, "messages": messages, "expected": expected, "published": published,
             "received": final.received - base.received, "applied": final.applied - base.applied,
-            "warmup": final.warmup - base.warmup, "rejected": final.rejected - base.rejected,
+            "warmup": final.warmup - base.warmup, "rejected": final.refused - base.refused,
             "processed": final.processed - base.processed,
             "rate": expected / window if window > 0 else math.nan, "window": window,
             "applied_rate": expected / applied_window if applied_window > 0 else math.nan,
             "max_depth": max_depth, **probe.summary(expected),
-            "rejected_reasons": {k: v for k, v in runtime.engine.stats.rejected.items() if k != "malformed_json"}}
+            "rejected_reasons": {k: v for k, v in runtime.engine.stats.refused.items() if k != "malformed_json"}}
 
 
 class Tracker:

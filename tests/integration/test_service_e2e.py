@@ -68,13 +68,13 @@ def _wait_applied(runtime: Runtime, count: int, timeout: float = 30.0) -> None:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         stats = runtime.engine.stats
-        if stats.samples_applied + stats.samples_warmup + sum(stats.rejected.values()) >= count:
+        if stats.samples_applied + stats.samples_warmup + sum(stats.refused.values()) >= count:
             runtime.engine.drain(5.0)
             return
         time.sleep(0.02)
     stats = runtime.engine.stats
     raise AssertionError(f"timed out: {stats.samples_applied} applied, {stats.samples_warmup} warm-up, "
-                         f"{stats.rejected} rejected of {count}")
+                         f"{stats.refused} refused of {count}")
 
 
 def _views(runtime: Runtime) -> dict[str, Any]:
@@ -116,7 +116,7 @@ def test_parameters_over_mqtt_equal_replay_bit_for_bit(mqtt_broker: Any, unique_
         assert [float(v) for v in view.parameters] == [report["parameters"][t] for t in view.terms], cid
         assert float(view.residual_sd) == report["residual_sd"]
         assert view.applied == report["samples"] and view.warmup == report["warmup"]
-    assert runtime.engine.stats.rejected == {}
+    assert runtime.engine.stats.refused == {}
 
 
 BAD_MESSAGES: list[tuple[str, bytes, str]] = [
@@ -162,7 +162,7 @@ def test_every_bad_input_is_counted_dead_lettered_and_leaves_state_untouched(
             expected["out_of_order"] += 1
     publish_and_wait(mqtt_broker, messages, qos=1, timeout=30.0)
     _wait_applied(runtime, len(good) + sum(expected.values()))
-    assert runtime.engine.stats.rejected == dict(expected)
+    assert runtime.engine.stats.refused == dict(expected)
     dead.wait_for(sum(expected.values()), timeout=10.0)
     letters = [json.loads(m.payload) for m in dead.messages]
     assert Counter(letter["reason"] for letter in letters) == expected
@@ -207,7 +207,7 @@ def test_broker_restart_mid_stream_loses_no_sample(private_mosquitto: Callable[.
     finally:
         ingest.stop()
     assert runtime.engine.stats.samples_applied + runtime.engine.stats.samples_warmup == len(samples)
-    assert runtime.engine.stats.rejected == {}
+    assert runtime.engine.stats.refused == {}
     replayed = _replay(tmp_path, config, samples)
     for cid, view in _views(runtime).items():
         assert [float(v) for v in view.parameters] == [replayed[cid]["parameters"][t] for t in view.terms]

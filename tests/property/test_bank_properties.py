@@ -14,7 +14,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from estimator import RecursiveWLSBank, RejectedSample, bank_statistics, fit_wls
+from estimator import RecursiveWLSBank, SampleRefused, bank_statistics, fit_wls
 from tests.support.state_equality import assert_same_state
 
 # 100 examples per property: about 1 s each here, the file well under 30 s.
@@ -176,10 +176,10 @@ def test_rejected_sample_leaves_state_bit_identical(s: Scenario, kind: str, vect
             channel = k
     expected = {"nan_z": "non_finite", "inf_y": "non_finite", "wrong_length": "bad_shape",
                 "bad_channel": "bad_channel"}.get(kind, "bad_weight")
-    with pytest.raises(RejectedSample) as rejected:
+    with pytest.raises(SampleRefused) as refused:
         if vectorised:
             bank.update(z, y, w, channels=[*range(k - 1), channel] if kind == "bad_channel" else None)
         else:
             bank.update_one(channel, z[row], y[row], w[row])
-    assert rejected.value.reason == expected
+    assert refused.value.reason == expected
     assert_same_state(bank.state(), before)

@@ -136,7 +136,7 @@ def test_columns_give_the_bits_and_outcomes_of_the_exact_path(
             result = got[cid]
             assert result.applied == sum(o.status == "applied" for o in mine)
             assert result.warmup == sum(o.status == "warmup" for o in mine)
-            assert result.rejected == [(k, o.reason) for k, o in enumerate(mine) if o.status == "rejected"]
+            assert result.refused == [(k, o.reason) for k, o in enumerate(mine) if o.status == "refused"]
             applied = [k for k, o in enumerate(mine) if o.status == "applied"]
             assert result.last_applied == (applied[-1] if applied else None)
         assert _by_channel(exact.take_events()) == _by_channel(columnar.take_events())

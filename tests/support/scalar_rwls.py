@@ -56,7 +56,7 @@ class ScalarRecursiveWLS:
 
         Raises
         ------
-        RejectedSample
+        SampleRefused
             ``bad_shape``, ``non_finite`` or ``bad_weight``; the state is untouched then.
         """
         zs, y, weight = checked_sample(z, y, weight, self.n_params)

@@ -354,7 +354,7 @@ def test_post_single_and_batch_samples_is_202_with_queued_count(served: tuple[Ru
     assert batch.json() == {"queued": 4, "rejected": []}
     _drain(runtime)
     assert runtime.engine.stats.samples_applied == 5
-    assert runtime.engine.stats.rejected == {}
+    assert runtime.engine.stats.refused == {}
 
 
 @pytest.mark.parametrize(("body", "detail"), [
@@ -373,7 +373,7 @@ def test_post_refused_message_is_400_with_its_reason_and_counted(served: tuple[R
     assert response.status_code == 400
     assert response.json() == {"detail": detail}
     _drain(runtime)
-    assert runtime.rejections() == {detail: 1}
+    assert runtime.refusals() == {detail: 1}
     assert runtime.engine.stats.messages == 0      # refused at the door: the engine never saw it
     assert runtime.engine.stats.samples_applied == 0
 
@@ -395,7 +395,7 @@ def test_post_larger_than_max_payload_is_413(served: tuple[Runtime, TestClient])
     _drain(runtime)
     assert runtime.engine.stats.messages == 0      # never queued...
     assert runtime.engine.stats.samples_applied == 0
-    assert runtime.rejections()["too_large"] == 2  # ...but counted, as over MQTT
+    assert runtime.refusals()["too_large"] == 2  # ...but counted, as over MQTT
     metrics = client.get("/metrics").text
     assert 'rwls_rejections_total{reason="too_large"} 2.0' in metrics
 
@@ -404,7 +404,7 @@ def test_post_to_an_unknown_channel_is_404_and_counted(served: tuple[Runtime, Te
     runtime, client = served
     response = client.post("/api/v1/channels/nobody/samples", content=b'{"y": 1}')
     assert (response.status_code, response.json()) == (404, {"detail": "unknown channel"})
-    assert runtime.rejections()["unknown_channel"] == 1
+    assert runtime.refusals()["unknown_channel"] == 1
 
 
 def _raw_post(app: FastAPI, path: str, headers: list[tuple[bytes, bytes]], body: bytes) -> tuple[int, bytes]:
@@ -499,7 +499,7 @@ def test_bad_samples_are_listed_counted_and_leave_the_estimators_bit_identical(
         _drain(dirty)
 
         per_reason = ROUNDS * len(CHANNELS)      # each refusal once per channel and round
-        assert dirty.rejections() == {
+        assert dirty.refusals() == {
             **dict.fromkeys(DECODER_REASONS, per_reason), "out_of_order": per_reason,
             "malformed_json": per_reason, "duplicate_seq": per_reason}
         assert dirty.engine.stats.messages == 2 * per_reason     # the malformed ones never reach it
@@ -517,8 +517,8 @@ def test_bad_samples_are_listed_counted_and_leave_the_estimators_bit_identical(
         assert (d.noise_sigma, d.residual_sd) == (c.noise_sigma, c.residual_sd), cid
         # Decoder refusals never reach a channel; its own checks refused the out-of-order samples
         # (and, where the bank checks seq, the redeliveries).
-        assert d.rejected["out_of_order"] == ROUNDS, cid
-        assert set(d.rejected) <= {"out_of_order", "duplicate_seq"}, cid
+        assert d.refused["out_of_order"] == ROUNDS, cid
+        assert set(d.refused) <= {"out_of_order", "duplicate_seq"}, cid
     _same_bits(_estimator_states(dirty), _estimator_states(clean))
 
 

@@ -133,7 +133,7 @@ def ingest_client(served: tuple[Runtime, FastAPI]) -> Iterator[TestClient]:
 
 def _outcomes(runtime: Runtime) -> int:
     stats = runtime.engine.stats
-    return stats.samples_applied + stats.samples_warmup + sum(runtime.rejections().values())
+    return stats.samples_applied + stats.samples_warmup + sum(runtime.refusals().values())
 
 
 @given(channel=st.sampled_from(list(CHANNELS)), body=_BODY)

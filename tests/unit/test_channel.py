@@ -64,7 +64,7 @@ def test_sample_weighting_uses_sigma_then_weight_and_rejects_neither() -> None:
     assert pipeline.apply({}, 1.0, sigma=1e200).reason == "bad_sigma"    # 1 / sigma^2 underflows to 0
     assert pipeline.apply({}, 1.0, weight=-1.0).reason == "bad_weight"
     assert pipeline.counters.applied == 3
-    assert pipeline.counters.rejected == {"missing_weight": 1, "bad_sigma": 3, "bad_weight": 1}
+    assert pipeline.counters.refused == {"missing_weight": 1, "bad_sigma": 3, "bad_weight": 1}
 
 
 def test_tracked_weight_is_the_inverse_variance_known_before_the_sample() -> None:
@@ -104,10 +104,10 @@ def test_rejected_sample_leaves_every_array_and_lag_untouched(inputs: dict, y: f
     before = _state_arrays(pipeline)
     lags = pipeline.builder.state()
     outcome = pipeline.apply(inputs, y, **kwargs)
-    assert (outcome.status, outcome.reason) == ("rejected", reason)
+    assert (outcome.status, outcome.reason) == ("refused", reason)
     assert _same(before, _state_arrays(pipeline))
     assert pipeline.builder.state() == lags
-    assert pipeline.counters.rejected == {reason: 1}
+    assert pipeline.counters.refused == {reason: 1}
 
 
 def test_arx_channel_reports_warmup_until_its_lags_fill() -> None:

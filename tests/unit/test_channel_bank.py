@@ -77,8 +77,8 @@ def test_unknown_channels_and_bad_samples_are_refused_with_reasons() -> None:
                            Sample("flowish", 1.0, {"u": 1.0}), Sample("dp", 1.0, {"u": 1e200 * 1e200})])
     assert [o.reason for o in outcomes] == ["unknown_channel", "missing_input", "missing_weight", "non_finite"]
     view = bank.view()
-    assert view["temp"].rejected == {"missing_input": 1}
-    assert view["flowish"].rejected == {"missing_weight": 1}
+    assert view["temp"].refused == {"missing_input": 1}
+    assert view["flowish"].refused == {"missing_weight": 1}
 
 
 def test_an_overflowing_regressor_in_a_vectorised_round_refuses_only_its_sample() -> None:
@@ -86,7 +86,7 @@ def test_an_overflowing_regressor_in_a_vectorised_round_refuses_only_its_sample(
     bank = ChannelBank(settings)
     outcomes = bank.apply([Sample("a", 1.0, {"u": 1.0}), Sample("b", 1.0, {"u": 1e200}),
                            Sample("c", 2.0, {"u": 2.0})])
-    assert [(o.status, o.reason) for o in outcomes] == [("applied", ""), ("rejected", "non_finite"),
+    assert [(o.status, o.reason) for o in outcomes] == [("applied", ""), ("refused", "non_finite"),
                                                          ("applied", "")]
 
 

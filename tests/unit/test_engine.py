@@ -77,7 +77,7 @@ def test_decoder_refusals_and_unknown_channels_are_dead_lettered_once_each() -> 
                      _message("a", {"samples": [_sample(1), {"y": "x"}, _sample(2)]})])
     assert [(d.reason, d.index) for d in letters] == [("malformed_json", None), ("unknown_channel", None),
                                                       ("bad_type", 1)]
-    assert engine.stats.rejected == {"malformed_json": 1, "unknown_channel": 1, "bad_type": 1}
+    assert engine.stats.refused == {"malformed_json": 1, "unknown_channel": 1, "bad_type": 1}
     assert engine.stats.samples_applied == 2
     assert np.isfinite(engine.bank.view(["a"])["a"].parameters).all()
 

@@ -11,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.broker_link import payload as payload_module
-from service.broker_link.payload import MAX_DEPTH, REASONS, DecodedSample, Rejection, decode_payload
+from service.broker_link.payload import MAX_DEPTH, REASONS, DecodedSample, Refusal, decode_payload
 
 FUZZ = settings(max_examples=300, deadline=None, derandomize=True, database=None)
 
@@ -19,22 +19,22 @@ FUZZ = settings(max_examples=300, deadline=None, derandomize=True, database=None
 NEW_YEAR = 1767225600.0
 
 
-def _decode(value: Any, **kwargs: Any) -> tuple[list[DecodedSample], list[Rejection]]:
+def _decode(value: Any, **kwargs: Any) -> tuple[list[DecodedSample], list[Refusal]]:
     return decode_payload(json.dumps(value), **kwargs)
 
 
-def _reasons(result: tuple[list[DecodedSample], list[Rejection]]) -> list[str]:
+def _reasons(result: tuple[list[DecodedSample], list[Refusal]]) -> list[str]:
     return [r.reason for r in result[1]]
 
 
-def _check_outcome(result: tuple[list[DecodedSample], list[Rejection]]) -> None:
+def _check_outcome(result: tuple[list[DecodedSample], list[Refusal]]) -> None:
     """Invariants of every answer: known reasons, short details, finite accepted values."""
-    samples, rejections = result
-    for rejection in rejections:
-        assert rejection.reason in REASONS
-        assert len(rejection.detail) <= 200
-    if any(r.index is None for r in rejections):
-        assert len(rejections) == 1
+    samples, refusals = result
+    for refusal in refusals:
+        assert refusal.reason in REASONS
+        assert len(refusal.detail) <= 200
+    if any(r.index is None for r in refusals):
+        assert len(refusals) == 1
         assert not samples
     for sample in samples:
         numbers = [sample.y, *sample.inputs.values()]
@@ -52,8 +52,8 @@ def _check_outcome(result: tuple[list[DecodedSample], list[Rejection]]) -> None:
 def test_single_sample_round_trips_every_field() -> None:
     message = {"t": NEW_YEAR + 0.5, "y": 1.5, "u": {"flow": 2.0, "temp": -3}, "sigma": 0.5, "weight": 4.0,
                "seq": 17}
-    samples, rejections = _decode(message)
-    assert rejections == []
+    samples, refusals = _decode(message)
+    assert refusals == []
     assert samples == [DecodedSample(NEW_YEAR + 0.5, 1.5, {"flow": 2.0, "temp": -3.0}, 0.5, 4.0, 17, None)]
     assert type(samples[0].inputs["temp"]) is float
 
@@ -70,44 +70,44 @@ def test_only_y_is_required() -> None:
 def test_iso_times_are_utc_when_naive_and_equal_the_epoch_number() -> None:
     for t in ("2026-01-01T00:00:00Z", "2026-01-01T00:00:00", "2026-01-01T01:00:00+01:00", NEW_YEAR,
               int(NEW_YEAR), "1767225600"):
-        samples, rejections = _decode({"t": t, "y": 1})
-        assert rejections == [], t
+        samples, refusals = _decode({"t": t, "y": 1})
+        assert refusals == [], t
         assert samples[0].t == NEW_YEAR, t
 
 
 def test_batch_decodes_in_order_with_positions() -> None:
     batch = {"samples": [{"t": NEW_YEAR + k, "y": float(k), "u": {"a": k}, "seq": k} for k in range(5)]}
-    samples, rejections = _decode(batch)
-    assert rejections == []
+    samples, refusals = _decode(batch)
+    assert refusals == []
     assert [(s.index, s.y, s.seq, s.t) for s in samples] == [(k, float(k), k, NEW_YEAR + k) for k in range(5)]
 
 
 def test_batch_mixing_good_and_bad_samples_keeps_order_and_indexes() -> None:
     batch = {"samples": [{"y": 1}, {"y": "x"}, {"y": 2}, {"u": {}}, {"y": 3, "sigma": 0}, {"y": 4}]}
-    samples, rejections = _decode(batch)
+    samples, refusals = _decode(batch)
     assert [(s.index, s.y) for s in samples] == [(0, 1.0), (2, 2.0), (5, 4.0)]
-    assert [(r.index, r.reason) for r in rejections] == [(1, "bad_type"), (3, "missing_field"), (4, "bad_sigma")]
+    assert [(r.index, r.reason) for r in refusals] == [(1, "bad_type"), (3, "missing_field"), (4, "bad_sigma")]
 
 
 def test_null_means_the_same_as_absent() -> None:
-    samples, rejections = _decode({"t": None, "y": 1, "u": {"a": 2, "b": None}, "sigma": None, "weight": None,
+    samples, refusals = _decode({"t": None, "y": 1, "u": {"a": 2, "b": None}, "sigma": None, "weight": None,
                                    "seq": None})
-    assert rejections == []
+    assert refusals == []
     assert samples == [DecodedSample(None, 1.0, {"a": 2.0}, None, None, None, None)]
     assert _reasons(_decode({"y": None})) == ["missing_field"]
     assert _reasons(_decode({"y": 1, "u": {"a": None}}, input_names=["a"])) == ["missing_input"]
 
 
 def test_named_inputs_are_required_and_extra_inputs_dropped() -> None:
-    samples, rejections = _decode({"y": 1, "u": {"a": 1, "b": 2, "extra": 3}}, input_names=("b", "a"))
-    assert rejections == []
+    samples, refusals = _decode({"y": 1, "u": {"a": 1, "b": 2, "extra": 3}}, input_names=("b", "a"))
+    assert refusals == []
     assert samples[0].inputs == {"b": 2.0, "a": 1.0}
     assert _decode({"y": 1, "u": {"a": 1}}, input_names=None)[0][0].inputs == {"a": 1.0}
 
 
 def test_sigma_and_weight_at_the_edge_of_float_range_are_accepted() -> None:
-    samples, rejections = _decode({"y": 1, "sigma": 1e-150, "weight": 5e-324})
-    assert rejections == []
+    samples, refusals = _decode({"y": 1, "sigma": 1e-150, "weight": 5e-324})
+    assert refusals == []
     assert samples[0].sigma == 1e-150 and samples[0].weight == 5e-324
 
 
@@ -161,18 +161,18 @@ SAMPLE_REASONS = [
 
 @pytest.mark.parametrize(("reason", "text"), SAMPLE_REASONS)
 def test_sample_is_refused_with_its_reason(reason: str, text: str) -> None:
-    samples, rejections = decode_payload(text)
+    samples, refusals = decode_payload(text)
     assert samples == []
-    assert [r.reason for r in rejections] == [reason]
+    assert [r.reason for r in refusals] == [reason]
     expected_index = 0 if text.startswith('{"samples"') else None
-    assert rejections[0].index == expected_index
-    _check_outcome((samples, rejections))
+    assert refusals[0].index == expected_index
+    _check_outcome((samples, refusals))
 
 
 def test_missing_named_input_is_missing_input() -> None:
-    samples, rejections = _decode({"y": 1, "u": {"a": 1}}, input_names=["a", "b"])
+    samples, refusals = _decode({"y": 1, "u": {"a": 1}}, input_names=["a", "b"])
     assert samples == []
-    assert rejections == [Rejection("missing_input", "missing input(s): ['b']", None)]
+    assert refusals == [Refusal("missing_input", "missing input(s): ['b']", None)]
     assert _reasons(_decode({"y": 1}, input_names=["a"])) == ["missing_input"]
 
 
@@ -205,12 +205,12 @@ WHOLE_REASONS = [
 
 @pytest.mark.parametrize(("reason", "data"), WHOLE_REASONS)
 def test_whole_message_is_refused_with_its_reason(reason: str, data: bytes) -> None:
-    samples, rejections = decode_payload(data)
+    samples, refusals = decode_payload(data)
     assert samples == []
-    assert len(rejections) == 1
-    assert rejections[0].reason == reason
-    assert rejections[0].index is None
-    assert 0 < len(rejections[0].detail) <= 100
+    assert len(refusals) == 1
+    assert refusals[0].reason == reason
+    assert refusals[0].index is None
+    assert 0 < len(refusals[0].detail) <= 100
 
 
 def test_every_reason_code_has_an_example_and_a_docstring_entry() -> None:
@@ -266,8 +266,8 @@ def test_str_with_lone_surrogate_is_bad_encoding() -> None:
 
 def test_escaped_lone_surrogate_in_a_key_is_still_json() -> None:
     # \ud800 as an escape is valid JSON text; the name is kept as Python gives it.
-    samples, rejections = decode_payload('{"y": 1, "u": {"\\ud800": 1}}')
-    assert rejections == [] and list(samples[0].inputs) == ["\ud800"]
+    samples, refusals = decode_payload('{"y": 1, "u": {"\\ud800": 1}}')
+    assert refusals == [] and list(samples[0].inputs) == ["\ud800"]
 
 
 def test_size_limit_counts_utf8_bytes_of_a_str() -> None:
@@ -286,18 +286,18 @@ def test_ten_megabyte_payload_is_refused_before_parsing(monkeypatch: pytest.Monk
     data = b'{"samples": [' + b",".join([sample] * (10_000_000 // len(sample))) + b"]}"
     assert len(data) > 10_000_000
     for message in (data, data.decode()):
-        samples, rejections = decode_payload(message)
+        samples, refusals = decode_payload(message)
         assert samples == []
-        assert [r.reason for r in rejections] == ["too_large"]
-        assert len(rejections[0].detail) <= 60
+        assert [r.reason for r in refusals] == ["too_large"]
+        assert len(refusals[0].detail) <= 60
 
 
 @pytest.mark.parametrize("opener", [b"[", b"{", b'{"a":', b'[{"a":'])
 def test_nesting_100000_levels_is_too_deep_without_recursion_error(opener: bytes) -> None:
     data = opener * 100_000
-    samples, rejections = decode_payload(data, max_bytes=len(data))
+    samples, refusals = decode_payload(data, max_bytes=len(data))
     assert samples == []
-    assert rejections == [Rejection("too_deep", f"nested deeper than {MAX_DEPTH}", None)]
+    assert refusals == [Refusal("too_deep", f"nested deeper than {MAX_DEPTH}", None)]
 
 
 def test_deep_nesting_within_the_default_size_limit_is_too_deep() -> None:
@@ -314,8 +314,8 @@ def test_nesting_at_the_limit_is_parsed() -> None:
 
 def test_brackets_inside_strings_do_not_count_as_nesting() -> None:
     name = '[[[[[[[[[[{{{{{{{{{{\\"]]'
-    samples, rejections = decode_payload('{"y": 1, "u": {"' + name + '": 1}}')
-    assert rejections == []
+    samples, refusals = decode_payload('{"y": 1, "u": {"' + name + '": 1}}')
+    assert refusals == []
     assert list(samples[0].inputs) == ['[[[[[[[[[[{{{{{{{{{{"]]']
 
 
@@ -335,9 +335,9 @@ def test_detail_never_carries_a_long_value() -> None:
     long = "x" * 5000
     for message in ({"y": 1, long: 1}, {"y": 1, "t": long}, {"y": 1, "seq": 10**300},
                     {"y": 1, "u": {long: "1"}}, {"y": 1, "u": {"a": 1}, long: {}}):
-        _, rejections = _decode(message, input_names=[long[:3000]])
-        assert len(rejections) == 1
-        assert len(rejections[0].detail) <= 100
+        _, refusals = _decode(message, input_names=[long[:3000]])
+        assert len(refusals) == 1
+        assert len(refusals[0].detail) <= 100
 
 
 def test_caller_errors_raise() -> None:
@@ -400,14 +400,14 @@ def test_fuzz_sample_shaped_messages_answer_every_sample_once(samples: list[dict
     message: Any = {"samples": samples} if as_batch else samples[0]
     result = decode_payload(json.dumps(message), input_names=input_names)
     _check_outcome(result)
-    accepted, rejections = result
+    accepted, refusals = result
     text = json.dumps(message)
     if "NaN" in text or "Infinity" in text:
         # json.dumps writes non-finite floats as literals, which this service refuses.
-        assert [r.reason for r in rejections] == ["malformed_json"]
+        assert [r.reason for r in refusals] == ["malformed_json"]
         return
     expected = list(range(len(samples))) if as_batch else [None]
-    assert sorted([s.index for s in accepted] + [r.index for r in rejections], key=str) == sorted(expected, key=str)
+    assert sorted([s.index for s in accepted] + [r.index for r in refusals], key=str) == sorted(expected, key=str)
     for sample in accepted:
         if input_names is not None:
             assert list(sample.inputs) == list(input_names)

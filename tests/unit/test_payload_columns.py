@@ -23,8 +23,8 @@ def _agrees(payload: bytes, names: tuple[str, ...] = NAMES) -> bool:
     if fast is None:
         return False
     columns, is_batch = fast
-    samples, rejections = decode_payload(payload, input_names=names)
-    assert rejections == []
+    samples, refusals = decode_payload(payload, input_names=names)
+    assert refusals == []
     assert len(samples) == len(columns)
     for k, s in enumerate(samples):
         assert s.index == (k if is_batch else None)

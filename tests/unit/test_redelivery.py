@@ -68,7 +68,7 @@ def test_a_redelivered_logged_message_is_acknowledged_and_not_applied_again(tmp_
         stats = runtime.engine.stats
         assert stats.redelivered == 3
         assert stats.samples_applied + stats.samples_warmup == 11
-        assert stats.rejected == {"out_of_order_seq": 1}             # the plant's repeat, refused as ever
+        assert stats.refused == {"out_of_order_seq": 1}             # the plant's repeat, refused as ever
         assert sorted(mid for _, mid in acks) == [*range(10), 107, 108, 109, 200, 300]
         assert runtime.engine.position == position + 2              # only the two not recognised were logged
     finally:
@@ -92,6 +92,6 @@ def test_after_a_restart_redeliveries_of_messages_before_the_checkpoint_are_stil
         for k in range(5, 10):
             assert again.engine.submit(_message(k, redelivered=True, ack=50 + k))
         assert again.engine.drain(5.0)
-        assert again.engine.stats.redelivered == 5 and again.engine.stats.rejected == {}
+        assert again.engine.stats.redelivered == 5 and again.engine.stats.refused == {}
     finally:
         again.stop()

@@ -9,7 +9,7 @@ import math
 import numpy as np
 import pytest
 
-from estimator import BankState, RecursiveWLSBank, RejectedSample, bank_statistics, fit_wls
+from estimator import BankState, RecursiveWLSBank, SampleRefused, bank_statistics, fit_wls
 from tests.support.scalar_rwls import ScalarRecursiveWLS
 
 
@@ -243,7 +243,7 @@ def test_update_rejects_bad_sample_and_keeps_state(case: str, assert_same_state)
     arguments = dict(z=GOOD_Z, y=GOOD_Y, weight=GOOD_W) | changes
     bank = _bank_with_history()
     before = bank.state()
-    with pytest.raises(RejectedSample, match=match) as info:
+    with pytest.raises(SampleRefused, match=match) as info:
         bank.update(**arguments)
     assert info.value.reason == reason
     assert_same_state(bank.state(), before)
@@ -271,14 +271,14 @@ def test_update_one_rejects_bad_sample_and_keeps_state(case: str, assert_same_st
     arguments, reason, match = UPDATE_ONE_REJECTIONS[case]
     bank = _bank_with_history()
     before = bank.state()
-    with pytest.raises(RejectedSample, match=match) as info:
+    with pytest.raises(SampleRefused, match=match) as info:
         bank.update_one(*arguments)
     assert info.value.reason == reason
     assert_same_state(bank.state(), before)
 
 
 def test_rejected_sample_is_a_value_error() -> None:
-    assert issubclass(RejectedSample, ValueError)
+    assert issubclass(SampleRefused, ValueError)
 
 
 # ------------------------------------------------------------------ constructor
@@ -599,7 +599,7 @@ def test_scalar_channel_rejects_bad_sample_and_keeps_state(arguments, reason, ma
     for _ in range(10):
         channel.update(rng.normal(size=2), float(rng.normal()))
     before = channel.state()
-    with pytest.raises(RejectedSample, match=match) as info:
+    with pytest.raises(SampleRefused, match=match) as info:
         channel.update(*arguments)
     assert info.value.reason == reason
     assert_same_state(channel.state(), before)

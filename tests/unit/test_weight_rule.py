@@ -80,8 +80,8 @@ def test_a_sigma_whose_weight_overflows_is_refused_alike_by_decoders_and_both_es
     # refused it; the estimator now refuses it the same way on its own (a CSV replay reaches it directly).
     assert sigma * sigma > 0.0 and math.isinf(_weight_by_division(sigma))
     body = f'{{"y": 1.0, "u": {{"u": 0.5}}, "sigma": {sigma!r}}}'.encode()
-    samples, rejections = decode_payload(body, input_names=["u"])
-    assert samples == [] and [r.reason for r in rejections] == ["bad_sigma"]
+    samples, refusals = decode_payload(body, input_names=["u"])
+    assert samples == [] and [r.reason for r in refusals] == ["bad_sigma"]
     assert decode_columns(body, input_names=("u",)) is None            # the short path leaves it to the exact one
     for weighting in ("unit", "sample", "tracked"):
         settings = {"c": ChannelSettings(terms=("1", "u"), weighting=weighting)}
@@ -89,4 +89,4 @@ def test_a_sigma_whose_weight_overflows_is_refused_alike_by_decoders_and_both_es
         assert [o.reason for o in exact] == ["bad_sigma"], weighting
         columns = SampleColumns()
         columns.append(1.0, {"u": 0.5}, sigma=sigma)
-        assert ChannelBank(settings).apply_columns({"c": columns})["c"].rejected == [(0, "bad_sigma")], weighting
+        assert ChannelBank(settings).apply_columns({"c": columns})["c"].refused == [(0, "bad_sigma")], weighting
