@@ -36,10 +36,10 @@ Path = tuple[str, ...]
 # the baselines (below). A field that is None (no operating-point model) has no array.
 _DETECTORS = ("watch", "detectors")
 _FIELDS: tuple[tuple[str, Path], ...] = (
-    ("bank.A", ("bank", "factor")),
-    ("bank.n_eff", ("bank", "effective_count")),
-    ("bank.n_eff_sq", ("bank", "effective_count_sq")),
-    ("bank.count", ("bank", "sample_count")),
+    ("bank.A", ("wls", "factor")),
+    ("bank.n_eff", ("wls", "effective_count")),
+    ("bank.n_eff_sq", ("wls", "effective_count_sq")),
+    ("bank.count", ("wls", "sample_count")),
     ("tracker.S", ("tracker", "weighted_sum")),
     ("tracker.C", ("tracker", "weight_sum")),
     ("tracker.count", ("tracker", "sample_count")),
@@ -90,7 +90,7 @@ def _group_arrays(state: GroupState) -> Arrays:
 
 
 def _shape(state: GroupState) -> list[int]:
-    return [state.bank.factor.shape[1] - 1, 0 if state.model is None else state.model.bank.factor.shape[1] - 1]
+    return [state.wls.factor.shape[1] - 1, 0 if state.model is None else state.model.bank.factor.shape[1] - 1]
 
 
 def export_state(bank: ChannelBank) -> tuple[Arrays, dict[str, object]]:

@@ -222,7 +222,7 @@ class ChannelBank:
         """
         lane = self._lanes[channel]
         group = lane.group
-        group.bank.reset_channel(lane.index)
+        group.wls.reset_channel(lane.index)
         group.tracker.reset_channel(lane.index)
         if group.model is not None:
             group.model.reset_channel(lane.index)
@@ -320,7 +320,7 @@ class ChannelBank:
             if not members:
                 continue
             idx = np.array([lane.index for lane in members], dtype=np.intp)
-            stats = bank_statistics(group.bank.factor(idx), group.bank.effective_count[idx], scale="known")
+            stats = bank_statistics(group.wls.factor(idx), group.wls.effective_count[idx], scale="known")
             # Whole-group arrays first (one numpy call each), then one view per channel.
             residual_var = stats.residual_sd ** 2
             estimated = np.array([lane.settings.covariance_scale == "estimated" for lane in members])

@@ -65,7 +65,7 @@ class GroupState:
     ``model`` is None for a group without an operating-point noise model. Lanes in channel-index order.
     """
 
-    bank: BankState
+    wls: BankState
     tracker: TrackerState
     model: LogVarianceState | None
     watch: WatchState
@@ -163,7 +163,7 @@ class Lane:
 
 
 class ChannelGroup:
-    """Channels of one estimator shape: a bank, a tracker and an optional operating-point model."""
+    """Channels of one estimator shape: their recursive WLS arrays (``wls``), a tracker, an operating-point model."""
 
     def __init__(self, members: list[tuple[str, ChannelSettings]], tuning: PathTuning) -> None:
         self.tuning = tuning
@@ -171,7 +171,7 @@ class ChannelGroup:
         k = len(members)
         n = len(first.terms)
         self.time_based = first.noise_half_life_in_seconds
-        self.bank = RecursiveWLSBank(k, n, [s.forgetting_factor for _, s in members],
+        self.wls = RecursiveWLSBank(k, n, [s.forgetting_factor for _, s in members],
                                      np.array([[s.covariance_limit] * n for _, s in members]))
         self.tracker = NoiseVarianceTracker(k, [s.noise_half_life for _, s in members],
                                             time_based=self.time_based, robust=first.noise_robust,
@@ -180,11 +180,11 @@ class ChannelGroup:
         self.model = (LogVarianceModel(k, m, [s.noise_model_forgetting_factor for _, s in members])
                       if m else None)
         self.lanes = [Lane(cid, s, self, i) for i, (cid, s) in enumerate(members)]
-        self.watch = GroupWatch([s for _, s in members], self.bank, self.tracker, self.model)
+        self.watch = GroupWatch([s for _, s in members], self.wls, self.tracker, self.model)
 
     def state(self) -> GroupState:
         """Copy of the estimators' states and each lane's; see :class:`GroupState`."""
-        return GroupState(self.bank.state(), self.tracker.state(), None if self.model is None else self.model.state(),
+        return GroupState(self.wls.state(), self.tracker.state(), None if self.model is None else self.model.state(),
                           self.watch.state(), tuple([lane.state() for lane in self.lanes]))
 
     def restore(self, state: GroupState) -> None:
@@ -200,7 +200,7 @@ class ChannelGroup:
                              f"{len(self.lanes)} channels, model {self.model is not None}")
         for lane, lane_state in zip(self.lanes, state.lanes, strict=True):
             lane.check(lane_state)
-        self.bank.restore(state.bank)
+        self.wls.restore(state.wls)
         self.tracker.restore(state.tracker)
         if self.model is not None and state.model is not None:
             self.model.restore(state.model)
@@ -221,7 +221,7 @@ class ChannelGroup:
         idx = np.array([lane.index for lane, _ in items], dtype=np.intp)
         z_op = np.array([p.z_noise for _, p in items], dtype=np.float64) if self.model is not None else None
         declared = np.array([declared_variance(lane.settings, p.sample) for lane, p in items])
-        kappa = self.bank.kappa(idx)
+        kappa = self.wls.kappa(idx)
         outcomes = self._recursion(items, idx, kappa)
         applied = np.array([o.status == "applied" for o in outcomes], dtype=bool)
         if applied.any():
@@ -241,7 +241,7 @@ class ChannelGroup:
         y = np.array([p.sample.y for _, p in items], dtype=np.float64)
         w = np.array([p.weight for _, p in items], dtype=np.float64)
         try:
-            result = self.bank.update(Z, y, w, idx)
+            result = self.wls.update(Z, y, w, idx)
         except SampleRefused:
             # Some row overflowed (e.g. a power of a huge input): apply one by one
             # so only the offending samples are refused.
@@ -262,9 +262,9 @@ class ChannelGroup:
 
     def _update_one(self, lane: Lane, p: Prepared) -> SampleOutcome:
         i = lane.index
-        kappa = self.bank.kappa_one(i)
+        kappa = self.wls.kappa_one(i)
         try:
-            innovation, leverage = self.bank.update_one(i, p.z, p.sample.y, p.weight)
+            innovation, leverage = self.wls.update_one(i, p.z, p.sample.y, p.weight)
         except SampleRefused as exc:
             return lane.refuse(exc.reason)
         elapsed = _or_inf(lane.elapsed(p.sample.t)) if self.time_based else None

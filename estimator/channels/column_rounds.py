@@ -150,7 +150,7 @@ class _Prepared:
     def _regressors(self, group: ChannelGroup, entries: list[tuple[Lane, SampleColumns]]) -> None:
         """Z (N, n), Z_op (N, m) and the warm-up rows (lags not filled) of each lane."""
         total = self.y.shape[0]
-        n = group.bank.n_params
+        n = group.wls.n_params
         m = group.model.n_terms if group.model is not None else 0
         self.Z = np.zeros((total, n))
         self.Z_op = np.zeros((total, m)) if m else None
@@ -330,8 +330,8 @@ def _run_rounds(group: ChannelGroup, prep: _Prepared, runnable: NDArray[np.intp]
                     continue
         z_op = prep.Z_op[rows] if prep.Z_op is not None else None
         declared = prep.declared[rows]
-        kappa = group.bank.kappa(idx)
-        result = group.bank.update_trusted(z, y, w, idx)
+        kappa = group.wls.kappa(idx)
+        result = group.wls.update_trusted(z, y, w, idx)
         elapsed = None
         if group.time_based:
             elapsed = prep.t.values[rows] - last_tracked[sel]

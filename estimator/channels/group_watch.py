@@ -90,12 +90,12 @@ class WatchState:
 class GroupWatch:
     """Detectors, baselines and commissioning counts of one group's K channels."""
 
-    def __init__(self, settings: Sequence[ChannelSettings], bank: RecursiveWLSBank,
+    def __init__(self, settings: Sequence[ChannelSettings], wls: RecursiveWLSBank,
                  tracker: NoiseVarianceTracker, model: LogVarianceModel | None) -> None:
-        self.bank = bank
+        self.wls = wls
         self.tracker = tracker
         self.model = model
-        self.detectors = DetectorBank([s.detectors for s in settings], bank.n_params)
+        self.detectors = DetectorBank([s.detectors for s in settings], wls.n_params)
         self.histories = [BaselineHistory() for _ in settings]
         self._estimated = np.array([s.covariance_scale == "estimated" for s in settings])
         self._target = np.array([s.detectors.commissioning_samples for s in settings], dtype=np.int64)
@@ -122,7 +122,7 @@ class GroupWatch:
     # ------------------------------------------------------------------ rounds
     def after_round(self, idx: IndexArray, t: FloatArray, e: FloatArray, h: FloatArray, kappa: FloatArray,
                     declared: FloatArray, z_op: FloatArray | None) -> None:
-        """The detectors for one applied sample of each channel ``idx`` (after bank, tracker and model)."""
+        """The detectors for one applied sample of each channel ``idx`` (after the WLS update, tracker and model)."""
         with np.errstate(invalid="ignore", over="ignore"):
             v = e * e / (1.0 + kappa * h)
         counted = np.isfinite(v) & np.isnan(declared)
@@ -184,8 +184,8 @@ class GroupWatch:
 
     def _estimates(self, idx: IndexArray) -> tuple[FloatArray, FloatArray, NDArray[np.bool_]]:
         """theta (B, n), its covariance ``kappa P s^2`` (B, n, n) and whether it may be judged."""
-        stats = bank_statistics(self.bank.factor(idx), self.bank.effective_count[idx], scale="known")
-        scale = np.where(self._estimated[idx], stats.residual_sd ** 2, 1.0) * self.bank.kappa(idx)
+        stats = bank_statistics(self.wls.factor(idx), self.wls.effective_count[idx], scale="known")
+        scale = np.where(self._estimated[idx], stats.residual_sd ** 2, 1.0) * self.wls.kappa(idx)
         cov = stats.unscaled_covariance * scale[:, None, None]
         judged = stats.identifiable & (stats.dof >= 1.0) & (stats.information_condition <= CONDITION_LIMIT)
         return stats.parameters, cov, judged

@@ -135,7 +135,7 @@ def _estimator_states(runtime: Runtime) -> list[object]:
     """Every array the estimators of a runtime hold: per group the RWLS bank, noise tracker and model."""
     states: list[object] = []
     for group in runtime.engine.bank._groups:
-        states.append(group.bank.state())
+        states.append(group.wls.state())
         states.append(group.tracker.state())
         states.append(None if group.model is None else group.model.state())
     return states

@@ -18,7 +18,7 @@ class OneChannel:
     def __init__(self, settings: ChannelSettings) -> None:
         self.bank_of_channels = ChannelBank({"c": settings})
         group = self.bank_of_channels._lanes["c"].group
-        self.estimator, self.tracker = group.bank, group.tracker
+        self.estimator, self.tracker = group.wls, group.tracker
         self.builder = self.bank_of_channels._lanes["c"].builder
         self.counters = self.bank_of_channels._lanes["c"].counters
 
