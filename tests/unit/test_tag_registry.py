@@ -19,7 +19,7 @@ GATEWAY = TagFormatConfig(kind="json", value="/v")
 def _listed(*entries: tuple[str, str] | tuple[str, str, dict[str, object]]) -> list[ListedTag]:
     listed = []
     for i, entry in enumerate(entries):
-        extra = entry[2] if len(entry) == 3 else {}   # type: ignore[misc]
+        extra = entry[2] if len(entry) == 3 else {}
         listed.append(ListedTag(TagConfig.model_validate({"id": entry[0], "topic": entry[1], **extra}),
                                 f"entry{i}"))
     return listed
