@@ -275,3 +275,19 @@ def test_state_with_wrong_shapes_is_refused_and_changes_nothing() -> None:
     with pytest.raises(ValueError, match="'held' must be in"):
         a.import_state(dict(arrays, held=np.array([0, 99])), meta)
     assert _rows(a.update("FT", 2.0, 5.0)) == [(2.0, 5.0, (1.0,))]
+
+
+@pytest.mark.parametrize(("tag", "t", "value", "good", "match"), [
+    (2, 1.0, 1.0, True, r"in \[0, 2\)"),
+    (-1, 1.0, 1.0, True, r"in \[0, 2\)"),
+    ("FT", math.inf, 1.0, True, "t must be finite"),
+    ("FT", 1.0, math.inf, True, "good quality must be finite"),
+])
+def test_bad_single_updates_are_refused_and_change_nothing(tag: int | str, t: float, value: float, good: bool,
+                                                          match: str) -> None:
+    a = _flow()
+    a.update("SC", 1.0, 1.0)
+    with pytest.raises(ValueError, match=match):
+        a.update(tag, t, value, good)
+    assert a.update("SC", 1.5, 2.0).not_newer == {}
+    assert a.update("FT", 1.0, math.nan, good=False).refusals == {"flow": {SampleRefusal.OUTPUT_BAD_QUALITY: 1}}
