@@ -6,7 +6,8 @@ a channel's ``tags`` table says which tag is its output ``y`` and which tag stan
 
 ```toml
 [tags]
-files = ["plant_tags.csv"]      # tag lists besides the [[tags.tag]] entries (columns: service/tags/tag_list.py)
+files = ["plant_tags.csv"]      # tag lists besides [[tags.tag]] (columns: service/tags/tag_list.py), relative
+                                # to the configuration file's directory
 max_payload_bytes = 4096        # bytes; a larger tag message is refused as too_large
 max_pattern_tags = 100000       # tags the patterns may name in all (each new one is remembered)
 history = 16                    # updates kept per tag, for outputs whose time stamps lag their inputs'
@@ -32,7 +33,7 @@ topic = "gw/+/+/value"          # a pattern: one entry names every tag below it
 id = "{1}.{2}"                  # levels 1 and 2, counted from 0: gw/sub7/SC-101/value -> sub7.SC-101
 format = "gateway"
 
-[channels."sub7.flow".tags]     # ChannelTagsConfig
+[channels."sub7.flow".tags]     # ChannelTagsConfig (to be added to the channel table when tags are wired in)
 output = "sub7.FT-101"
 inputs = { pump_speed = "sub7.SC-101" }
 mode = "matched"                # only inputs stamped within `tolerance` before the output; default "latest"
@@ -161,7 +162,8 @@ class TagConfig(_Strict):
 class TagsConfig(_Strict):
     """``[tags]``: payload formats, tags written out, tag list files, and the limits of the tag path."""
 
-    files: tuple[str, ...] = Field(default=(), description="tag lists (CSV) read besides the entries here")
+    files: tuple[str, ...] = Field(default=(), description="tag lists (CSV) read besides the entries here; "
+                                   "relative to the configuration file's directory")
     max_payload_bytes: int = Field(default=65536, ge=1, le=1 << 24, description="bytes")
     max_pattern_tags: int = Field(default=100_000, ge=1, description="tags the patterns may name in all")
     history: int = Field(default=16, ge=1, le=1024, description="updates kept per tag")
@@ -203,7 +205,9 @@ class ChannelTagsConfig(_Strict):
     A sample forms when the output tag updates. In ``latest`` mode each input gives its newest value
     stamped at or before the output's stamp and no older than the input tag's ``max_age``; in
     ``matched`` mode (plants that scan synchronously) the input's value must also be stamped within
-    ``tolerance`` seconds before the output's: ``t_out - tolerance <= t_in <= t_out``.
+    ``tolerance`` seconds before the output's: ``t_out - tolerance <= t_in <= t_out``. The output
+    tag's own ``max_age`` plays no part: its update is the moment of the sample. Input names are the
+    names the channel's terms use (checked against them when tags are wired into the channel table).
     """
 
     output: str = Field(description="tag id of the output y")

@@ -282,8 +282,7 @@ class SampleAssembler:
                     row = out[1]
                     start = len(row)
                     for j, limit, too_old in inputs_of[c]:
-                        base = j * h
-                        cell = base + head[j]
+                        cell = j * h + head[j]
                         # Unused cells hold NaN, so one test covers "nothing kept" and "newest is after t_out".
                         if not T[cell] <= tk:
                             cell = self._at_or_before(j, tk)
