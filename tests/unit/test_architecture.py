@@ -21,6 +21,7 @@ FLOORS: dict[str, int] = {
     "config": 1,         # settings, validated by key
     "broker_link": 2,    # MQTT client, payload decoding, what it hands over
     "alarms": 3,         # lifecycle, feed, notifications, what-if
+    "tags": 3,           # plant tags: topics to tags, tag payloads, samples assembled from tag updates
     "engine": 4,         # the single writer, operations, snapshots
     "storage": 5,        # input log, store, checkpoints and recovery
     "fleet": 5,          # replicas and who owns a channel
