@@ -43,7 +43,7 @@ async def post_samples(channel_id: str, request: Request, runtime: ServiceRuntim
     decoded, refusals = decode_payload(body, max_bytes=max_payload, input_names=settings.input_names)
     if not decoded and refusals and refusals[0].index is None:
         # Refused as a whole: the client hears why; nothing for the engine to do.
-        runtime.refuse_http(refusals[0].reason)
+        runtime.refuse_http(PayloadRefusal(refusals[0].reason))
         return JSONResponse({"detail": refusals[0].reason}, status_code=400)
     if not runtime.submit_http(channel_id, body, (decoded, refusals)):
         return JSONResponse({"detail": "busy, retry later"}, status_code=503, headers={"Retry-After": "1"})

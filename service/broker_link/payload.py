@@ -127,9 +127,12 @@ class DecodedSample:
 
 @dataclass(frozen=True)
 class Refusal:
-    """A refused message or sample: its reason, and ``detail``, short text."""
+    """A refused message or sample: its reason code, and ``detail``, short text.
 
-    reason: PayloadRefusal
+    The sample decoders give :class:`PayloadRefusal` members; the tag decoders (``service.tags``) their own codes.
+    """
+
+    reason: str
     detail: str
     index: int | None
 

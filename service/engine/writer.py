@@ -33,7 +33,7 @@ from estimator import ChannelBank, ChannelSettings, SampleColumns, SampleRefusal
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import Alarm, AlarmBook, JournalEntry
 from service.broker_link.messages import DeadLetter, EngineRefusal, Message, RefusalReason
-from service.broker_link.payload import decode_payload
+from service.broker_link.payload import PayloadRefusal, decode_payload
 from service.broker_link.payload_columns import decode_columns
 from service.broker_link.redelivery import RecentlyLogged
 from service.engine.activity import ChannelActivity
@@ -400,7 +400,7 @@ class Engine:
         decoded, refusals = message.decoded or decode_payload(
             message.payload, max_bytes=self._max_payload, input_names=names)
         for refusal in refusals:
-            self._refuse(message, refusal.reason, refusal.detail, refusal.index)
+            self._refuse(message, PayloadRefusal(refusal.reason), refusal.detail, refusal.index)
         if not decoded:
             return None
         columns = SampleColumns()

@@ -28,7 +28,7 @@ a tag are strictly increasing, so the search for ``t_in <= t_out`` walks back fr
 usually stops at once; the history lets an output whose stamps lag its inputs' (a slower gateway)
 still find the input value of its moment.
 
-Refusals (:class:`SampleRefusal`, counted per channel; the tag messages themselves were fine, so they
+Refusals (:class:`FormingRefusal`, counted per channel; the tag messages themselves were fine, so they
 are no dead letters). The first failed check gives the reason: the output's quality, then each input
 in the channel's order: missing, ahead, stale or unmatched, bad quality.
 
@@ -59,12 +59,12 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.config.tag_settings import ChannelTagsConfig
 
-__all__ = ["AssembledBatch", "ChannelSamples", "SampleAssembler", "SampleRefusal"]
+__all__ = ["AssembledBatch", "ChannelSamples", "FormingRefusal", "SampleAssembler"]
 
 FloatArray = NDArray[np.float64]
 
 
-class SampleRefusal(StrEnum):
+class FormingRefusal(StrEnum):
     """Why an output update formed no sample of a channel (stable codes, in the order they are checked)."""
 
     OUTPUT_BAD_QUALITY = "output_bad_quality"   # the output update's quality is not good
@@ -75,7 +75,7 @@ class SampleRefusal(StrEnum):
     INPUT_BAD_QUALITY = "input_bad_quality"     # the input update used is not of good quality
 
 
-_REFUSALS = tuple(SampleRefusal)
+_REFUSALS = tuple(FormingRefusal)
 _OUTPUT_BAD, _MISSING, _AHEAD, _STALE, _UNMATCHED, _INPUT_BAD = range(len(_REFUSALS))
 
 
@@ -109,7 +109,7 @@ class AssembledBatch:
     """
 
     samples: dict[str, ChannelSamples]
-    refusals: dict[str, dict[SampleRefusal, int]]
+    refusals: dict[str, dict[FormingRefusal, int]]
     not_newer: dict[str, int]
 
 

@@ -36,7 +36,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 
-from service.broker_link.payload import Rejection
+from service.broker_link.payload import Refusal
 from service.config.tag_settings import BUILT_IN_FORMATS, ChannelTagsConfig, TagConfig, TagFormatConfig, TagsConfig
 from service.config.topic_pattern import TopicPattern, check_tag_id
 from service.tags.tag_payload import JsonTagDecoder, NumberTagDecoder, make_decoder
@@ -230,7 +230,7 @@ class TagRegistry:
         return problems
 
     # ------------------------------------------------------------------------------------------ lookup
-    def resolve(self, topic: str) -> TagMatch | Rejection | None:
+    def resolve(self, topic: str) -> TagMatch | Refusal | None:
         """The tag ``topic`` carries; a :class:`Rejection` (``REGISTRY_REASONS``); None when no entry names it."""
         match = self._exact.get(topic)
         if match is not None:
@@ -246,16 +246,16 @@ class TagRegistry:
             return None
         return self._bind(topic, entry, entry.pattern.tag_id(levels))
 
-    def _bind(self, topic: str, entry: _PatternEntry, tag_id: str) -> TagMatch | Rejection:
+    def _bind(self, topic: str, entry: _PatternEntry, tag_id: str) -> TagMatch | Refusal:
         try:
             check_tag_id(tag_id)
         except ValueError as exc:
-            return Rejection("bad_tag_id", f"pattern {entry.pattern.topic[:40]!r}: {str(exc)[:80]}", None)
+            return Refusal("bad_tag_id", f"pattern {entry.pattern.topic[:40]!r}: {str(exc)[:80]}", None)
         owner = self._exact_ids.get(tag_id) or self._bound_ids.get(tag_id)
         if owner is not None:
-            return Rejection("tag_id_taken", f"tag {tag_id[:40]!r} is named by topic {owner[:60]!r}", None)
+            return Refusal("tag_id_taken", f"tag {tag_id[:40]!r} is named by topic {owner[:60]!r}", None)
         if len(self._bound) >= self.max_pattern_tags:
-            return Rejection("too_many_tags", f"the patterns named {self.max_pattern_tags} tags already", None)
+            return Refusal("too_many_tags", f"the patterns named {self.max_pattern_tags} tags already", None)
         match = TagMatch(tag_id, entry.listed.tag, entry.decoder)
         self._bound[topic] = match
         self._bound_ids[tag_id] = topic

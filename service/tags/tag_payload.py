@@ -43,7 +43,7 @@ from typing import Protocol
 
 import msgspec
 
-from service.broker_link.payload import Rejection
+from service.broker_link.payload import Refusal
 from service.broker_link.text_values import parse_number
 from service.config.tag_settings import TagFormatConfig
 from service.tags.json_pointer import MISSING, JsonPointer
@@ -71,7 +71,7 @@ class TagReading:
 class TagDecoder(Protocol):
     """Decodes the messages of one payload format."""
 
-    def decode(self, payload: bytes, arrival: float) -> TagReading | Rejection:
+    def decode(self, payload: bytes, arrival: float) -> TagReading | Refusal:
         """The reading of one message, or its refusal; ``arrival`` in epoch seconds. Never raises on content."""
         ...
 
@@ -79,7 +79,7 @@ class TagDecoder(Protocol):
 class _Refused(Exception):
     def __init__(self, reason: str, detail: str) -> None:
         super().__init__(reason, detail)
-        self.rejection = Rejection(reason, detail, None)
+        self.refusal = Refusal(reason, detail, None)
 
 
 def _short(value: object) -> str:
@@ -93,9 +93,9 @@ def _check_arrival(arrival: float) -> None:
         raise ValueError(f"arrival must be finite epoch seconds, got {arrival!r}")
 
 
-def _too_large(payload: bytes, max_bytes: int) -> Rejection | None:
+def _too_large(payload: bytes, max_bytes: int) -> Refusal | None:
     size = len(payload)
-    return Rejection("too_large", f"{size} bytes, limit {max_bytes}", None) if size > max_bytes else None
+    return Refusal("too_large", f"{size} bytes, limit {max_bytes}", None) if size > max_bytes else None
 
 
 def _number(raw: object, what: str, reason_not_number: str, reason_not_finite: str) -> float:
@@ -129,7 +129,7 @@ class NumberTagDecoder:
             raise ValueError(f"max_bytes must be >= 1, got {max_bytes}")
         self.max_bytes = max_bytes
 
-    def decode(self, payload: bytes, arrival: float) -> TagReading | Rejection:
+    def decode(self, payload: bytes, arrival: float) -> TagReading | Refusal:
         _check_arrival(arrival)
         refused = _too_large(payload, self.max_bytes)
         if refused is not None:
@@ -137,15 +137,15 @@ class NumberTagDecoder:
         try:
             text = payload.decode("ascii").strip()
         except UnicodeDecodeError as exc:
-            return Rejection("not_a_number", f"not ASCII text (byte {exc.start})", None)
+            return Refusal("not_a_number", f"not ASCII text (byte {exc.start})", None)
         if not text:
-            return Rejection("not_a_number", "empty message", None)
+            return Refusal("not_a_number", "empty message", None)
         try:
             value = parse_number(text)
         except ValueError:
-            return Rejection("not_a_number", f"{_short(text)} is not a number", None)
+            return Refusal("not_a_number", f"{_short(text)} is not a number", None)
         if not math.isfinite(value):
-            return Rejection("non_finite", f"{_short(text)} is not finite", None)
+            return Refusal("non_finite", f"{_short(text)} is not finite", None)
         return TagReading(value, arrival, True)
 
 
@@ -190,7 +190,7 @@ class JsonTagDecoder:
         self._good_bool = frozenset(v for v in fmt.good if type(v) is bool)
         self._good_number = frozenset(v for v in fmt.good if type(v) is int)
 
-    def decode(self, payload: bytes, arrival: float) -> TagReading | Rejection:
+    def decode(self, payload: bytes, arrival: float) -> TagReading | Refusal:
         _check_arrival(arrival)
         refused = _too_large(payload, self.max_bytes)
         if refused is not None:
@@ -204,7 +204,7 @@ class JsonTagDecoder:
             t = arrival if self._time is None else self._stamp(document, self._time)
             good = True if self._quality is None else self._good(document, self._quality)
         except _Refused as exc:
-            return exc.rejection
+            return exc.refusal
         return TagReading(value, t, good)
 
     def _stamp(self, document: object, pointer: JsonPointer) -> float:

@@ -29,7 +29,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.config.tag_settings import ChannelTagsConfig
-from service.tags.assembler import SampleAssembler, SampleRefusal
+from service.tags.assembler import FormingRefusal, SampleAssembler
 
 PROPERTY_SETTINGS = settings(max_examples=150, deadline=None, derandomize=True, database=None)
 
@@ -77,7 +77,7 @@ def _reference(plant: dict[str, Any], channel: ChannelTagsConfig) -> tuple[dict[
     out_k = index[channel.output]
     left = _frame(updates, out_k).rename(columns={"value": "y", "good": "out_good"})
     reason = pd.Series([None] * len(left), dtype=object)
-    reason[~left["out_good"].to_numpy()] = SampleRefusal.OUTPUT_BAD_QUALITY.value
+    reason[~left["out_good"].to_numpy()] = FormingRefusal.OUTPUT_BAD_QUALITY.value
     columns = []
     for tag in channel.inputs.values():
         in_k = index[tag]
@@ -85,15 +85,15 @@ def _reference(plant: dict[str, Any], channel: ChannelTagsConfig) -> tuple[dict[
         exact = bool(rank[in_k] < rank[out_k])
         age = plant["max_age"][tag]
         limit = age if channel.mode == "latest" else min(age, channel.tolerance)
-        too_old = (SampleRefusal.INPUT_UNMATCHED if channel.mode == "matched" and channel.tolerance <= age
-                   else SampleRefusal.INPUT_STALE)
+        too_old = (FormingRefusal.INPUT_UNMATCHED if channel.mode == "matched" and channel.tolerance <= age
+                   else FormingRefusal.INPUT_STALE)
         anywhere = pd.merge_asof(left[["t"]], right, on="t", direction="backward", allow_exact_matches=exact)
         fresh = pd.merge_asof(left[["t"]], right, on="t", direction="backward", allow_exact_matches=exact,
                               tolerance=limit)
         open_rows = reason.isna()
-        reason[open_rows & anywhere["t_in"].isna()] = SampleRefusal.INPUT_MISSING.value
+        reason[open_rows & anywhere["t_in"].isna()] = FormingRefusal.INPUT_MISSING.value
         reason[reason.isna() & fresh["t_in"].isna()] = too_old.value
-        reason[reason.isna() & fresh["good"].eq(False)] = SampleRefusal.INPUT_BAD_QUALITY.value
+        reason[reason.isna() & fresh["good"].eq(False)] = FormingRefusal.INPUT_BAD_QUALITY.value
         columns.append(fresh["value"].to_numpy(dtype=np.float64))
     formed = reason.isna().to_numpy()
     inputs = np.column_stack(columns)[formed] if columns else np.zeros((int(formed.sum()), 0))

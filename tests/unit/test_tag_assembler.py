@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from service.config.tag_settings import ChannelTagsConfig
-from service.tags.assembler import AssembledBatch, SampleAssembler, SampleRefusal
+from service.tags.assembler import AssembledBatch, FormingRefusal, SampleAssembler
 
 INF = math.inf
 
@@ -33,7 +33,7 @@ def _refusals(batch: AssembledBatch, channel: str = "flow") -> dict[str, int]:
 
 
 def test_refusal_codes_are_stable() -> None:
-    assert [str(r) for r in SampleRefusal] == ["output_bad_quality", "input_missing", "input_ahead", "input_stale",
+    assert [str(r) for r in FormingRefusal] == ["output_bad_quality", "input_missing", "input_ahead", "input_stale",
                                                "input_unmatched", "input_bad_quality"]
 
 
@@ -290,4 +290,4 @@ def test_bad_single_updates_are_refused_and_change_nothing(tag: int | str, t: fl
     with pytest.raises(ValueError, match=match):
         a.update(tag, t, value, good)
     assert a.update("SC", 1.5, 2.0).not_newer == {}
-    assert a.update("FT", 1.0, math.nan, good=False).refusals == {"flow": {SampleRefusal.OUTPUT_BAD_QUALITY: 1}}
+    assert a.update("FT", 1.0, math.nan, good=False).refusals == {"flow": {FormingRefusal.OUTPUT_BAD_QUALITY: 1}}

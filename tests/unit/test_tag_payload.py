@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.broker_link.payload import Rejection
+from service.broker_link.payload import Refusal
 from service.config.tag_settings import TagFormatConfig
 from service.tags.json_pointer import MISSING, JsonPointer
 from service.tags.tag_payload import (
@@ -27,8 +27,8 @@ FUZZ = settings(max_examples=300, deadline=None, derandomize=True, database=None
 NEW_YEAR = 1767225600.0
 ARRIVAL = NEW_YEAR + 3600.0
 
-def _reason(result: TagReading | Rejection) -> str:
-    assert isinstance(result, Rejection), result
+def _reason(result: TagReading | Refusal) -> str:
+    assert isinstance(result, Refusal), result
     assert result.index is None
     assert len(result.detail) <= 120
     return result.reason
@@ -250,7 +250,7 @@ def test_any_message_gives_a_finite_reading_or_a_known_reason(payload: bytes, un
                 _json(value="/v", time="/ts", time_unit=unit, quality="/q", good=["good", 0])]
     for decoder in decoders:
         result = decoder.decode(payload, ARRIVAL)
-        if isinstance(result, Rejection):
+        if isinstance(result, Refusal):
             assert result.reason in PAYLOAD_REASONS
             assert result.index is None and len(result.detail) <= 120
         else:

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from service.broker_link.payload import Rejection
+from service.broker_link.payload import Refusal
 from service.config.tag_settings import ChannelTagsConfig, TagConfig, TagFormatConfig, TagsConfig
 from service.tags.registry import REGISTRY_REASONS, ListedTag, TagConfigError, TagMatch, TagRegistry
 from service.tags.tag_list import MAX_PROBLEMS, read_tag_list
@@ -29,15 +29,15 @@ def _registry(*entries: tuple[str, str] | tuple[str, str, dict[str, object]], **
     return TagRegistry(_listed(*entries), {"gateway": GATEWAY}, **kwargs)
 
 
-def _id(result: TagMatch | Rejection | None) -> str | None:
+def _id(result: TagMatch | Refusal | None) -> str | None:
     if result is None:
         return None
     assert isinstance(result, TagMatch), result
     return result.tag_id
 
 
-def _refusal(result: TagMatch | Rejection | None) -> str:
-    assert isinstance(result, Rejection), result
+def _refusal(result: TagMatch | Refusal | None) -> str:
+    assert isinstance(result, Refusal), result
     assert result.reason in REGISTRY_REASONS
     return result.reason
 
