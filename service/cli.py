@@ -23,6 +23,7 @@ from service.offline.csv_source import CsvError
 from service.offline.replay import RunResult, fit_file, replay_file
 from service.offline.tables import render_text
 from service.offline.trace import ReplayTrace
+from service.tags.tag_path import tag_path_of
 
 __all__ = ["build_parser", "main"]
 
@@ -250,7 +251,11 @@ def main(argv: Sequence[str] | None = None) -> int:
             config = load_config(args.config)
             if args.serve:
                 config.require_topics()
+            tags = tag_path_of(config)
             print(f"{args.config}: ok, {len(config.channels)} channel(s): {', '.join(config.channels)}")
+            if tags is not None:
+                print(f"tags: {len(tags.assembler.tag_ids)} named by {len(tags.channel_ids)} channel(s), "
+                      f"{len(tags.subscriptions())} topic filter(s)")
             budget = config.budget_thresholds()
             if budget is not None:
                 print(f"false-alarm budget: {budget.explain()}")

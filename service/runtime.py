@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import IO
 
 import numpy as np
+from paho.mqtt.client import topic_matches_sub
 
 from service.alarms.lifecycle import AlarmBook
 from service.alarms.notify import EventHub, MqttAlarms, WebhookSender
@@ -27,7 +28,7 @@ from service.broker_link.child_process import ProcessIngest
 from service.broker_link.messages import DeadLetter, Message, RefusalReason
 from service.broker_link.mqtt_client import BrokerSettings, MqttIngest
 from service.broker_link.payload import DecodedSample, Refusal
-from service.config.settings import RwlsConfig
+from service.config.settings import ConfigError, RwlsConfig
 from service.engine.intake import Intake
 from service.engine.log_throttle import LogThrottle
 from service.engine.operations import Inspect
@@ -37,6 +38,7 @@ from service.fleet.peers import Fleet, own_share
 from service.storage.input_log import InputLog
 from service.storage.persistence import Persistence
 from service.storage.store import Store, store_url
+from service.tags.tag_path import TagPath, tag_path_of
 
 __all__ = ["AlreadyRunning", "Runtime", "broker_settings", "exit_on_signal"]
 
@@ -60,6 +62,28 @@ class AlreadyRunning(RuntimeError):
     """Another process owns ingest for this data directory."""
 
 
+def _subscriptions(config: RwlsConfig, tags: TagPath | None) -> dict[str, str | None]:
+    """Topic filter -> channel id of whole samples, or None for the tags' topics and patterns.
+
+    A topic both a channel's and a tag's would reach the service twice (once per matching
+    subscription): refused, as is the dead-letter topic as a tag's.
+    """
+    topics: dict[str, str | None] = dict(config.require_topics())
+    if tags is None:
+        return topics
+    problems = []
+    for subscription in tags.subscriptions():
+        for topic in (*topics, config.broker.dead_letter_topic):
+            if topic_matches_sub(subscription, topic):
+                owner = topics.get(topic)
+                what = f"channel {owner}'s topic" if owner else "broker.dead_letter_topic"
+                problems.append(f"tags: topic {subscription!r} takes {what} {topic!r} as a tag")
+    if problems:
+        raise ConfigError(problems)
+    topics.update(dict.fromkeys(tags.subscriptions()))
+    return topics
+
+
 def broker_settings(config: RwlsConfig, *, manual_ack: bool = False) -> BrokerSettings:
     """The ``[broker]`` table as connection settings."""
     broker = config.broker
@@ -78,7 +102,12 @@ class Runtime:
     Parameters
     ----------
     config : the whole configuration
-    mqtt : subscribe to the channel topics (needs every channel to have a topic)
+    mqtt : subscribe to the channel topics and tag topics (needs every channel to have a topic or tags)
+
+    Raises
+    ------
+    ConfigError
+        The configuration cannot serve: a channel without topic or tags, unusable tags (their problems).
     """
 
     def __init__(self, config: RwlsConfig, *, mqtt: bool = True) -> None:
@@ -89,7 +118,8 @@ class Runtime:
                             timeout=config.fleet.peer_timeout)
                       if self.shard is not None and config.fleet.replicas else None)
         self.config = config
-        self.topics = config.require_topics() if mqtt else {}     # topic -> channel
+        self.tag_path = tag_path_of(config)
+        self.topics = _subscriptions(config, self.tag_path) if mqtt else {}   # topic filter -> channel (None: tags)
         self.ingest: MqttIngest | ProcessIngest | None = None
         self.alarms = AlarmBook({cid: ch.priorities() for cid, ch in config.channels.items()},
                                 journal_limit=config.alarms.journal_limit)
@@ -189,7 +219,7 @@ class Runtime:
             snapshot_interval=config.engine.snapshot_interval_ms / 1000.0, dead_letter=self._dead_letter,
             stale_after=config.alarms.stale_after, alarms=self.alarms, prepare=config.apply_baselines,
             input_log=input_log, acknowledge=self._acknowledge, intake=self.intake, periodic=periodic,
-            publish_hooks=publish_hooks, publish_when=publish_when)
+            publish_hooks=publish_hooks, publish_when=publish_when, tags=self.tag_path)
 
     def stop(self) -> None:
         """Stop ingest first (nothing new arrives), let the engine apply what is queued, checkpoint."""

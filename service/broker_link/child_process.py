@@ -97,7 +97,7 @@ def _carry_out(ingest: MqttIngest, item: tuple[Any, ...], wait: float = PUBLISH_
         log.error("request %s not carried out: %s", item[0], exc)
 
 
-def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing: Any, stop: Any,
+def _child(settings: BrokerSettings, topics: dict[str, str | None], out: Any, outgoing: Any, stop: Any,
            connected: Any, subscribed: Any, reconnects: Any, errors: Any, protocol: Any, failures: Any,
            parent: int) -> None:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s[ingest]: %(message)s")
@@ -139,7 +139,7 @@ def _child(settings: BrokerSettings, topics: dict[str, str], out: Any, outgoing:
 class ProcessIngest:
     """Same face as :class:`MqttIngest`, with the MQTT client in a child process."""
 
-    def __init__(self, settings: BrokerSettings, topics: Mapping[str, str],
+    def __init__(self, settings: BrokerSettings, topics: Mapping[str, str | None],
                  submit: Callable[[Message], bool]) -> None:
         self.settings = settings
         self._topics = dict(topics)

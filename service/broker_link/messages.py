@@ -10,6 +10,7 @@ from enum import StrEnum
 
 from estimator import SampleRefusal
 from service.broker_link.payload import DecodedSample, PayloadRefusal, Refusal
+from service.broker_link.tag_refusal import TagRefusal
 
 __all__ = ["DeadLetter", "EngineRefusal", "Message", "RefusalReason"]
 
@@ -18,15 +19,16 @@ class EngineRefusal(StrEnum):
     """Why the engine itself refuses a message (beside the payload's and the estimator's reasons)."""
 
     INTERNAL_ERROR = "internal_error"      # the engine failed on the message's batch (a bug; logged)
+    FED_BY_TAGS = "fed_by_tags"            # a whole sample for a channel assembled from tags (send the tags)
 
 
 # Every reason a message or sample is refused for: counted in /metrics and carried by its dead letter.
-RefusalReason = PayloadRefusal | SampleRefusal | EngineRefusal
+RefusalReason = PayloadRefusal | TagRefusal | SampleRefusal | EngineRefusal
 
 
 @dataclass(frozen=True)
 class Message:
-    """One raw message for one channel (``channel`` None: its topic matched no channel).
+    """One raw message: for one channel, or (``channel`` None) a tag message or one whose topic matched nothing.
 
     ``decoded`` carries the result of :func:`decode_payload` when the producer already
     decoded the payload (HTTP does, to answer the client), so it is not done twice.

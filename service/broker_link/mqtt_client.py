@@ -122,16 +122,16 @@ def probe_protocol(settings: BrokerSettings, timeout: float = 5.0) -> mqtt.MQTTP
 
 
 class MqttIngest:
-    """Subscriber for every channel topic, feeding the engine.
+    """Subscriber for every channel topic and tag topic, feeding the engine.
 
     Parameters
     ----------
     settings : broker connection
-    topics : topic -> channel id
+    topics : topic filter -> channel id (None: a tag topic or pattern; the engine's tag path names its tag)
     submit : hands a :class:`Message` to the engine; may block (back-pressure)
     """
 
-    def __init__(self, settings: BrokerSettings, topics: Mapping[str, str],
+    def __init__(self, settings: BrokerSettings, topics: Mapping[str, str | None],
                  submit: Callable[[Message], bool]) -> None:
         self.settings = settings
         self._topics = dict(topics)

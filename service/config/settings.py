@@ -46,6 +46,7 @@ from service.config.alarm_settings import (
 )
 from service.config.environment import apply_environment
 from service.config.false_alarm_budget import BudgetThresholds, derive_thresholds
+from service.config.tag_settings import ChannelTagsConfig, TagsConfig
 from service.config.token_settings import AuthConfig
 
 __all__ = [
@@ -176,6 +177,8 @@ class ChannelConfig(_Strict):
     covariance_scale: Literal["estimated", "known"] = "estimated"
     noise: NoiseConfig = Field(default_factory=NoiseConfig)
     topic: str | None = Field(default=None, description="MQTT topic of the channel's samples")
+    tags: ChannelTagsConfig | None = Field(default=None, description="the tags the channel's samples are "
+                                           "assembled from, instead of a topic of whole samples")
     detectors: DetectorConfig = Field(default_factory=DetectorConfig)
     alarms: dict[str, AlarmKindConfig] = Field(default_factory=dict, description="attributes per alarm kind")
     baseline: BaselineConfig | None = Field(default=None, description="a baseline in force from the start")
@@ -187,6 +190,25 @@ class ChannelConfig(_Strict):
                 self.baseline.values(RegressorSpec(self.terms).names)
             except ValueError as exc:
                 raise ValueError(f"baseline: {exc}") from None
+        return self
+
+    @model_validator(mode="after")
+    def _tag_inputs(self) -> ChannelConfig:
+        if self.tags is None:
+            return self
+        if self.topic is not None:
+            raise ValueError("a channel takes whole samples on its topic or is assembled from tags, not both")
+        if self.weighting == Weighting.SAMPLE:
+            raise ValueError("weighting 'sample' needs each sample's sigma or weight, which tag messages do not "
+                             "carry; use 'tracked' or 'unit' (with weight_rules) for a channel fed by tags")
+        needed = set(RegressorSpec(self.terms).input_names)
+        if self.noise.model_terms:
+            needed |= set(RegressorSpec(self.noise.model_terms).input_names)
+        named = set(self.tags.inputs)
+        if needed - named:
+            raise ValueError(f"tags.inputs: no tag for input(s) {', '.join(sorted(needed - named))} the terms use")
+        if named - needed:
+            raise ValueError(f"tags.inputs: input(s) {', '.join(sorted(named - needed))} not used by any term")
         return self
 
     @field_validator("alarms")
@@ -434,6 +456,7 @@ class RwlsConfig(_Strict):
     alarms: AlarmsConfig = Field(default_factory=AlarmsConfig)
     auth: AuthConfig = Field(default_factory=AuthConfig)
     fleet: FleetConfig = Field(default_factory=FleetConfig)
+    tags: TagsConfig = Field(default_factory=TagsConfig)
 
     @model_validator(mode="after")
     def _budget(self) -> RwlsConfig:
@@ -472,8 +495,12 @@ class RwlsConfig(_Strict):
                 raise ValueError(f"channel id {key!r} must be 1-128 of letters, digits, '_', '.', '-'")
         return value
 
+    def channel_tags(self) -> dict[str, ChannelTagsConfig]:
+        """The channels assembled from tags, each with its ``tags`` table, in channel order."""
+        return {cid: channel.tags for cid, channel in self.channels.items() if channel.tags is not None}
+
     def require_topics(self) -> dict[str, str]:
-        """Check that the configuration can serve MQTT: every channel has its own topic.
+        """Check that the configuration can serve MQTT: every channel not fed by tags has its own topic.
 
         Returns
         -------
@@ -483,15 +510,18 @@ class RwlsConfig(_Strict):
         Raises
         ------
         ConfigError
-            A channel without a topic, a topic used twice, or a channel topic equal
-            to ``broker.dead_letter_topic``; one line per problem, naming the key.
+            A channel with neither topic nor tags, a topic used twice, or a channel topic equal
+            to ``broker.dead_letter_topic``; one line per problem, naming the key. (Tag topics are
+            checked by the tag registry, :mod:`service.tags.registry`.)
         """
         problems: list[str] = []
         owners: dict[str, str] = {}
         for cid, channel in self.channels.items():
             key = f"channels.{cid}.topic"
+            if channel.topic is None and channel.tags is not None:
+                continue
             if channel.topic is None:
-                problems.append(f"{key}: required to serve")
+                problems.append(f"{key}: required to serve (or a [channels.{cid}.tags] table)")
             elif channel.topic in owners:
                 problems.append(f"{key}: also used by channel {owners[channel.topic]}")
             elif channel.topic == self.broker.dead_letter_topic:
@@ -543,6 +573,15 @@ def parse_config(data: Mapping[str, object]) -> RwlsConfig:
     return _validate(data)
 
 
+def _tag_files_beside(data: dict[str, object], directory: Path) -> None:
+    """Tag lists named in the file are relative to the file's directory (an override's to the working one)."""
+    tags = data.get("tags")
+    files = tags.get("files") if isinstance(tags, dict) else None
+    if isinstance(tags, dict) and isinstance(files, list):
+        tags["files"] = [str(directory / name) if isinstance(name, str) and not Path(name).is_absolute() else name
+                         for name in files]
+
+
 def load_config(path: str | Path | None, environ: Mapping[str, str] | None = None) -> RwlsConfig:
     """Read a TOML configuration file, apply ``RWLS_`` environment overrides, and validate.
 
@@ -572,6 +611,8 @@ def load_config(path: str | Path | None, environ: Mapping[str, str] | None = Non
             data = tomllib.loads(text)
         except tomllib.TOMLDecodeError as exc:
             raise ConfigError([f"{path}: TOML syntax error: {exc}"]) from None
+    if path is not None:
+        _tag_files_beside(data, Path(path).parent)
     merged, sources, problems = apply_environment(data, os.environ if environ is None else environ, RwlsConfig)
     if problems:
         raise ConfigError(problems)

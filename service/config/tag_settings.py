@@ -33,7 +33,7 @@ topic = "gw/+/+/value"          # a pattern: one entry names every tag below it
 id = "{1}.{2}"                  # levels 1 and 2, counted from 0: gw/sub7/SC-101/value -> sub7.SC-101
 format = "gateway"
 
-[channels."sub7.flow".tags]     # ChannelTagsConfig (to be added to the channel table when tags are wired in)
+[channels."sub7.flow".tags]     # ChannelTagsConfig: this channel is assembled from tags (it has no topic)
 output = "sub7.FT-101"
 inputs = { pump_speed = "sub7.SC-101" }
 mode = "matched"                # only inputs stamped within `tolerance` before the output; default "latest"
@@ -207,7 +207,7 @@ class ChannelTagsConfig(_Strict):
     ``matched`` mode (plants that scan synchronously) the input's value must also be stamped within
     ``tolerance`` seconds before the output's: ``t_out - tolerance <= t_in <= t_out``. The output
     tag's own ``max_age`` plays no part: its update is the moment of the sample. Input names are the
-    names the channel's terms use (checked against them when tags are wired into the channel table).
+    names the channel's terms (and noise model terms) use, every one of them and no other.
     """
 
     output: str = Field(description="tag id of the output y")

@@ -36,11 +36,13 @@ from service.broker_link.messages import DeadLetter, EngineRefusal, Message, Ref
 from service.broker_link.payload import PayloadRefusal, decode_payload
 from service.broker_link.payload_columns import decode_columns
 from service.broker_link.redelivery import RecentlyLogged
+from service.broker_link.tag_refusal import TagRefusal
 from service.engine.activity import ChannelActivity
 from service.engine.intake import Command, Intake
 from service.engine.operations import Operation, operation_record
 from service.engine.publisher import PublishHook, SnapshotPublisher
 from service.engine.snapshot import Snapshot
+from service.tags.tag_path import TagBatch, TagPath, sample_columns
 
 __all__ = ["Command", "Engine", "EngineBusy", "EngineStats", "InputRecorder"]
 
@@ -62,6 +64,9 @@ class EngineStats:
     batch_seconds_total: float = 0.0
     dead_letter_failures: int = 0
     redelivered: int = 0            # broker redeliveries of messages already logged: acknowledged, not applied
+    not_formed: dict[str, dict[str, int]] = field(default_factory=dict)   # channel -> FormingRefusal -> count
+    tag_updates_unused: int = 0     # good updates of tags no channel names
+    tag_updates_not_newer: int = 0  # tag updates not later than the tag's newest (kept out: see assembler)
 
     def refuse(self, reason: str) -> None:
         self.refused[reason] = self.refused.get(reason, 0) + 1
@@ -130,6 +135,7 @@ class Engine:
     publish_hooks : called with the refreshed entries after each snapshot (history rows)
     publish_when : ``(channel, t)`` of a channel's newest applied sample; True publishes at once, however
         busy (a history row is due: rows follow sample time, not how batches happened to coalesce)
+    tags : the tag path of the channels assembled from tags; messages without a channel go through it
     """
 
     def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
@@ -142,8 +148,11 @@ class Engine:
                  intake: Intake | None = None,
                  periodic: Sequence[Callable[[Engine], None]] = (),
                  publish_hooks: Sequence[PublishHook] = (),
-                 publish_when: Callable[[str, float], bool] | None = None) -> None:
+                 publish_when: Callable[[str, float], bool] | None = None,
+                 tags: TagPath | None = None) -> None:
         self.bank = ChannelBank(channels)
+        self.tags = tags
+        self._fed_by_tags = frozenset(tags.channel_ids if tags is not None else ())
         self.log = input_log
         self.position = 0                                     # last input-log seq applied
         self.recently_logged = RecentlyLogged()                # MQTT messages logged lately (redeliveries)
@@ -458,11 +467,18 @@ class Engine:
             self._log_batch(batch, redelivery_acks)
         columns: dict[str, SampleColumns] = {}
         origins: dict[str, _Origins] = {}      # where each channel's samples came from
+        tagged: list[Message] = []
         for message in batch:
             self.stats.messages += 1
             cid = message.channel
+            if cid is None and self.tags is not None:
+                tagged.append(message)
+                continue
             if cid is None or cid not in self.bank:
                 self._refuse(message, SampleRefusal.UNKNOWN_CHANNEL, "no channel for this topic or id", None)
+                continue
+            if cid in self._fed_by_tags:
+                self._refuse(message, EngineRefusal.FED_BY_TAGS, f"channel {cid} is assembled from tags", None)
                 continue
             decoded = self._decode(message, cid)
             if decoded is None:
@@ -474,6 +490,8 @@ class Engine:
             else:
                 columns[cid] = more
                 origins[cid] = _Origins(origin)
+        if tagged and self.tags is not None:
+            self._take_tags(tagged, self.tags.take(tagged), columns, origins)
         urgent = False
         for cid, outcome in self.bank.apply_columns(columns).items():
             self.publisher.touch(cid)   # applied, warm-up or refused: its view changed either way
@@ -498,6 +516,31 @@ class Engine:
         self.stats.batches += 1
         self.stats.last_batch_seconds = elapsed
         self.stats.batch_seconds_total += elapsed
+
+    def _take_tags(self, messages: list[Message], taken: TagBatch, columns: dict[str, SampleColumns],
+                   origins: dict[str, _Origins]) -> None:
+        """Refusals and counts of a batch's tag messages; the samples they formed join ``columns``.
+
+        A channel fed by tags takes no whole samples (:data:`EngineRefusal.FED_BY_TAGS`), so its
+        samples never interleave with another lane's and their order is the tag messages' order.
+        """
+        for i, refusal in taken.refused:
+            self._refuse(messages[i], TagRefusal(refusal.reason), refusal.detail, None)
+        for i in taken.unknown:
+            self._refuse(messages[i], SampleRefusal.UNKNOWN_CHANNEL, "no channel or tag for this topic", None)
+        stats = self.stats
+        stats.tag_updates_unused += taken.unused
+        stats.tag_updates_not_newer += sum(taken.assembled.not_newer.values())
+        for cid, counts in taken.assembled.refusals.items():
+            held = stats.not_formed.setdefault(cid, {})
+            for reason, n in counts.items():
+                held[reason] = held.get(reason, 0) + n
+        for cid, samples in taken.assembled.samples.items():
+            columns[cid] = sample_columns(samples)
+            where = _Origins(_Origin(messages[int(samples.position[0])], None))
+            for k, position in enumerate(samples.position[1:].tolist(), start=1):
+                where.add(k, _Origin(messages[position], None))
+            origins[cid] = where
 
     # ---------------------------------------------------------------- alarms
     def _take_events(self) -> None:

@@ -120,8 +120,14 @@ class Persistence:
         meta = {"format": 1, "position": engine.position, "bank": bank_meta, "channels": list(channels),
                 "engine": {"stats": {"messages": stats.messages, "samples_applied": stats.samples_applied,
                                      "samples_warmup": stats.samples_warmup, "rejected": dict(stats.refused),
-                                     "batches": stats.batches, "redelivered": stats.redelivered}},
+                                     "batches": stats.batches, "redelivered": stats.redelivered,
+                                     "not_formed": {c: dict(n) for c, n in stats.not_formed.items()},
+                                     "tag_updates_unused": stats.tag_updates_unused,
+                                     "tag_updates_not_newer": stats.tag_updates_not_newer}},
                 "alarms": alarms_meta, "feed": engine.feed_state()}
+        if engine.tags is not None:
+            tag_arrays, meta["tags"] = engine.tags.export_state()
+            arrays.update(tag_arrays)
         return arrays, meta
 
     def checkpoint(self, engine: Engine, *, wait: bool = True) -> bool:
@@ -241,6 +247,11 @@ class Persistence:
 
     @staticmethod
     def _load_engine(engine: Engine, arrays: dict[str, np.ndarray], meta: dict[str, Any], position: int) -> None:
+        if engine.tags is not None and meta.get("tags") is not None:
+            # First: it may refuse the checkpoint (ValueError) before anything else of the engine changed.
+            gone = engine.tags.import_state(arrays, meta["tags"])
+            if any(gone.values()):
+                log.info("tag state the configuration no longer has: %s", gone)
         if engine.alarms is not None and meta.get("alarms") is not None:
             engine.alarms.load(arrays, meta["alarms"])
         updated_at = {c: float(t) for c, t in zip(meta["channels"], arrays["engine.updated_at"].tolist(), strict=True)

@@ -37,13 +37,13 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 
 from service.broker_link.payload import Refusal
+from service.broker_link.tag_refusal import REGISTRY_REASONS, TagRefusal
 from service.config.tag_settings import BUILT_IN_FORMATS, ChannelTagsConfig, TagConfig, TagFormatConfig, TagsConfig
 from service.config.topic_pattern import TopicPattern, check_tag_id
 from service.tags.tag_payload import JsonTagDecoder, NumberTagDecoder, make_decoder
 
 __all__ = ["REGISTRY_REASONS", "ListedTag", "TagConfigError", "TagMatch", "TagRegistry"]
 
-REGISTRY_REASONS = frozenset({"bad_tag_id", "tag_id_taken", "too_many_tags"})
 
 
 class TagConfigError(Exception):
@@ -231,7 +231,7 @@ class TagRegistry:
 
     # ------------------------------------------------------------------------------------------ lookup
     def resolve(self, topic: str) -> TagMatch | Refusal | None:
-        """The tag ``topic`` carries; a :class:`Rejection` (``REGISTRY_REASONS``); None when no entry names it."""
+        """The tag ``topic`` carries; a :class:`Refusal` (``REGISTRY_REASONS``); None when no entry names it."""
         match = self._exact.get(topic)
         if match is not None:
             return match
@@ -250,12 +250,12 @@ class TagRegistry:
         try:
             check_tag_id(tag_id)
         except ValueError as exc:
-            return Refusal("bad_tag_id", f"pattern {entry.pattern.topic[:40]!r}: {str(exc)[:80]}", None)
+            return Refusal(TagRefusal.BAD_TAG_ID, f"pattern {entry.pattern.topic[:40]!r}: {str(exc)[:80]}", None)
         owner = self._exact_ids.get(tag_id) or self._bound_ids.get(tag_id)
         if owner is not None:
-            return Refusal("tag_id_taken", f"tag {tag_id[:40]!r} is named by topic {owner[:60]!r}", None)
+            return Refusal(TagRefusal.TAG_ID_TAKEN, f"tag {tag_id[:40]!r} is named by topic {owner[:60]!r}", None)
         if len(self._bound) >= self.max_pattern_tags:
-            return Refusal("too_many_tags", f"the patterns named {self.max_pattern_tags} tags already", None)
+            return Refusal(TagRefusal.TOO_MANY_TAGS, f"the patterns named {self.max_pattern_tags} tags already", None)
         match = TagMatch(tag_id, entry.listed.tag, entry.decoder)
         self._bound[topic] = match
         self._bound_ids[tag_id] = topic

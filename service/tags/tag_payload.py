@@ -44,16 +44,14 @@ from typing import Protocol
 import msgspec
 
 from service.broker_link.payload import Refusal
+from service.broker_link.tag_refusal import TAG_PAYLOAD_REASONS, TagRefusal
 from service.broker_link.text_values import parse_number
 from service.config.tag_settings import TagFormatConfig
 from service.tags.json_pointer import MISSING, JsonPointer
 
 __all__ = ["PAYLOAD_REASONS", "JsonTagDecoder", "NumberTagDecoder", "TagDecoder", "TagReading", "make_decoder"]
 
-PAYLOAD_REASONS = frozenset({
-    "too_large", "bad_json", "non_finite", "missing_value", "not_a_number", "missing_time", "bad_time",
-    "missing_quality", "bad_quality",
-})
+PAYLOAD_REASONS = TAG_PAYLOAD_REASONS
 
 _DETAIL_CHARS = 40
 _MS_PER_S = 1000.0
@@ -88,14 +86,12 @@ def _short(value: object) -> str:
     return text if len(text) <= _DETAIL_CHARS else text[: _DETAIL_CHARS - 3] + "..."
 
 
-def _check_arrival(arrival: float) -> None:
+def _too_large(payload: bytes, arrival: float, max_bytes: int) -> Refusal | None:
+    """The size refusal, checked before anything is parsed (and the caller's arrival time, a programming error)."""
     if not math.isfinite(arrival):
         raise ValueError(f"arrival must be finite epoch seconds, got {arrival!r}")
-
-
-def _too_large(payload: bytes, max_bytes: int) -> Refusal | None:
     size = len(payload)
-    return Refusal("too_large", f"{size} bytes, limit {max_bytes}", None) if size > max_bytes else None
+    return Refusal(TagRefusal.TOO_LARGE, f"{size} bytes, limit {max_bytes}", None) if size > max_bytes else None
 
 
 def _number(raw: object, what: str, reason_not_number: str, reason_not_finite: str) -> float:
@@ -130,22 +126,21 @@ class NumberTagDecoder:
         self.max_bytes = max_bytes
 
     def decode(self, payload: bytes, arrival: float) -> TagReading | Refusal:
-        _check_arrival(arrival)
-        refused = _too_large(payload, self.max_bytes)
+        refused = _too_large(payload, arrival, self.max_bytes)
         if refused is not None:
             return refused
         try:
             text = payload.decode("ascii").strip()
         except UnicodeDecodeError as exc:
-            return Refusal("not_a_number", f"not ASCII text (byte {exc.start})", None)
+            return Refusal(TagRefusal.NOT_A_NUMBER, f"not ASCII text (byte {exc.start})", None)
         if not text:
-            return Refusal("not_a_number", "empty message", None)
+            return Refusal(TagRefusal.NOT_A_NUMBER, "empty message", None)
         try:
             value = parse_number(text)
         except ValueError:
-            return Refusal("not_a_number", f"{_short(text)} is not a number", None)
+            return Refusal(TagRefusal.NOT_A_NUMBER, f"{_short(text)} is not a number", None)
         if not math.isfinite(value):
-            return Refusal("non_finite", f"{_short(text)} is not finite", None)
+            return Refusal(TagRefusal.NON_FINITE, f"{_short(text)} is not finite", None)
         return TagReading(value, arrival, True)
 
 
@@ -161,13 +156,13 @@ def _parse(payload: bytes) -> object:
     except msgspec.ValidationError:
         pass                                   # a number out of range: try again, reading it as inf
     except msgspec.DecodeError as exc:
-        raise _Refused("bad_json", str(exc)[:80]) from None
+        raise _Refused(TagRefusal.BAD_JSON, str(exc)[:80]) from None
     except RecursionError:
-        raise _Refused("bad_json", "nested too deep") from None
+        raise _Refused(TagRefusal.BAD_JSON, "nested too deep") from None
     try:
         return _WIDE.decode(payload)
     except msgspec.ValidationError:            # an integer literal too long even for the hook
-        raise _Refused("non_finite", "a number in the message is beyond float range") from None
+        raise _Refused(TagRefusal.NON_FINITE, "a number in the message is beyond float range") from None
 
 
 class JsonTagDecoder:
@@ -191,16 +186,15 @@ class JsonTagDecoder:
         self._good_number = frozenset(v for v in fmt.good if type(v) is int)
 
     def decode(self, payload: bytes, arrival: float) -> TagReading | Refusal:
-        _check_arrival(arrival)
-        refused = _too_large(payload, self.max_bytes)
+        refused = _too_large(payload, arrival, self.max_bytes)
         if refused is not None:
             return refused
         try:
             document = _parse(payload)
             raw = self._value.resolve(document)
             if raw is MISSING or raw is None:
-                raise _Refused("missing_value", f"nothing at {self._value.text!r}")
-            value = _number(raw, "value", "not_a_number", "non_finite")
+                raise _Refused(TagRefusal.MISSING_VALUE, f"nothing at {self._value.text!r}")
+            value = _number(raw, "value", TagRefusal.NOT_A_NUMBER, TagRefusal.NON_FINITE)
             t = arrival if self._time is None else self._stamp(document, self._time)
             good = True if self._quality is None else self._good(document, self._quality)
         except _Refused as exc:
@@ -210,26 +204,26 @@ class JsonTagDecoder:
     def _stamp(self, document: object, pointer: JsonPointer) -> float:
         raw = pointer.resolve(document)
         if raw is MISSING or raw is None:
-            raise _Refused("missing_time", f"nothing at {pointer.text!r}")
+            raise _Refused(TagRefusal.MISSING_TIME, f"nothing at {pointer.text!r}")
         if self._time_unit == "iso8601":
             if type(raw) is not str:
-                raise _Refused("bad_time", f"time must be an ISO 8601 string, got {type(raw).__name__}")
+                raise _Refused(TagRefusal.BAD_TIME, f"time must be an ISO 8601 string, got {type(raw).__name__}")
             try:
                 stamp = datetime.fromisoformat(raw.strip())
                 if stamp.tzinfo is None:
                     stamp = stamp.replace(tzinfo=UTC)
                 seconds = stamp.timestamp()
             except (ValueError, OverflowError, OSError):
-                raise _Refused("bad_time", f"cannot read time {_short(raw)}") from None
+                raise _Refused(TagRefusal.BAD_TIME, f"cannot read time {_short(raw)}") from None
             return seconds
-        number = _number(raw, "time", "bad_time", "bad_time")
+        number = _number(raw, "time", TagRefusal.BAD_TIME, TagRefusal.BAD_TIME)
         seconds = number / _MS_PER_S if self._time_unit == "ms" else number
         return seconds
 
     def _good(self, document: object, pointer: JsonPointer) -> bool:
         raw = pointer.resolve(document)
         if raw is MISSING or raw is None:
-            raise _Refused("missing_quality", f"nothing at {pointer.text!r}")
+            raise _Refused(TagRefusal.MISSING_QUALITY, f"nothing at {pointer.text!r}")
         kind = type(raw)
         if kind is str:
             return raw in self._good_text
@@ -237,7 +231,7 @@ class JsonTagDecoder:
             return raw in self._good_bool
         if kind is int or kind is float:
             return raw in self._good_number          # 192.0 == 192 (and hashes alike); NaN matches nothing
-        raise _Refused("bad_quality", f"quality must be a string, number or boolean, got {kind.__name__}")
+        raise _Refused(TagRefusal.BAD_QUALITY, f"quality must be a string, number or boolean, got {kind.__name__}")
 
 
 def make_decoder(fmt: TagFormatConfig, max_bytes: int = 65536) -> NumberTagDecoder | JsonTagDecoder:

@@ -342,7 +342,7 @@ def test_require_topics_reports_missing_and_duplicate_topics_together() -> None:
     with pytest.raises(ConfigError) as info:
         config.require_topics()
     assert info.value.problems == [
-        "channels.temp.topic: required to serve",
+        "channels.temp.topic: required to serve (or a [channels.temp.tags] table)",
         "channels.flow2.topic: also used by channel flow",
         "channels.dl.topic: same as broker.dead_letter_topic",
     ]
