@@ -383,20 +383,22 @@ class Engine:
             except Exception:              # a failing checkpoint must not stop the samples
                 log.exception("periodic job failed")
 
-    def _refuse(self, message: Message, reason: RefusalReason, detail: str, index: int | None) -> None:
+    def _refuse(self, message: Message, reason: RefusalReason, detail: str, index: int | None,
+                channel: str | None = None) -> None:
+        """Count and dead-letter; ``channel`` names the channel when the message does not (a tag message)."""
         self.stats.refuse(reason)
-        cid = message.channel
+        cid = channel or message.channel
         if cid is not None and cid in self.bank:
             self.activity.refused(cid, reason)
             self.publisher.touch(cid)
         if self._dead_letter is None:
             return
-        letter = DeadLetter(reason, detail, message.channel, message.topic, message.source, index, message.payload)
+        letter = DeadLetter(reason, detail, cid, message.topic, message.source, index, message.payload)
         try:
             self._dead_letter(letter)
         except Exception:
             self.stats.dead_letter_failures += 1
-            log.exception("dead-letter delivery failed reason=%s channel=%s", reason, message.channel)
+            log.exception("dead-letter delivery failed reason=%s channel=%s", reason, cid)
 
     def _decode(self, message: Message, cid: str) -> tuple[SampleColumns, _Origin] | None:
         """A message's samples as columns: the short path when it vouches, else the exact decoder."""
@@ -506,7 +508,7 @@ class Engine:
                     urgent = self._publish_when(cid, self._clock() if t is None else t) or urgent
             for position, reason in outcome.refused:
                 message, index = where.locate(position)
-                self._refuse(message, SampleRefusal(reason), f"refused by channel {cid}", index)
+                self._refuse(message, SampleRefusal(reason), f"refused by channel {cid}", index, cid)
             if outcome.last_applied is not None:
                 self.activity.refused_in_a_row[cid] = sum(1 for position, _ in outcome.refused
                                                  if position > outcome.last_applied)
