@@ -36,8 +36,9 @@ def final_state(data: Path, url: str) -> FinalState:
 
 
 def uninterrupted_state(settings: dict[str, Any], data: Path,
-                        stream: Iterable[tuple[str, str, bytes]]) -> FinalState:
-    """``(channel, topic, payload)`` into a service that never stops (in-process, same arithmetic)."""
+                        stream: Iterable[tuple[str | None, str, bytes]]) -> FinalState:
+    """``(channel or None for a tag message, topic, payload)`` into a service that never stops (in-process, same
+    arithmetic)."""
     config = parse_config({**settings, "store": {"path": str(data)}})
     runtime = Runtime(config, mqtt=False)
     runtime.start()

@@ -36,16 +36,43 @@ CHANNELS: dict[str, dict[str, Any]] = {
     "arx": {"terms": ["1", "y[-1]", "u"], "weighting": "tracked", "noise": {"model_terms": ["1", "u"]},
             "detectors": {"commissioning_samples": 40}},
     "lab": {"terms": ["1", "u"], "weighting": "sample", "detectors": {"commissioning_samples": 40}},
+    # Assembled from two tags on their own topics (below): recovery must form the same samples.
+    "meter": {"terms": ["1", "speed"], "weighting": "tracked", "detectors": {"commissioning_samples": 40}},
 }
+TAG_FORMAT = {"kind": "json", "value": "/v", "time": "/ts", "time_unit": "ms", "quality": "/q", "good": [0]}
 
 
-def _stream(prefix: str) -> list[tuple[str, str, bytes]]:
-    """(channel, topic, payload) in publishing order: every channel's k-th sample, then the (k+1)-th."""
+def _tags_table(prefix: str) -> dict[str, Any]:
+    """Every tag below ``<prefix>/tags/`` (one pattern entry), each a JSON value with ms time and quality."""
+    level = prefix.count("/") + 2                 # the '+' level (counted from 0) names the tag
+    return {"formats": {"gw": TAG_FORMAT},
+            "tag": [{"id": f"{{{level}}}", "topic": f"{prefix}/tags/+", "format": "gw"}]}
+
+
+def _tag_message(prefix: str, tag: str, value: float, t: float, quality: int = 0) -> tuple[None, str, bytes]:
+    body = {"v": value, "ts": round(t * 1000.0), "q": quality}
+    return None, f"{prefix}/tags/{tag}", json.dumps(body).encode()
+
+
+def _stream(prefix: str) -> list[tuple[str | None, str, bytes]]:
+    """(channel or None for a tag message, topic, payload) in publishing order: every channel's k-th sample,
+    then the (k+1)-th. The meter's speed reports by exception (only when it moved), before the flow it
+    explains; every 23rd flow value is of bad quality (no sample)."""
     rng = np.random.default_rng(SEED)
-    out = []
+    out: list[tuple[str | None, str, bytes]] = []
     y_arx = 2.0
+    speed_held = None
     for k in range(STEPS):
+        t = 1_767_225_600.0 + 10.0 * k
+        speed = round(0.6 + 0.3 * np.sin(0.13 * k), 2)
+        if speed != speed_held:
+            out.append(_tag_message(prefix, "SC", speed, t))
+            speed_held = speed
+        flow = 2.0 + 40.0 * speed + float(rng.normal(0.0, 0.2))
+        out.append(_tag_message(prefix, "FT", flow, t, quality=192 if k % 23 == 0 else 0))
         for cid in CHANNELS:
+            if cid == "meter":
+                continue
             u = float(rng.normal())
             if cid == "arx":
                 y = 1.0 + 0.6 * y_arx + 0.8 * u + float(rng.normal(0.0, 0.05))
@@ -53,7 +80,7 @@ def _stream(prefix: str) -> list[tuple[str, str, bytes]]:
             else:
                 offset = 1.5 if cid == "c1" and k >= 150 else 0.0      # an offset step: alarms to journal
                 y = 1.0 + 0.5 * u + offset + float(rng.normal(0.0, 0.1))
-            body: dict[str, Any] = {"t": 1_767_225_600.0 + 10.0 * k, "y": y, "u": {"u": u}, "seq": k}
+            body: dict[str, Any] = {"t": t, "y": y, "u": {"u": u}, "seq": k}
             if cid == "lab":
                 body["sigma"] = 0.1
             out.append((cid, f"{prefix}/{cid}", json.dumps(body).encode()))
@@ -61,8 +88,19 @@ def _stream(prefix: str) -> list[tuple[str, str, bytes]]:
 
 
 def _settings(prefix: str, broker_port: int, client: str, data: Path, url: str) -> dict[str, Any]:
-    return mqtt_settings(CHANNELS, prefix=prefix, port=broker_port, client_id=client, broker=QUICK_RECONNECT,
-                         store=data, store_options={"url": url, "checkpoint_seconds": 1.0}, alarms=alarms_table(prefix))
+    settings = mqtt_settings(CHANNELS, prefix=prefix, port=broker_port, client_id=client, broker=QUICK_RECONNECT,
+                             store=data, store_options={"url": url, "checkpoint_seconds": 1.0},
+                             alarms=alarms_table(prefix), tags=_tags_table(prefix))
+    meter = settings["channels"]["meter"]
+    del meter["topic"]
+    meter["tags"] = {"output": "FT", "inputs": {"speed": "SC"}}
+    return settings
+
+
+def _samples(stream: list[tuple[str | None, str, bytes]]) -> int:
+    """Samples the stream holds: its whole-sample messages and the meter's good flow updates."""
+    flows = [json.loads(payload) for cid, topic, payload in stream if cid is None and topic.endswith("/FT")]
+    return sum(1 for cid, _, _ in stream if cid is not None) + sum(1 for flow in flows if flow["q"] == 0)
 
 
 def _applied(service: ServiceProcess) -> int:
@@ -147,12 +185,12 @@ def test_kill_9_at_random_moments_then_restart_reaches_the_uninterrupted_state(
             service.start()                # recovery: checkpoint, input log, then the broker's redeliveries
         assert published.wait(120.0), "the plant did not finish publishing"
         assert not failure, failure
-        _wait_all_applied(service, len(stream), timeout=60.0)
+        _wait_all_applied(service, _samples(stream), timeout=60.0)
         assert service.stop() == 143, service.log_tail()     # 128 + SIGTERM, after a clean shutdown
     finally:
         service.kill()
     assert service.starts == KILLS + 1
-    assert all(0 < n < len(stream) for n in before_kill), before_kill     # every kill landed mid-stream
+    assert all(0 < n < _samples(stream) for n in before_kill), before_kill     # every kill landed mid-stream
     reapplied = [int(line.split(" inputs reapplied")[0].rsplit(" ", 1)[1])
                  for line in service.log_path.read_text().splitlines() if " inputs reapplied" in line]
     assert len(reapplied) == KILLS + 1
@@ -163,5 +201,7 @@ def test_kill_9_at_random_moments_then_restart_reaches_the_uninterrupted_state(
     print(f"\n{backend}: {len(stream)} messages, kills after {before_kill} applied; inputs reapplied from the "
           f"log at each start {reapplied}; broker redeliveries recognised {stats['redelivered']}")
     assert stats["rejected"] == {}, stats                    # no redelivery taken for a plant's repeat
+    assert stats["not_formed"] == {"meter": {"output_bad_quality": -(-STEPS // 23)}}, stats
+    assert "tags" in crashed[1]                              # the assembler's kept updates were checkpointed
     assert_same_checkpoint(crashed, uninterrupted_state(settings, tmp_path / "whole", stream))
     assert any(e["action"] == "condition_on" for e in crashed[2])      # the offset step was journaled
