@@ -2,7 +2,7 @@
 
 from estimator.channels.bank_state import export_state, import_state
 from estimator.channels.channel import WEIGHTINGS, ChannelSettings, Sample, SampleOutcome, Weighting, WeightRule
-from estimator.channels.channel_bank import ChannelBank, ChannelBankState, ChannelEvent, ChannelView
+from estimator.channels.channel_bank import ChannelBank, ChannelBankState, ChannelEvent, ChannelView, ViewBlock
 from estimator.channels.channel_group import GroupState, LaneState
 from estimator.channels.group_watch import WatchState
 from estimator.channels.regressors import (
@@ -66,6 +66,7 @@ __all__ = [
     "Term",
     "TrackerState",
     "UpdateResult",
+    "ViewBlock",
     "WatchState",
     "WeightRule",
     "Weighting",

@@ -22,67 +22,26 @@ from __future__ import annotations
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
-from typing import NamedTuple
+from dataclasses import dataclass
+from typing import cast
 
 import numpy as np
 from numpy.typing import NDArray
 
 from estimator.channels.channel import ChannelSettings, PathTuning, Prepared, Sample, SampleOutcome
 from estimator.channels.channel_group import ChannelGroup, GroupState, Lane, shape_key
+from estimator.channels.channel_view import ChannelView, DetectorReading, ViewBlock
 from estimator.channels.column_rounds import apply_group_columns
 from estimator.channels.group_watch import WatchNotice
 from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
 from estimator.detection.baseline import Baseline
-from estimator.detection.detectors import KINDS, ConditionEvent
+from estimator.detection.detectors import ConditionEvent
 from estimator.recursive.sample_refusal import SampleRefusal
 from estimator.recursive.statistics import bank_statistics
 
-__all__ = ["ChannelBank", "ChannelBankState", "ChannelEvent", "ChannelView", "DetectorReading"]
+__all__ = ["ChannelBank", "ChannelBankState", "ChannelEvent", "ChannelView", "DetectorReading", "ViewBlock"]
 
 FloatArray = NDArray[np.float64]
-
-
-@dataclass(frozen=True)
-class ChannelView:
-    """One channel's state for readers (its arrays are fresh, never views of live state; NaN where unknown).
-
-    Attributes
-    ----------
-    parameters, std_errors : shape (n,)
-    covariance : shape (n, n), scaled as the channel's ``covariance_scale`` says
-    """
-
-    channel: str
-    terms: tuple[str, ...]
-    parameters: FloatArray
-    std_errors: FloatArray
-    covariance: FloatArray
-    residual_sd: float
-    dof: float
-    noise_sigma: float
-    effective_count: float
-    min_information: float
-    information_condition: float
-    identifiable: bool
-    applied: int
-    warmup: int
-    refused: dict[str, int]
-    last_t: float | None
-    settings: ChannelSettings
-    baseline: Baseline | None = None
-    detectors: Mapping[str, DetectorReading] = field(default_factory=dict)
-    commissioned: int = 0                 # samples applied since the start or the last reset
-    last_innovation: float = math.nan     # the newest applied sample's innovation (prediction error)
-    last_spread: float = math.nan         # its predicted standard deviation, sqrt(sigma^2 (1 + kappa z^T P z))
-
-
-class DetectorReading(NamedTuple):
-    """One detector of one channel: latest statistic, its limit, and whether its alarm condition is active."""
-
-    statistic: float
-    limit: float
-    active: bool
 
 
 @dataclass(frozen=True)
@@ -313,37 +272,45 @@ class ChannelBank:
     def view(self, channels: Sequence[str] | None = None) -> dict[str, ChannelView]:
         """Statistics of the given channels (default all), computed per group in one batch."""
         wanted = self.channel_ids if channels is None else channels
+        views = {block.channels[k]: block.view(k) for block in self.view_blocks(wanted) for k in range(len(block))}
+        return {c: views[c] for c in wanted}
+
+    def view_blocks(self, channels: Sequence[str] | None = None) -> list[ViewBlock]:
+        """The state of the given channels (default all) as one :class:`ViewBlock` per group, in whole-array
+        steps; a channel's :class:`ChannelView` is ``block.view(k)``, built when asked for."""
+        wanted = self.channel_ids if channels is None else channels
         lanes = [self._lanes[c] for c in wanted]
-        views: dict[str, ChannelView] = {}
+        blocks = []
         for group in self._groups:
             members = [lane for lane in lanes if lane.group is group]
             if not members:
                 continue
             idx = np.array([lane.index for lane in members], dtype=np.intp)
             stats = bank_statistics(group.wls.factor(idx), group.wls.effective_count[idx], scale="known")
-            # Whole-group arrays first (one numpy call each), then one view per channel.
             residual_var = stats.residual_sd ** 2
             estimated = np.array([lane.settings.covariance_scale == "estimated" for lane in members])
             cov = stats.unscaled_covariance * np.where(estimated, residual_var, 1.0)[:, None, None]
             std = np.sqrt(np.clip(np.diagonal(cov, axis1=1, axis2=2), 0.0, None))
             variance = group.tracker.variance()[idx]
-            noise = np.sqrt(np.where(variance >= 0.0, variance, np.nan)).tolist()
-            scalars = zip(stats.residual_sd.tolist(), stats.dof.tolist(), stats.effective_count.tolist(),
-                          stats.min_information.tolist(), stats.information_condition.tolist(),
-                          stats.identifiable.tolist(), noise, strict=True)
             watch = group.watch
-            readings = watch.detectors.readings(idx)         # per channel: statistics, limits, active
-            for k, (lane, (rsd, dof, n_eff, min_info, condition, ident, sigma)) in enumerate(
-                    zip(members, scalars, strict=True)):
-                i = lane.index
-                baseline = watch.histories[i].current if watch.detectors.has_baseline[i] else None
-                views[lane.channel] = ChannelView(
-                    channel=lane.channel, terms=lane.terms, parameters=stats.parameters[k], std_errors=std[k],
-                    covariance=cov[k], residual_sd=rsd, dof=dof, noise_sigma=sigma, effective_count=n_eff,
-                    min_information=min_info, information_condition=condition, identifiable=ident,
-                    applied=lane.counters.applied, warmup=lane.counters.warmup,
-                    refused=dict(lane.counters.refused), last_t=lane.last_t, settings=lane.settings,
-                    baseline=baseline, commissioned=int(watch.commissioned[i]),
-                    detectors=dict(zip(KINDS, map(DetectorReading, *readings[k]), strict=True)),
-                    last_innovation=float(watch.last_innovation[i]), last_spread=float(watch.last_spread[i]))
-        return {c: views[c] for c in wanted}
+            statistics, limits, active = watch.detectors.readings_columns(idx)
+            histories = watch.histories
+            has_baseline = watch.detectors.has_baseline[idx].tolist()
+            counters = [lane.counters for lane in members]
+            identifiable = cast(list[bool], stats.identifiable.tolist())
+            finite = cast(list[bool], np.isfinite(stats.parameters).all(axis=1).tolist())
+            blocks.append(ViewBlock(
+                channels=[lane.channel for lane in members], terms=[lane.terms for lane in members],
+                settings=[lane.settings for lane in members], parameters=stats.parameters, std_errors=std,
+                covariance=cov, residual_sd=stats.residual_sd.tolist(), dof=stats.dof.tolist(),
+                noise_sigma=np.sqrt(np.where(variance >= 0.0, variance, np.nan)).tolist(),
+                effective_count=stats.effective_count.tolist(), min_information=stats.min_information.tolist(),
+                information_condition=stats.information_condition.tolist(), identifiable=identifiable,
+                estimable=[a and b for a, b in zip(identifiable, finite, strict=True)],
+                applied=[c.applied for c in counters], warmup=[c.warmup for c in counters],
+                refused=[dict(c.refused) for c in counters], last_t=[lane.last_t for lane in members],
+                baseline=[histories[lane.index].current if has else None
+                          for lane, has in zip(members, has_baseline, strict=True)],
+                commissioned=watch.commissioned[idx].tolist(), statistics=statistics, limits=limits, active=active,
+                last_innovation=watch.last_innovation[idx].tolist(), last_spread=watch.last_spread[idx].tolist()))
+        return blocks

@@ -582,8 +582,9 @@ class DetectorBank:
         return {"noise_level": noise, "variance": float(s[_VAR]) if judged else math.nan,
                 "offset": float(max(s[_UP], s[_DOWN])) if judged else math.nan, "drift": float(s[_DRIFT])}
 
-    def readings(self, idx: IndexArray) -> list[tuple[list[float], list[float], list[bool]]]:
-        """Per channel of ``idx``: (statistics, limits, active), each in KINDS order (whole arrays, then lists)."""
+    def readings_columns(self, idx: IndexArray) -> tuple[list[list[float]], list[list[float]], list[list[bool]]]:
+        """Over the channels of ``idx``: their statistics, limits and active flags, each in KINDS order
+        (whole arrays, then lists)."""
         s = self._state[idx]
         judged = self.judging(idx)
         sigma = self._sigma_ref[idx]
@@ -593,7 +594,7 @@ class DetectorBank:
         limits = np.stack([np.minimum(self._noise_high[idx], self._noise_ratio[idx] * sigma), self._variance_h[idx],
                            self._offset_h[idx], self._drift_limit[idx]], axis=1)
         active = self._active[:, idx].T
-        return list(zip(statistics.tolist(), limits.tolist(), active.tolist(), strict=True))
+        return statistics.tolist(), limits.tolist(), active.tolist()
 
     def active(self, channel: int) -> dict[str, bool]:
         """Whether each detector's alarm condition is active for one channel."""

@@ -56,8 +56,8 @@ def _commissioning(entry: ChannelEntry) -> dict[str, int] | None:
 
 def _summary(cid: str, entry: ChannelEntry, alarms: list[Alarm]) -> dict[str, object]:
     return {"id": cid, "quality": entry.quality, "quality_reason": entry.quality_reason,
-            "updated_at": entry.updated_at, "t": entry.view.last_t, "samples": entry.view.applied,
-            "rejected": sum(entry.view.refused.values()), "alarms": _alarm_summary(alarms),
+            "updated_at": entry.updated_at, "t": entry.last_t, "samples": entry.applied,
+            "rejected": entry.rejected, "alarms": _alarm_summary(alarms),
             "commissioning": _commissioning(entry)}
 
 

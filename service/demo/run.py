@@ -86,8 +86,8 @@ def demo_config(broker_url: str, data_dir: str, engineer_token: str | None = Non
 
 def recovered_positions(runtime: Runtime) -> dict[str, float]:
     """Each channel's newest applied sample time, as recovered from the data directory (empty on a first run)."""
-    return {cid: entry.view.last_t for cid, entry in runtime.engine.snapshot.channels.items()
-            if entry.view.last_t is not None}
+    return {cid: entry.last_t for cid, entry in runtime.engine.snapshot.channels.items()
+            if entry.last_t is not None}
 
 
 def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, data_dir: str = "rwls-demo-data",

@@ -12,9 +12,9 @@ mutated.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Sequence
 
-from estimator import ChannelBank, ChannelView
+from estimator import ChannelBank, ViewBlock
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import AlarmBook
 from service.engine.activity import ChannelActivity
@@ -56,7 +56,7 @@ class SnapshotPublisher:
         self._alarms_changed = False
         self._last_publish = 0.0
         now = clock()
-        self._snapshot = Snapshot(0, now, self._entries(bank.view(), now),
+        self._snapshot = Snapshot(0, now, self._entries(bank.channel_ids, now),
                                   tuple(alarms.alarms()) if alarms is not None else ())
 
     @property
@@ -91,30 +91,31 @@ class SnapshotPublisher:
         now = self._clock()
         activity = self._activity
         for cid, entry in self._snapshot.channels.items():
-            judged = channel_quality(entry.view, entry.updated_at, now, self._stale_after,
-                                     activity.refused_in_a_row.get(cid, 0))
+            judged = entry.judged(now, self._stale_after, activity.refused_in_a_row.get(cid, 0))
             if judged != (entry.quality, entry.quality_reason):
                 self._pending.add(cid)
         self.flush()
 
-    def _entries(self, views: Mapping[str, ChannelView], now: float) -> dict[str, ChannelEntry]:
-        activity = self._activity
+    def _entries(self, channels: Sequence[str], now: float) -> dict[str, ChannelEntry]:
+        """Fresh entries of ``channels``, in that order (the blocks come group by group)."""
+        blocks: Sequence[ViewBlock] = self._bank.view_blocks(channels)
+        activity, feed, fragments = self._activity, self._feed, self._fragments
+        updated, refusing = activity.updated_at, activity.refused_in_a_row
         entries = {}
-        for cid, view in views.items():
-            updated_at = activity.updated_at.get(cid)
-            quality, reason = channel_quality(view, updated_at, now, self._stale_after,
-                                              activity.refused_in_a_row.get(cid, 0))
-            entries[cid] = ChannelEntry(view, quality, reason, updated_at,
-                                        self._fragments.write(view, quality, reason, updated_at))
-            if self._feed is not None:
-                self._feed.judge_staleness(cid, reason == "stale", updated_at, view.last_t, now)
-        return entries
+        for block in blocks:
+            for k, cid in enumerate(block.channels):
+                updated_at = updated.get(cid)
+                quality, reason = channel_quality(block, k, updated_at, now, self._stale_after, refusing.get(cid, 0))
+                entries[cid] = ChannelEntry(block, k, quality, reason, updated_at, fragments)
+                if feed is not None:
+                    feed.judge_staleness(cid, reason == "stale", updated_at, block.last_t[k], now)
+        return entries if len(blocks) < 2 else {cid: entries[cid] for cid in channels}
 
     def _publish(self, channels: list[str]) -> None:
         self._last_publish = time.monotonic()
         now = self._clock()
         entries = dict(self._snapshot.channels)
-        fresh = self._entries(self._bank.view(channels), now)
+        fresh = self._entries(channels, now)
         entries.update(fresh)
         for hook in self._hooks:
             hook(fresh, now)

@@ -1,9 +1,11 @@
 """What readers see: an immutable snapshot of every channel, with its quality and its /snapshot fragment.
 
 The engine replaces the snapshot after a micro-batch; API handlers read the
-latest one without locks. Each channel carries its member of the flat
-``GET /api/v1/snapshot`` document ready-made (``fragment``), so that document
-is a join of bytes, whatever the channel count.
+latest one without locks. Each channel's member of the flat
+``GET /api/v1/snapshot`` document (``fragment``) is made once, when first read,
+and kept with the channel's entry, so that document is a join of bytes however
+many channels it holds; only the channels that changed since it was last read
+are formatted again.
 """
 
 from __future__ import annotations
@@ -13,22 +15,68 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 
-from estimator import CONDITION_LIMIT, ChannelView
+from estimator import CONDITION_LIMIT, ChannelView, ViewBlock
 from service.alarms.lifecycle import Alarm
 from service.engine.quality import Quality, QualityReason, estimates_shown
 
 __all__ = ["CONDITION_LIMIT", "REFUSED_IN_A_ROW", "ChannelEntry", "FragmentWriter", "Snapshot", "channel_quality"]
 
 
-@dataclass(frozen=True)
 class ChannelEntry:
-    """What readers see of one channel."""
+    """What readers see of one channel: its quality, and its view and /snapshot fragment, made when first read.
 
-    view: ChannelView
-    quality: Quality
-    quality_reason: QualityReason
-    updated_at: float | None     # wall-clock time of the last applied sample
-    fragment: bytes              # its member of the flat /snapshot document
+    The engine publishes entries for every touched channel after each micro-batch; most are replaced
+    before anyone reads them, so each holds its channel's row of a :class:`ViewBlock` (taken in
+    whole-array steps) and builds the :class:`ChannelView` and the fragment only when asked. Readers on
+    several threads may race to build them: both build the same value and one is kept. Immutable to
+    readers: nothing it holds changes after the engine made it.
+    """
+
+    __slots__ = ("_block", "_fragment", "_k", "_view", "_writer", "quality", "quality_reason", "updated_at")
+
+    def __init__(self, block: ViewBlock, k: int, quality: Quality, quality_reason: QualityReason,
+                 updated_at: float | None, writer: FragmentWriter) -> None:
+        self._block, self._k, self._writer = block, k, writer
+        self.quality = quality
+        self.quality_reason = quality_reason
+        self.updated_at = updated_at          # wall-clock time of the last applied sample
+        self._view: ChannelView | None = None
+        self._fragment: bytes | None = None
+
+    @property
+    def view(self) -> ChannelView:
+        view = self._view
+        if view is None:
+            view = self._view = self._block.view(self._k)
+        return view
+
+    @property
+    def fragment(self) -> bytes:
+        """Its member of the flat /snapshot document."""
+        fragment = self._fragment
+        if fragment is None:
+            fragment = self._fragment = self._writer.write(self._block, self._k, self.quality, self.quality_reason,
+                                                           self.updated_at)
+        return fragment
+
+    @property
+    def last_t(self) -> float | None:
+        """Time stamp of the channel's newest applied sample (as ``view.last_t``, without building the view)."""
+        return self._block.last_t[self._k]
+
+    @property
+    def applied(self) -> int:
+        """Samples applied (as ``view.applied``)."""
+        return self._block.applied[self._k]
+
+    @property
+    def rejected(self) -> int:
+        """Samples refused, every reason (as ``sum(view.refused.values())``)."""
+        return sum(self._block.refused[self._k].values())
+
+    def judged(self, now: float, stale_after: float, refused_in_a_row: int) -> tuple[Quality, QualityReason]:
+        """Its quality judged again at ``now`` (staleness moves with the clock)."""
+        return channel_quality(self._block, self._k, self.updated_at, now, stale_after, refused_in_a_row)
 
 
 @dataclass(frozen=True)
@@ -46,25 +94,25 @@ class Snapshot:
 REFUSED_IN_A_ROW = 5
 
 
-def channel_quality(view: ChannelView, updated_at: float | None, now: float,
+def channel_quality(block: ViewBlock, k: int, updated_at: float | None, now: float,
                     stale_after: float, refused_in_a_row: int = 0) -> tuple[Quality, QualityReason]:
-    """Quality family and reason (OPC UA Good / Uncertain / Bad) of a channel's estimates.
+    """Quality family and reason (OPC UA Good / Uncertain / Bad) of the estimates of ``block``'s ``k``-th channel.
 
     ``refused_in_a_row`` counts the channel's samples refused since it last applied one: from
     ``REFUSED_IN_A_ROW`` on, the channel is ``samples_refused`` (Bad with no estimate yet, else Uncertain).
     """
     refusing = refused_in_a_row >= REFUSED_IN_A_ROW
-    if view.applied == 0:
+    if block.applied[k] == 0:
         return Quality.BAD, QualityReason.SAMPLES_REFUSED if refusing else QualityReason.NO_DATA
-    if not view.identifiable or not all(map(math.isfinite, view.parameters.tolist())):
+    if not block.estimable[k]:
         return Quality.BAD, QualityReason.NOT_IDENTIFIABLE
     if refusing:
         return Quality.UNCERTAIN, QualityReason.SAMPLES_REFUSED
     if updated_at is not None and now - updated_at > stale_after:
         return Quality.UNCERTAIN, QualityReason.STALE
-    if not view.dof >= 1.0:
+    if not block.dof[k] >= 1.0:
         return Quality.UNCERTAIN, QualityReason.WARMING_UP
-    if not view.information_condition <= CONDITION_LIMIT:
+    if not block.information_condition[k] <= CONDITION_LIMIT:
         return Quality.UNCERTAIN, QualityReason.LOW_EXCITATION
     return Quality.GOOD, QualityReason.NONE
 
@@ -85,25 +133,28 @@ class FragmentWriter:
     def __init__(self) -> None:
         self._templates: dict[str, str] = {}
 
-    def _template(self, view: ChannelView) -> str:
-        names = [json.dumps(term).replace("%", "%%") for term in view.terms]
+    def _template(self, channel: str, terms: tuple[str, ...]) -> str:
+        names = [json.dumps(term).replace("%", "%%") for term in terms]
         members = ", ".join(f"{name}: %s" for name in names)
-        return (f'{json.dumps(view.channel).replace("%", "%%")}:{{"quality": "%s", "quality_reason": "%s", '
+        return (f'{json.dumps(channel).replace("%", "%%")}:{{"quality": "%s", "quality_reason": "%s", '
                 f'"updated_at": %s, "t": %s, "samples": %d, "rejected": %d, '
                 f'"parameters": {{{members}}}, "std_errors": {{{members}}}, '
                 f'"noise_sigma": %s, "residual_sd": %s}}')
 
-    def write(self, view: ChannelView, quality: Quality, reason: QualityReason, updated_at: float | None) -> bytes:
-        template = self._templates.get(view.channel)
+    def write(self, block: ViewBlock, k: int, quality: Quality, reason: QualityReason,
+              updated_at: float | None) -> bytes:
+        """The fragment of ``block``'s ``k``-th channel."""
+        channel = block.channels[k]
+        template = self._templates.get(channel)
         if template is None:
-            template = self._templates[view.channel] = self._template(view)
-        n = len(view.terms)
+            template = self._templates[channel] = self._template(channel, block.terms[k])
+        n = len(block.terms[k])
         if estimates_shown(quality):
-            estimates = [_number(v) for v in view.parameters.tolist() + view.std_errors.tolist()]
-            residual_sd = _number(view.residual_sd)
+            estimates = [_number(v) for v in block.parameters[k].tolist() + block.std_errors[k].tolist()]
+            residual_sd = _number(block.residual_sd[k])
         else:
             estimates = ["null"] * (2 * n)
             residual_sd = "null"
-        values = (quality, reason, _number(updated_at), _number(view.last_t), view.applied,
-                  sum(view.refused.values()), *estimates, _number(view.noise_sigma), residual_sd)
+        values = (quality, reason, _number(updated_at), _number(block.last_t[k]), block.applied[k],
+                  sum(block.refused[k].values()), *estimates, _number(block.noise_sigma[k]), residual_sd)
         return (template % values).encode()

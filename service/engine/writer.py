@@ -441,9 +441,7 @@ class Engine:
         self.position = self.log.append([("m", (m.channel, m.payload, m.source, m.topic, m.received))
                                          for m in batch])
         self.log.sync()
-        for m in batch:
-            if m.source == "mqtt" and m.topic is not None:
-                self.recently_logged.add(m.topic, m.payload)
+        self.recently_logged.add_all((m.topic, m.payload) for m in batch if m.source == "mqtt" and m.topic is not None)
         acks = acks + [m.ack for m in batch if m.ack is not None]
         if acks and self._acknowledge is not None:
             try:

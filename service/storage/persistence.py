@@ -273,13 +273,14 @@ class Persistence:
         if self._recovering:
             return
         for cid, entry in entries.items():
-            view = entry.view
-            if view.applied == 0:
+            if entry.applied == 0:
                 continue
-            t = view.last_t if view.last_t is not None else now
+            last_t = entry.last_t
+            t = last_t if last_t is not None else now
             if not self.row_due(cid, t):
                 continue
             self._history_last[cid] = t
+            view = entry.view                                 # built for the rows that are due only
             body = {"parameters": _finite(view.parameters.tolist()), "std_errors": _finite(view.std_errors.tolist()),
                     "noise_sigma": _finite(view.noise_sigma), "residual_sd": _finite(view.residual_sd),
                     "quality": entry.quality, "samples": view.applied,

@@ -20,7 +20,7 @@ same order give the same samples however they are cut into batches, after a rest
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Any, Protocol
 
 import numpy as np
@@ -80,7 +80,7 @@ def sample_columns(samples: ChannelSamples) -> SampleColumns:
     """A channel's formed samples as the estimator's columns (time stamped, no sigma, weight or seq)."""
     count = len(samples)
     nothing: list[float | None] = [None] * count
-    inputs = {name: samples.inputs[:, j].tolist() for j, name in enumerate(samples.input_names)}
+    inputs = dict(zip(samples.input_names, samples.inputs.T.tolist(), strict=True))
     return SampleColumns(samples.y.tolist(), inputs, samples.t.tolist(), nothing, list(nothing), [None] * count)
 
 
@@ -166,8 +166,10 @@ class TagPath:
                                             np.array(good, dtype=bool))
         if assembled.samples:
             at = np.array(where, dtype=np.int64)
-            assembled = replace(assembled, samples={cid: replace(s, position=at[s.position])
-                                                    for cid, s in assembled.samples.items()})
+            # Built directly: dataclasses.replace costs more than the rest of a one-sample channel's share.
+            assembled = AssembledBatch({cid: ChannelSamples(s.input_names, s.y, s.inputs, s.t, at[s.position])
+                                        for cid, s in assembled.samples.items()},
+                                       assembled.refusals, assembled.not_newer)
         return TagBatch(assembled, refused, unknown, unused)
 
     # -------------------------------------------------------------------------------------------- state
