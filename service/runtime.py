@@ -139,9 +139,13 @@ class Runtime:
         self.intake = Intake(maxsize=config.engine.queue_size)
         self.channels = config.channel_settings()            # the channels this replica runs: id -> settings
         self._engine: Engine | None = None
-        ingest_kind = ProcessIngest if config.broker.ingest == "process" else MqttIngest
         settings = broker_settings(config, manual_ack=config.store.durable)
-        self.ingest = ingest_kind(settings, self.topics, self._from_mqtt) if mqtt else None
+        if not mqtt:
+            self.ingest = None
+        elif config.broker.ingest == "process":
+            self.ingest = ProcessIngest(settings, self.topics, self._from_mqtt, submit_all=self._all_from_mqtt)
+        else:
+            self.ingest = MqttIngest(settings, self.topics, self._from_mqtt)
         self.persistence: Persistence | None = None       # opened in start(), under the lock
         self.recovery: dict[str, object] | None = None
         self.started_at = time.time()
@@ -284,6 +288,10 @@ class Runtime:
     def _from_mqtt(self, message: Message) -> bool:
         # Blocks while the engine queue is full: back-pressure onto the broker.
         return self.intake.offer(message, timeout=None)
+
+    def _all_from_mqtt(self, messages: list[Message]) -> int:
+        # One hand-over of a whole list from the ingest process; blocks while the engine queue is full.
+        return self.intake.offer_all(messages, timeout=None)
 
     def submit_http(self, channel: str | None, payload: bytes,
                     decoded: tuple[list[DecodedSample], list[Refusal]] | None = None) -> bool:

@@ -140,10 +140,12 @@ class ProcessIngest:
     """Same face as :class:`MqttIngest`, with the MQTT client in a child process."""
 
     def __init__(self, settings: BrokerSettings, topics: Mapping[str, str | None],
-                 submit: Callable[[Message], bool]) -> None:
+                 submit: Callable[[Message], bool], *,
+                 submit_all: Callable[[list[Message]], int] | None = None) -> None:
         self.settings = settings
         self._topics = dict(topics)
-        self._submit = submit
+        # Hands one list from the child over whole (blocking while full); else message by message.
+        self._submit_all = submit_all or (lambda messages: sum(map(submit, messages)))
         context = mp.get_context("spawn")
         self._out = context.Queue(HANDOVER_SIZE)
         # Room for every alarm's retained state at start (five per channel) and then some.
@@ -226,9 +228,9 @@ class ProcessIngest:
                 continue
             except (EOFError, OSError):
                 return
-            for channel, payload, topic, received, ack, redelivered in items:
-                self.received += 1
-                self._submit(Message(channel, payload, "mqtt", topic, received, ack=ack, redelivered=redelivered))
+            self.received += len(items)
+            self._submit_all([Message(channel, payload, "mqtt", topic, received, ack=ack, redelivered=redelivered)
+                              for channel, payload, topic, received, ack, redelivered in items])
 
     def stop(self, timeout: float = 5.0) -> None:
         """Stop the child (its client disconnects), then let the reader hand over what is left."""

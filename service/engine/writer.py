@@ -316,8 +316,7 @@ class Engine:
                     for message in batch:
                         self._refuse(message, EngineRefusal.INTERNAL_ERROR, "engine failed on this batch", None)
                 finally:
-                    for _ in batch:
-                        self._queue.task_done()
+                    self._queue.task_done(len(batch))
             if command is not None:
                 self._execute(command)
             self._tick()
@@ -337,16 +336,12 @@ class Engine:
         deadline = time.monotonic() + self._max_wait
         while len(batch) < self._max_batch:
             remaining = deadline - time.monotonic()
-            try:
-                item = self._queue.get(timeout=remaining) if remaining > 0 else self._queue.get_nowait()
-            except queue.Empty:
+            taken, command = self._queue.take_messages(self._max_batch - len(batch), max(remaining, 0.0))
+            batch += taken
+            if command is not None:
+                return batch, command
+            if not taken and remaining <= 0:
                 break
-            if item is None:
-                self._queue.task_done()
-                continue
-            if isinstance(item, Command):
-                return batch, item
-            batch.append(item)
         return batch, None
 
     def _execute(self, command: Command) -> None:
