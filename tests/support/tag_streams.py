@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["GATEWAY", "TagUpdate", "tag_plant", "tag_stream", "write_long_csv"]
+__all__ = ["EPOCH_MS", "GATEWAY", "STEP_MS", "TagUpdate", "tag_plant", "tag_stream", "write_long_csv"]
 
 GATEWAY: dict[str, Any] = {"kind": "json", "value": "/v", "time": "/ts", "time_unit": "ms", "quality": "/q",
                            "good": ["good", 192]}
