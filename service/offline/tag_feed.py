@@ -32,7 +32,7 @@ from service.config.tag_settings import TagFormatConfig
 from service.offline.csv_source import BadRow
 from service.offline.long_csv import LongCsvSource, quality_is_good
 from service.offline.sample_source import LinedSample, RowProblem
-from service.tags.assembler import AssembledBatch
+from service.tags.assembler import AssembledBatch, FormingRefusal
 from service.tags.tag_path import TagPath
 
 __all__ = ["CHUNK_ROWS", "TagSamples"]
@@ -72,13 +72,19 @@ class TagSamples:
         self._order = {cid: k for k, cid in enumerate(tags.channel_ids)}
         self.total_chars = source.total_chars
         self.rows = 0
-        self.not_formed: dict[str, dict[str, int]] = {}      # channel -> FormingRefusal -> count
+        self._not_formed: dict[str, dict[str, int]] = {}     # channel -> FormingRefusal -> count
         self.updates_unused = 0                               # updates of tags no channel names
         self.updates_not_newer = 0                            # not later than the tag's newest (kept out)
 
     @property
     def progress_chars(self) -> int:
         return self._source.progress_chars
+
+    @property
+    def not_formed(self) -> dict[str, dict[str, int]]:
+        """Samples not formed so far: channel -> reason -> count, in configuration and check order (a copy)."""
+        return {cid: {reason.value: counts[reason.value] for reason in FormingRefusal if reason.value in counts}
+                for cid in self._tags.channel_ids if (counts := self._not_formed.get(cid))}
 
     def __iter__(self) -> Iterator[LinedSample | RowProblem]:
         lines: list[int] = []
@@ -131,7 +137,7 @@ class TagSamples:
 
     def _count(self, batch: AssembledBatch) -> None:
         for cid, counts in batch.refusals.items():
-            held = self.not_formed.setdefault(cid, {})
+            held = self._not_formed.setdefault(cid, {})
             for reason, n in counts.items():
                 held[reason.value] = held.get(reason.value, 0) + n
         self.updates_not_newer += sum(batch.not_newer.values())
