@@ -50,9 +50,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     for name, helptext in (("replay", "run a CSV history through the recursive estimator"),
                            ("fit", "batch closed-form WLS on a CSV history (commissioning baseline)")):
-        cmd = sub.add_parser(name, help=helptext, description=helptext)
-        cmd.add_argument("data", help="CSV file: header row; y, inputs, optional t, sigma, weight, channel")
-        cmd.add_argument("-c", "--config", required=True, help="TOML file with [channels.<id>] tables")
+        cmd = sub.add_parser(name, help=helptext, description=(
+            helptext + ". The CSV is wide (a sample per row) or long (a tag update per row, as historians export "
+            "it; the samples are assembled from the tags as the service assembles them), told apart by its header."))
+        cmd.add_argument("data", help="CSV file; wide: y, inputs, optional t, sigma, weight, channel; long: time, "
+                                      "tag, value, optional quality (and no y)")
+        cmd.add_argument("-c", "--config", required=True,
+                         help="TOML file with [channels.<id>] tables (and [tags], for a long file)")
         cmd.add_argument("--json", action="store_true", help="print the result as JSON")
         cmd.add_argument("--forgetting-factor", type=float, metavar="LAMBDA",
                          help="override every channel's forgetting factor, to compare settings")

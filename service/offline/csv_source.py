@@ -11,18 +11,23 @@ Numbers are plain ASCII decimals as ``float`` reads them (``1.5``, ``-2e-3``,
 parse, so the channel can refuse them with its own reason. A UTF-8 byte order
 mark is skipped; undecodable bytes become U+FFFD and so a bad number; a field
 longer than :data:`MAX_FIELD_CHARS` makes its row a ``bad_row``.
+
+:class:`CsvFile` is the frame both layouts share (this one, and the long one of
+:mod:`service.offline.long_csv`): the header, then each row's fields with its line
+number, unreadable rows and rows of the wrong width as ``bad_row``.
 """
 
 from __future__ import annotations
 
 import csv
-from collections.abc import Iterable, Iterator
+from collections.abc import Generator, Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
+from typing import cast
 
 from service.broker_link.text_values import parse_number, parse_time
 
-__all__ = ["BadRow", "CsvError", "CsvRow", "CsvSource"]
+__all__ = ["BadRow", "CsvError", "CsvFile", "CsvRow", "CsvSource"]
 
 RESERVED = ("t", "y", "sigma", "weight", "channel")
 REASONS = frozenset({"bad_row", "bad_number", "missing_value", "bad_time"})
@@ -71,27 +76,45 @@ class _CountingLines:
         return line
 
 
-class CsvSource:
-    """Rows of a CSV file as :class:`CsvRow` or :class:`BadRow`.
+class CsvFile:
+    """A CSV file read as its header, then ``(line, fields)`` per row or a :class:`BadRow`.
 
-    Parameters
-    ----------
-    path : path of the file
-    input_names : every input some channel needs
-    need_channel : the file must carry a ``channel`` column
+    Blank rows are skipped; a row with another number of fields than the header, or one the csv
+    module cannot read (a field beyond :data:`MAX_FIELD_CHARS`), is a ``bad_row``. UTF-8, a byte
+    order mark skipped, undecodable bytes as U+FFFD.
+
+    Raises
+    ------
+    CsvError
+        The file cannot be read (at construction), or has no readable header row (when read).
     """
 
-    def __init__(self, path: str | Path, input_names: Iterable[str], need_channel: bool) -> None:
+    def __init__(self, path: str | Path) -> None:
         self.path = Path(path)
         try:
             self.total_chars = max(self.path.stat().st_size, 1)
         except OSError as exc:
             raise CsvError(f"{path}: cannot read: {exc.strerror}") from None
-        self._input_names = sorted(set(input_names))
-        self._need_channel = need_channel
         self.progress_chars = 0
 
-    def __iter__(self) -> Iterator[CsvRow | BadRow]:
+    def header(self) -> list[str]:
+        """The header's column names, stripped (the file is read to the end of its first row only)."""
+        header, rows = self.read()
+        rows.close()
+        return header
+
+    def read(self) -> tuple[list[str], Generator[tuple[int, list[str]] | BadRow, None, None]]:
+        """The header's column names (stripped), and each row after it as ``(line, fields)`` or a :class:`BadRow`.
+
+        The file stays open until the rows are exhausted or closed.
+        """
+        items = self._read()
+        header = next(items)
+        if not isinstance(header, list):          # the generator's first item is the header
+            raise TypeError("expected the header first")
+        return header, cast(Generator[tuple[int, list[str]] | BadRow, None, None], items)
+
+    def _read(self) -> Generator[list[str] | tuple[int, list[str]] | BadRow, None, None]:
         if csv.field_size_limit() < MAX_FIELD_CHARS:
             csv.field_size_limit(MAX_FIELD_CHARS)
         with self.path.open("r", encoding="utf-8-sig", errors="replace", newline="") as handle:
@@ -103,12 +126,7 @@ class CsvSource:
                 raise CsvError(f"{self.path}: unreadable header row: {exc}") from None
             if header is None:
                 raise CsvError(f"{self.path}: empty file, expected a header row")
-            columns = {name.strip(): i for i, name in enumerate(header)}
-            missing = [c for c in ("y", *self._input_names) if c not in columns]
-            if self._need_channel and "channel" not in columns:
-                missing.append("channel")
-            if missing:
-                raise CsvError(f"{self.path}: header lacks column(s): {', '.join(missing)}")
+            yield [name.strip() for name in header]
             width = len(header)
             while True:
                 try:
@@ -125,8 +143,43 @@ class CsvSource:
                 if len(fields) != width:
                     yield BadRow(reader.line_num, "bad_row", f"{len(fields)} fields, header has {width}")
                     continue
-                yield self._parse(reader.line_num, fields, columns)
+                yield reader.line_num, fields
             self.progress_chars = counter.chars
+
+
+class CsvSource:
+    """Rows of a CSV file as :class:`CsvRow` or :class:`BadRow`.
+
+    Parameters
+    ----------
+    path : path of the file
+    input_names : every input some channel needs
+    need_channel : the file must carry a ``channel`` column
+    """
+
+    def __init__(self, path: str | Path, input_names: Iterable[str], need_channel: bool) -> None:
+        self._file = CsvFile(path)
+        self.path = self._file.path
+        self.total_chars = self._file.total_chars
+        self._input_names = sorted(set(input_names))
+        self._need_channel = need_channel
+
+    @property
+    def progress_chars(self) -> int:
+        """Characters read so far (for progress)."""
+        return self._file.progress_chars
+
+    def __iter__(self) -> Iterator[CsvRow | BadRow]:
+        header, rows = self._file.read()
+        columns = {name: i for i, name in enumerate(header)}
+        missing = [c for c in ("y", *self._input_names) if c not in columns]
+        if self._need_channel and "channel" not in columns:
+            missing.append("channel")
+        if missing:
+            rows.close()
+            raise CsvError(f"{self.path}: header lacks column(s): {', '.join(missing)}")
+        for item in rows:
+            yield item if isinstance(item, BadRow) else self._parse(item[0], item[1], columns)
 
     def _parse(self, line: int, fields: list[str], columns: dict[str, int]) -> CsvRow | BadRow:
         def cell(name: str) -> str:

@@ -1,8 +1,11 @@
 """Offline runs over a CSV history: ``replay`` (the recursive estimator) and ``fit`` (batch closed form).
 
-Both read the file through :class:`service.offline.csv_source.CsvSource`, route rows to
-channels, and pass every row through the same :class:`estimator.channels.channel_bank.ChannelBank`
-the live service uses, so they accept exactly the same samples with exactly the same weights.
+Both read the file as a :class:`~service.offline.sample_source.SampleSource`, chosen by its header:
+the wide layout (one sample per row, :class:`~service.offline.sample_source.WideSamples`) or the
+long one historians export (one tag update per row, ``time``, ``tag``, ``value``; the service's tag
+path forms the samples, :class:`~service.offline.tag_feed.TagSamples`). Every sample goes through
+the same :class:`estimator.channels.channel_bank.ChannelBank` the live service uses, so they accept
+exactly the same samples with exactly the same weights.
 ``fit`` then solves the weighted least squares problem in closed form
 (:func:`estimator.recursive.batch.fit_wls`) on the applied samples, forgetting included.
 """
@@ -16,39 +19,57 @@ from pathlib import Path
 
 import numpy as np
 
-from estimator import ChannelBank, NotIdentifiable, Sample, fit_wls
+from estimator import ChannelBank, NotIdentifiable, fit_wls
 from service.alarms.what_if import WhatIf
 from service.config.settings import RwlsConfig
 from service.engine.channel_report import ChannelReport, channel_report, finite_or_null
-from service.offline.csv_source import BadRow, CsvSource
+from service.offline.csv_source import CsvError, CsvFile
+from service.offline.long_csv import LongCsvSource, is_long_header
 from service.offline.progress import Progress
+from service.offline.sample_source import RowProblem, SampleSource, WideSamples
+from service.offline.tag_feed import CHUNK_ROWS, TagSamples
 from service.offline.trace import ReplayTrace
+from service.tags.tag_path import tag_path_of
 
-__all__ = ["RunResult", "fit_file", "replay_file"]
+__all__ = ["RunResult", "apply_history", "fit_file", "replay_file"]
 
 MAX_LISTED_ROWS = 1000   # bad rows and rejections listed with line numbers; all are counted
 
 
 @dataclass
 class RunResult:
-    """What a replay or fit produced: per-channel reports and the rows that were refused."""
+    """What a replay or fit produced: per-channel reports and the rows that were refused.
+
+    ``layout`` is ``wide`` (a sample per row) or ``long`` (a tag update per row); the tag counts
+    are the long layout's (zero for the wide): samples not formed per channel and
+    :class:`~service.tags.assembler.FormingRefusal` reason (no bad rows: the updates were fine),
+    updates of tags no channel names, and updates not later than their tag's newest.
+    """
 
     channels: dict[str, ChannelReport]
     rows: int = 0
     bad_rows: int = 0
     listed_problems: list[dict[str, object]] = field(default_factory=list)   # the first MAX_LISTED_ROWS
     problems_by_reason: dict[str, int] = field(default_factory=dict)         # every problem, counted
+    layout: str = "wide"
+    samples_not_formed: dict[str, dict[str, int]] = field(default_factory=dict)
+    tag_updates_unused: int = 0
+    tag_updates_not_newer: int = 0
 
     def to_json(self) -> dict[str, object]:
         """The ``--json`` document (NaN and inf become null)."""
         return finite_or_null({
             "channels": self.channels,
+            "layout": self.layout,
             "rows": self.rows,
             "bad_rows": self.bad_rows,
             "problems_by_reason": dict(sorted(self.problems_by_reason.items())),
             "problems": self.listed_problems,
             "problems_listed": len(self.listed_problems),
             "problems_list_limit": MAX_LISTED_ROWS,
+            "samples_not_formed": {cid: dict(counts) for cid, counts in self.samples_not_formed.items()},
+            "tag_updates_unused": self.tag_updates_unused,
+            "tag_updates_not_newer": self.tag_updates_not_newer,
         })
 
 
@@ -63,49 +84,84 @@ def _note(result: RunResult, line: int, channel: str | None, reason: str, detail
         result.listed_problems.append(entry)
 
 
-def _run(data: str | Path, config: RwlsConfig, label: str, show_progress: bool | None,
-         on_applied: Callable[[str, list[float], float, float], None] | None = None,
-         what_if: WhatIf | None = None, trace: ReplayTrace | None = None) -> tuple[ChannelBank, RunResult]:
+def _open(data: str | Path, config: RwlsConfig, bank: ChannelBank, chunk_rows: int) -> SampleSource:
+    """The file's samples: the long layout through the configuration's tag path, else the wide one."""
+    if not is_long_header(CsvFile(data).header()):
+        return WideSamples(data, {cid: bank.settings(cid).input_names for cid in bank.channel_ids})
+    tags = tag_path_of(config)
+    if tags is None or not tags.channel_ids:
+        raise CsvError(f"{data}: a long CSV (time, tag, value: one tag update per row) needs channels assembled "
+                       "from tags ([channels.<id>.tags]); the configuration has none")
+    return TagSamples(LongCsvSource(data), tags, config.tags.formats, chunk_rows)
+
+
+def apply_history(data: str | Path, config: RwlsConfig, *, label: str = "replay", show_progress: bool | None = False,
+                  on_applied: Callable[[str, list[float], float, float], None] | None = None,
+                  what_if: WhatIf | None = None, trace: ReplayTrace | None = None,
+                  chunk_rows: int = CHUNK_ROWS) -> tuple[ChannelBank, RunResult]:
+    """Every sample of a CSV history through a new bank of the configured channels, in line order.
+
+    Parameters
+    ----------
+    data : the CSV file, wide or long layout (told apart by the header)
+    config : the channels (with their baselines) and, for the long layout, the tags
+    label : what the progress bar says
+    on_applied : called ``(channel, regressor, y, weight)`` after each applied sample
+    what_if, trace : observe the bank after each applied sample (alarms, the report's trajectories)
+    chunk_rows : long layout: rows per batch of tag updates (the result does not depend on it)
+
+    Returns
+    -------
+    The bank as the history left it, and the run's counts and problems (channel reports not filled in).
+
+    Raises
+    ------
+    service.offline.csv_source.CsvError
+        The file cannot be used at all (bad rows never raise).
+    service.config.settings.ConfigError
+        A long file, and the configuration's tags are unusable.
+    """
     bank = ChannelBank(config.channel_settings())
     config.apply_baselines(bank)
     if what_if is not None:
         what_if.start(bank)
-    inputs = {name for cid in bank.channel_ids for name in bank.settings(cid).input_names}
-    only = bank.channel_ids[0] if len(bank.channel_ids) == 1 else None
-    source = CsvSource(data, inputs, need_channel=only is None)
-    result = RunResult(channels={})
+    source = _open(data, config, bank, chunk_rows)
+    result = RunResult(channels={}, layout="wide" if isinstance(source, WideSamples) else "long")
     progress = Progress(source.total_chars, label, enabled=show_progress)
-    for row in source:
-        result.rows += 1
-        if result.rows % 512 == 0:
-            progress.update(source.progress_chars, result.rows)
-        if isinstance(row, BadRow):
+    shown = 0
+    for item in source:
+        if source.rows - shown >= 512:
+            shown = source.rows
+            progress.update(source.progress_chars, shown)
+        if isinstance(item, RowProblem):
             result.bad_rows += 1
-            _note(result, row.line, None, row.reason, row.detail)
+            _note(result, item.line, item.channel, item.reason, item.detail)
             continue
-        cid = row.channel if only is None else (row.channel or only)
-        if cid is None or cid not in bank:
-            result.bad_rows += 1
-            _note(result, row.line, cid, "unknown_channel")
-            continue
-        outcome = bank.apply_one(Sample(cid, row.y, row.inputs, row.t, row.sigma, row.weight))
+        sample = item.sample
+        cid = sample.channel
+        outcome = bank.apply_one(sample)
         if outcome.status == "refused":
-            _note(result, row.line, cid, outcome.reason)
+            _note(result, item.line, cid, outcome.reason)
         elif outcome.status == "applied":
             if on_applied is not None and outcome.regressor is not None:
-                on_applied(cid, outcome.regressor, row.y, outcome.weight)
+                on_applied(cid, outcome.regressor, sample.y, outcome.weight)
             if what_if is not None:
-                what_if.observe(bank, cid, row.t)
+                what_if.observe(bank, cid, sample.t)
             if trace is not None and outcome.regressor is not None:
-                trace.row(cid, outcome.regressor, row.y, outcome.weight)
-                trace.observe(bank, cid, row.t)
+                trace.row(cid, outcome.regressor, sample.y, outcome.weight)
+                trace.observe(bank, cid, sample.t)
     progress.close()
+    result.rows = source.rows
+    if isinstance(source, TagSamples):
+        result.samples_not_formed = source.not_formed
+        result.tag_updates_unused = source.updates_unused
+        result.tag_updates_not_newer = source.updates_not_newer
     return bank, result
 
 
 def replay_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = None,
-                trace: ReplayTrace | None = None) -> RunResult:
-    """Run a CSV history through the recursive estimator of every configured channel.
+                trace: ReplayTrace | None = None, chunk_rows: int = CHUNK_ROWS) -> RunResult:
+    """Run a CSV history (wide or long layout) through the recursive estimator of every configured channel.
 
     With ``trace``, each channel's trajectory and applied rows are recorded there (the report's data).
 
@@ -113,15 +169,19 @@ def replay_file(data: str | Path, config: RwlsConfig, show_progress: bool | None
     ------
     service.offline.csv_source.CsvError
         The file cannot be used at all (bad rows never raise).
+    service.config.settings.ConfigError
+        A long file, and the configuration's tags are unusable.
     """
     what_if = WhatIf(config)
-    bank, result = _run(data, config, "replay", show_progress, what_if=what_if, trace=trace)
+    bank, result = apply_history(data, config, label="replay", show_progress=show_progress, what_if=what_if,
+                                 trace=trace, chunk_rows=chunk_rows)
     for cid, view in bank.view().items():
         result.channels[cid] = {**channel_report(view), "alarms": what_if.transitions(cid)}
     return result
 
 
-def fit_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = None) -> RunResult:
+def fit_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = None,
+             chunk_rows: int = CHUNK_ROWS) -> RunResult:
     """Batch closed-form WLS per channel on the samples replay would apply, with the same weights.
 
     With ``weighting = "tracked"`` the weights are those the tracker produced
@@ -136,7 +196,8 @@ def fit_file(data: str | Path, config: RwlsConfig, show_progress: bool | None = 
         ys.append(y)
         ws.append(w)
 
-    bank, result = _run(data, config, "fit", show_progress, on_applied=collect)
+    bank, result = apply_history(data, config, label="fit", show_progress=show_progress, on_applied=collect,
+                                 chunk_rows=chunk_rows)
     for cid, view in bank.view().items():
         Z, ys, ws = rows[cid]
         n = len(view.terms)

@@ -74,6 +74,10 @@ def render_text(result: RunResult, command: str) -> str:
         if ch["rejections"]:
             reasons = ", ".join(f"{r} {n}" for r, n in ch["rejections"].items())
             out.append(f"  rejected by reason: {reasons}")
+        not_formed = result.samples_not_formed.get(cid)
+        if not_formed:
+            reasons = ", ".join(f"{r} {n}" for r, n in not_formed.items())
+            out.append(f"  samples not formed from tag updates: {reasons}")
         out += _alarm_lines(ch)
         out.append("")
     if result.bad_rows or result.problems_by_reason:
@@ -91,4 +95,7 @@ def render_text(result: RunResult, command: str) -> str:
             out.append(f"  ... {total - min(SHOWN_PROBLEMS, listed)} more not shown here{capped}")
     else:
         out.append(f"{result.rows} rows read, none refused")
+    if result.layout == "long" and (result.tag_updates_unused or result.tag_updates_not_newer):
+        out.append(f"tag updates: {result.tag_updates_unused} of tags no channel names, "
+                   f"{result.tag_updates_not_newer} not later than their tag's newest (not kept)")
     return "\n".join(out) + "\n"
