@@ -253,12 +253,18 @@ class RawTagFigures:
     live: dict[str, Any]                  # QoS 1, MQTT 5, tag shape, publisher running
     latency: dict[float, dict[str, Any]]  # paced rate (tag messages/s) -> publish -> on_message
 
-    def keeps_up(self, rate: float, p99_goal: float) -> bool:
-        """At ``rate``, the bare subscriber got every message with a p99 under ``p99_goal`` (s) and the publisher
-        held the pace (within 5 %): a service goal at that rate is then one a client could meet."""
+    def falls_behind(self, rate: float, p99_goal: float) -> str | None:
+        """Why the bare subscriber did not keep up at ``rate`` (or the publisher did not hold that pace), None
+        when it did: every message received, p99 under ``p99_goal`` (s), the pace held within 5 %."""
         run = self.latency[rate]
-        return (run["received"] >= run["messages"] == run["published"]
-                and percentiles(run["latency"])[1] < p99_goal and run["publish_rate"] >= 0.95 * rate)
+        p99 = percentiles(run["latency"])[1]
+        if not run["received"] >= run["messages"] == run["published"]:
+            return f"the bare subscriber received {run['received']:,} of {run['messages']:,}"
+        if not p99 < p99_goal:
+            return f"the bare subscriber's p99 was {ms(p99)} ms"
+        if not run["publish_rate"] >= 0.95 * rate:
+            return f"the publisher held {fmt(run['publish_rate'])} msg/s"
+        return None
 
 
 def measure_raw_tags(broker: Broker) -> RawTagFigures:
