@@ -48,13 +48,14 @@ from tests.support.addresses import unique_client_id
 from tests.support.configs import mqtt_settings, offline_config
 from tests.support.mqtt_clients import publish_and_wait
 
-__all__ = ["GOAL_RATIO", "SERVICE_MESSAGES", "Counts", "Probe", "await_subscription", "bench_service",
-           "check_service", "counts", "engine_line", "profile_live", "ratio_goal", "report_ingest", "service_config",
-           "service_drain", "service_live"]
+__all__ = ["GOAL_RATIO", "SERVICE_MESSAGES", "TAG_PROFILE_ROWS", "Counts", "Probe", "await_subscription",
+           "bench_service", "check_service", "counts", "engine_line", "profile_live", "ratio_goal", "report_ingest",
+           "service_config", "service_drain", "service_live"]
 
 SERVICE_MESSAGES = 50_000             # one sample each, in a live run or a drained backlog
 GOAL_RATIO = 0.80                     # of the raw paho rate, one sample per message
 PROFILE_MESSAGES = 20_000             # single-sample messages (or tag messages) in a profiled run
+TAG_PROFILE_ROWS = 28                 # functions listed per profile of a tag run (where the time per message goes)
 # The tag messages' payload, as a plant gateway's: value, time stamp in ms, quality (0 is good).
 TAG_FORMAT = {"kind": "json", "value": "/v", "time": "/ts", "time_unit": "ms", "quality": "/q", "good": [0]}
 
@@ -339,5 +340,5 @@ def profile_live(broker: Broker, store: Path, unprofiled: dict[str, Any], *, tag
     key, unit = ("message_rate", "tag message") if tags else ("rate", "sample")
     print(f"   under cProfile: {fmt(profiled[key])} {unit}s/s (unprofiled above, {unprofiled['how']}: "
           f"{fmt(unprofiled[key])})")
-    print_thread_profiles(profiled["profiles"], PROFILE_MESSAGES, unit)
+    print_thread_profiles(profiled["profiles"], PROFILE_MESSAGES, unit, top=TAG_PROFILE_ROWS if tags else 16)
     check_service(profiled)
