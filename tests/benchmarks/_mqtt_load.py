@@ -7,7 +7,9 @@ listener on 127.0.0.1 only, anonymous, persistence off, ``max_queued_messages 10
 ``max_inflight_messages 0`` set on purpose, so a subscriber that falls behind is queued for rather than
 silently dropped at the default limit of 1000 (the config is printed). It is stopped by PID at the end. Load
 comes from ``_publisher.py`` in a separate process (paho, at most 1000 QoS 1 messages in flight, every return
-code checked; it reports what it published) over ``CHANNELS`` topics ``<prefix>/c<k>``.
+code checked; it reports what it published) over ``CHANNELS`` topics ``<prefix>/c<k>``, or in the tag shape
+(``tags=True``) two tag messages per sample on ``<prefix>/t/c<k>/u`` and ``<prefix>/t/c<k>/y``, which one
+filter (:func:`tag_filter`) subscribes to.
 """
 
 from __future__ import annotations
@@ -24,14 +26,16 @@ from typing import Any
 
 from tests.support.addresses import unique_client_id
 
-__all__ = ["BROKER_LIMITS", "CHANNELS", "LATENCY_RATE", "MAX_IN_FLIGHT", "POLL", "RUN_TIMEOUT", "Broker",
-           "check_publisher", "finish", "nothing_more", "publish_all", "publisher", "reap", "running", "topics",
-           "watch"]
+__all__ = ["BROKER_LIMITS", "CHANNELS", "LATENCY_RATE", "MAX_IN_FLIGHT", "POLL", "RUN_TIMEOUT", "TAG_MESSAGES",
+           "TAG_RATES", "Broker", "check_publisher", "finish", "nothing_more", "publish_all", "publisher", "reap",
+           "running", "tag_filter", "topics", "watch"]
 
 PUBLISHER = Path(__file__).parent / "_publisher.py"
 
 CHANNELS = 1_000                      # topics (and service channels) the load goes round
 LATENCY_RATE = 5_000.0                # samples (= messages) per second, paced by the publisher (the latency goal's)
+TAG_MESSAGES = 100_000                # tag messages (two per sample) in a live run of the tag shape
+TAG_RATES = (5_000.0, 10_000.0)       # tag messages per second, paced (the tag latency goals')
 MAX_IN_FLIGHT = 1_000                 # publisher's cap on unacknowledged messages
 BROKER_LIMITS = ("max_queued_messages 1000000", "max_inflight_messages 0")
 RUN_TIMEOUT = 120.0                   # seconds, any one run
@@ -50,11 +54,18 @@ def topics(prefix: str) -> list[str]:
     return [f"{prefix}/c{k}" for k in range(CHANNELS)]
 
 
+def tag_filter(prefix: str) -> str:
+    """The one topic filter of every tag the publisher's tag shape sends (``<prefix>/t/c<k>/u`` and ``/y``)."""
+    return f"{prefix}/t/+/+"
+
+
 @contextlib.contextmanager
 def publisher(port: int, prefix: str, *, messages: int, batch: int = 1, qos: int = 1, rate: float = 0.0,
-              wall: bool = False) -> Iterator[subprocess.Popen[str]]:
-    """The load generator in its own process; killed by PID if still running when the block ends."""
+              wall: bool = False, tags: bool = False) -> Iterator[subprocess.Popen[str]]:
+    """The load generator in its own process (``tags``: the tag shape); killed by PID if still running when the
+    block ends."""
     command = [sys.executable, str(PUBLISHER), "--port", str(port), "--prefix", prefix,
+               "--shape", "tags" if tags else "samples",
                "--channels", str(CHANNELS), "--messages", str(messages), "--batch", str(batch),
                "--qos", str(qos), "--rate", str(rate), "--time", "wall" if wall else "index",
                "--max-inflight", str(MAX_IN_FLIGHT), "--timeout", str(RUN_TIMEOUT),

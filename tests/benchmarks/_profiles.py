@@ -12,7 +12,7 @@ from service.engine.writer import Engine
 from service.runtime import Runtime
 from tests.benchmarks._common import print_table
 
-__all__ = ["ThreadProfiles", "print_profile"]
+__all__ = ["ThreadProfiles", "print_profile", "print_thread_profiles"]
 
 REPO = Path(__file__).parents[2]
 
@@ -27,10 +27,14 @@ class ThreadProfiles:
     def __init__(self, runtime: Runtime) -> None:
         self.engine = cProfile.Profile(time.thread_time)
         self.ingest = cProfile.Profile(time.thread_time)
+        self.ingest_title = "ingest thread: none"
         self._wrap_next_engine(self.engine)
         if runtime.ingest is not None:
             # In-process ingest: paho's loop; process ingest: the reader thread that feeds the engine.
-            self._wrap(runtime.ingest, "_loop" if hasattr(runtime.ingest, "_loop") else "_read", self.ingest)
+            body = "_loop" if hasattr(runtime.ingest, "_loop") else "_read"
+            self._wrap(runtime.ingest, body, self.ingest)
+            self.ingest_title = (f"ingest thread ({type(runtime.ingest).__name__}.{body}: "
+                                 f"{'paho in this process' if body == '_loop' else 'reads the paho child'})")
 
     @staticmethod
     def _wrap_next_engine(profile: cProfile.Profile) -> None:
@@ -70,13 +74,21 @@ def label(func: tuple[str, int, str]) -> str:
     return f"{path.parent.name}/{path.name}:{line}({name})"
 
 
-def print_profile(title: str, profile: cProfile.Profile, samples: int, top: int = 16) -> None:
+def print_thread_profiles(profiles: ThreadProfiles, count: int, unit: str = "sample", top: int = 16) -> None:
+    """The engine's profile, then the ingest thread's, each per ``unit`` (``count`` of them in the run). The
+    engine's includes its start (the retained alarm states it publishes first), which no message causes."""
+    print_profile("engine thread (Engine._run)", profiles.engine, count, unit, top)
+    print_profile(profiles.ingest_title, profiles.ingest, count, unit, top)
+
+
+def print_profile(title: str, profile: cProfile.Profile, count: int, unit: str = "sample", top: int = 16) -> None:
+    """What took a thread's CPU time, by own and by cumulative time; the total per ``unit`` (``count`` of them)."""
     stats = pstats.Stats(profile).stats  # type: ignore[attr-defined]
     total = sum(entry[2] for entry in stats.values())
     if total <= 0:
         print(f"   {title}: nothing recorded")
         return
-    print(f"   {title}: {total:.2f} s thread CPU ({total / max(samples, 1) * 1e6:.1f} us per sample under cProfile);"
+    print(f"   {title}: {total:.2f} s thread CPU ({total / max(count, 1) * 1e6:.1f} us per {unit} under cProfile);"
           " by own time (cumulative beside):")
     ordered = sorted(stats.items(), key=lambda item: item[1][2], reverse=True)[:top]
     rows = [[f"{entry[2] / total:.1%}", f"{min(entry[3] / total, 1.0):.1%}", f"{entry[1]:,}", label(func)]

@@ -3,7 +3,9 @@
 paho 2.x with its ``loop_start`` thread, ``on_message`` only counts: messages/s at QoS 1 (MQTT 5 and 3.1.1)
 and QoS 0 while the publisher runs, the drain of a backlog the broker queued for its persistent session (the
 subscriber's own ceiling, not the publisher's), drops (published - received), and with ``latency`` the time from
-publish to ``on_message``. Measured once a run (the ``raw`` fixture) and printed beside every service figure.
+publish to ``on_message``. Measured once a run (the ``raw`` fixture) and printed beside every service figure; the
+same for the publisher's tag shape (two tag messages per sample, one topic filter, paced at each of
+``TAG_RATES``) once a run for the tag benchmarks (the ``raw_tags`` fixture).
 """
 
 from __future__ import annotations
@@ -13,6 +15,7 @@ import math
 import threading
 import time
 import uuid
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -23,23 +26,27 @@ from paho.mqtt.properties import Properties
 
 from tests.benchmarks._common import print_table
 from tests.benchmarks._environment import MachineUsage, header, process_cpu, thread_cpu
-from tests.benchmarks._figures import fmt, per
+from tests.benchmarks._figures import fmt, ms, per, percentiles
 from tests.benchmarks._mqtt_load import (
     CHANNELS,
     LATENCY_RATE,
     MAX_IN_FLIGHT,
+    TAG_MESSAGES,
+    TAG_RATES,
     Broker,
     finish,
     nothing_more,
     publish_all,
     publisher,
     running,
+    tag_filter,
     topics,
     watch,
 )
 from tests.support.addresses import LOOPBACK, unique_client_id
 
-__all__ = ["RAW_MESSAGES", "BareSubscriber", "RawFigures", "measure_raw"]
+__all__ = ["RAW_MESSAGES", "BareSubscriber", "RawFigures", "RawTagFigures", "measure_raw", "measure_raw_tags",
+           "sample_stamp", "tag_stamp"]
 
 RAW_MESSAGES = 50_000                 # per raw run
 RAW_LATENCY_SECONDS = 5.0
@@ -47,21 +54,32 @@ RAW_STALL = 3.0                       # seconds without progress once nothing mo
 SESSION_EXPIRY = 3600                 # seconds, the bare subscriber's session for the backlog drain
 
 
+def sample_stamp(payload: bytes | bytearray) -> float:
+    """When a message of the sample shape was published (``--time wall``): its ``t``, s since the epoch."""
+    return float(json.loads(payload)["t"])
+
+
+def tag_stamp(payload: bytes | bytearray) -> float:
+    """When the sample of a tag message was first published (``--time wall``): its ``ts`` (ms) in s."""
+    return float(json.loads(payload)["ts"]) / 1e3
+
+
 class BareSubscriber:
     """paho 2.x, ``loop_start`` thread; ``on_message`` only counts (MQTT v5 as the service's ingest, or 3.1.1).
 
-    With ``latency`` it also reads ``t`` from the payload and keeps ``time.time() - t``.
+    With ``latency`` (``sample_stamp`` or ``tag_stamp``: a payload's publish time) it also keeps
+    ``time.time()`` - that time for every message.
     """
 
     def __init__(self, port: int, topics: list[str], qos: int, *, protocol: int = mqtt.MQTTv5,
-                 client_id: str | None = None, latency: bool = False) -> None:
+                 client_id: str | None = None, latency: Callable[[bytes | bytearray], float] | None = None) -> None:
         self.count = 0
         self.errors = 0
         self.first: float | None = None
         self.last: float | None = None
         self.latency: list[float] = []
         self.client_id = client_id or unique_client_id("raw")
-        self._want_latency = latency
+        self._stamp = latency
         self._persistent = client_id is not None         # a named client keeps its session for a backlog drain
         self._port, self._topics, self._qos, self._protocol = port, topics, qos, protocol
         self._connected = threading.Event()
@@ -81,8 +99,8 @@ class BareSubscriber:
     def _on_message(self, _c: mqtt.Client, _u: Any, message: mqtt.MQTTMessage) -> None:
         now = time.perf_counter()
         try:
-            if self._want_latency:
-                self.latency.append(time.time() - json.loads(message.payload)["t"])
+            if self._stamp is not None:
+                self.latency.append(time.time() - self._stamp(message.payload))
         except (ValueError, KeyError, TypeError):
             self.errors += 1                       # never raise into paho's network thread
         self.count += 1
@@ -124,22 +142,25 @@ class BareSubscriber:
         self.client.loop_stop()
 
 
-def raw_live(broker: Broker, qos: int, protocol: int = mqtt.MQTTv5) -> dict[str, Any]:
-    """Bare subscriber receiving while the publisher runs."""
+def raw_live(broker: Broker, qos: int, protocol: int = mqtt.MQTTv5, *, tags: bool = False,
+             messages: int = RAW_MESSAGES) -> dict[str, Any]:
+    """Bare subscriber receiving while the publisher runs (``tags``: its tag shape, on one topic filter)."""
     prefix = f"bench/raw-{uuid.uuid4().hex[:8]}"
-    subscriber = BareSubscriber(broker.port, topics(prefix), qos, protocol=protocol)
+    subscriber = BareSubscriber(broker.port, [tag_filter(prefix)] if tags else topics(prefix), qos,
+                                protocol=protocol)
     subscriber.start()
     try:
         cpu0, broker0 = thread_cpu(subscriber.native_id), process_cpu(broker.pid)
-        with publisher(broker.port, prefix, messages=RAW_MESSAGES, qos=qos) as proc:
-            watch(lambda: subscriber.count, RAW_MESSAGES, running(proc), stall=RAW_STALL)
+        with publisher(broker.port, prefix, messages=messages, qos=qos, tags=tags) as proc:
+            watch(lambda: subscriber.count, messages, running(proc), stall=RAW_STALL)
             published = finish(proc)
         if subscriber.count < published.get("published", 0):     # QoS 0 may lose: wait (bounded), then count
             watch(lambda: subscriber.count, published["published"], nothing_more, stall=RAW_STALL)
         cpu1, broker1 = thread_cpu(subscriber.native_id), process_cpu(broker.pid)
     finally:
         subscriber.stop()
-    return {"how": f"live, MQTT {'5' if protocol == mqtt.MQTTv5 else '3.1.1'}", "qos": qos,
+    shape = ", tag messages" if tags else ""
+    return {"how": f"live, MQTT {'5' if protocol == mqtt.MQTTv5 else '3.1.1'}{shape}", "qos": qos,
             "published": published.get("published", 0), "received": subscriber.count, "rate": subscriber.rate,
             "publish_rate": published.get("publish_rate") or math.nan,
             "paho_us": per(cpu1 - cpu0, subscriber.count) * 1e6, "broker_cpu": broker1 - broker0,
@@ -170,19 +191,23 @@ def raw_drain(broker: Broker) -> dict[str, Any]:
             "publisher_cpu": math.nan, "publisher": published}
 
 
-def raw_latency(broker: Broker) -> dict[str, Any]:
+def raw_latency(broker: Broker, rate: float = LATENCY_RATE, seconds: float = RAW_LATENCY_SECONDS, *,
+                tags: bool = False) -> dict[str, Any]:
+    """Publish -> ``on_message`` of the bare subscriber, paced at ``rate`` messages/s for ``seconds``."""
     prefix = f"bench/rawlat-{uuid.uuid4().hex[:8]}"
-    messages = int(LATENCY_RATE * RAW_LATENCY_SECONDS)
-    subscriber = BareSubscriber(broker.port, topics(prefix), 1, latency=True)
+    messages = int(rate * seconds)
+    subscriber = BareSubscriber(broker.port, [tag_filter(prefix)] if tags else topics(prefix), 1,
+                                latency=tag_stamp if tags else sample_stamp)
     subscriber.start()
     try:
-        with publisher(broker.port, prefix, messages=messages, rate=LATENCY_RATE, wall=True) as proc:
+        with publisher(broker.port, prefix, messages=messages, rate=rate, wall=True, tags=tags) as proc:
             watch(lambda: subscriber.count, messages, running(proc), stall=RAW_STALL)
             published = finish(proc)
     finally:
         subscriber.stop()
-    return {"published": published.get("published", 0), "received": subscriber.count,
-            "latency": list(subscriber.latency), "errors": subscriber.errors, "publisher": published}
+    return {"rate": rate, "messages": messages, "published": published.get("published", 0),
+            "received": subscriber.count, "latency": list(subscriber.latency), "errors": subscriber.errors,
+            "publish_rate": published.get("publish_rate") or math.nan, "publisher": published}
 
 
 @dataclass(frozen=True)
@@ -211,11 +236,54 @@ def measure_raw(broker: Broker) -> RawFigures:
           "publisher runs (bounded by the publisher too); backlog drain: all messages published while the subscriber "
           "was away, queued by the broker for its persistent session, then received in one go (the subscriber's own "
           "ceiling). paho CPU from /proc schedstat of its thread.")
-    rows = []
-    for fig in (figures.live, figures.live_qos0, figures.live_v311, figures.drain):
-        rows.append([fig["how"], fig["qos"], f"{fig['published']:,}", f"{fig['received']:,}",
-                     f"{fig['published'] - fig['received']:,}", fmt(fig["rate"]), fmt(fig["publish_rate"]),
-                     fmt(fig["paho_us"], 1), fmt(fig["broker_cpu"], 2), fmt(fig["publisher_cpu"], 2)])
+    _print_receive_rates([figures.live, figures.live_qos0, figures.live_v311, figures.drain])
+    return figures
+
+
+def _print_receive_rates(runs: list[dict[str, Any]]) -> None:
+    rows = [[fig["how"], fig["qos"], f"{fig['published']:,}", f"{fig['received']:,}",
+             f"{fig['published'] - fig['received']:,}", fmt(fig["rate"]), fmt(fig["publish_rate"]),
+             fmt(fig["paho_us"], 1), fmt(fig["broker_cpu"], 2), fmt(fig["publisher_cpu"], 2)] for fig in runs]
     print_table(["run", "QoS", "published", "received", "drops", "received msg/s", "publisher msg/s",
                  "paho thread CPU us/msg", "broker CPU s", "publisher CPU s"], rows)
+
+
+@dataclass(frozen=True)
+class RawTagFigures:
+    live: dict[str, Any]                  # QoS 1, MQTT 5, tag shape, publisher running
+    latency: dict[float, dict[str, Any]]  # paced rate (tag messages/s) -> publish -> on_message
+
+    def falls_behind(self, rate: float, p99_goal: float) -> str | None:
+        """Why the bare subscriber did not keep up at ``rate`` (or the publisher did not hold that pace), None
+        when it did: every message received, p99 under ``p99_goal`` (s), the pace held within 5 %."""
+        run = self.latency[rate]
+        p99 = percentiles(run["latency"])[1]
+        if not run["received"] >= run["messages"] == run["published"]:
+            return f"the bare subscriber received {run['received']:,} of {run['messages']:,}"
+        if not p99 < p99_goal:
+            return f"the bare subscriber's p99 was {ms(p99)} ms"
+        if not run["publish_rate"] >= 0.95 * rate:
+            return f"the publisher held {fmt(run['publish_rate'])} msg/s"
+        return None
+
+
+def measure_raw_tags(broker: Broker) -> RawTagFigures:
+    """The bare paho subscriber on the publisher's tag shape (one filter ``<prefix>/t/+/+``), printed as tables."""
+    usage = MachineUsage(broker.pid)
+    live = raw_live(broker, 1, tags=True, messages=TAG_MESSAGES)
+    figures = RawTagFigures(live, {rate: raw_latency(broker, rate, tags=True) for rate in TAG_RATES})
+    header(f"raw paho receive, tag messages: {TAG_MESSAGES:,} messages (two per sample: input tag, then output tag "
+           f"of the same instant) of {CHANNELS:,} channels, one value each as JSON {{v, ts (ms), q}}, one topic "
+           "filter", broker.description, usage)
+    print("   bare paho 2.x subscriber on the filter <prefix>/t/+/+ (as the service's one pattern tag entry), "
+          "on_message only counts; rate = received / (last - first arrival) while the publisher runs. latency: "
+          f"paced for {RAW_LATENCY_SECONDS:.0f} s, time.time() at on_message - ts, ts being the publisher's "
+          "time.time() (rounded down to the ms) just before it published the instant's input tag.")
+    _print_receive_rates([figures.live])
+    rows = []
+    for rate, run in figures.latency.items():
+        p50, p99, worst = percentiles(run["latency"])
+        rows.append([fmt(rate), f"{run['published']:,}", f"{run['received']:,}", fmt(run["publish_rate"]),
+                     ms(p50), ms(p99), ms(worst)])
+    print_table(["paced tag msg/s", "published", "received", "publisher msg/s", "p50 ms", "p99 ms", "max ms"], rows)
     return figures

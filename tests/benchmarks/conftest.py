@@ -9,7 +9,7 @@ import pytest
 
 from tests.benchmarks._common import environment_line
 from tests.benchmarks._mqtt_load import BROKER_LIMITS, Broker
-from tests.benchmarks._raw_paho import RawFigures, measure_raw
+from tests.benchmarks._raw_paho import RawFigures, RawTagFigures, measure_raw, measure_raw_tags
 from tests.support.mqtt_brokers import find_mosquitto, mosquitto_version, start_private_mosquitto
 
 
@@ -49,3 +49,10 @@ def bench_broker(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Broker]:
 def raw(bench_broker: Broker) -> RawFigures:
     """The bare paho subscriber's figures, measured once per run and printed beside every service figure."""
     return measure_raw(bench_broker)
+
+
+@pytest.fixture(scope="session")
+def raw_tags(bench_broker: Broker) -> RawTagFigures:
+    """The bare paho subscriber on the publisher's tag shape, measured once per run, printed beside the tag
+    benchmarks' figures."""
+    return measure_raw_tags(bench_broker)

@@ -15,7 +15,7 @@ from tests.benchmarks._raw_paho import RawFigures
 from tests.benchmarks._service_runs import (
     SERVICE_MESSAGES,
     check_service,
-    profile_one_sample_live,
+    profile_live,
     ratio_goal,
     report_ingest,
     service_drain,
@@ -30,5 +30,5 @@ def test_service_ingest_rate_backlog_drain(bench_broker: Broker, raw: RawFigures
     goal, met = ratio_goal(drained, raw.drain["rate"])
     report_ingest(drained, raw.drain, raw, goal=goal, met=met, broker=bench_broker, usage=usage, store=tmp_path)
     if not met:
-        profile_one_sample_live(bench_broker, tmp_path, drained)
+        profile_live(bench_broker, tmp_path, drained)
     check_service(drained)

@@ -15,7 +15,7 @@ from tests.benchmarks._raw_paho import RawFigures
 from tests.benchmarks._service_runs import (
     SERVICE_MESSAGES,
     check_service,
-    profile_one_sample_live,
+    profile_live,
     ratio_goal,
     report_ingest,
     service_live,
@@ -31,5 +31,5 @@ def test_service_ingest_rate_live_one_sample_per_message(bench_broker: Broker, r
     goal, met = ratio_goal(single, raw.live["rate"])
     report_ingest(single, raw.live, raw, goal=goal, met=met, broker=bench_broker, usage=usage, store=tmp_path)
     if not met:
-        profile_one_sample_live(bench_broker, tmp_path, single)
+        profile_live(bench_broker, tmp_path, single)
     check_service(single)
