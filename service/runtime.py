@@ -143,7 +143,8 @@ class Runtime:
         if not mqtt:
             self.ingest = None
         elif config.broker.ingest == "process":
-            self.ingest = ProcessIngest(settings, self.topics, self._from_mqtt, submit_all=self._all_from_mqtt)
+            self.ingest = ProcessIngest(settings, self.topics, self._from_mqtt, submit_all=self._all_from_mqtt,
+                                        tag_decoders=None if self.tag_path is None else self.tag_path.registry)
         else:
             self.ingest = MqttIngest(settings, self.topics, self._from_mqtt)
         self.persistence: Persistence | None = None       # opened in start(), under the lock

@@ -23,10 +23,12 @@ import queue
 import threading
 import time
 from collections.abc import Callable, Mapping
-from typing import Any
+from typing import Any, Protocol
 
 from service.broker_link.messages import DeadLetter, Message
 from service.broker_link.mqtt_client import PUBLISH_WAIT, BrokerSettings, MqttIngest
+from service.broker_link.payload import Refusal
+from service.broker_link.tag_reading import TagReading
 
 __all__ = ["ProcessIngest"]
 
@@ -37,8 +39,18 @@ OUTGOING_QUEUE = 10_000         # messages to publish (dead letters, alarms) wai
 DRAIN_SECONDS = 2.0             # at stop, the child publishes what is still waiting for this long at most
 
 
-# One message as the child hands it over: (channel, payload, topic, received, ack, redelivered).
-_Handed = tuple[str | None, bytes, str | None, float, tuple[int, int] | None, bool]
+# One message as the child hands it over: (channel, payload, topic, received, ack, redelivered, reading).
+_Handed = tuple[str | None, bytes, str | None, float, tuple[int, int] | None, bool, TagReading | Refusal | None]
+
+
+class TagDecoders(Protocol):
+    """Which decoder reads a tag topic's messages (a copy of the service's tag registry, in the child)."""
+
+    def decoder_for(self, topic: str) -> TagDecoder | None: ...
+
+
+class TagDecoder(Protocol):
+    def decode(self, payload: bytes, arrival: float) -> TagReading | Refusal: ...
 
 
 class _Batcher:
@@ -85,6 +97,15 @@ class _Batcher:
         self._thread.join(5.0)
 
 
+def _decoded(decoders: TagDecoders | None, message: Message) -> TagReading | Refusal | None:
+    """A tag message decoded here, on this process's own interpreter, so the engine need not (None: not a
+    tag message, or no decoder names its topic; the engine decides what it is)."""
+    if decoders is None or message.channel is not None or message.topic is None:
+        return None
+    decoder = decoders.decoder_for(message.topic)
+    return None if decoder is None else decoder.decode(message.payload, message.received)
+
+
 def _carry_out(ingest: MqttIngest, item: tuple[Any, ...], wait: float = PUBLISH_WAIT) -> None:
     """One request from the service: ``("publish", topic, payload, retain)`` or ``("ack", acks)``."""
     try:
@@ -99,13 +120,13 @@ def _carry_out(ingest: MqttIngest, item: tuple[Any, ...], wait: float = PUBLISH_
 
 def _child(settings: BrokerSettings, topics: dict[str, str | None], out: Any, outgoing: Any, stop: Any,
            connected: Any, subscribed: Any, reconnects: Any, errors: Any, protocol: Any, failures: Any,
-           parent: int) -> None:
+           parent: int, decoders: TagDecoders | None) -> None:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s[ingest]: %(message)s")
     batcher = _Batcher(out)
 
     def hand_over(message: Message) -> bool:
         batcher.add((message.channel, message.payload, message.topic, message.received, message.ack,
-                     message.redelivered))
+                     message.redelivered, _decoded(decoders, message)))
         return True
 
     ingest = MqttIngest(settings, topics, hand_over)
@@ -141,7 +162,8 @@ class ProcessIngest:
 
     def __init__(self, settings: BrokerSettings, topics: Mapping[str, str | None],
                  submit: Callable[[Message], bool], *,
-                 submit_all: Callable[[list[Message]], int] | None = None) -> None:
+                 submit_all: Callable[[list[Message]], int] | None = None,
+                 tag_decoders: TagDecoders | None = None) -> None:
         self.settings = settings
         self._topics = dict(topics)
         # Hands one list from the child over whole (blocking while full); else message by message.
@@ -160,7 +182,7 @@ class ProcessIngest:
         self._process = context.Process(
             target=_child, name="rwls-ingest", daemon=True,
             args=(settings, self._topics, self._out, self._outgoing, self._stop, self._connected, self._subscribed,
-                  self._reconnects, self._errors, self._protocol, self._failures, os.getpid()))
+                  self._reconnects, self._errors, self._protocol, self._failures, os.getpid(), tag_decoders))
         self._reader: threading.Thread | None = None
         self._stopping = threading.Event()
         self.received = 0
@@ -229,8 +251,9 @@ class ProcessIngest:
             except (EOFError, OSError):
                 return
             self.received += len(items)
-            self._submit_all([Message(channel, payload, "mqtt", topic, received, ack=ack, redelivered=redelivered)
-                              for channel, payload, topic, received, ack, redelivered in items])
+            self._submit_all([Message(channel, payload, "mqtt", topic, received, ack=ack, redelivered=redelivered,
+                                      reading=reading)
+                              for channel, payload, topic, received, ack, redelivered, reading in items])
 
     def stop(self, timeout: float = 5.0) -> None:
         """Stop the child (its client disconnects), then let the reader hand over what is left."""

@@ -10,6 +10,7 @@ from enum import StrEnum
 
 from estimator import SampleRefusal
 from service.broker_link.payload import DecodedSample, PayloadRefusal, Refusal
+from service.broker_link.tag_reading import TagReading
 from service.broker_link.tag_refusal import TagRefusal
 
 __all__ = ["DeadLetter", "EngineRefusal", "Message", "RefusalReason"]
@@ -43,6 +44,7 @@ class Message:
     ack: tuple[int, int] | None = None        # (connection, message id): acknowledge once in the synced log
     durable: threading.Event | None = None    # set once the message is in the synced log (HTTP waits on it)
     redelivered: bool = False                 # the broker's DUP flag: it may have sent this one before
+    reading: TagReading | Refusal | None = None   # a tag message decoded by the ingest process already
 
 
 @dataclass(frozen=True)

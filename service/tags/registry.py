@@ -246,6 +246,18 @@ class TagRegistry:
             return None
         return self._bind(topic, entry, entry.pattern.tag_id(levels))
 
+    def decoder_for(self, topic: str) -> NumberTagDecoder | JsonTagDecoder | None:
+        """The decoder :meth:`resolve` would name for ``topic`` (None: no entry names it), without binding
+        anything: the same answer in any process holding a copy of this registry (the ingest process
+        decodes tag messages with it; the engine still resolves which tag each one is)."""
+        match = self._exact.get(topic) or self._bound.get(topic)
+        if match is not None:
+            return match.decoder
+        if not self._patterns:
+            return None
+        entry = _find(self._root, topic.split("/"), 0, topic.startswith("$"))
+        return None if entry is None else entry.decoder
+
     def _bind(self, topic: str, entry: _PatternEntry, tag_id: str) -> TagMatch | Refusal:
         try:
             check_tag_id(tag_id)

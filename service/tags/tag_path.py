@@ -28,10 +28,12 @@ from numpy.typing import NDArray
 
 from estimator import SampleColumns
 from service.broker_link.payload import Refusal
+from service.broker_link.tag_reading import TagReading
 from service.config.settings import ConfigError, RwlsConfig
 from service.tags.assembler import AssembledBatch, ChannelSamples, SampleAssembler
 from service.tags.registry import TagConfigError, TagMatch, TagRegistry
 from service.tags.tag_list import read_tag_list
+from service.tags.tag_payload import TagDecoder
 
 __all__ = ["TagBatch", "TagPath", "TaggedMessage", "sample_columns", "tag_path_of"]
 
@@ -49,6 +51,9 @@ class TaggedMessage(Protocol):
 
     @property
     def received(self) -> float: ...
+
+    @property
+    def reading(self) -> TagReading | Refusal | None: ...
 
 
 @dataclass(frozen=True)
@@ -90,6 +95,9 @@ class TagPath:
     def __init__(self, registry: TagRegistry, assembler: SampleAssembler) -> None:
         self.registry = registry
         self.assembler = assembler
+        # Topic -> (the assembler's index of its tag, None for a tag no channel names; its decoder), for
+        # every topic the registry matched to a tag: a binding is for good, so one look-up per message.
+        self._routes: dict[str, tuple[int | None, TagDecoder]] = {}
 
     @classmethod
     def from_config(cls, config: RwlsConfig) -> TagPath | None:
@@ -131,7 +139,11 @@ class TagPath:
         return self.registry.subscriptions()
 
     def take(self, messages: Sequence[TaggedMessage]) -> TagBatch:
-        """Resolve, decode and assemble messages in the order given (arrival order)."""
+        """Resolve, decode and assemble messages in the order given (arrival order).
+
+        A message the ingest process decoded already (``reading``) is not decoded again: both used
+        the decoder the registry names for its topic.
+        """
         refused: list[tuple[int, Refusal]] = []
         unknown: list[int] = []
         unused = 0
@@ -140,20 +152,24 @@ class TagPath:
         times: list[float] = []
         values: list[float] = []
         good: list[bool] = []
-        resolve, index_of = self.registry.resolve, self.assembler.index_of
+        routes = self._routes
         for i, message in enumerate(messages):
-            match = None if message.topic is None else resolve(message.topic)
-            if match is None:
-                unknown.append(i)
-                continue
-            if not isinstance(match, TagMatch):
-                refused.append((i, match))
-                continue
-            reading = match.decoder.decode(message.payload, message.received)
+            topic = message.topic
+            route = routes.get(topic) if topic is not None else None
+            if route is None:
+                found = self._route(topic)
+                if found is None:
+                    unknown.append(i)
+                    continue
+                if isinstance(found, Refusal):
+                    refused.append((i, found))
+                    continue
+                route = found
+            k, decoder = route
+            reading = message.reading or decoder.decode(message.payload, message.received)
             if isinstance(reading, Refusal):
                 refused.append((i, reading))
                 continue
-            k = index_of(match.tag_id)
             if k is None:
                 unused += 1
                 continue
@@ -171,6 +187,16 @@ class TagPath:
                                         for cid, s in assembled.samples.items()},
                                        assembled.refusals, assembled.not_newer)
         return TagBatch(assembled, refused, unknown, unused)
+
+    def _route(self, topic: str | None) -> tuple[int | None, TagDecoder] | Refusal | None:
+        """A topic not seen before (or refused before): the registry's answer, remembered when it is a tag."""
+        if topic is None:
+            return None
+        match = self.registry.resolve(topic)
+        if not isinstance(match, TagMatch):
+            return match
+        route = self._routes[topic] = (self.assembler.index_of(match.tag_id), match.decoder)
+        return route
 
     # -------------------------------------------------------------------------------------------- state
     def export_state(self) -> tuple[dict[str, NDArray[Any]], dict[str, object]]:
@@ -190,5 +216,6 @@ class TagPath:
         own = {name.removeprefix(_STATE_PREFIX): array for name, array in arrays.items()
                if name.startswith(_STATE_PREFIX)}
         unknown = self.assembler.import_state(own, meta["assembler"])
+        self._routes.clear()
         dropped = self.registry.import_bindings((str(topic), str(tag_id)) for topic, tag_id in meta["bindings"])
         return {"unknown_tags": unknown, "dropped_topics": dropped}

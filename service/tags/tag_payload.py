@@ -37,13 +37,13 @@ and the sample assembly decides what that means (:mod:`service.tags.assembler`).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Protocol
 
 import msgspec
 
 from service.broker_link.payload import Refusal
+from service.broker_link.tag_reading import TagReading
 from service.broker_link.tag_refusal import TAG_PAYLOAD_REASONS, TagRefusal
 from service.broker_link.text_values import parse_number
 from service.config.tag_settings import TagFormatConfig
@@ -55,15 +55,6 @@ PAYLOAD_REASONS = TAG_PAYLOAD_REASONS
 
 _DETAIL_CHARS = 40
 _MS_PER_S = 1000.0
-
-
-@dataclass(frozen=True, slots=True)
-class TagReading:
-    """One decoded tag message: ``value`` (finite), ``t`` (epoch seconds, finite), ``good`` quality."""
-
-    value: float
-    t: float
-    good: bool
 
 
 class TagDecoder(Protocol):

@@ -186,3 +186,27 @@ def test_tag_state_in_a_checkpoint_forms_the_same_samples_after_a_restart() -> N
         assert a.parameters.tobytes() == b.parameters.tobytes()
         assert a.covariance.tobytes() == b.covariance.tobytes()
     assert np.isfinite(whole.bank.view(["twin"])["twin"].parameters).all()
+
+
+def test_the_ingest_process_decodes_with_the_decoder_the_engine_would_use_and_the_engine_trusts_it() -> None:
+    from service.broker_link.child_process import _decoded
+    from service.broker_link.tag_reading import TagReading
+    from service.tags.registry import TagMatch
+
+    config = _config()
+    path = tag_path_of(config)
+    assert path is not None
+    registry = path.registry
+    for topic in ("gw/s7/FT1/value", "plant/spare", "gw/nothing/here", "gw/s7/FT1/value/more"):
+        match = registry.resolve(topic)
+        expected = match.decoder if isinstance(match, TagMatch) else None
+        assert registry.decoder_for(topic) is expected, topic
+    good, _ = _stream(1)
+    assert _decoded(registry, good[0]) == TagReading(good[0 + 0].payload and json.loads(good[0].payload)["v"],
+                                                      EPOCH_MS / 1000.0, True)
+    assert _decoded(registry, Message("flow", b"{}", "mqtt", topic="plant/flow")) is None   # a whole sample
+    # The engine does not decode a message the ingest process decoded: a reading given wins over the bytes.
+    engine, letters = _engine(config)
+    engine._process([Message(m.channel, b"not json", m.source, topic=m.topic, received=m.received,
+                             reading=_decoded(registry, m)) for m in good])
+    assert letters == [] and engine.stats.samples_applied == 2
