@@ -89,7 +89,6 @@ class TagUpdate:
 @dataclass(frozen=True)
 class _Scan:
     channel: ChannelTags
-    index: int                                 # the channel's place in the scan order
     k: int
     t: float                                   # the output's stamp
     readings: dict[str, tuple[float, str]]     # tag -> (value, quality): inputs first, then the output
@@ -113,33 +112,33 @@ def _scans(rng: np.random.Generator, samples: int, step: float, start: float) ->
         ref_temp = 82.0 + 9.0 * daily + rng.normal(0.0, 1.5)
         junction_sigma = 0.12 * (1.0 + max(0.0, day - 8.0) * 0.12)   # grows from day 8
         supply = 0.35 + 1.002 * ref_temp + rng.normal(0.0, junction_sigma)
-        yield _Scan(supply_temp, 0, k, t, {"sub7.TT-102": (ref_temp, GOOD), "sub7.TT-101": (supply, GOOD)})
+        yield _Scan(supply_temp, k, t, {"sub7.TT-102": (ref_temp, GOOD), "sub7.TT-101": (supply, GOOD)})
 
         speed = float(np.clip(0.7 + 0.2 * daily + rng.normal(0.0, 0.08), 0.3, 1.0))
         gain = 55.0 * (1.0 + 0.002 * max(0.0, day - 10.0))          # creeps from day 10
         flow_rate = 2.0 + gain * speed + 18.0 * speed * speed + rng.normal(0.0, 0.4)
-        yield _Scan(flow, 1, k, t + 1.0, {"sub7.SC-101": (speed, GOOD), "sub7.FT-101": (flow_rate, GOOD)})
+        yield _Scan(flow, k, t + 1.0, {"sub7.SC-101": (speed, GOOD), "sub7.FT-101": (flow_rate, GOOD)})
 
         ref_dp = 48.0 + 6.0 * daily + rng.normal(0.0, 2.0)
         offset = 0.9 if day >= 18.0 else 0.0                            # step on day 18
         dp = 0.05 + 0.998 * ref_dp + offset + rng.normal(0.0, 0.15)
-        yield _Scan(return_dp, 2, k, t + 2.0, {"sub7.PDT-302": (ref_dp, GOOD), "sub7.PDT-301": (dp, GOOD)})
+        yield _Scan(return_dp, k, t + 2.0, {"sub7.PDT-302": (ref_dp, GOOD), "sub7.PDT-301": (dp, GOOD)})
 
         load = float(np.clip(0.65 + 0.3 * daily + rng.normal(0.0, 0.05), 0.2, 1.0))
         o2_sigma = 0.04 * math.exp(1.6 * load)                          # noisier at high load
         o2 = 1.2 + 0.6 * o2_previous - 1.1 * load + rng.normal(0.0, o2_sigma)
         o2_previous = o2
-        yield _Scan(stack_o2, 3, k, t + 3.0, {"sub7.JT-401": (load, GOOD), "sub7.AT-401": (o2, GOOD)})
+        yield _Scan(stack_o2, k, t + 3.0, {"sub7.JT-401": (load, GOOD), "sub7.AT-401": (o2, GOOD)})
 
         ref_return = 55.0 + 6.0 * daily + shaped.normal(0.0, 1.0)
         heavy = 0.1 * shaped.standard_t(3.0) / math.sqrt(3.0)            # variance of t_3 is 3
         returned = 0.2 + 0.998 * ref_return + heavy
         probe = (_BATH, MAINTENANCE) if _in_check(t + 4.0, start) else (ref_return, GOOD)
-        yield _Scan(return_temp, 4, k, t + 4.0, {"sub7.TT-202": probe, "sub7.TT-201": (returned, GOOD)})
+        yield _Scan(return_temp, k, t + 4.0, {"sub7.TT-202": probe, "sub7.TT-201": (returned, GOOD)})
 
         pressure = 1.5 + 0.1 * daily + shaped.normal(0.0, 0.02)
         level = 0.4 + 0.9 * pressure + shaped.normal(0.0, 0.02)
-        yield _Scan(level_channel, 5, k, t + 5.0, {"sub7.PT-501": (pressure, GOOD),
+        yield _Scan(level_channel, k, t + 5.0, {"sub7.PT-501": (pressure, GOOD),
                                                    "sub7.LT-501": (LEVEL_STEP * round(level / LEVEL_STEP), GOOD)})
 
 
