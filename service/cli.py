@@ -98,8 +98,8 @@ def build_parser() -> argparse.ArgumentParser:
                           + ADVISORY)
     demo.add_argument("--host", default="127.0.0.1", help="address the HTTP face listens on")
     demo.add_argument("--port", type=int, default=8080, help="HTTP port (0: any free port, printed at start)")
-    demo.add_argument("--rate", type=float, default=100.0, help="samples per second the plant publishes, all "
-                                                                "channels together")
+    demo.add_argument("--rate", type=float, default=200.0, help="tag messages per second the plant publishes, "
+                                                                "all tags together")
     demo.add_argument("--data-dir", default="rwls-demo-data",
                       help="where the demo keeps its state, relative to the working directory; delete it to start "
                            "the plant's month afresh")
@@ -113,15 +113,25 @@ def build_parser() -> argparse.ArgumentParser:
     token.add_argument("--role", required=True, choices=list(ROLES), help="what it may do (see README, Access)")
 
     helptext = "publish the demo plant (Larkspur Valley, substation 7) to a broker"
-    simulate = sub.add_parser("simulate", help=helptext, formatter_class=_HelpWithDefaults,
-                              description=helptext + ", QoS 1, one JSON sample per message on <prefix>/sub7/<name>, "
-                              "in compressed time (each sample advances the plant clock by ten minutes).")
+    simulate = sub.add_parser("simulate", help=helptext, formatter_class=_HelpWithDefaults, description=(
+        helptext + ", QoS 1, in compressed time (each scan advances the plant clock by ten minutes). "
+        "--payload tags (the default): one topic per instrument tag, <prefix>/sub7/<TAG> and "
+        "<prefix>/sub7/boiler/<TAG>, each message JSON {\"v\": value, \"ts\": epoch milliseconds, \"q\": "
+        "quality}; at every scan each channel's input tags before its output tag; the return reference probe and "
+        "the vessel level by exception (only when they change). examples/larkspur_sub7.toml assembles the "
+        "channels from them. --payload samples: rwls's own sample payload instead, one topic per channel, "
+        "<prefix>/sub7/<channel>, each message {\"t\", \"y\", \"u\", \"seq\"} (examples/"
+        "larkspur_sub7_samples.toml)."))
     simulate.add_argument("--broker", default="mqtt://127.0.0.1:1883", help="mqtt://host:port")
-    simulate.add_argument("--prefix", default="larkspur", help="topic prefix (channels go under it)")
-    simulate.add_argument("--rate", type=float, default=200.0, help="messages per second, all channels together")
-    simulate.add_argument("--samples", type=int, help="samples per channel (default: until Ctrl-C)")
+    simulate.add_argument("--prefix", default="larkspur", help="topic prefix (the plant's topics go under it)")
+    simulate.add_argument("--payload", default="tags", choices=["tags", "samples"],
+                          help="tags: one message per instrument tag; samples: one whole sample per channel")
+    simulate.add_argument("--rate", type=float, default=200.0, help="messages per second, all topics together")
+    simulate.add_argument("--samples", type=int, metavar="SCANS",
+                          help="scans of the plant to publish, ten minutes of plant time each (default: until "
+                               "Ctrl-C)")
     simulate.add_argument("--seed", type=int, default=7, help="seed of the plant's noise: the same seed publishes "
-                                                              "the same samples")
+                                                              "the same messages")
     return parser
 
 
@@ -205,11 +215,11 @@ def _simulate(args: argparse.Namespace) -> int:
     from service.demo.simulate import simulate
 
     broker = parse_config({"channels": {"x": {"terms": ["1"]}}, "broker": {"url": args.broker}}).broker
-    print(f"rwls simulate: publishing the demo plant to {args.broker} under {args.prefix}/ at {args.rate:g}/s",
-          flush=True)
+    print(f"rwls simulate: publishing the demo plant's {args.payload} to {args.broker} under {args.prefix}/ at "
+          f"{args.rate:g} messages/s", flush=True)
     try:
-        stats = simulate(broker.host, broker.port, prefix=args.prefix, rate=args.rate, samples=args.samples,
-                         seed=args.seed)
+        stats = simulate(broker.host, broker.port, prefix=args.prefix, payload=args.payload, rate=args.rate,
+                         samples=args.samples, seed=args.seed)
     except ConnectionError as exc:
         print(f"rwls simulate: {exc}", file=sys.stderr)
         return 1

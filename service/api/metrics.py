@@ -34,6 +34,17 @@ class _EngineCollector(Collector):
                                   value=stats.samples_warmup)
         yield CounterMetricFamily("rwls_redelivered", "Broker redeliveries of messages already logged (not applied)",
                                   value=stats.redelivered)
+        # Copies first: the engine thread adds channels and reasons while a scrape reads them.
+        not_formed = CounterMetricFamily("rwls_samples_not_formed", "Output tag updates that formed no sample "
+                                         "(the tag messages were fine)", labels=["channel", "reason"])
+        for cid, counts in sorted(dict(stats.not_formed).items()):
+            for reason, count in sorted(dict(counts).items()):
+                not_formed.add_metric([cid, str(reason)], count)
+        yield not_formed
+        yield CounterMetricFamily("rwls_tag_updates_not_newer", "Tag updates stamped no later than the tag's "
+                                  "newest kept one (not kept)", value=stats.tag_updates_not_newer)
+        yield CounterMetricFamily("rwls_tag_updates_unused", "Good updates of tags no channel names",
+                                  value=stats.tag_updates_unused)
         refusals = CounterMetricFamily("rwls_rejections", "Refused messages or samples", labels=["reason"])
         for reason, count in sorted(self._runtime.refusals().items()):
             refusals.add_metric([reason], count)

@@ -2,8 +2,8 @@
 
 An embedded MQTT broker on a free loopback port, the demo plant publishing to
 it, the service (engine, ingest, API) with its data directory, and the URL
-printed. Channel tables come from
-``examples/larkspur_sub7.toml``'s twin below (a test keeps the two equal).
+printed. The plant publishes its tags (``rwls simulate``'s default shape) and the service assembles
+the channels from them, as ``examples/larkspur_sub7.toml`` configures (:data:`DEMO_CONFIG` is its copy).
 """
 
 from __future__ import annotations
@@ -12,6 +12,7 @@ import logging
 import threading
 import tomllib
 from datetime import UTC, datetime
+from pathlib import Path
 
 import uvicorn
 
@@ -24,57 +25,19 @@ from service.demo.embedded_broker import EmbeddedBroker
 from service.demo.simulate import simulate
 from service.runtime import Runtime, exit_on_signal
 
-__all__ = ["DEMO_CHANNELS_TOML", "demo_config", "recovered_positions", "run_demo"]
+__all__ = ["DEMO_CONFIG", "demo_config", "recovered_positions", "run_demo"]
 
 log = logging.getLogger(__name__)
 
-DEMO_CHANNELS_TOML = '''
-[channels."sub7.supply_temp"]
-topic = "larkspur/sub7/supply_temp"
-terms = ["1", "ref_temp"]
-forgetting_factor = 0.999
-weighting = "tracked"
-noise = { half_life = 300, robust = true, initial_sigma = 0.2 }
-
-[channels."sub7.flow"]
-topic = "larkspur/sub7/flow"
-terms = ["1", "pump_speed", "pump_speed^2"]
-forgetting_factor = 0.995
-weighting = "unit"
-
-[channels."sub7.return_dp"]
-topic = "larkspur/sub7/return_dp"
-terms = ["1", "ref_dp"]
-forgetting_factor = 0.995
-weighting = "unit"
-weight_rules = [{ input = "ref_dp", low = 44.0, high = 52.0, factor = 2.0 }]
-noise = { robust = true }
-
-[channels."sub7.stack_o2"]
-topic = "larkspur/sub7/stack_o2"
-terms = ["1", "y[-1]", "load"]
-forgetting_factor = 0.999
-weighting = "tracked"
-noise = { half_life = 500, model_terms = ["1", "load"], initial_sigma = 0.1 }
-
-[channels."sub7.return_temp"]
-topic = "larkspur/sub7/return_temp"
-terms = ["1", "ref_return"]
-forgetting_factor = 0.999
-weighting = "tracked"
-noise = { half_life = 300, robust = true, initial_sigma = 0.2 }
-
-[channels."sub7.level"]
-topic = "larkspur/sub7/level"
-terms = ["1", "pressure"]
-forgetting_factor = 0.995
-weighting = "unit"
-'''
+DEMO_CONFIG = Path(__file__).with_name("larkspur_sub7.toml")
+"""The demo plant's tags and channels: a copy of ``examples/larkspur_sub7.toml``, with its tag list beside it
+(a test keeps both files equal to the examples)."""
 
 
 def demo_config(broker_url: str, data_dir: str, engineer_token: str | None = None) -> RwlsConfig:
     """The demo channels against a broker URL, with the store in ``data_dir`` (and one engineer token)."""
-    data = tomllib.loads(DEMO_CHANNELS_TOML)
+    data = tomllib.loads(DEMO_CONFIG.read_text(encoding="utf-8"))
+    data["tags"]["files"] = [str(DEMO_CONFIG.with_name(name)) for name in data["tags"]["files"]]
     # The embedded broker speaks MQTT 3.1.1: say so, rather than probe with v5 and have it log the refusal.
     data["broker"] = {"url": broker_url, "client_id": "rwls-demo", "protocol": "3.1.1"}
     data["store"] = {"path": data_dir}
@@ -90,7 +53,7 @@ def recovered_positions(runtime: Runtime) -> dict[str, float]:
             if entry.last_t is not None}
 
 
-def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, data_dir: str = "rwls-demo-data",
+def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 200.0, data_dir: str = "rwls-demo-data",
              exit_after: float | None = None) -> int:
     """Run the demo until Ctrl-C (or ``exit_after`` seconds); returns the exit status.
 
@@ -119,7 +82,7 @@ def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, 
         if runtime.ingest is not None and not runtime.ingest.wait_subscribed(30.0):
             log.error("the service did not subscribe to the embedded broker within 30 s; the plant publishes anyway")
         try:
-            simulate(broker.host, broker.port, prefix="larkspur", rate=rate, stop=stop,
+            simulate(broker.host, broker.port, prefix="larkspur", payload="tags", rate=rate, stop=stop,
                      client_id="rwls-demo-plant", resume_after=resume)
         except Exception:
             log.exception("demo plant stopped")
@@ -132,7 +95,8 @@ def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 100.0, 
     timer = threading.Thread(target=stopper, name="rwls-demo-timer", daemon=True)
     print(f"rwls demo: service at http://{host}:{actual_port}/ (API docs /docs, snapshot /api/v1/snapshot)",
           flush=True)
-    print(f"rwls demo: embedded MQTT broker at {broker.url}; plant publishing {rate:g} samples/s", flush=True)
+    print(f"rwls demo: embedded MQTT broker at {broker.url}; plant publishing its tags, {rate:g} messages/s",
+          flush=True)
     if resume:
         newest = datetime.fromtimestamp(max(resume.values()), UTC).strftime("%Y-%m-%d %H:%M UTC")
         print(f"rwls demo: state recovered from {data_dir}/; the plant carries on after {newest} (plant time); "

@@ -5,12 +5,14 @@ from __future__ import annotations
 import argparse
 import io
 import json
+from collections import Counter
 from pathlib import Path
 
 import numpy as np
 import pytest
 
 from service.cli import build_parser, main
+from service.demo.plant import larkspur_substation7
 from service.offline.progress import Progress
 
 REPO = Path(__file__).resolve().parents[2]
@@ -35,9 +37,14 @@ def test_demo_replay_reports_every_channel(capsys: pytest.CaptureFixture[str]) -
     channels = result["channels"]
     assert sorted(channels) == ["sub7.flow", "sub7.level", "sub7.return_dp", "sub7.return_temp", "sub7.stack_o2",
                                 "sub7.supply_temp"]
+    # A month of scans (4320 at 10 min): a sample at each for the channels whose tags publish at every scan,
+    # fewer for the return thermocouple (its probe's weekly checks) and the level (published by exception).
+    formed = Counter(s.channel for s in larkspur_substation7(np.random.default_rng(7), samples=4320))
+    assert {cid: report["samples"] + report["warmup"] for cid, report in channels.items()} == formed
     assert channels["sub7.flow"]["samples"] == 4320
     assert (channels["sub7.stack_o2"]["samples"], channels["sub7.stack_o2"]["warmup"]) == (4319, 1)
-    assert result["rows"] == 6 * 4320 and result["bad_rows"] == 0
+    assert formed["sub7.return_temp"] < 4320 and formed["sub7.level"] < 4320
+    assert result["rows"] == sum(formed.values()) and result["bad_rows"] == 0
     for report in channels.values():
         assert set(report) >= {"terms", "parameters", "std_errors", "covariance", "residual_sd",
                                "noise_sigma", "samples", "rejected"}
@@ -159,17 +166,18 @@ def test_progress_bar_draws_only_when_enabled() -> None:
     assert hidden.getvalue() == ""     # StringIO is not a terminal
 
 
-def test_demo_channels_are_those_of_the_bundled_example() -> None:
-    # One plant: `rwls demo` (built in) and `examples/larkspur_sub7.toml` (replay) must not drift apart.
-    import tomllib
-
-    from service.config.settings import load_config, parse_config
-    from service.demo.run import DEMO_CHANNELS_TOML
+def test_demo_channels_are_those_of_the_bundled_example(tmp_path: Path) -> None:
+    # One plant: `rwls demo` (its own copy of the files) and `examples/larkspur_sub7.toml` must not drift apart.
+    from service.config.settings import load_config
+    from service.demo.run import demo_config
 
     example = load_config(Path(__file__).resolve().parents[2] / "examples" / "larkspur_sub7.toml")
-    built_in = parse_config(tomllib.loads(DEMO_CHANNELS_TOML))
+    built_in = demo_config("mqtt://127.0.0.1:1883", str(tmp_path))
     assert built_in.channel_settings() == example.channel_settings()
-    assert {c: ch.topic for c, ch in built_in.channels.items()} == {c: ch.topic for c, ch in example.channels.items()}
+    assert built_in.channel_tags() == example.channel_tags()
+    assert (built_in.tags.formats, built_in.tags.tag) == (example.tags.formats, example.tags.tag)
+    assert [Path(name).read_bytes() for name in built_in.tags.files] == [
+        Path(name).read_bytes() for name in example.tags.files]
 
 
 def test_serve_on_a_taken_port_says_so_in_one_line(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -215,6 +223,18 @@ def test_demo_help_names_the_data_directory_default_and_where_it_lives(capsys: p
     text = " ".join(capsys.readouterr().out.split())
     assert "relative to the working directory" in text and "(default: rwls-demo-data)" in text
     assert "(default: 7)" not in text            # demo has no seed; simulate has
+
+
+def test_simulate_help_documents_both_payload_shapes(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit):
+        main(["simulate", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    assert "--payload {tags,samples}" in text and "(default: tags)" in text
+    assert "one topic per instrument tag, <prefix>/sub7/<TAG>" in text
+    assert '{"v": value, "ts": epoch milliseconds, "q": quality}' in text
+    assert "by exception" in text
+    assert '<prefix>/sub7/<channel>, each message {"t", "y", "u", "seq"}' in text
+    assert "messages per second" in text
 
 
 def test_problem_counts_by_reason_are_totals_and_only_the_listing_is_capped(

@@ -5,8 +5,12 @@ Larkspur Valley, substation 7 (invented, ``service/demo/plant.py``): the supply
 thermocouple's noise grows from day 8, the flowmeter's gain creeps from day
 10, the differential-pressure transmitter steps by 0.9 (6 sigma) on day 18;
 the flue-gas O2 channel stays healthy (its noise depends on load by design),
-and so do the return thermocouple (heavy-tailed noise) and the vessel level
-(published in coarse steps). The channel tables are the bundled
+and so do the return thermocouple (heavy-tailed noise; its reference probe
+publishes by exception and is checked an hour a week, when no sample forms) and
+the vessel level (5 cm steps, published by exception: a sample only when the
+level moved). The samples are those the plant's published tags form
+(``tests/unit/test_demo_tags.py`` holds the service's tag path to the same
+ones). The channel tables are the bundled
 ``examples/larkspur_sub7.toml``. The delay bounds below are our own code's
 measured behaviour on the invented plant, not published values: this guards
 the demo against regressions, it does not validate the detectors (the run
