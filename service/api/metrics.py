@@ -49,16 +49,6 @@ class _EngineCollector(Collector):
         for reason, count in sorted(self._runtime.refusals().items()):
             refusals.add_metric([reason], count)
         yield refusals
-        not_formed = CounterMetricFamily("rwls_samples_not_formed", "Channel samples that could not be formed "
-                                         "from good tag updates", labels=["channel", "reason"])
-        for channel, reasons in sorted(stats.not_formed.items()):
-            for reason, count in sorted(reasons.items()):
-                not_formed.add_metric([channel, reason], count)
-        yield not_formed
-        yield CounterMetricFamily("rwls_tag_updates_unused", "Good updates of tags no channel names",
-                                  value=stats.tag_updates_unused)
-        yield CounterMetricFamily("rwls_tag_updates_not_newer", "Tag updates stamped no later than the tag's newest "
-                                  "(kept out of assembly)", value=stats.tag_updates_not_newer)
         yield CounterMetricFamily("rwls_dead_letter_failures", "Dead letters the broker did not take",
                                   value=stats.dead_letter_failures)
         yield GaugeMetricFamily("rwls_queue_depth", "Messages waiting for the engine", value=runtime.intake.qsize())

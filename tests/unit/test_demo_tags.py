@@ -50,6 +50,7 @@ class _Received:
     topic: str
     payload: bytes
     received: float
+    reading: None = None          # not decoded by an ingest process: the tag path decodes it
 
 
 def _published(scans: int = SCANS) -> list[_Received]:
