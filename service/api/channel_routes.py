@@ -83,13 +83,20 @@ class FlatSnapshot:
         # Each replaced whole (one reference, atomic), since handlers run on several threads at once.
         self._body: tuple[int, bytes] = (-1, b"")
         self._document: tuple[int, dict[str, Any]] = (-1, {})
+        # Per chunk of channels: the chunk the joined fragments were made of, and them. A chunk no publish
+        # touched since is the same object, so only the touched chunks are joined again.
+        self._joined: tuple[tuple[object, bytes], ...] = ()
 
     def body(self, snap: Snapshot) -> bytes:
         version, body = self._body
         if version != snap.version:
-            fragments = b",".join(entry.fragment for entry in snap.channels.values())
+            before = self._joined
+            joined = tuple(before[i] if i < len(before) and before[i][0] is chunk
+                           else (chunk, b",".join(entry.fragment for entry in chunk.values()))
+                           for i, chunk in enumerate(snap.channels.chunks))
+            self._joined = joined
             head = json.dumps({"version": snap.version, "created_at": snap.created_at})[:-1].encode()
-            body = head + b', "channels": {' + fragments + b"}}"
+            body = head + b', "channels": {' + b",".join(part for _, part in joined if part) + b"}}"
             self._body = (snap.version, body)
         return body
 

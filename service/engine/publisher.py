@@ -18,6 +18,7 @@ from estimator import ChannelBank, ViewBlock
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import AlarmBook
 from service.engine.activity import ChannelActivity
+from service.engine.channel_entries import ChannelEntries
 from service.engine.snapshot import ChannelEntry, FragmentWriter, Snapshot, channel_quality
 
 __all__ = ["PublishHook", "SnapshotPublisher"]
@@ -56,7 +57,7 @@ class SnapshotPublisher:
         self._alarms_changed = False
         self._last_publish = 0.0
         now = clock()
-        self._snapshot = Snapshot(0, now, self._entries(bank.channel_ids, now),
+        self._snapshot = Snapshot(0, now, ChannelEntries.of(self._entries(bank.channel_ids, now)),
                                   tuple(alarms.alarms()) if alarms is not None else ())
 
     @property
@@ -114,9 +115,8 @@ class SnapshotPublisher:
     def _publish(self, channels: list[str]) -> None:
         self._last_publish = time.monotonic()
         now = self._clock()
-        entries = dict(self._snapshot.channels)
         fresh = self._entries(channels, now)
-        entries.update(fresh)
+        entries = self._snapshot.channels.replaced(fresh)
         for hook in self._hooks:
             hook(fresh, now)
         alarms = self._snapshot.alarms

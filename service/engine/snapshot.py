@@ -12,11 +12,11 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Mapping
 from dataclasses import dataclass
 
 from estimator import CONDITION_LIMIT, ChannelView, ViewBlock
 from service.alarms.lifecycle import Alarm
+from service.engine.channel_entries import ChannelEntries
 from service.engine.quality import Quality, QualityReason, estimates_shown
 
 __all__ = ["CONDITION_LIMIT", "REFUSED_IN_A_ROW", "ChannelEntry", "FragmentWriter", "Snapshot", "channel_quality"]
@@ -85,7 +85,7 @@ class Snapshot:
 
     version: int
     created_at: float
-    channels: Mapping[str, ChannelEntry]
+    channels: ChannelEntries                # channel id -> entry, in channel order
     alarms: tuple[Alarm, ...] = ()        # copies of every alarm, when the engine keeps an alarm book
 
 
