@@ -116,3 +116,23 @@ def test_a_channel_refusing_from_its_first_sample_is_bad_with_the_reason() -> No
     engine.flush_now()
     entry = engine.snapshot.channels["a"]
     assert (entry.quality, entry.quality_reason) == ("Bad", "samples_refused")
+
+
+def test_a_channel_goes_stale_by_the_clock_alone_and_is_published_once() -> None:
+    now = [5000.0]
+    engine = Engine(CHANNELS, stale_after=60.0, clock=lambda: now[0])
+    engine._process([_message("a", {"samples": [_sample(k) for k in range(1, 30)]}, received=5000.0)])
+    engine.publisher.flush()
+    assert engine.snapshot.channels["a"].quality == "Good"
+    now[0] = 5059.0
+    engine.publisher.refresh_quality()
+    assert engine.snapshot.channels["a"].quality == "Good"                 # 59 s: not yet
+    now[0] = 5061.0
+    engine.publisher.refresh_quality()
+    entry = engine.snapshot.channels["a"]
+    assert (entry.quality, entry.quality_reason) == ("Uncertain", "stale")
+    version = engine.snapshot.version
+    now[0] = 5100.0
+    engine.publisher.refresh_quality()
+    assert engine.snapshot.version == version                              # stale already: nothing to publish
+    assert engine.snapshot.channels["b"].quality_reason == "no_data"       # never updated: never stale
