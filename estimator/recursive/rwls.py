@@ -19,6 +19,16 @@ With ``A = 0`` at the start (diffuse prior) and ``lambda = 1`` the factor is
 exactly the R of a QR of the weighted data, so the recursive estimate equals
 batch WLS up to rounding.
 
+Unexcited directions stay unexcited. A row in the span of the rows so far
+(the same regressor again) leaves ``R_ii = 0`` in exact arithmetic. In floating
+point the rotations leave a residue ``~ eps |R_ki|`` (exact cancellation happens
+only with ``lambda = 1`` and equal weights); rotated in, it became ``R_ii`` and
+carried the row's residual into ``q_i``, so ``theta_i = q_i / R_ii ~ 1e12``, and
+the anti-windup below then held that value. Such residues are set to 0 (test
+and tolerance in ``_givens``): the channel stays not identifiable, with the basic
+solution (``theta_i = 0``) and no anti-windup, until a sample excites direction
+i, and from then on is the least-squares solution, as with ``lambda = 1``.
+
 Anti-windup. With ``lambda < 1`` and no excitation the information decays as
 ``lambda^k`` and P grows without bound; when excitation returns, the huge gain
 throws the estimate about. We bound the covariance, as the bounded-covariance
