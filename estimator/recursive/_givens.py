@@ -351,13 +351,15 @@ def covariance_diagonal_scalar(A: list[list[float]], j: int, n: int) -> float:
 
 
 def scalar_step(A: list[list[float]], zs: list[float], y: float, weight: float, sl: float, count: int,
-                limit: list[float] | None, inv_limit: list[float] | None) -> tuple[float, float]:
+                limit: list[float] | None, inv_limit: list[float] | None,
+                forgotten: float) -> tuple[float, float]:
     """One recursive update of one channel's augmented factor (lists, in place).
 
     The scalar twin of ``RecursiveWLSBank.update`` (see :mod:`estimator.recursive.rwls`):
     data row, residual-sum-of-squares element, covariance bound on parameter
-    ``count % n``. ``limit`` is None when no bound applies. Returns
-    ``(innovation, leverage)``.
+    ``count % n``. ``limit`` is None when no bound applies; ``forgotten`` is the
+    channel's ``f = 2 (lambda^-n - 1)`` that places the bound's pseudo-observation.
+    Returns ``(innovation, leverage)``.
     """
     n = len(zs)
     sw = math.sqrt(weight)
@@ -373,9 +375,12 @@ def scalar_step(A: list[list[float]], zs: list[float], y: float, weight: float, 
         if p_jj > limit[j]:
             amp = math.sqrt(inv_limit[j] - 1.0 / p_jj)
             theta = back_substitute_scalar(A, n)
+            excess = p_jj * inv_limit[j] - 1.0
+            held = theta[j]
+            anchor = held * (forgotten / excess) if excess > forgotten else held
             pseudo_row = [0.0] * (n + 1)
             pseudo_row[j] = amp
-            pseudo_row[n] = amp * theta[j]
+            pseudo_row[n] = amp * anchor
             rotate_rows_scalar(A, pseudo_row, None, first=j)
     if cos_product > 0.0:
         gamma = cos_product * cos_product
