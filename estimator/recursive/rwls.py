@@ -19,24 +19,54 @@ With ``A = 0`` at the start (diffuse prior) and ``lambda = 1`` the factor is
 exactly the R of a QR of the weighted data, so the recursive estimate equals
 batch WLS up to rounding.
 
+Unexcited directions stay unexcited. A row in the span of the rows so far
+(the same regressor again) leaves ``R_ii = 0`` in exact arithmetic. In floating
+point the rotations leave a residue ``~ eps |R_ki|`` (exact cancellation happens
+only with ``lambda = 1`` and equal weights); rotated in, it became ``R_ii`` and
+carried the row's residual into ``q_i``, so ``theta_i = q_i / R_ii ~ 1e12``, and
+the anti-windup below then held that value. Such residues are set to 0 (test
+and tolerance in ``_givens``): the channel stays not identifiable, with the basic
+solution (``theta_i = 0``) and no anti-windup, until a sample excites direction
+i, and from then on is the least-squares solution, as with ``lambda = 1``.
+
 Anti-windup. With ``lambda < 1`` and no excitation the information decays as
 ``lambda^k`` and P grows without bound; when excitation returns, the huge gain
 throws the estimate about. We bound the covariance, as the bounded-covariance
 family does (Salgado, Goodwin & Middleton 1988), by the mechanism of stabilised
 forgetting (Kulhavy & Zarrop 1993): information is added only where it is
-missing, as a pseudo-observation of a parameter at its current estimate.
-Each update checks one parameter j (cycling through them); if
-``P_jj > covariance_limit_j`` it rotates in the row ``sqrt(a) [e_j^T, theta_j]``
-with ``a = 1 / limit_j - 1 / P_jj``, which sets ``P_jj`` to the limit exactly
-(rank-one update of ``H``) without moving the estimate or the residual sum of
-squares. Between checks ``P_jj`` grows at most by ``1 / lambda`` per update, so
-once every j has been checked (n - 1 updates after the channel became
+missing, as a pseudo-observation of one parameter. Each update checks one
+parameter j (cycling through them); if ``P_jj > covariance_limit_j`` it rotates
+in the row ``sqrt(a) [e_j^T, m_j]`` with ``a = 1 / limit_j - 1 / P_jj``, which
+sets ``P_jj`` to the limit exactly (rank-one update of ``H``); rho is left alone
+(a prior, not data). Between checks ``P_jj`` grows at most by ``1 / lambda`` per
+update, so once every j has been checked (n - 1 updates after the channel became
 identifiable; before that an unchecked ``P_jj`` is whatever the first samples
 give) ``P_jj <= covariance_limit_j / lambda^(n-1)`` between updates, and
 ``/ lambda^n`` inside one before its check; with z = 0 the bound is attained.
 While the data keep every ``P_jj`` below its limit nothing is added and
 the recursion is exactly exponentially weighted WLS (so ``rwls fit`` agrees with
 it). The limit applies only when ``lambda < 1``: without forgetting P never grows.
+
+Where the pseudo-observation sits. By the bound, forgetting alone takes
+``excess = P_jj / limit_j - 1`` to at most ``lambda^-n - 1`` between two checks
+of j. Up to ``f = 2 (lambda^-n - 1)`` (twice, so rounding at the attained bound
+counts as forgetting) the missing information is what forgetting took from a
+value known to the limit: it goes back at ``m_j = theta_j`` and the estimate
+does not move (the hold). A larger excess means the data never determined
+``theta_j`` to the limit: a start with too little excitation, where
+``theta_j`` is noise over a tiny spread of the regressors (1e8 from a spread of
+1e-10 is plain least squares). Holding that value made it information worth
+``1 / limit``, which the data then took thousands of samples to outweigh. So
+only the share ``f / P_jj`` of ``a`` is held and the rest, never there, comes
+at the prior mean 0 (the diffuse start's estimate)::
+
+    m_j = theta_j min(1, f / excess)
+
+which takes ``theta_j`` to ``theta_j (1 + f) limit_j / P_jj`` where the other
+parameters are known: ``P_jj`` is read as the data's variance, ``limit_j`` as the
+prior's. An unexcited direction then carries the prior-anchored value, and
+excitation takes over within a few samples (the prior weighs ``1 / limit``).
+A limit below the start's ``P_jj`` thus acts as a prior at 0 while data are few.
 
 Innovation for free. After the data row has been rotated through R, its
 right-hand side entry is ``alpha = gamma^(1/2) sqrt(w) e`` with ``e`` the
@@ -198,6 +228,7 @@ class RecursiveWLSBank:
         self._limit: FloatArray = np.ascontiguousarray(limit.T)          # (n, K)
         self._inv_limit: FloatArray = 1.0 / self._limit
         self._has_limit = np.any(np.isfinite(self._limit), axis=0)
+        self._forgotten_excess: FloatArray = forgotten_excess(lam, n_params)
         self._all_unit_lambda = bool(np.all(lam == 1.0))
         self._workspace = Workspace(n_params, n_channels)
         self._all_channels = np.arange(n_channels)
@@ -332,7 +363,7 @@ class RecursiveWLSBank:
 
     def _bound_covariance(self, A: FloatArray, sel: slice | NDArray[np.intp], j: NDArray[np.int64],
                           due: NDArray[np.bool_], ws: Workspace) -> None:
-        """Where ``P_jj`` exceeds its limit, rotate in ``sqrt(a) [e_j^T, theta_j]`` (rho untouched).
+        """Where ``P_jj`` exceeds its limit, rotate in ``sqrt(a) [e_j^T, m_j]`` (rho untouched; m_j: module docstring).
 
         ``sel`` selects the bank columns of this batch (a slice for the whole bank).
         """
@@ -352,19 +383,32 @@ class RecursiveWLSBank:
         over = due & (p_jj > limit)
         if not over.any():
             return
-        amp = np.zeros(b)
-        amp[over] = np.sqrt(inv_limit[over] - 1.0 / p_jj[over])
+        every = bool(over.all())
+        # Both from p_jj before back_substitute reuses its buffer; excess = P_jj / limit - 1.
+        if every:
+            amp = np.sqrt(inv_limit - 1.0 / p_jj)
+            excess = p_jj * inv_limit - 1.0
+        else:
+            amp = np.zeros(b)
+            amp[over] = np.sqrt(inv_limit[over] - 1.0 / p_jj[over])
+            excess = p_jj[over] * inv_limit[over] - 1.0
         first = j0 if lockstep else int(j[over].min())
         theta = back_substitute(A, ws, stop=first)
+        theta_j = theta[j0] if lockstep else theta[j, cols]
+        forgotten = self._forgotten_excess[sel]
+        if every:
+            anchor = _anchor(excess, forgotten, theta_j)
+        else:
+            anchor = np.zeros(b)
+            anchor[over] = _anchor(excess, forgotten[over], theta_j[over])
         x = ws.row
         x.fill(0.0)
         if lockstep:
             x[j0] = amp
-            np.multiply(amp, theta[j0], out=x[n])
         else:
             x[j, cols] = amp
-            x[n] = amp * theta[j, cols]
-        if over.all() and lockstep:
+        np.multiply(amp, anchor, out=x[n])
+        if every and lockstep:
             rotate_rows(A, x, None, ws, first=first)
         else:
             rotate_rows(A, x, None, ws, skip_before=np.where(over, j, n))
@@ -398,7 +442,8 @@ class RecursiveWLSBank:
         bounded = bool(self._has_limit[channel])
         result = scalar_step(A, zs, y, weight, float(self._sqrt_lambda[channel]), count,
                              self._limit[:, channel].tolist() if bounded else None,
-                             self._inv_limit[:, channel].tolist() if bounded else None)
+                             self._inv_limit[:, channel].tolist() if bounded else None,
+                             float(self._forgotten_excess[channel]))
         self._A[:, :, channel] = A
         lam = float(self._lambda[channel])
         self._n_eff[channel] = lam * float(self._n_eff[channel]) + 1.0
@@ -520,6 +565,26 @@ class RecursiveWLSBank:
     def sample_count(self) -> NDArray[np.int64]:
         """Samples applied per channel, shape (K,) (a copy)."""
         return self._count.copy()
+
+
+def forgotten_excess(forgetting_factor: FloatArray, n_params: int) -> FloatArray:
+    """``f = 2 (lambda^-n - 1)`` per channel, shape (K,): how far above its limit forgetting alone can take a ``P_jj``.
+
+    Between two checks of parameter j, n forgettings raise ``P_jj / limit - 1`` from at most 0
+    to at most ``lambda^-n - 1``; twice that, so rounding at the attained bound never reads
+    as information that was never there (module docstring, anti-windup).
+    """
+    return np.asarray(2.0 * (forgetting_factor ** -float(n_params) - 1.0), dtype=np.float64)
+
+
+def _anchor(excess: FloatArray, forgotten: FloatArray, theta_j: FloatArray) -> FloatArray:
+    """Value of the bound's pseudo-observation, ``m_j = theta_j min(1, f / excess)`` (module docstring).
+
+    ``excess = P_jj / limit - 1 > 0``; the scalar twin in :func:`estimator.recursive._givens.scalar_step`
+    does the same operations.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):    # excess may round to 0: that lane takes theta_j
+        return np.where(excess > forgotten, theta_j * (forgotten / excess), theta_j)
 
 
 def _innovation(alpha: FloatArray, cos_product: FloatArray, sw: FloatArray,

@@ -17,7 +17,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from estimator.recursive._givens import scalar_step
-from estimator.recursive.rwls import BankState, RecursiveWLSBank, checked_sample
+from estimator.recursive.rwls import BankState, RecursiveWLSBank, checked_sample, forgotten_excess
 
 __all__ = ["ScalarRecursiveWLS"]
 
@@ -43,6 +43,7 @@ class ScalarRecursiveWLS:
         self._A: list[list[float]] = state.factor[0].tolist()
         self._lambda = float(state.forgetting_factor[0])
         self._sl = math.sqrt(self._lambda)
+        self._forgotten = float(forgotten_excess(state.forgetting_factor, self.n_params)[0])
         limit = state.covariance_limit[0]
         bounded = bool(np.isfinite(limit).any())
         self._limit: list[float] | None = limit.tolist() if bounded else None
@@ -61,7 +62,8 @@ class ScalarRecursiveWLS:
         """
         zs, y, weight = checked_sample(z, y, weight, self.n_params)
         count = self._count + 1
-        result = scalar_step(self._A, zs, y, weight, self._sl, count, self._limit, self._inv_limit)
+        result = scalar_step(self._A, zs, y, weight, self._sl, count, self._limit, self._inv_limit,
+                             self._forgotten)
         lam = self._lambda
         self._n_eff = lam * self._n_eff + 1.0
         self._n_eff_sq = lam * lam * self._n_eff_sq + 1.0

@@ -121,3 +121,31 @@ def test_sequence_numbers_refuse_redeliveries_but_a_refused_sample_blocks_nothin
     ])
     assert [o.reason or o.status for o in outcomes] == ["applied", "duplicate_seq", "out_of_order", "applied",
                                                          "out_of_order_seq"]
+
+
+@pytest.mark.parametrize("batched", [False, True])
+def test_a_channel_started_on_one_repeated_input_reports_least_squares_once_the_input_moves(batched: bool) -> None:
+    # As reported: forgetting 0.995, default settings, the first five samples at u = 51.28, then u spread over
+    # 40..60 (y = 2.06 + 0.80 u, noise sd 0.01). Before the fix the parameters were ~1e13 after the second
+    # sample and ~1e7 after 135.
+    bank = ChannelBank({"c": ChannelSettings(terms=("1", "u"), forgetting_factor=0.995)})
+    rng = np.random.default_rng(21)
+    u = np.concatenate([np.full(5, 51.28), rng.uniform(40.0, 60.0, 130)])
+    y = 2.06 + 0.80 * u + rng.normal(0.0, 0.01, u.size)
+    samples = [Sample("c", float(y[k]), {"u": float(u[k])}, float(k)) for k in range(u.size)]
+    Z = np.column_stack([np.ones_like(u), u])
+    for k, sample in enumerate(samples):
+        if batched:
+            bank.apply([sample])
+        else:
+            bank.apply_one(sample)
+        view = bank.view()["c"]
+        if k < 5:
+            # One operating point: not identifiable, said so, and no number made up.
+            assert not view.identifiable and np.isnan(view.parameters).all()
+            continue
+        root = np.sqrt(0.995 ** np.arange(k, -1, -1.0))
+        # numpy.linalg.lstsq as reference implementation (the forgotten-weighted rows); rtol 1e-9 for two
+        # backward-stable solutions of a problem with cond ~ 1e2.
+        expected = np.linalg.lstsq(Z[:k + 1] * root[:, None], y[:k + 1] * root, rcond=None)[0]
+        np.testing.assert_allclose(view.parameters, expected, rtol=1e-9)

@@ -116,8 +116,10 @@ def test_binding_limit_bounds_covariance_and_pulls_the_estimate_only_slightly(ma
             assert _covariance_diagonal(bank).max() <= limit / lam ** (n - 1) * (1 + 1e-12)
     batch = fit_wls(data.Z, data.y, data.weight, forgetting_factor=0.98)
     pull = np.abs(_statistics(bank).parameters[0] - batch.parameters).max() / np.abs(batch.parameters).max()
-    # Measured pull 3.0e-5 relative: pseudo-observations at past estimates act as a
-    # Tikhonov term that fades as lambda^t. It is there (> 1e-6) and small (< 1e-3).
+    # Measured pull 6.0e-4 relative: the start-up checks meet P_jj far above the limit, so
+    # their pseudo-observations carry the prior mean 0 (module docstring; 3.0e-5 when they
+    # held the start-up estimates), a Tikhonov term that fades as lambda^t. It is there
+    # (> 1e-6) and small (< 1e-3).
     assert 1e-6 < pull < 1e-3
 
 
