@@ -130,7 +130,7 @@ class Sample:
     seq: int | None = None
 
 
-@dataclass
+@dataclass(slots=True)      # slots: one per channel
 class ChannelCounters:
     """Samples applied, held for lag warm-up, and refused by reason."""
 

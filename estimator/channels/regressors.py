@@ -21,9 +21,9 @@ left to right), so they agree bit for bit:
 from __future__ import annotations
 
 import re
-from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from types import MappingProxyType
 
 import numpy as np
 from numpy.typing import NDArray
@@ -203,6 +203,17 @@ class BuilderState:
     keeps_history: bool
 
 
+_NO_LAGGED_INPUTS: Mapping[str, list[float]] = MappingProxyType({})
+
+
+def _keep_last(buffer: list[float], values: Sequence[float], size: int) -> None:
+    """Append ``values`` and keep the last ``size`` (what a deque of that maxlen keeps; a list is a tenth of
+    its memory, and a service holds one builder per channel)."""
+    buffer.extend(values)
+    if len(buffer) > size:
+        del buffer[: len(buffer) - size]
+
+
 class RegressorBuilder:
     """Streaming regressor rows for one channel, with the channel's lag buffers.
 
@@ -211,11 +222,14 @@ class RegressorBuilder:
     still filling).
     """
 
+    __slots__ = ("_accepted", "_inputs", "_output_size", "_outputs", "spec")
+
     def __init__(self, spec: RegressorSpec) -> None:
         self.spec = spec
-        self._inputs: dict[str, deque[float]] = {
-            name: deque(maxlen=lag) for name, lag in spec.input_lags.items() if lag > 0}
-        self._outputs: deque[float] = deque(maxlen=max(spec.output_lag, 1))
+        lagged = {name: lag for name, lag in spec.input_lags.items() if lag > 0}
+        self._inputs: Mapping[str, list[float]] = {name: [] for name in lagged} if lagged else _NO_LAGGED_INPUTS
+        self._output_size = max(spec.output_lag, 1)
+        self._outputs: list[float] = []
         self._accepted = 0
 
     def check(self, inputs: Mapping[str, float]) -> None:
@@ -258,9 +272,15 @@ class RegressorBuilder:
 
     def push(self, inputs: Mapping[str, float], y: float) -> None:
         """Record an accepted sample in the lag buffers."""
+        lags = self.spec.input_lags
         for name, buffer in self._inputs.items():
             buffer.append(float(inputs[name]))
-        self._outputs.append(float(y))
+            if len(buffer) > lags[name]:
+                del buffer[0]
+        outputs = self._outputs
+        outputs.append(float(y))
+        if len(outputs) > self._output_size:
+            del outputs[0]
         self._accepted += 1
 
     @property
@@ -277,7 +297,7 @@ class RegressorBuilder:
         """:meth:`push_many` for a builder that does not :attr:`keeps_history`: only the last output is kept."""
         if self.keeps_history:
             raise ValueError("push_count needs a builder without lag history; use push_many")
-        self._outputs.append(float(last_output))
+        _keep_last(self._outputs, (float(last_output),), self._output_size)
         self._accepted += count
 
     @property
@@ -321,9 +341,10 @@ class RegressorBuilder:
 
     def push_many(self, inputs: Mapping[str, NDArray[np.float64]], y: NDArray[np.float64]) -> None:
         """:meth:`push` for each of L accepted samples, in order (arrays of shape (L,))."""
+        lags = self.spec.input_lags
         for name, buffer in self._inputs.items():
-            buffer.extend(inputs[name][-(buffer.maxlen or 1):].tolist())
-        self._outputs.extend(y[-(self._outputs.maxlen or 1):].tolist())
+            _keep_last(buffer, inputs[name][-lags[name]:].tolist(), lags[name])
+        _keep_last(self._outputs, y[-self._output_size:].tolist(), self._output_size)
         self._accepted += y.shape[0]
 
     def clear(self) -> None:
@@ -357,7 +378,8 @@ class RegressorBuilder:
                              f"{state.keeps_history}; this one has {sorted(self._inputs)} and {self.keeps_history}")
         self._accepted = int(state.accepted)
         self._outputs.clear()
-        self._outputs.extend(state.outputs)
+        _keep_last(self._outputs, state.outputs, self._output_size)
+        lags = self.spec.input_lags
         for name, values in state.inputs.items():
             self._inputs[name].clear()
-            self._inputs[name].extend(values)
+            _keep_last(self._inputs[name], values, lags[name])

@@ -73,7 +73,7 @@ class Baseline:
             object.__setattr__(self, "noise_model", beta)
 
 
-@dataclass
+@dataclass(slots=True)      # slots: one per channel
 class BaselineHistory:
     """Every baseline of one channel, oldest first; the last is in force."""
 

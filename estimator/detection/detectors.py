@@ -267,24 +267,36 @@ class DetectorBank:
         self.n_channels = k
         self.n_params = n_params
         self.settings = tuple(settings)
+        # Per-channel constants are worked out once per distinct settings object, then spread by index:
+        # the same values whether 100,000 channels share one object or each has its own.
+        distinct: dict[int, int] = {}
+        unique: list[DetectorSettings] = []
+        for s in settings:
+            if id(s) not in distinct:
+                distinct[id(s)] = len(unique)
+                unique.append(s)
+        which = np.fromiter((distinct[id(s)] for s in settings), dtype=np.intp, count=k)
+
+        def per_channel(values: list[float] | list[int], dtype: type = np.float64) -> NDArray[Any]:
+            return np.array(values, dtype=dtype)[which]
 
         def column(name: str) -> FloatArray:
-            return np.array([float(getattr(s, name)) for s in settings])
+            return per_channel([float(getattr(s, name)) for s in unique])
 
         self._offset_k = column("offset_k")
         self._offset_h = column("offset_h")
         self._offset_clip = column("offset_clip")
-        self._variance_k = np.array([variance_reference(s.variance_ratio) for s in settings])
+        self._variance_k = per_channel([variance_reference(s.variance_ratio) for s in unique])
         self._variance_h = column("variance_h")
         self._clip2 = column("variance_clip") ** 2
         self._noise_ratio = column("noise_ratio")
         self._noise_high = column("noise_high")
-        self._drift_limit = np.array([chi2_quantile(1.0 - s.drift_alpha, n_params) for s in settings])
-        self._drift_every = np.array([s.drift_every for s in settings], dtype=np.int64)
+        self._drift_limit = per_channel([chi2_quantile(1.0 - s.drift_alpha, n_params) for s in unique])
+        self._drift_every = per_channel([s.drift_every for s in unique], np.int64)
         # The variance CUSUM's increments shrink by 1 + m against a reference learned from a finite
         # calibration sample (run_length.calibration_margin): the fleet's average rate stays nominal.
-        self._variance_margin = np.array([calibration_margin(s.variance_h, variance_reference(s.variance_ratio),
-                                                             s.calibration_samples) for s in settings])
+        self._variance_margin = per_channel([calibration_margin(s.variance_h, variance_reference(s.variance_ratio),
+                                                                s.calibration_samples) for s in unique])
 
         self.has_baseline = np.zeros(k, dtype=bool)
         self._sigma_ref = np.full(k, np.nan)
@@ -296,13 +308,14 @@ class DetectorBank:
         self._since_drift = np.zeros(k, dtype=np.int64)
         # The noise shape (estimator.detection.noise_shape): calibration values taken since the baseline, and per
         # channel its binned masses while calibrating, then its score table. A target of 0: no table.
-        self._shape_target = np.array([s.calibration_samples for s in settings], dtype=np.int64)
+        self._shape_target = per_channel([s.calibration_samples for s in unique], np.int64)
         self._shape_count = np.zeros(k, dtype=np.int64)
         self._shape = np.zeros((k, noise_shape.KNOTS))
         self._active = np.zeros((len(KINDS), k), dtype=bool)
         self._conditions = np.full((len(KINDS), k, 4), np.nan)
-        self._timing = np.array([[[t.deadband, t.on_delay, t.off_delay]
-                                  for t in (s.timing_of(kind) for s in settings)] for kind in KINDS])
+        timing = np.array([[[t.deadband, t.on_delay, t.off_delay] for t in (s.timing_of(kind) for s in unique)]
+                           for kind in KINDS], dtype=np.float64)
+        self._timing = timing[:, which]
         # Where condition events go; the owner may share its own list, holding notices of its own too.
         self.sink: list[Any] = []
         self._pack(column)

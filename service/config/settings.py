@@ -46,6 +46,7 @@ from service.config.alarm_settings import (
 )
 from service.config.environment import apply_environment
 from service.config.false_alarm_budget import BudgetThresholds, derive_thresholds
+from service.config.shared_tables import validate_alike_once
 from service.config.tag_settings import ChannelTagsConfig, TagsConfig
 from service.config.token_settings import AuthConfig
 
@@ -238,6 +239,12 @@ class ChannelConfig(_Strict):
         if not (0.0 < value <= 1.0):
             raise ValueError(f"must be in (0, 1], got {value}")
         return value
+
+    def settings_key(self) -> tuple[object, ...]:
+        """Equal keys give equal :meth:`settings`: the values it reads, its lists and tables by identity (the
+        channels :mod:`service.config.shared_tables` copied from one validated table share them)."""
+        return (id(self.terms), self.forgetting_factor, self.weighting, id(self.weight_rules), self.covariance_limit,
+                self.covariance_scale, id(self.noise), id(self.detectors), id(self.alarms))
 
     def settings(self, budget: BudgetThresholds | None = None) -> ChannelSettings:
         """The estimator-side settings of this channel (detector thresholds from ``budget`` where not given)."""
@@ -483,9 +490,16 @@ class RwlsConfig(_Strict):
                                   source=channel.baseline.source, note="from the configuration")
 
     def channel_settings(self) -> dict[str, ChannelSettings]:
-        """Every channel's estimator settings, with the fleet budget applied."""
+        """Every channel's estimator settings, with the fleet budget applied; channels alike share one object
+        (the bank then works out what follows from them once)."""
         budget = self.budget_thresholds()
-        return {cid: channel.settings(budget) for cid, channel in self.channels.items()}
+        made: dict[tuple[object, ...], ChannelSettings] = {}
+        settings = {}
+        for cid, channel in self.channels.items():
+            key = channel.settings_key()
+            found = made.get(key)
+            settings[cid] = found if found is not None else made.setdefault(key, channel.settings(budget))
+        return settings
 
     @field_validator("channels")
     @classmethod
@@ -554,6 +568,8 @@ def _explain(error: ValidationError, sources: Mapping[tuple[str, ...], str] | No
 
 def _validate(data: Mapping[str, object], sources: Mapping[tuple[str, ...], str] | None = None) -> RwlsConfig:
     problems: list[str] = []
+    if "channels" in data:
+        data = {**data, "channels": validate_alike_once(data["channels"], ChannelConfig, _check_topic)}
     try:
         return RwlsConfig.model_validate(data)
     except ValidationError as exc:

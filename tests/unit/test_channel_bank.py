@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -149,3 +150,19 @@ def test_a_channel_started_on_one_repeated_input_reports_least_squares_once_the_
         # backward-stable solutions of a problem with cond ~ 1e2.
         expected = np.linalg.lstsq(Z[:k + 1] * root[:, None], y[:k + 1] * root, rcond=None)[0]
         np.testing.assert_allclose(view.parameters, expected, rtol=1e-9)
+
+
+def test_channels_sharing_one_settings_object_end_as_channels_with_a_copy_each() -> None:
+    # A service hands channels configured alike one settings object; the bank works out what follows from it
+    # once (parsed terms, detector constants). A copy per channel must end in the same bits.
+    shared = {cid: SETTINGS["o2"] for cid in ("a", "b", "c")} | {"d": SETTINGS["temp"]}
+    copied = {cid: dataclasses.replace(settings) for cid, settings in shared.items()}
+    assert copied["a"] is not copied["b"]
+    samples = [dataclasses.replace(s, channel=cid) for s in _stream(seed=9, count=120) if s.channel in ("o2", "temp")
+               for cid in (("a", "b", "c") if s.channel == "o2" else ("d",))]
+    one, each = ChannelBank(shared), ChannelBank(copied)
+    for start in range(0, len(samples), 50):
+        one.apply(samples[start:start + 50])
+        each.apply(samples[start:start + 50])
+    assert_same_state(one.state(), each.state())
+    assert one.view()["a"].applied > 0 and one.view()["a"].terms == ("1", "y[-1]", "u")

@@ -371,3 +371,33 @@ def test_a_configured_baseline_is_in_force_from_the_start_and_checked_against_th
     with pytest.raises(ConfigError, match=r"noise_sigma"):
         parse_config({"channels": {"a": {**table, "baseline": {"parameters": {"1": 2.0, "u": 1.0},
                                                                 "noise_sigma": -1.0}}}})
+
+
+def test_channels_alike_but_for_their_topic_each_keep_their_own_topic_and_share_settings() -> None:
+    tables = {f"c{k}": {"terms": ["1", "u"], "forgetting_factor": 0.99, "topic": f"plant/c{k}"} for k in range(3)}
+    tables["d"] = {"terms": ["1", "u"], "forgetting_factor": 0.98, "topic": "plant/d"}
+    config = parse_config({"channels": tables})
+    assert {cid: ch.topic for cid, ch in config.channels.items()} == {cid: t["topic"] for cid, t in tables.items()}
+    assert config.channels["c2"] == config.channels["c0"].model_copy(update={"topic": "plant/c2"})
+    assert config.channels["d"].forgetting_factor == 0.98
+    settings = config.channel_settings()
+    assert settings["c0"] is settings["c1"] is settings["c2"]
+    assert settings["d"] is not settings["c0"] and settings["d"].forgetting_factor == 0.98
+    assert settings["c0"] == config.channels["c0"].settings()
+
+
+def test_alike_channel_tables_with_one_mistake_report_it_under_every_channels_key() -> None:
+    problems = _problems({"channels": {cid: {"terms": ["1"], "forgetting_factor": 1.2, "topic": f"p/{cid}"}
+                                       for cid in ("a", "b")}})
+    assert problems == ["channels.a.forgetting_factor: must be in (0, 1], got 1.2",
+                        "channels.b.forgetting_factor: must be in (0, 1], got 1.2"]
+
+
+def test_bad_topics_among_alike_tables_are_reported_for_their_channels_alone() -> None:
+    tables = {cid: {"terms": ["1"], "topic": f"p/{cid}"} for cid in ("a", "b", "c", "d")}
+    tables["b"]["topic"] = "p/#"
+    tables["c"]["topic"] = 7
+    problems = _problems({"channels": tables})
+    assert len(problems) == 2
+    assert problems[0] == "channels.b.topic: MQTT wildcards '+' and '#' are not allowed, got 'p/#'"
+    assert problems[1].startswith("channels.c.topic:")
