@@ -202,8 +202,7 @@ def test_the_ingest_process_decodes_with_the_decoder_the_engine_would_use_and_th
         expected = match.decoder if isinstance(match, TagMatch) else None
         assert registry.decoder_for(topic) is expected, topic
     good, _ = _stream(1)
-    assert _decoded(registry, good[0]) == TagReading(good[0 + 0].payload and json.loads(good[0].payload)["v"],
-                                                      EPOCH_MS / 1000.0, True)
+    assert _decoded(registry, good[0]) == TagReading(json.loads(good[0].payload)["v"], EPOCH_MS / 1000.0, True)
     assert _decoded(registry, Message("flow", b"{}", "mqtt", topic="plant/flow")) is None   # a whole sample
     # The engine does not decode a message the ingest process decoded: a reading given wins over the bytes.
     engine, letters = _engine(config)
