@@ -23,6 +23,7 @@ import math
 from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from types import MappingProxyType
 from typing import NamedTuple
 
 import numpy as np
@@ -137,6 +138,8 @@ class ChannelBank:
         self._lanes: dict[str, Lane] = {lane.channel: lane for g in self._groups for lane in g.lanes}
         self.channel_ids: tuple[str, ...] = tuple(channels)
         self._order = {cid: k for k, cid in enumerate(self.channel_ids)}
+        self.positions: Mapping[str, int] = MappingProxyType(self._order)     # channel -> its place in channel_ids
+        self._set_apart: set[str] | None = set()      # channels a baseline or reset changed; None after restore
 
     def __contains__(self, channel: object) -> bool:
         return channel in self._lanes
@@ -159,6 +162,7 @@ class ChannelBank:
         """
         if len(state.groups) != len(self._groups):
             raise ValueError(f"state of {len(state.groups)} groups; this bank has {len(self._groups)}")
+        self._set_apart = None
         before = self.state()
         try:
             for group, group_state in zip(self._groups, state.groups, strict=True):
@@ -198,6 +202,7 @@ class ChannelBank:
     def learn_baseline(self, channel: str, t: float | None = None, note: str = "") -> Baseline | None:
         """A new baseline from the channel's current estimates; None while they cannot be judged."""
         lane = self._lanes[channel]
+        self._note_apart(channel)
         return lane.group.watch.learn(lane.index, t, "learned",
                                       samples=int(lane.group.watch.commissioned[lane.index]), note=note)
 
@@ -211,6 +216,7 @@ class ChannelBank:
         cov = np.zeros((n, n)) if covariance is None else np.asarray(covariance, dtype=np.float64)
         baseline = Baseline(watch.histories[lane.index].next_version, source, np.asarray(parameters, dtype=float),
                             cov, float(noise_sigma), None, t, 0, note)
+        self._note_apart(channel)
         watch.set(lane.index, baseline)
         return baseline
 
@@ -221,6 +227,7 @@ class ChannelBank:
         baseline history.
         """
         lane = self._lanes[channel]
+        self._note_apart(channel)
         group = lane.group
         group.wls.reset_channel(lane.index)
         group.tracker.reset_channel(lane.index)
@@ -309,6 +316,44 @@ class ChannelBank:
             else:
                 result.refused.append((pos, outcome.reason))
         return outcomes
+
+    def _note_apart(self, channel: str) -> None:
+        if self._set_apart is not None:
+            self._set_apart.add(channel)
+
+    def start_views(self) -> tuple[dict[str, ChannelView], list[tuple[ChannelView, list[str]]]]:
+        """Every channel's view, cheaply while most are as built: those with nothing applied, held for warm-up or
+        refused, no sample time or sequence seen and never a baseline, learned, set or reset, share one view per
+        settings object (of the first of them; every member's view but for ``channel``); the others get their own.
+
+        A channel as built has its group's initial values in every array, which depend on its settings alone.
+        After :meth:`restore` no channel counts as built.
+
+        Returns
+        -------
+        own : dict
+            Channel id -> view, of the channels not as built.
+        alike : list of (view, channel ids)
+            One view per settings object and the channels as built that have it, in channel order.
+        """
+        apart = self._set_apart
+        alike: dict[int, list[str]] = {}
+        others: list[str] = []
+        for cid in self.channel_ids:
+            lane = self._lanes[cid]
+            counters = lane.counters
+            if (apart is None or cid in apart or counters.applied or counters.warmup or counters.refused
+                    or lane.last_t is not None or lane.last_seq is not None or lane.builder.accepted
+                    or lane.group.watch.histories[lane.index].versions):
+                others.append(cid)
+            else:
+                alike.setdefault(id(lane.settings), []).append(cid)
+        firsts = self.view([members[0] for members in alike.values()])
+        shared = [(firsts[members[0]], members) for members in alike.values()]
+        for view, _ in shared:
+            for array in (view.parameters, view.std_errors, view.covariance):
+                array.setflags(write=False)             # every member's view holds these very arrays
+        return self.view(others), shared
 
     def view(self, channels: Sequence[str] | None = None) -> dict[str, ChannelView]:
         """Statistics of the given channels (default all), computed per group in one batch."""

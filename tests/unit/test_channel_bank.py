@@ -138,3 +138,23 @@ def test_channels_sharing_one_settings_object_end_as_channels_with_a_copy_each()
         each.apply(samples[start:start + 50])
     assert_same_state(one.state(), each.state())
     assert one.view()["a"].applied > 0 and one.view()["a"].terms == ("1", "y[-1]", "u")
+
+
+def test_start_views_share_one_view_among_channels_as_built_and_give_the_others_their_own() -> None:
+    settings = {"a": SETTINGS["temp"], "b": SETTINGS["temp"], "c": SETTINGS["temp"], "d": SETTINGS["flow"],
+                "e": SETTINGS["temp"], "f": SETTINGS["flow"]}
+    bank = ChannelBank(settings)
+    bank.set_baseline("b", [1.0, 0.5], noise_sigma=0.2)
+    bank.apply([Sample("e", 1.0, {"u": 0.5}, 10.0)])
+    own, alike = bank.start_views()
+    assert set(own) == {"b", "e"}
+    assert [members for _, members in alike] == [["a", "c"], ["d", "f"]]
+    full = bank.view()
+    for view, members in alike:
+        for cid in members:
+            assert_same_state(dataclasses.replace(view, channel=cid), full[cid])     # every field, bit for bit
+    for cid, view in own.items():
+        assert_same_state(view, full[cid])
+    assert own["b"].baseline is not None and own["e"].applied == 1
+    bank.restore(bank.state())
+    assert set(bank.start_views()[0]) == set(settings)              # restored: nothing counts as built
