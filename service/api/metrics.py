@@ -58,8 +58,8 @@ class _EngineCollector(Collector):
                                 value=stats.last_batch_seconds)
         quality = GaugeMetricFamily("rwls_channels", "Channels by quality", labels=["quality"])
         counts = dict.fromkeys(Quality, 0)
-        for entry in engine.snapshot.channels.values() if engine is not None else ():
-            counts[entry.quality] += 1
+        if engine is not None:
+            counts.update(engine.snapshot.channels.quality_counts())
         for name, count in counts.items():
             quality.add_metric([name], count)
         yield quality

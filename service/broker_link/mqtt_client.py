@@ -24,7 +24,7 @@ import logging
 import ssl
 import threading
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -300,6 +300,22 @@ class MqttIngest:
                 self.publish_failures += 1
                 raise RuntimeError(f"publish to {topic} refused: {mqtt.error_string(info.rc)}")
             time.sleep(0.002)                  # paho's network thread frees room as PUBACKs arrive
+
+    def publish_many(self, messages: Iterable[tuple[str, bytes, bool]], *, wait: float = PUBLISH_WAIT) -> None:
+        """:meth:`publish` of each ``(topic, payload, retain)``; RuntimeError after trying them all, if any failed."""
+        refused = tried = 0
+        for topic, payload, retain in messages:
+            tried += 1
+            try:
+                self.publish(topic, payload, retain=retain, wait=wait)
+            except RuntimeError:
+                refused += 1
+        if refused:
+            raise RuntimeError(f"{refused} of {tried} publishes refused")
+
+    def publish_from(self, producer: Callable[..., Iterable[tuple[str, bytes, bool]]], args: tuple[Any, ...]) -> None:
+        """:meth:`publish` of each message ``producer(*args)`` yields (see :meth:`ProcessIngest.publish_from`)."""
+        self.publish_many(producer(*args))
 
     def publish_dead_letter(self, letter: DeadLetter) -> None:
         """Publish a refusal to the dead-letter topic (see :meth:`publish`)."""

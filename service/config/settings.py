@@ -501,6 +501,16 @@ class RwlsConfig(_Strict):
             settings[cid] = found if found is not None else made.setdefault(key, channel.settings(budget))
         return settings
 
+    def alarm_priorities(self) -> dict[str, dict[str, str]]:
+        """Each channel's priority by alarm kind; channels alike share one mapping (the alarm book's layout then
+        reads it once)."""
+        made: dict[int, dict[str, str]] = {}
+        priorities = {}
+        for cid, channel in self.channels.items():
+            found = made.get(id(channel.alarms))
+            priorities[cid] = found if found is not None else made.setdefault(id(channel.alarms), channel.priorities())
+        return priorities
+
     @field_validator("channels")
     @classmethod
     def _ids(cls, value: dict[str, ChannelConfig]) -> dict[str, ChannelConfig]:

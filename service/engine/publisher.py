@@ -15,10 +15,11 @@ import time
 from collections.abc import Callable, Mapping, Sequence
 
 from estimator import ChannelBank, ChannelView
+from service.alarms.alarm_table import NO_ALARMS
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import AlarmBook
 from service.engine.activity import ChannelActivity
-from service.engine.snapshot import ChannelEntry, FragmentWriter, Snapshot, channel_quality
+from service.engine.snapshot import ChannelEntries, ChannelEntry, FragmentWriter, Snapshot, channel_quality
 
 __all__ = ["PublishHook", "SnapshotPublisher"]
 
@@ -56,8 +57,8 @@ class SnapshotPublisher:
         self._alarms_changed = False
         self._last_publish = 0.0
         now = clock()
-        self._snapshot = Snapshot(0, now, self._entries(bank.view(), now),
-                                  tuple(alarms.alarms()) if alarms is not None else ())
+        self._snapshot = Snapshot(0, now, self._start_entries(now),
+                                  alarms.alarms() if alarms is not None else NO_ALARMS)
 
     @property
     def snapshot(self) -> Snapshot:
@@ -90,12 +91,20 @@ class SnapshotPublisher:
         """Re-judge staleness while idle; publish only the channels whose quality changed."""
         now = self._clock()
         activity = self._activity
-        for cid, entry in self._snapshot.channels.items():
+        for cid, entry in self._snapshot.channels.refreshed().items():
             judged = channel_quality(entry.view, entry.updated_at, now, self._stale_after,
                                      activity.refused_in_a_row.get(cid, 0))
             if judged != (entry.quality, entry.quality_reason):
                 self._pending.add(cid)
         self.flush()
+
+    def _start_entries(self, now: float) -> ChannelEntries:
+        """The first snapshot's entries: channels as built share one view and entry per settings object (their
+        quality cannot age, they never had data, and their staleness is not news), the others get their own."""
+        own, alike = self._bank.start_views()
+        templates = [(self._entries({members[0]: view}, now)[members[0]], members) for view, members in alike]
+        return ChannelEntries.at_start(self._bank.positions, self._bank.channel_ids, self._entries(own, now),
+                                       templates)
 
     def _entries(self, views: Mapping[str, ChannelView], now: float) -> dict[str, ChannelEntry]:
         activity = self._activity
@@ -113,13 +122,12 @@ class SnapshotPublisher:
     def _publish(self, channels: list[str]) -> None:
         self._last_publish = time.monotonic()
         now = self._clock()
-        entries = dict(self._snapshot.channels)
         fresh = self._entries(self._bank.view(channels), now)
-        entries.update(fresh)
+        entries = self._snapshot.channels.updated(fresh)
         for hook in self._hooks:
             hook(fresh, now)
         alarms = self._snapshot.alarms
         if self._alarms_changed and self._alarms is not None:
             self._alarms_changed = False
-            alarms = tuple(self._alarms.alarms())
+            alarms = self._alarms.alarms()
         self._snapshot = Snapshot(self._snapshot.version + 1, now, entries, alarms)
