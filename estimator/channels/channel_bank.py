@@ -139,7 +139,7 @@ class ChannelBank:
         self.channel_ids: tuple[str, ...] = tuple(channels)
         self._order = {cid: k for k, cid in enumerate(self.channel_ids)}
         self.positions: Mapping[str, int] = MappingProxyType(self._order)     # channel -> its place in channel_ids
-        self._set_apart: set[str] | None = set()      # channels a baseline or reset changed; None after restore
+        self._set_apart: set[str] | None = set()      # channels learned or reset; None after a restore
 
     def __contains__(self, channel: object) -> bool:
         return channel in self._lanes
@@ -216,9 +216,25 @@ class ChannelBank:
         cov = np.zeros((n, n)) if covariance is None else np.asarray(covariance, dtype=np.float64)
         baseline = Baseline(watch.histories[lane.index].next_version, source, np.asarray(parameters, dtype=float),
                             cov, float(noise_sigma), None, t, 0, note)
-        self._note_apart(channel)
         watch.set(lane.index, baseline)
         return baseline
+
+    def set_baselines(self, channels: Sequence[str], parameters: Sequence[float], *, noise_sigma: float,
+                      covariance: Sequence[Sequence[float]] | None = None, source: str = "engineer",
+                      t: float | None = None, note: str = "") -> None:
+        """:meth:`set_baseline` of one baseline for each of ``channels``, in turn; channels whose next version is
+        the same share one :class:`Baseline` (made, and checked, once: 100,000 channels configured alike)."""
+        made: dict[tuple[int, int], Baseline] = {}
+        for channel in channels:
+            lane = self._lanes[channel]
+            watch = lane.group.watch
+            key = (watch.histories[lane.index].next_version, len(lane.terms))
+            baseline = made.get(key)
+            if baseline is None:
+                baseline = made[key] = self.set_baseline(channel, parameters, noise_sigma=noise_sigma,
+                                                         covariance=covariance, source=source, t=t, note=note)
+                continue
+            watch.set(lane.index, baseline)
 
     def reset(self, channel: str, t: float | None = None) -> None:
         """Start the channel's estimator afresh: no baseline in force, commissioning again.
@@ -323,31 +339,32 @@ class ChannelBank:
 
     def start_views(self) -> tuple[dict[str, ChannelView], list[tuple[ChannelView, list[str]]]]:
         """Every channel's view, cheaply while most are as built: those with nothing applied, held for warm-up or
-        refused, no sample time or sequence seen and never a baseline, learned, set or reset, share one view per
-        settings object (of the first of them; every member's view but for ``channel``); the others get their own.
+        refused, no sample time or sequence seen, never learned or reset, and the same baselines set (the very same
+        objects: :meth:`set_baselines`) share one view per settings object and baselines (of the first of them;
+        every member's view but for ``channel``); the others get their own.
 
-        A channel as built has its group's initial values in every array, which depend on its settings alone.
-        After :meth:`restore` no channel counts as built.
+        Such channels hold their group's initial values in every array, as their settings and baselines make
+        them. After :meth:`restore` no channel counts as such.
 
         Returns
         -------
         own : dict
-            Channel id -> view, of the channels not as built.
+            Channel id -> view, of the other channels.
         alike : list of (view, channel ids)
-            One view per settings object and the channels as built that have it, in channel order.
+            One view per settings object and baselines, and the channels that have it, in channel order.
         """
         apart = self._set_apart
-        alike: dict[int, list[str]] = {}
+        alike: dict[tuple[int, ...], list[str]] = {}
         others: list[str] = []
         for cid in self.channel_ids:
             lane = self._lanes[cid]
             counters = lane.counters
             if (apart is None or cid in apart or counters.applied or counters.warmup or counters.refused
-                    or lane.last_t is not None or lane.last_seq is not None or lane.builder.accepted
-                    or lane.group.watch.histories[lane.index].versions):
+                    or lane.last_t is not None or lane.last_seq is not None or lane.builder.accepted):
                 others.append(cid)
             else:
-                alike.setdefault(id(lane.settings), []).append(cid)
+                versions = lane.group.watch.histories[lane.index].versions
+                alike.setdefault((id(lane.settings), *map(id, versions)), []).append(cid)
         firsts = self.view([members[0] for members in alike.values()])
         shared = [(firsts[members[0]], members) for members in alike.values()]
         for view, _ in shared:

@@ -141,20 +141,38 @@ def test_channels_sharing_one_settings_object_end_as_channels_with_a_copy_each()
 
 
 def test_start_views_share_one_view_among_channels_as_built_and_give_the_others_their_own() -> None:
-    settings = {"a": SETTINGS["temp"], "b": SETTINGS["temp"], "c": SETTINGS["temp"], "d": SETTINGS["flow"],
-                "e": SETTINGS["temp"], "f": SETTINGS["flow"]}
+    temp, flow = SETTINGS["temp"], SETTINGS["flow"]
+    settings = {"a": temp, "b": temp, "c": temp, "d": flow, "e": temp, "f": flow, "g": temp, "h": temp}
     bank = ChannelBank(settings)
     bank.set_baseline("b", [1.0, 0.5], noise_sigma=0.2)
+    bank.set_baselines(["g", "h"], [1.0, 0.5], noise_sigma=0.2)        # one baseline object for both
     bank.apply([Sample("e", 1.0, {"u": 0.5}, 10.0)])
+    bank.reset("c")
     own, alike = bank.start_views()
-    assert set(own) == {"b", "e"}
-    assert [members for _, members in alike] == [["a", "c"], ["d", "f"]]
+    assert set(own) == {"c", "e"}
+    assert [members for _, members in alike] == [["a"], ["b"], ["d", "f"], ["g", "h"]]
     full = bank.view()
     for view, members in alike:
         for cid in members:
             assert_same_state(dataclasses.replace(view, channel=cid), full[cid])     # every field, bit for bit
     for cid, view in own.items():
         assert_same_state(view, full[cid])
-    assert own["b"].baseline is not None and own["e"].applied == 1
+    assert full["g"].baseline is full["h"].baseline and full["g"].baseline is not None
+    assert own["e"].applied == 1
     bank.restore(bank.state())
     assert set(bank.start_views()[0]) == set(settings)              # restored: nothing counts as built
+
+
+def test_one_baseline_set_for_many_channels_gives_the_state_of_setting_it_for_each() -> None:
+    settings = {cid: SETTINGS["temp"] for cid in ("a", "b", "c")}
+    each, many = ChannelBank(settings), ChannelBank(settings)
+    for cid in settings:
+        each.set_baseline(cid, [1.0, 0.5], noise_sigma=0.2, covariance=[[0.01, 0.0], [0.0, 0.02]], note="given")
+    many.set_baselines(list(settings), [1.0, 0.5], noise_sigma=0.2, covariance=[[0.01, 0.0], [0.0, 0.02]],
+                       note="given")
+    assert_same_state(many.state(), each.state())
+    samples = [dataclasses.replace(s, channel=cid) for s in _stream(seed=3, count=40) if s.channel == "temp"
+               for cid in settings]
+    each.apply(samples)
+    many.apply(samples)
+    assert_same_state(many.state(), each.state())
