@@ -155,15 +155,27 @@ class AlarmBook:
         """Take back what :meth:`export` gave (alarms no longer configured are left out)."""
         self._seq = int(meta["seq"])  # type: ignore[call-overload]
         channels: list[str] = list(meta["channels"])  # type: ignore[call-overload]
+        flags = np.asarray(arrays["alarms.flags"], dtype=np.int8)
+        numbers = np.asarray(arrays["alarms.numbers"], dtype=np.float64)
+        self.journal.clear()
         explicit = meta.get("ids")
+        if explicit is None and self.layout.is_grid:
+            # Every channel with every kind, here and there: rows found a channel at a time, not an id at a time.
+            width = len(ALARM_KINDS)
+            positions = [(saved, self.layout.position(channel)) for saved, channel in enumerate(channels)]
+            pairs = np.array([(saved, at) for saved, at in positions if at is not None], dtype=np.int64).reshape(-1, 2)
+            kinds = np.arange(width, dtype=np.int64)
+            saved_rows = (pairs[:, :1] * width + kinds).reshape(-1)
+            rows = (pairs[:, 1:] * width + kinds).reshape(-1)
+            if rows.shape[0]:
+                self._columns.scatter(rows, flags[saved_rows], numbers[saved_rows])
+            return
         ids = [f"{c}:{k}" for c in channels for k in ALARM_KINDS] if explicit is None else list(explicit)  # type: ignore
         found = [(saved, row) for saved, alarm_id in enumerate(ids)
                  if (row := self.layout.row_of(alarm_id)) is not None]
         if found:
             saved, rows = (np.array(side, dtype=np.int64) for side in zip(*found, strict=True))
-            self._columns.scatter(rows, np.asarray(arrays["alarms.flags"], dtype=np.int8)[saved],
-                                  np.asarray(arrays["alarms.numbers"], dtype=np.float64)[saved])
-        self.journal.clear()
+            self._columns.scatter(rows, flags[saved], numbers[saved])
 
     # -------------------------------------------------------------- conditions
     def condition(self, channel: str, kind: str, active: bool, now: float,

@@ -112,3 +112,19 @@ def test_every_alarm_state_as_json_is_what_json_dumps_makes_of_it() -> None:
     made = [payload for rows in table.parts() for payload in state_payloads(rows)]
     assert len(made) == len(table)
     assert made == [(a.channel, a.kind, json.dumps(a.to_dict()).encode()) for a in table]   # json as reference
+
+
+@pytest.mark.parametrize("kinds", [ALARM_KINDS, ("offset", "drift", "variance")], ids=["every kind", "some kinds"])
+def test_a_checkpoints_alarms_come_back_by_id_into_a_book_of_other_channels(kinds: tuple[str, ...]) -> None:
+    saved = AlarmBook({f"c{k}": dict.fromkeys(kinds, "high") for k in range(6)})
+    saved.condition("c0", "offset", True, 1.0, Evidence(9.0, 8.0, onset=0.5, baseline=1, t=1.0))
+    saved.shelve("c2:drift", "ana", 2.0, 50.0)
+    saved.suppress_many(["c4", "c5"], ["variance", "offset"], 3.0, "held")
+    arrays, meta = saved.export()
+    assert (meta["ids"] is None) == (kinds == ALARM_KINDS)
+    book = AlarmBook({f"c{k}": dict.fromkeys(kinds, "high") for k in (6, 5, 4, 2, 0)})      # c1, c3 gone; c6 new
+    book.load(arrays, meta)
+    for cid in ("c5", "c4", "c2", "c0"):
+        assert [a.to_dict() for a in book.alarms().of_channel(cid)] == \
+            [a.to_dict() for a in saved.alarms().of_channel(cid)]
+    assert {a.state for a in book.alarms().of_channel("c6")} == {AlarmState.NORMAL}
