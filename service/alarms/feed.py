@@ -38,10 +38,13 @@ class AlarmFeed:
         self.unjudged: set[str] = set()            # channels whose drift test cannot judge now
 
     def hold_uncommissioned(self, channels: dict[str, bool], now: float) -> None:
-        """At a fresh start: suppress the detector alarms of every channel without a baseline (value False)."""
-        for channel, has_baseline in channels.items():
-            if not has_baseline:
-                self.book.suppress(channel, DETECTOR_KINDS, True, now, "commissioning: no baseline yet")
+        """At a fresh start: suppress the detector alarms of every channel without a baseline (value False).
+
+        One bulk suppression (:meth:`AlarmBook.suppress_many`): the journal's entries of a channel at a time, as
+        suppressing channel by channel would make them, held as one run.
+        """
+        held = [channel for channel, has_baseline in channels.items() if not has_baseline]
+        self.book.suppress_many(held, DETECTOR_KINDS, now, "commissioning: no baseline yet")
 
     def take(self, events: list[ChannelEvent], now: float, baselines: dict[str, int | None]) -> None:
         """Events from :meth:`ChannelBank.take_events`, in order; ``baselines`` maps channel -> version."""

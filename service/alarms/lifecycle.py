@@ -35,67 +35,54 @@ Every transition is one :class:`JournalEntry` (time, channel, kind, action,
 statistic, limit, baseline version, onset, state before and after, user,
 comment); :func:`rerun_journal` runs a journal through the state machine again and
 gives back the states it ends in.
+
+An alarm is a row of columns (:mod:`service.alarms.alarm_table`) and the journal holds a bulk design
+suppression as one run (:mod:`service.alarms.journal`): a plant of 100,000 channels has 500,000 alarms, and a
+fresh start suppresses 400,000 of them.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterable, Mapping
-from dataclasses import dataclass, field, replace
-from enum import StrEnum
+from collections.abc import Callable, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from service.config.alarm_settings import ALARM_KINDS, AlarmKind
+from service.alarms.alarm_table import (
+    ACTIVE,
+    BASELINE,
+    EVIDENCE,
+    LIMIT,
+    ONSET,
+    SHELVED_UNTIL,
+    SINCE,
+    STATE,
+    STATE_CODE,
+    STATES,
+    STATISTIC,
+    SUPPRESSED,
+    AlarmColumns,
+    AlarmLayout,
+    AlarmTable,
+    T,
+    evidence_of,
+    optional,
+)
+from service.alarms.alarm_types import PRIORITIES, Alarm, AlarmState, Evidence, JournalAction, JournalEntry
+from service.alarms.journal import Journal, SuppressionRun
+from service.config.alarm_settings import ALARM_KINDS
 
-__all__ = ["ALARM_KINDS", "PRIORITIES", "Alarm", "AlarmBook", "AlarmRefused", "AlarmState", "Evidence",
-           "JournalAction", "JournalEntry", "rerun_journal"]
+__all__ = ["ALARM_KINDS", "PRIORITIES", "Alarm", "AlarmBook", "AlarmRefused", "AlarmState", "AlarmTable",
+           "Evidence", "JournalAction", "JournalEntry", "Listener", "rerun_journal"]
 
-PRIORITIES = ("low", "medium", "high", "urgent")
-
-
-class AlarmState(StrEnum):
-    NORMAL = "Normal"
-    UNACKNOWLEDGED = "Unacknowledged"
-    ACKNOWLEDGED = "Acknowledged"
-    RETURNED_UNACKNOWLEDGED = "Return-to-normal unacknowledged"
-    SHELVED = "Shelved"
-    SUPPRESSED = "Suppressed by design"
-    OUT_OF_SERVICE = "Out of service"
-
-
-class JournalAction(StrEnum):
-    """What a journal entry records: the condition, design suppression, or an operator's action."""
-
-    CONDITION_ON = "condition_on"
-    CONDITION_OFF = "condition_off"
-    SUPPRESS = "suppress"
-    RELEASE = "release"
-    ACKNOWLEDGE = "acknowledge"
-    SHELVE = "shelve"
-    UNSHELVE = "unshelve"
-    SHELVE_EXPIRED = "shelve_expired"
-    REMOVE = "remove"
-    RESTORE = "restore"
-
-    @property
-    def words(self) -> str:
-        """The action as a person reads it (reports)."""
-        return _ACTION_WORDS[self]
-
-
-_ACTION_WORDS = {
-    JournalAction.CONDITION_ON: "condition raised", JournalAction.CONDITION_OFF: "condition cleared",
-    JournalAction.SUPPRESS: "suppressed by design", JournalAction.RELEASE: "released from suppression",
-    JournalAction.ACKNOWLEDGE: "acknowledged", JournalAction.SHELVE: "shelved", JournalAction.UNSHELVE: "unshelved",
-    JournalAction.SHELVE_EXPIRED: "shelving expired", JournalAction.REMOVE: "removed from service",
-    JournalAction.RESTORE: "returned to service"}
-
+# Called after every transition with its entry and the alarm's state after it (on the book's thread).
+Listener = Callable[[JournalEntry, Alarm], None]
 
 _IN_SERVICE = frozenset({AlarmState.NORMAL, AlarmState.UNACKNOWLEDGED, AlarmState.ACKNOWLEDGED,
                          AlarmState.RETURNED_UNACKNOWLEDGED})
 _SET_ASIDE = frozenset({AlarmState.SHELVED, AlarmState.SUPPRESSED, AlarmState.OUT_OF_SERVICE})
-_STATE_INDEX = {state: k for k, state in enumerate(AlarmState)}      # a checkpoint's code for each state
+_NO_EVIDENCE = Evidence()
+_SUPPRESSIBLE = np.array(sorted(STATE_CODE[s] for s in _IN_SERVICE | {AlarmState.SHELVED}), dtype=np.int8)
 
 
 class AlarmRefused(Exception):
@@ -106,198 +93,107 @@ class AlarmRefused(Exception):
         self.code = code
 
 
-@dataclass(frozen=True)
-class Evidence:
-    """Why a condition is what it is: the statistic, its limit, the baseline and the estimated onset."""
-
-    statistic: float = math.nan
-    limit: float = math.nan
-    onset: float | None = None
-    baseline: int | None = None        # baseline version in force
-    t: float | None = None             # sample time of the judgement
-
-
-@dataclass(frozen=True)
-class JournalEntry:
-    """One transition of one alarm (the journal only ever grows)."""
-
-    seq: int
-    time: float                        # wall-clock (or, offline, sample) time it was made
-    alarm: str
-    channel: str
-    kind: AlarmKind
-    action: JournalAction
-    before: str
-    after: str
-    evidence: Evidence = Evidence()
-    user: str | None = None
-    comment: str | None = None
-    shelved_until: float | None = None
-
-    def to_dict(self) -> dict[str, object]:
-        """JSON-ready (non-finite numbers as None)."""
-        return {"seq": self.seq, "time": self.time, "alarm": self.alarm, "channel": self.channel, "kind": self.kind,
-                "action": self.action, "before": self.before, "after": self.after,
-                "evidence": _evidence_dict(self.evidence), "user": self.user, "comment": self.comment,
-                "shelved_until": self.shelved_until}
-
-
-@dataclass
-class Alarm:
-    """The state of one alarm."""
-
-    channel: str
-    kind: AlarmKind
-    priority: str
-    state: AlarmState = AlarmState.NORMAL
-    active: bool = False               # the condition, followed also while set aside
-    suppressed: bool = False           # held back by design
-    shelved_until: float | None = None
-    evidence: Evidence = field(default_factory=Evidence)
-    since: float | None = None         # time of the last transition
-
-    @property
-    def id(self) -> str:
-        return f"{self.channel}:{self.kind}"
-
-    def to_dict(self) -> dict[str, object]:
-        """JSON-ready (non-finite numbers as None)."""
-        return {"id": self.id, "channel": self.channel, "kind": self.kind, "priority": self.priority,
-                "state": str(self.state), "active": self.active, "suppressed": self.suppressed,
-                "shelved_until": self.shelved_until, "since": self.since, "evidence": _evidence_dict(self.evidence)}
-
-
-def _finite(value: float | None) -> float | None:
-    return value if value is not None and math.isfinite(value) else None
-
-
-def _evidence_dict(evidence: Evidence) -> dict[str, object]:
-    return {"statistic": _finite(evidence.statistic), "limit": _finite(evidence.limit),
-            "onset": _finite(evidence.onset), "baseline": evidence.baseline, "t": _finite(evidence.t)}
-
-
-def _none(value: float) -> float | None:
-    return None if math.isnan(value) else value
-
-
-def _returning(alarm: Alarm) -> AlarmState:
-    """Where an alarm goes when it leaves shelving, suppression or out-of-service."""
-    if alarm.suppressed:
-        return AlarmState.SUPPRESSED
-    return AlarmState.UNACKNOWLEDGED if alarm.active else AlarmState.NORMAL
-
-
 class AlarmBook:
     """Every alarm of the plant, the journal, and listeners for each transition.
 
     Parameters
     ----------
     priorities : mapping channel -> mapping kind -> priority
-        One alarm is made per channel and kind listed.
+        One alarm is made per channel and kind listed (channels alike may share one mapping object).
+    journal_limit : entries the journal keeps in memory (None: all)
     """
 
     def __init__(self, priorities: Mapping[str, Mapping[str, str]], journal_limit: int | None = None) -> None:
-        self._alarms: dict[str, Alarm] = {}
-        self._journal_limit = journal_limit
+        self.layout = AlarmLayout(priorities)
+        self._columns = AlarmColumns(self.layout.size)
         self._seq = 0
-        for channel, kinds in priorities.items():
-            for kind, priority in kinds.items():
-                if kind not in ALARM_KINDS:
-                    raise ValueError(f"alarm kind must be one of {', '.join(ALARM_KINDS)}, got {kind!r}")
-                if priority not in PRIORITIES:
-                    raise ValueError(f"priority must be one of {', '.join(PRIORITIES)}, got {priority!r}")
-                alarm = Alarm(channel, AlarmKind(kind), priority)
-                self._alarms[alarm.id] = alarm
-        # A copy of each alarm as of its last transition: readers get these, never the live objects.
-        self._views: dict[str, Alarm] = {key: replace(a) for key, a in self._alarms.items()}
-        self.journal: list[JournalEntry] = []
-        self._listeners: list[Callable[[JournalEntry, Alarm], None]] = []
+        self.journal = Journal(journal_limit)
+        self._listeners: list[tuple[Listener, Callable[[], bool] | None]] = []
 
     # ------------------------------------------------------------------ reads
     def __contains__(self, alarm_id: object) -> bool:
-        return alarm_id in self._alarms
+        return isinstance(alarm_id, str) and self.layout.row_of(alarm_id) is not None
+
+    def _row(self, alarm_id: str) -> int:
+        row = self.layout.row_of(alarm_id)
+        if row is None:
+            raise AlarmRefused("unknown_alarm", f"no alarm {alarm_id!r}")
+        return row
 
     def get(self, alarm_id: str) -> Alarm:
-        try:
-            return self._alarms[alarm_id]
-        except KeyError:
-            raise AlarmRefused("unknown_alarm", f"no alarm {alarm_id!r}") from None
+        """One alarm's state now (a copy)."""
+        return self._columns.alarm(self.layout, self._row(alarm_id))
 
-    def alarms(self) -> list[Alarm]:
-        """Every alarm as of its last transition, in configuration order (copies: do not modify)."""
-        return list(self._views.values())
+    def alarms(self) -> AlarmTable:
+        """Every alarm as of now, in configuration order: a frozen copy, each alarm made as it is read."""
+        return self._columns.freeze(self.layout)
 
     def entries(self, after: int = 0, limit: int = 100, channel: str | None = None) -> list[JournalEntry]:
         """Journal entries with ``seq > after``, oldest first, at most ``limit`` (a copy)."""
-        found = []
-        for entry in list(self.journal):
-            if entry.seq > after and (channel is None or entry.channel == channel):
-                found.append(entry)
-                if len(found) >= limit:
-                    break
-        return found
+        return self.journal.entries(after, limit, channel)
 
-    def listen(self, listener: Callable[[JournalEntry, Alarm], None]) -> None:
-        """Call ``listener(entry, alarm)`` after every transition (on the caller's thread)."""
-        self._listeners.append(listener)
+    def listen(self, listener: Listener, *, wants: Callable[[], bool] | None = None) -> None:
+        """Call ``listener(entry, alarm)`` after every transition (on the caller's thread); with ``wants``, only
+        while it says True (a listener with nobody to tell is skipped before anything is made for it)."""
+        self._listeners.append((listener, wants))
 
     # ------------------------------------------------------------ checkpoints
     def export(self) -> tuple[dict[str, np.ndarray], dict[str, object]]:
         """Every alarm's state as arrays (in book order) and the ids and sequence counter as JSON-able data.
 
+        ``alarms.flags`` (alarms, 3) int8: state code, active, suppressed; ``alarms.numbers`` (alarms, 7):
+        shelving end, time of the last transition, statistic, limit, onset, baseline, t (NaN for None).
         The journal itself goes to the store.
         """
-        alarms = list(self._alarms.values())
-        state_index = _STATE_INDEX
-        flags = np.array([(state_index[a.state], a.active, a.suppressed) for a in alarms],
-                         dtype=np.int8).reshape(len(alarms), 3)
-        # Inline None -> NaN: this runs on the engine thread for every alarm at each checkpoint.
-        nan = math.nan
-        numbers = np.array([(nan if a.shelved_until is None else a.shelved_until, nan if a.since is None else a.since,
-                             e.statistic, e.limit, nan if e.onset is None else e.onset,
-                             nan if e.baseline is None else e.baseline, nan if e.t is None else e.t)
-                            for a in alarms for e in (a.evidence,)], dtype=np.float64).reshape(len(alarms), 7)
-        channels = list(dict.fromkeys(a.channel for a in alarms))
-        grid = [f"{c}:{k}" for c in channels for k in ALARM_KINDS]
-        ids = [a.id for a in alarms]
-        # Every channel with every kind, in order (the usual book): the channel list says it all.
+        flags, numbers = self._columns.stacked()
+        layout = self.layout
+        ids = None if layout.is_grid else [layout.alarm_id(row) for row in range(layout.size)]
         return ({"alarms.flags": flags, "alarms.numbers": numbers},
-                {"seq": self._seq, "channels": channels, "ids": None if ids == grid else ids})
+                {"seq": self._seq, "channels": list(layout.channels), "ids": ids})
 
     def load(self, arrays: Mapping[str, np.ndarray], meta: Mapping[str, object]) -> None:
         """Take back what :meth:`export` gave (alarms no longer configured are left out)."""
         self._seq = int(meta["seq"])  # type: ignore[call-overload]
         channels: list[str] = list(meta["channels"])  # type: ignore[call-overload]
-        explicit = meta.get("ids")
-        ids = [f"{c}:{k}" for c in channels for k in ALARM_KINDS] if explicit is None else list(explicit)  # type: ignore
-        states = list(AlarmState)
-        flags, numbers = arrays["alarms.flags"], arrays["alarms.numbers"]
-        for row, alarm_id in enumerate(ids):
-            alarm = self._alarms.get(alarm_id)
-            if alarm is None:
-                continue
-            state, active, suppressed = (int(v) for v in flags[row])
-            shelved, since, statistic, limit, onset, baseline, t = (float(v) for v in numbers[row])
-            alarm.state = states[state]
-            alarm.active, alarm.suppressed = bool(active), bool(suppressed)
-            alarm.shelved_until, alarm.since = _none(shelved), _none(since)
-            alarm.evidence = Evidence(statistic, limit, _none(onset), None if baseline != baseline else int(baseline),
-                                      _none(t))
-            self._views[alarm.id] = replace(alarm)
+        flags = np.asarray(arrays["alarms.flags"], dtype=np.int8)
+        numbers = np.asarray(arrays["alarms.numbers"], dtype=np.float64)
         self.journal.clear()
+        explicit = meta.get("ids")
+        if explicit is None and self.layout.is_grid:
+            # Every channel with every kind, here and there: rows found a channel at a time, not an id at a time.
+            width = len(ALARM_KINDS)
+            positions = [(saved, self.layout.position(channel)) for saved, channel in enumerate(channels)]
+            pairs = np.array([(saved, at) for saved, at in positions if at is not None], dtype=np.int64).reshape(-1, 2)
+            kinds = np.arange(width, dtype=np.int64)
+            saved_rows = (pairs[:, :1] * width + kinds).reshape(-1)
+            rows = (pairs[:, 1:] * width + kinds).reshape(-1)
+            if rows.shape[0]:
+                self._columns.scatter(rows, flags[saved_rows], numbers[saved_rows])
+            return
+        ids = [f"{c}:{k}" for c in channels for k in ALARM_KINDS] if explicit is None else list(explicit)  # type: ignore
+        found = [(saved, row) for saved, alarm_id in enumerate(ids)
+                 if (row := self.layout.row_of(alarm_id)) is not None]
+        if found:
+            saved, rows = (np.array(side, dtype=np.int64) for side in zip(*found, strict=True))
+            self._columns.scatter(rows, flags[saved], numbers[saved])
 
     # -------------------------------------------------------------- conditions
     def condition(self, channel: str, kind: str, active: bool, now: float,
-                  evidence: Evidence = Evidence()) -> JournalEntry | None:
+                  evidence: Evidence = _NO_EVIDENCE) -> JournalEntry | None:
         """The detectors say the condition turned active or cleared (journaled also while set aside)."""
-        alarm = self._alarms.get(f"{channel}:{kind}")
-        if alarm is None or alarm.active == active:
+        row = self.layout.row(channel, kind)
+        if row is None:
             return None
-        alarm.active = active
+        code, was_active, _ = self._columns.flags(row)
+        if bool(was_active) == active:
+            return None
+        self._columns.set_flag(row, ACTIVE, int(active))
         # On a clear the onset and baseline of the episode stay; statistic, limit and time are the clear's.
-        alarm.evidence = evidence if active else replace(alarm.evidence, statistic=evidence.statistic,
-                                                          limit=evidence.limit, t=evidence.t)
-        state = alarm.state
+        changed: dict[int, float | None] = {STATISTIC: evidence.statistic, LIMIT: evidence.limit, T: evidence.t}
+        if active:
+            changed.update({ONSET: evidence.onset, BASELINE: evidence.baseline})
+        self._columns.set_numbers(row, changed)
+        state = STATES[code]
         if state in _SET_ASIDE:
             after = state                    # followed, not shown: the state comes back on return
         elif active:
@@ -308,95 +204,144 @@ class AlarmBook:
             after = AlarmState.NORMAL
         else:
             after = state
-        return self._move(alarm, after, now, JournalAction.CONDITION_ON if active else JournalAction.CONDITION_OFF)
+        return self._move(row, after, now, JournalAction.CONDITION_ON if active else JournalAction.CONDITION_OFF)
 
     def suppress(self, channel: str, kinds: Iterable[str], held: bool, now: float, reason: str) -> list[JournalEntry]:
         """Hold alarms back by design (``held``) or release them; ``reason`` goes to the journal."""
         entries = []
         for kind in kinds:
-            alarm = self._alarms.get(f"{channel}:{kind}")
-            if alarm is None or alarm.suppressed == held:
+            row = self.layout.row(channel, kind)
+            if row is None:
                 continue
-            alarm.suppressed = held
-            if held and alarm.state in _IN_SERVICE | {AlarmState.SHELVED}:
-                alarm.shelved_until = None
+            code, active, suppressed = self._columns.flags(row)
+            if bool(suppressed) == held:
+                continue
+            self._columns.set_flag(row, SUPPRESSED, int(held))
+            state = STATES[code]
+            if held and state in _IN_SERVICE | {AlarmState.SHELVED}:
+                self._columns.set_numbers(row, {SHELVED_UNTIL: None})
                 after = AlarmState.SUPPRESSED
-            elif not held and alarm.state == AlarmState.SUPPRESSED:
-                after = _returning(alarm)
+            elif not held and state == AlarmState.SUPPRESSED:
+                after = _returning(False, bool(active))
             else:
-                after = alarm.state              # out of service: journaled, it decides the return
+                after = state                # out of service: journaled, it decides the return
             action = JournalAction.SUPPRESS if held else JournalAction.RELEASE
-            entries.append(self._move(alarm, after, now, action, comment=reason))
+            entries.append(self._move(row, after, now, action, comment=reason))
         return entries
+
+    def suppress_many(self, channels: Sequence[str], kinds: Sequence[str], now: float, reason: str) -> int:
+        """:meth:`suppress` (held) of ``kinds`` of every channel in turn, in bulk: the same states, and the same
+        journal entries in the same order, kept as one run. Returns the number of transitions."""
+        rows = self.layout.rows_of(channels, kinds)
+        flags, numbers = self._columns.gather(rows)
+        chosen = flags[:, SUPPRESSED] == 0
+        rows, flags, numbers = rows[chosen], flags[chosen], numbers[chosen]
+        if not rows.shape[0]:
+            return 0
+        before = flags[:, STATE].copy()
+        suppressible = np.isin(before, _SUPPRESSIBLE)
+        after = np.where(suppressible, STATE_CODE[AlarmState.SUPPRESSED], before).astype(np.int8)
+        evidence = numbers[:, EVIDENCE].copy()
+        flags[:, STATE] = after
+        flags[:, SUPPRESSED] = 1
+        numbers[suppressible, SHELVED_UNTIL] = np.nan
+        numbers[:, SINCE] = now
+        self._columns.scatter(rows, flags, numbers)
+        run = SuppressionRun(self.layout, self._seq + 1, now, reason or None, rows, before, after,
+                             None if np.isnan(evidence).all() else evidence)
+        self._seq = run.last_seq
+        self.journal.add_run(run)
+        listening = [listener for listener, wants in self._listeners if wants is None or wants()]
+        for i in range(len(run)) if listening else ():
+            entry, alarm = run.entry(i), self._columns.alarm(self.layout, int(rows[i]))
+            for listener in listening:
+                listener(entry, alarm)
+        return len(run)
 
     # -------------------------------------------------------- operator actions
     def acknowledge(self, alarm_id: str, user: str, now: float, comment: str = "") -> JournalEntry:
-        alarm = self.get(alarm_id)
-        if alarm.state == AlarmState.UNACKNOWLEDGED:
+        row = self._row(alarm_id)
+        state = STATES[self._columns.flags(row)[STATE]]
+        if state == AlarmState.UNACKNOWLEDGED:
             after = AlarmState.ACKNOWLEDGED
-        elif alarm.state == AlarmState.RETURNED_UNACKNOWLEDGED:
+        elif state == AlarmState.RETURNED_UNACKNOWLEDGED:
             after = AlarmState.NORMAL
         else:
-            raise AlarmRefused("not_acknowledgeable", f"{alarm_id} is {alarm.state}: nothing to acknowledge")
-        return self._move(alarm, after, now, JournalAction.ACKNOWLEDGE, user=user, comment=comment)
+            raise AlarmRefused("not_acknowledgeable", f"{alarm_id} is {state}: nothing to acknowledge")
+        return self._move(row, after, now, JournalAction.ACKNOWLEDGE, user=user, comment=comment)
 
     def shelve(self, alarm_id: str, user: str, now: float, until: float, comment: str = "") -> JournalEntry:
-        alarm = self.get(alarm_id)
-        if alarm.state not in _IN_SERVICE:
-            raise AlarmRefused("not_shelvable", f"{alarm_id} is {alarm.state}: only an alarm in service is shelved")
+        row = self._row(alarm_id)
+        state = STATES[self._columns.flags(row)[STATE]]
+        if state not in _IN_SERVICE:
+            raise AlarmRefused("not_shelvable", f"{alarm_id} is {state}: only an alarm in service is shelved")
         if not (math.isfinite(until) and until > now):
             raise AlarmRefused("bad_expiry", f"shelving must end after now, got {until}")
-        alarm.shelved_until = until
-        return self._move(alarm, AlarmState.SHELVED, now, JournalAction.SHELVE, user=user, comment=comment)
+        self._columns.set_numbers(row, {SHELVED_UNTIL: until})
+        return self._move(row, AlarmState.SHELVED, now, JournalAction.SHELVE, user=user, comment=comment)
 
     def unshelve(self, alarm_id: str, user: str, now: float, comment: str = "") -> JournalEntry:
-        alarm = self.get(alarm_id)
-        if alarm.state != AlarmState.SHELVED:
-            raise AlarmRefused("not_shelved", f"{alarm_id} is {alarm.state}, not shelved")
-        alarm.shelved_until = None
-        return self._move(alarm, _returning(alarm), now, JournalAction.UNSHELVE, user=user, comment=comment)
+        row = self._row(alarm_id)
+        code, active, suppressed = self._columns.flags(row)
+        if STATES[code] != AlarmState.SHELVED:
+            raise AlarmRefused("not_shelved", f"{alarm_id} is {STATES[code]}, not shelved")
+        self._columns.set_numbers(row, {SHELVED_UNTIL: None})
+        return self._move(row, _returning(bool(suppressed), bool(active)), now, JournalAction.UNSHELVE, user=user,
+                          comment=comment)
 
     def expire(self, now: float) -> list[JournalEntry]:
         """End every shelving whose expiry has passed."""
         entries = []
-        for alarm in self._alarms.values():
-            if alarm.state == AlarmState.SHELVED and alarm.shelved_until is not None and now >= alarm.shelved_until:
-                alarm.shelved_until = None
-                entries.append(self._move(alarm, _returning(alarm), now, JournalAction.SHELVE_EXPIRED))
+        for row in self._columns.shelved_until(now).tolist():
+            _, active, suppressed = self._columns.flags(row)
+            self._columns.set_numbers(row, {SHELVED_UNTIL: None})
+            entries.append(self._move(row, _returning(bool(suppressed), bool(active)), now,
+                                      JournalAction.SHELVE_EXPIRED))
         return entries
 
     def remove(self, alarm_id: str, user: str, now: float, comment: str = "") -> JournalEntry:
         """Take an alarm out of service (maintenance)."""
-        alarm = self.get(alarm_id)
-        if alarm.state == AlarmState.OUT_OF_SERVICE:
+        row = self._row(alarm_id)
+        if STATES[self._columns.flags(row)[STATE]] == AlarmState.OUT_OF_SERVICE:
             raise AlarmRefused("already_out_of_service", f"{alarm_id} is already out of service")
-        alarm.shelved_until = None
-        return self._move(alarm, AlarmState.OUT_OF_SERVICE, now, JournalAction.REMOVE, user=user, comment=comment)
+        self._columns.set_numbers(row, {SHELVED_UNTIL: None})
+        return self._move(row, AlarmState.OUT_OF_SERVICE, now, JournalAction.REMOVE, user=user, comment=comment)
 
     def restore(self, alarm_id: str, user: str, now: float, comment: str = "") -> JournalEntry:
         """Return an alarm to service."""
-        alarm = self.get(alarm_id)
-        if alarm.state != AlarmState.OUT_OF_SERVICE:
-            raise AlarmRefused("not_out_of_service", f"{alarm_id} is {alarm.state}, not out of service")
-        return self._move(alarm, _returning(alarm), now, JournalAction.RESTORE, user=user, comment=comment)
+        row = self._row(alarm_id)
+        code, active, suppressed = self._columns.flags(row)
+        if STATES[code] != AlarmState.OUT_OF_SERVICE:
+            raise AlarmRefused("not_out_of_service", f"{alarm_id} is {STATES[code]}, not out of service")
+        return self._move(row, _returning(bool(suppressed), bool(active)), now, JournalAction.RESTORE, user=user,
+                          comment=comment)
 
     # ---------------------------------------------------------------- journal
-    def _move(self, alarm: Alarm, after: AlarmState, now: float, action: JournalAction, *, user: str | None = None,
-              comment: str | None = None, evidence: Evidence | None = None) -> JournalEntry:
+    def _move(self, row: int, after: AlarmState, now: float, action: JournalAction, *, user: str | None = None,
+              comment: str | None = None) -> JournalEntry:
         self._seq += 1
-        entry = JournalEntry(self._seq, now, alarm.id, alarm.channel, alarm.kind, action,
-                             str(alarm.state), str(after), alarm.evidence if evidence is None else evidence,
-                             user, comment or None, alarm.shelved_until if after == AlarmState.SHELVED else None)
-        alarm.state = after
-        alarm.since = now
-        self._views[alarm.id] = replace(alarm)
+        channel, kind, _ = self.layout.names(row)
+        numbers = self._columns.numbers(row)
+        before = STATES[self._columns.flags(row)[STATE]]
+        entry = JournalEntry(self._seq, now, f"{channel}:{kind}", channel, kind, action, str(before), str(after),
+                             evidence_of(numbers), user, comment or None,
+                             optional(numbers[SHELVED_UNTIL]) if after == AlarmState.SHELVED else None)
+        self._columns.set_flag(row, STATE, STATE_CODE[after])
+        self._columns.set_numbers(row, {SINCE: now})
         self.journal.append(entry)
-        if self._journal_limit is not None and len(self.journal) > self._journal_limit + self._journal_limit // 10:
-            # Memory holds the newest entries; the durable store keeps them all.
-            del self.journal[: len(self.journal) - self._journal_limit]
-        for listener in self._listeners:
-            listener(entry, alarm)
+        listening = [listener for listener, wants in self._listeners if wants is None or wants()]
+        if listening:
+            alarm = self._columns.alarm(self.layout, row)
+            for listener in listening:
+                listener(entry, alarm)
         return entry
+
+
+def _returning(suppressed: bool, active: bool) -> AlarmState:
+    """Where an alarm goes when it leaves shelving, suppression or out-of-service."""
+    if suppressed:
+        return AlarmState.SUPPRESSED
+    return AlarmState.UNACKNOWLEDGED if active else AlarmState.NORMAL
 
 
 def rerun_journal(priorities: Mapping[str, Mapping[str, str]],

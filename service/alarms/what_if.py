@@ -38,7 +38,7 @@ class WhatIf:
     """
 
     def __init__(self, config: RwlsConfig) -> None:
-        self._book = AlarmBook({cid: ch.priorities() for cid, ch in config.channels.items()})
+        self._book = AlarmBook(config.alarm_priorities())
         self._feed = AlarmFeed(self._book, config.alarms.stale_after)
         self._samples: dict[str, int] = {}
         self._held: dict[str, bool] | None = None     # channel -> has a baseline, until the first sample

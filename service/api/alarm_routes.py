@@ -37,7 +37,7 @@ def _refused(exc: AlarmRefused) -> JSONResponse:
 
 def _act(runtime: Runtime, action: type[Acknowledge | Shelve | Unshelve | Remove | Restore], alarm_id: str,
          body: AckBody | ShelveBody, who: Operator, **more: float) -> dict[str, object] | JSONResponse:
-    if alarm_id not in runtime.alarm_ids:
+    if alarm_id not in runtime.alarms:                  # the book's alarms are fixed by the configuration
         return JSONResponse({"detail": "unknown_alarm", "message": f"no alarm {alarm_id!r}"}, status_code=404)
     operation = action(alarm=alarm_id, user=actor(who, body), comment=body.comment or "", time=time.time(), **more)
     try:
@@ -55,11 +55,10 @@ def alarms(runtime: ServiceRuntime, channel: str | None = None, kind: str | None
            priority: str | None = None, include_normal: bool = False,
            limit: int = Query(default=100, ge=1, le=10_000),
            offset: int = Query(default=0, ge=0)) -> dict[str, object]:
-    chosen = [a for a in runtime.engine.snapshot.alarms
-              if (include_normal or str(a.state) != "Normal")
-              and (channel is None or a.channel == channel) and (kind is None or a.kind == kind)
-              and (state is None or str(a.state) == state) and (priority is None or a.priority == priority)]
-    return {"total": len(chosen), "offset": offset, "alarms": [a.to_dict() for a in chosen[offset:offset + limit]]}
+    table = runtime.engine.snapshot.alarms
+    rows = table.rows_where(channel=channel, kind=kind, state=state, priority=priority, include_normal=include_normal)
+    return {"total": len(rows), "offset": offset,
+            "alarms": [table.at(row).to_dict() for row in rows[offset:offset + limit].tolist()]}
 
 
 @router.get("/alarms/journal", dependencies=[READ], summary="Alarm transitions with seq > after, oldest first",

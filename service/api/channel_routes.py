@@ -27,13 +27,6 @@ __all__ = ["FlatSnapshot", "router"]
 router = APIRouter(prefix="/api/v1", dependencies=[READ])
 
 
-def _alarms_by_channel(snapshot: Snapshot) -> dict[str, list[Alarm]]:
-    by_channel: dict[str, list[Alarm]] = {}
-    for alarm in snapshot.alarms:
-        by_channel.setdefault(alarm.channel, []).append(alarm)
-    return by_channel
-
-
 def _alarm_summary(alarms: list[Alarm]) -> dict[str, object]:
     """The states worth a glance: alarms not Normal, and the highest priority among the active."""
     raised = [a for a in alarms if str(a.state) != "Normal"]
@@ -113,8 +106,7 @@ class FlatSnapshot:
 def channels(request: Request, runtime: ServiceRuntime,
              scope: Literal["fleet", "local"] = "fleet") -> list[dict[str, object]]:
     snap = runtime.engine.snapshot
-    alarms = _alarms_by_channel(snap)
-    local = [_summary(cid, entry, alarms.get(cid, [])) for cid, entry in snap.channels.items()]
+    local = [_summary(cid, entry, snap.alarms.of_channel(cid)) for cid, entry in snap.channels.items()]
     if runtime.fleet is None or scope == "local":
         return local
     return runtime.fleet.channel_list(local, passed_on(request))
@@ -130,7 +122,7 @@ def channel(channel_id: str, request: Request, runtime: ServiceRuntime) -> dict[
     entry = snap.channels.get(channel_id)
     if entry is None:
         return not_found("unknown channel")
-    return _detail(entry, channel_id, _alarms_by_channel(snap).get(channel_id, []))
+    return _detail(entry, channel_id, snap.alarms.of_channel(channel_id))
 
 
 @router.get("/channels/{channel_id}/history", response_model=models.History,

@@ -59,8 +59,9 @@ class _EngineCollector(Collector):
                                 value=stats.last_batch_seconds)
         quality = GaugeMetricFamily("rwls_channels", "Channels by quality", labels=["quality"])
         counts = dict.fromkeys(Quality, 0)
-        for entry in engine.snapshot.channels.values() if engine is not None else ():
-            counts[entry.quality] += 1
+        for chunk in engine.snapshot.channels.chunks if engine is not None else ():
+            for entry in chunk.values():
+                counts[entry.quality] += 1
         for name, count in counts.items():
             quality.add_metric([name], count)
         yield quality

@@ -22,7 +22,7 @@ import os
 import queue
 import threading
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from typing import Any, Protocol
 
 from service.broker_link.messages import DeadLetter, Message
@@ -107,10 +107,14 @@ def _decoded(decoders: TagDecoders | None, message: Message) -> TagReading | Ref
 
 
 def _carry_out(ingest: MqttIngest, item: tuple[Any, ...], wait: float = PUBLISH_WAIT) -> None:
-    """One request from the service: ``("publish", topic, payload, retain)`` or ``("ack", acks)``."""
+    """One request from the service: ``("publish", topic, payload, retain)``, ``("publish_from", producer,
+    args)`` or ``("ack", acks)``."""
     try:
         if item[0] == "ack":
             ingest.ack(item[1])
+        elif item[0] == "publish_from":
+            _, producer, args = item
+            ingest.publish_many(producer(*args), wait=wait)
         else:
             _, topic, payload, retain = item
             ingest.publish(topic, payload, retain=retain, wait=wait)
@@ -279,6 +283,12 @@ class ProcessIngest:
         in :meth:`MqttIngest.publish`); RuntimeError after that, or when the child is gone.
         """
         self._put(("publish", topic, payload, retain))
+
+    def publish_from(self, producer: Callable[..., Iterable[tuple[str, bytes, bool]]], args: tuple[Any, ...]) -> None:
+        """:meth:`publish` of each ``(topic, payload, retain)`` that ``producer(*args)`` yields, made in the child:
+        many messages from compact data (every alarm's retained state at start), handed over as that data.
+        ``producer`` is a module-level function (pickled by name)."""
+        self._put(("publish_from", producer, args))
 
     def ack(self, acks: list[tuple[int, int]]) -> None:
         """Have the child acknowledge these messages (waits like :meth:`publish`; RuntimeError after)."""

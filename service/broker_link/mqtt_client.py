@@ -24,7 +24,7 @@ import logging
 import ssl
 import threading
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -46,6 +46,9 @@ MAX_OUTGOING_QUEUE = 10_000                # dead letters waiting for the broker
 # refusals arriving faster than the broker takes their dead letters slow the engine down (and so,
 # through the acknowledgements, the broker), rather than losing dead letters.
 PUBLISH_WAIT = 10.0
+# Topics per SUBSCRIBE: paho makes several objects per topic of a request and the SUBACK's reason codes; 100,000
+# topics in one request peaked at 240 MB, which stayed resident (measured); in requests of this many, a few MB.
+SUBSCRIBE_CHUNK = 1000
 
 
 @dataclass(frozen=True)
@@ -138,7 +141,7 @@ class MqttIngest:
         self._submit = submit
         self._connected = threading.Event()
         self._subscribed = threading.Event()      # the broker's SUBACK granted every topic of this connection
-        self._subscribe_mid: int | None = None
+        self._subscribe_pending: set[int | None] = set()     # SUBSCRIBE ids whose SUBACK has not come yet
         self._stopping = threading.Event()
         self._thread: threading.Thread | None = None
         self._client: mqtt.Client | None = None
@@ -229,11 +232,14 @@ class MqttIngest:
         self._subscribed.clear()
         if self._topics:
             qos = self.settings.qos
-            if self.protocol == "5":
-                _, self._subscribe_mid = client.subscribe([(topic, SubscribeOptions(qos=qos))
-                                                           for topic in self._topics])
-            else:
-                _, self._subscribe_mid = client.subscribe([(topic, qos) for topic in self._topics])
+            topics = list(self._topics)
+            pending: set[int | None] = set()
+            for start in range(0, len(topics), SUBSCRIBE_CHUNK):
+                chunk = topics[start:start + SUBSCRIBE_CHUNK]
+                _, mid = client.subscribe([(topic, SubscribeOptions(qos=qos)) for topic in chunk]
+                                          if self.protocol == "5" else [(topic, qos) for topic in chunk])
+                pending.add(mid)
+            self._subscribe_pending = pending     # SUBACKs come on this (the network) thread, after this callback
         else:
             self._subscribed.set()                # nothing to subscribe to: nothing to wait for
         self._connected.set()
@@ -243,8 +249,10 @@ class MqttIngest:
         failed = [code for code in reason_codes if getattr(code, "is_failure", False)]
         if failed:
             log.error("broker refused %d of %d subscriptions: %s", len(failed), len(reason_codes), failed[0])
-        elif mid == self._subscribe_mid:
-            self._subscribed.set()
+        elif mid in self._subscribe_pending:
+            self._subscribe_pending.discard(mid)
+            if not self._subscribe_pending:
+                self._subscribed.set()
 
     def _on_disconnect(self, client: mqtt.Client, userdata: Any, flags: Any, reason_code: Any,
                        properties: Any) -> None:
@@ -300,6 +308,22 @@ class MqttIngest:
                 self.publish_failures += 1
                 raise RuntimeError(f"publish to {topic} refused: {mqtt.error_string(info.rc)}")
             time.sleep(0.002)                  # paho's network thread frees room as PUBACKs arrive
+
+    def publish_many(self, messages: Iterable[tuple[str, bytes, bool]], *, wait: float = PUBLISH_WAIT) -> None:
+        """:meth:`publish` of each ``(topic, payload, retain)``; RuntimeError after trying them all, if any failed."""
+        refused = tried = 0
+        for topic, payload, retain in messages:
+            tried += 1
+            try:
+                self.publish(topic, payload, retain=retain, wait=wait)
+            except RuntimeError:
+                refused += 1
+        if refused:
+            raise RuntimeError(f"{refused} of {tried} publishes refused")
+
+    def publish_from(self, producer: Callable[..., Iterable[tuple[str, bytes, bool]]], args: tuple[Any, ...]) -> None:
+        """:meth:`publish` of each message ``producer(*args)`` yields (see :meth:`ProcessIngest.publish_from`)."""
+        self.publish_many(producer(*args))
 
     def publish_dead_letter(self, letter: DeadLetter) -> None:
         """Publish a refusal to the dead-letter topic (see :meth:`publish`)."""

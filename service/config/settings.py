@@ -483,11 +483,18 @@ class RwlsConfig(_Strict):
 
     def apply_baselines(self, bank: ChannelBank) -> None:
         """Put every configured ``[channels.<id>.baseline]`` in force (at start, live and offline alike)."""
+        # Channels alike (one validated table: shared baseline and terms objects) take one baseline in one go.
+        alike: dict[tuple[int, int], list[str]] = {}
         for cid, channel in self.channels.items():
             if channel.baseline is not None:
-                values, covariance = channel.baseline.values(RegressorSpec(channel.terms).names)
-                bank.set_baseline(cid, values, noise_sigma=channel.baseline.noise_sigma, covariance=covariance,
-                                  source=channel.baseline.source, note="from the configuration")
+                alike.setdefault((id(channel.baseline), id(channel.terms)), []).append(cid)
+        for members in alike.values():
+            channel = self.channels[members[0]]
+            baseline = channel.baseline
+            if baseline is not None:
+                values, covariance = baseline.values(RegressorSpec(channel.terms).names)
+                bank.set_baselines(members, values, noise_sigma=baseline.noise_sigma, covariance=covariance,
+                                   source=baseline.source, note="from the configuration")
 
     def channel_settings(self) -> dict[str, ChannelSettings]:
         """Every channel's estimator settings, with the fleet budget applied; channels alike share one object
@@ -500,6 +507,16 @@ class RwlsConfig(_Strict):
             found = made.get(key)
             settings[cid] = found if found is not None else made.setdefault(key, channel.settings(budget))
         return settings
+
+    def alarm_priorities(self) -> dict[str, dict[str, str]]:
+        """Each channel's priority by alarm kind; channels alike share one mapping (the alarm book's layout then
+        reads it once)."""
+        made: dict[int, dict[str, str]] = {}
+        priorities = {}
+        for cid, channel in self.channels.items():
+            found = made.get(id(channel.alarms))
+            priorities[cid] = found if found is not None else made.setdefault(id(channel.alarms), channel.priorities())
+        return priorities
 
     @field_validator("channels")
     @classmethod

@@ -15,6 +15,7 @@ import time
 from collections.abc import Callable, Sequence
 
 from estimator import ChannelBank, ViewBlock
+from service.alarms.alarm_table import NO_ALARMS
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import AlarmBook
 from service.engine.activity import ChannelActivity
@@ -58,7 +59,7 @@ class SnapshotPublisher:
         self._last_publish = 0.0
         now = clock()
         self._snapshot = Snapshot(0, now, ChannelEntries.of(self._entries(bank.channel_ids, now)),
-                                  tuple(alarms.alarms()) if alarms is not None else ())
+                                  alarms.alarms() if alarms is not None else NO_ALARMS)
 
     @property
     def snapshot(self) -> Snapshot:
@@ -130,5 +131,5 @@ class SnapshotPublisher:
         alarms = self._snapshot.alarms
         if self._alarms_changed and self._alarms is not None:
             self._alarms_changed = False
-            alarms = tuple(self._alarms.alarms())
+            alarms = self._alarms.alarms()
         self._snapshot = Snapshot(self._snapshot.version + 1, now, entries, alarms)

@@ -15,7 +15,7 @@ import math
 from dataclasses import dataclass
 
 from estimator import CONDITION_LIMIT, ChannelView, ViewBlock
-from service.alarms.lifecycle import Alarm
+from service.alarms.alarm_table import NO_ALARMS, AlarmTable
 from service.engine.channel_entries import ChannelEntries
 from service.engine.quality import Quality, QualityReason, estimates_shown
 
@@ -86,7 +86,7 @@ class Snapshot:
     version: int
     created_at: float
     channels: ChannelEntries                # channel id -> entry, in channel order
-    alarms: tuple[Alarm, ...] = ()        # copies of every alarm, when the engine keeps an alarm book
+    alarms: AlarmTable = NO_ALARMS        # a frozen copy of every alarm, when the engine keeps an alarm book
 
 
 # Refused samples in a row (none applied between them) after which a channel's estimates are no longer

@@ -143,7 +143,7 @@ class Persistence:
             self._writer.join()
         started = time.perf_counter()
         arrays, meta = self.state(engine)
-        fresh = [] if engine.alarms is None else [e for e in engine.alarms.journal if e.seq > self._handed_seq]
+        fresh = [] if engine.alarms is None else engine.alarms.journal.since(self._handed_seq)
         newest_seq = fresh[-1].seq if fresh else None
         entries = [e.to_dict() for e in fresh]
         if newest_seq is not None:

@@ -166,3 +166,18 @@ def test_channels_sharing_one_settings_object_end_as_channels_with_a_copy_each()
         each.apply(samples[start:start + 50])
     assert_same_state(one.state(), each.state())
     assert one.view()["a"].applied > 0 and one.view()["a"].terms == ("1", "y[-1]", "u")
+
+
+def test_one_baseline_set_for_many_channels_gives_the_state_of_setting_it_for_each() -> None:
+    settings = {cid: SETTINGS["temp"] for cid in ("a", "b", "c")}
+    each, many = ChannelBank(settings), ChannelBank(settings)
+    for cid in settings:
+        each.set_baseline(cid, [1.0, 0.5], noise_sigma=0.2, covariance=[[0.01, 0.0], [0.0, 0.02]], note="given")
+    many.set_baselines(list(settings), [1.0, 0.5], noise_sigma=0.2, covariance=[[0.01, 0.0], [0.0, 0.02]],
+                       note="given")
+    assert_same_state(many.state(), each.state())
+    samples = [dataclasses.replace(s, channel=cid) for s in _stream(seed=3, count=40) if s.channel == "temp"
+               for cid in settings]
+    each.apply(samples)
+    many.apply(samples)
+    assert_same_state(many.state(), each.state())
