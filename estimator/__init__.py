@@ -14,7 +14,7 @@ from estimator.channels.regressors import (
     Term,
     parse_term,
 )
-from estimator.channels.sample_columns import SampleColumns
+from estimator.channels.sample_columns import AppliedRows, ColumnsOutcome, SampleColumns
 from estimator.detection.baseline import Baseline
 from estimator.detection.detectors import DEFAULT_TIMING, ConditionTiming, DetectorKind, DetectorSettings, DetectorState
 from estimator.detection.detectors import KINDS as DETECTOR_KINDS
@@ -33,6 +33,7 @@ __all__ = [
     "DEFAULT_TIMING",
     "DETECTOR_KINDS",
     "WEIGHTINGS",
+    "AppliedRows",
     "BankState",
     "Baseline",
     "BatchFit",
@@ -43,6 +44,7 @@ __all__ = [
     "ChannelSettings",
     "ChannelStatistics",
     "ChannelView",
+    "ColumnsOutcome",
     "ConditionTiming",
     "DetectorKind",
     "DetectorSettings",

@@ -33,7 +33,7 @@ from estimator.channels.channel_group import ChannelGroup, GroupState, Lane, sha
 from estimator.channels.channel_view import ChannelView, DetectorReading, ViewBlock
 from estimator.channels.column_rounds import apply_group_columns
 from estimator.channels.group_watch import WatchNotice
-from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
+from estimator.channels.sample_columns import AppliedRows, ColumnsOutcome, SampleColumns
 from estimator.detection.baseline import Baseline
 from estimator.detection.detectors import ConditionEvent
 from estimator.recursive.sample_refusal import SampleRefusal
@@ -246,13 +246,16 @@ class ChannelBank:
                     outcomes[pos] = outcome
         return [o if o is not None else SampleOutcome("refused", SampleRefusal.INTERNAL) for o in outcomes]
 
-    def apply_columns(self, columns: Mapping[str, SampleColumns]) -> dict[str, ColumnsOutcome]:
+    def apply_columns(self, columns: Mapping[str, SampleColumns], keep_rows: bool = False
+                      ) -> dict[str, ColumnsOutcome]:
         """Apply each channel's columns in order: the same state and outcomes as :meth:`apply`.
 
         Channels whose columns pass every check in whole-array form run in
         vectorised rounds (:mod:`estimator.channels.column_rounds`); the others, and
         any remainder, take :meth:`apply`, which finds each refusal's reason.
         Samples of an unknown channel are refused ``unknown_channel``.
+        With ``keep_rows``, each known channel's outcome carries its fitted samples
+        (regressor rows, outputs, the weights used) as :class:`AppliedRows`.
         """
         outcomes: dict[str, ColumnsOutcome] = {}
         by_group: dict[int, list[tuple[Lane, SampleColumns]]] = {}
@@ -264,26 +267,48 @@ class ChannelBank:
                 by_group.setdefault(id(lane.group), []).append((lane, cols))
         leftovers: list[tuple[Lane, SampleColumns, int]] = []
         for entries in by_group.values():
-            done, rest = apply_group_columns(entries[0][0].group, entries)
+            done, rest = apply_group_columns(entries[0][0].group, entries, keep_rows)
             outcomes.update(done)
             leftovers.extend(rest)
         if not leftovers:
-            return outcomes
+            return self._with_rows(columns, outcomes, {}) if keep_rows else outcomes
         samples: list[Sample] = []
         places: list[tuple[str, int]] = []
         for lane, cols, start in leftovers:
             for pos, sample in enumerate(cols.samples(lane.channel, start), start):
                 samples.append(sample)
                 places.append((lane.channel, pos))
-        for (cid, pos), outcome in zip(places, self.apply(samples), strict=True):
+        exact_rows: dict[str, list[tuple[int, list[float], float, float]]] = {}
+        for (cid, pos), outcome, sample in zip(places, self.apply(samples), samples, strict=True):
             result = outcomes.setdefault(cid, ColumnsOutcome())
             if outcome.status == "applied":
                 result.applied += 1
                 result.last_applied = pos
+                if keep_rows and outcome.regressor is not None:
+                    exact_rows.setdefault(cid, []).append((pos, outcome.regressor, sample.y, outcome.weight))
             elif outcome.status == "warmup":
                 result.warmup += 1
             else:
                 result.refused.append((pos, outcome.reason))
+        return self._with_rows(columns, outcomes, exact_rows) if keep_rows else outcomes
+
+    def _with_rows(self, columns: Mapping[str, SampleColumns], outcomes: dict[str, ColumnsOutcome],
+                   exact_rows: dict[str, list[tuple[int, list[float], float, float]]]) -> dict[str, ColumnsOutcome]:
+        """Each known channel's rows: the vectorised rounds' first, then the exact path's (later positions)."""
+        for cid in columns:
+            lane = self._lanes.get(cid)
+            if lane is None:
+                continue
+            result = outcomes.setdefault(cid, ColumnsOutcome())
+            n = len(lane.terms)
+            parts = [result.rows] if result.rows is not None else []
+            exact = exact_rows.get(cid)
+            if exact:
+                parts.append(AppliedRows(np.array([e[0] for e in exact], dtype=np.intp),
+                                         np.array([e[1] for e in exact], dtype=np.float64).reshape(-1, n),
+                                         np.array([e[2] for e in exact], dtype=np.float64),
+                                         np.array([e[3] for e in exact], dtype=np.float64)))
+            result.rows = AppliedRows.join(parts, n)
         return outcomes
 
     def view(self, channels: Sequence[str] | None = None) -> dict[str, ChannelView]:

@@ -36,7 +36,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from estimator.channels.channel import Weighting
-from estimator.channels.sample_columns import ColumnsOutcome, SampleColumns
+from estimator.channels.sample_columns import AppliedRows, ColumnsOutcome, SampleColumns
 from estimator.recursive.weight_rule import usable_sigmas, usable_weights
 
 if TYPE_CHECKING:
@@ -242,6 +242,7 @@ class _Prepared:
         unusable = fixed & self.fitted & ~usable_weights(w)                             # bad_weight
         self.refused |= _per_lane_any(unusable, self.starts)
         self.w = w
+        self.w_used = w.copy()          # the weight each update used (tracked ones are made per round)
 
     def apply_rules(self, w: FloatArray, rows: NDArray[np.intp], lanes: NDArray[np.intp]) -> FloatArray:
         """``w = w * factor`` for each rule in band, rule by rule as ``sample_weight`` does."""
@@ -251,12 +252,13 @@ class _Prepared:
         return w
 
 
-def apply_group_columns(group: ChannelGroup, entries: list[tuple[Lane, SampleColumns]]
+def apply_group_columns(group: ChannelGroup, entries: list[tuple[Lane, SampleColumns]], keep_rows: bool = False
                         ) -> tuple[dict[str, ColumnsOutcome], list[Leftover]]:
     """Apply the columns of distinct lanes of ``group``; return their outcomes and what the exact path must do.
 
     Lanes whose columns meet a refusal come back whole as leftovers (start 0),
     and a lane that stops mid-way comes back from the sample where it stopped.
+    With ``keep_rows`` each outcome carries its fitted samples (:class:`AppliedRows`).
     """
     entries = [(lane, c) for lane, c in entries if c.y]
     tuning = group.tuning
@@ -277,6 +279,11 @@ def apply_group_columns(group: ChannelGroup, entries: list[tuple[Lane, SampleCol
     accepted = (prep.warmup[runnable] + done).tolist()
     for k, outcome, count in zip(lanes, _finish_lanes(prep, lanes, accepted, fitted), accepted, strict=True):
         lane, columns = prep.entries[k]
+        if keep_rows:
+            first = int(prep.warmup[k])
+            rows = slice(int(prep.starts[k]) + first, int(prep.starts[k]) + first + outcome.applied)
+            outcome.rows = AppliedRows(np.arange(first, first + outcome.applied, dtype=np.intp),
+                                       prep.Z[rows].copy(), prep.y[rows].copy(), prep.w_used[rows].copy())
         outcomes[lane.channel] = outcome
         if count < len(columns.y):
             leftovers.append((lane, columns, count))
@@ -328,6 +335,8 @@ def _run_rounds(group: ChannelGroup, prep: _Prepared, runnable: NDArray[np.intp]
                 z, y, w = z[usable], y[usable], w[usable]
                 if sel.shape[0] == 0:
                     continue
+        if any_tracked:
+            prep.w_used[rows] = w
         z_op = prep.Z_op[rows] if prep.Z_op is not None else None
         declared = prep.declared[rows]
         kappa = group.wls.kappa(idx)

@@ -13,9 +13,12 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
+import numpy as np
+from numpy.typing import NDArray
+
 from estimator.channels.channel import Sample
 
-__all__ = ["ColumnsOutcome", "SampleColumns"]
+__all__ = ["AppliedRows", "ColumnsOutcome", "SampleColumns"]
 
 
 @dataclass
@@ -89,15 +92,42 @@ class SampleColumns:
         return columns
 
 
+@dataclass(frozen=True)
+class AppliedRows:
+    """The samples of one channel's columns that were fitted, in order, as the recursion used them.
+
+    ``position`` : ndarray, shape (k,), int — each row's place in the columns;
+    ``Z`` : ndarray, shape (k, n_params) — regressor rows; ``y`` : ndarray, shape (k,);
+    ``w`` : ndarray, shape (k,) — the weight each update used (tracked weights as made before the sample).
+    """
+
+    position: NDArray[np.intp]
+    Z: NDArray[np.float64]
+    y: NDArray[np.float64]
+    w: NDArray[np.float64]
+
+    @classmethod
+    def join(cls, parts: Sequence[AppliedRows], n_params: int) -> AppliedRows:
+        """The parts one after the other (none: no rows)."""
+        if not parts:
+            return cls(np.zeros(0, dtype=np.intp), np.zeros((0, n_params)), np.zeros(0), np.zeros(0))
+        if len(parts) == 1:
+            return parts[0]
+        return cls(np.concatenate([p.position for p in parts]), np.concatenate([p.Z for p in parts]),
+                   np.concatenate([p.y for p in parts]), np.concatenate([p.w for p in parts]))
+
+
 @dataclass
 class ColumnsOutcome:
     """What happened to one channel's columns.
 
     ``refused`` lists ``(position, reason)`` in position order; ``last_applied``
-    is the position of the last sample fitted (None if none was).
+    is the position of the last sample fitted (None if none was); ``rows`` the fitted
+    samples (only when asked for, see :meth:`ChannelBank.apply_columns`).
     """
 
     applied: int = 0
     warmup: int = 0
     refused: list[tuple[int, str]] = field(default_factory=list)
     last_applied: int | None = None
+    rows: AppliedRows | None = None

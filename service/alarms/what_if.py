@@ -14,7 +14,9 @@ not judged: it is the wall clock's judgement of a live feed, not of a history.
 
 from __future__ import annotations
 
-from estimator import ChannelBank
+import math
+
+from estimator import ChannelBank, ChannelEvent
 from service.alarms.feed import AlarmFeed
 from service.alarms.lifecycle import Alarm, AlarmBook, AlarmState, JournalEntry
 from service.config.settings import RwlsConfig
@@ -67,6 +69,41 @@ class WhatIf:
         if events:
             self._feed.take(events, now, {c: bank.baseline_version(c) for c in {e.channel for e in events}})
 
+    def observe_chunk(self, bank: ChannelBank, before: dict[str, int | None], first_t: float) -> None:
+        """After a chunk of timed samples applied at once (``rwls replay``'s columnar path): the same transitions
+        as :meth:`observe` after each of them.
+
+        ``before`` maps each channel to its baseline version before the chunk, ``first_t`` is the time of the
+        chunk's first applied sample (the start of the history, if this is the first chunk). Every event of a
+        timed sample carries that sample's time, and each channel's events come in its sample order; the
+        baseline version an event is journaled with is the one in force after its sample, as :meth:`observe`
+        reads it: the version before the chunk, moved on by the channel's own ``baseline`` and ``restart``
+        notices up to and including that sample's.
+        """
+        self._timed = True
+        if self._held is not None:
+            self._feed.hold_uncommissioned(self._held, first_t)
+            self._held = None
+        events = bank.take_events()
+        versions = dict(before)
+        start = 0
+        while start < len(events):
+            channel, t = events[start].channel, _event_t(events[start])
+            end = start + 1
+            while end < len(events) and events[end].channel == channel and _event_t(events[end]) == t:
+                end += 1
+            same_sample = events[start:end]
+            version = versions.get(channel)
+            for event in same_sample:
+                notice = event.notice
+                if notice is not None and notice.kind == "baseline" and notice.baseline is not None:
+                    version = notice.baseline.version
+                elif notice is not None and notice.kind == "restart":
+                    version = None
+            versions[channel] = version
+            self._feed.take(same_sample, t if math.isfinite(t) else first_t, {channel: version})
+            start = end
+
     @property
     def journal(self) -> list[JournalEntry]:
         """Every transition of the run, in order (a copy), as the live alarm book journals them."""
@@ -96,3 +133,9 @@ class WhatIf:
 
     def _hear(self, entry: JournalEntry, alarm: Alarm) -> None:
         self._heard.append((entry, self._timed))
+
+
+def _event_t(event: ChannelEvent) -> float:
+    if event.condition is not None:
+        return event.condition.t
+    return event.notice.t if event.notice is not None else math.nan
