@@ -10,7 +10,9 @@ __all__ = ["Progress"]
 
 
 class Progress:
-    """Throttled progress line: percentage, rows and rows per second.
+    """Throttled progress line: percentage, rows, rows per second and the time left.
+
+    The time left is the part of the file still to read at the pace so far (characters per second).
 
     Parameters
     ----------
@@ -42,9 +44,11 @@ class Progress:
         fraction = min(done / self._total, 1.0)
         width = 30
         filled = round(fraction * width)
-        rate = rows / max(now - self._start, 1e-9)
+        elapsed = max(now - self._start, 1e-9)
+        rate = rows / elapsed
+        left = f"{_clock(elapsed * (1.0 - fraction) / fraction)} left" if fraction > 0.0 else "time left unknown"
         self._stream.write(f"\r{self._label} [{'#' * filled}{'.' * (width - filled)}] "
-                           f"{fraction * 100:5.1f}% {rows:,} rows {rate:,.0f} rows/s")
+                           f"{fraction * 100:5.1f}% {rows:,} rows {rate:,.0f} rows/s {left}  ")
         self._stream.flush()
         self._shown = True
 
@@ -53,3 +57,11 @@ class Progress:
         if self._enabled and self._shown:
             self._stream.write("\r" + " " * 100 + "\r")
             self._stream.flush()
+
+
+def _clock(seconds: float) -> str:
+    """``m:ss``, or ``h:mm:ss`` from an hour on."""
+    whole = round(seconds)
+    hours, rest = divmod(whole, 3600)
+    minutes, secs = divmod(rest, 60)
+    return f"{hours}:{minutes:02d}:{secs:02d}" if hours else f"{minutes}:{secs:02d}"

@@ -166,6 +166,18 @@ def test_progress_bar_draws_only_when_enabled() -> None:
     assert hidden.getvalue() == ""     # StringIO is not a terminal
 
 
+def test_progress_bar_shows_rows_per_second_and_the_time_left(monkeypatch: pytest.MonkeyPatch) -> None:
+    import service.offline.progress as progress_module
+
+    clock = iter([100.0, 110.0])                 # seconds: at the start, then at the update
+    monkeypatch.setattr(progress_module.time, "monotonic", lambda: next(clock))
+    stream = io.StringIO()
+    bar = Progress(4_000, "replay", stream=stream, enabled=True, interval=0.0)
+    bar.update(1_000, 10_000)                     # a quarter of the file in 10 s: 30 s to go at this pace
+    assert "25.0%" in stream.getvalue() and "1,000 rows/s" in stream.getvalue()
+    assert "0:30 left" in stream.getvalue()
+
+
 def test_demo_channels_are_those_of_the_bundled_example(tmp_path: Path) -> None:
     # One plant: `rwls demo` (its own copy of the files) and `examples/larkspur_sub7.toml` must not drift apart.
     from service.config.settings import load_config
