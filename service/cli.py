@@ -21,8 +21,8 @@ from service.api.listen_socket import PortUnavailable, bind_listener
 from service.config.settings import ConfigError, RwlsConfig, load_config
 from service.config.token_settings import ROLES, TokenConfig
 from service.offline.csv_source import CsvError
-from service.offline.replay import RunResult, fit_file, replay_file
-from service.offline.tables import render_text
+from service.offline.replay import RunResult, fit_file, replay_file, sweep_file
+from service.offline.tables import render_sweep, render_text
 from service.offline.trace import ReplayTrace
 from service.tags.tag_path import tag_path_of
 
@@ -59,16 +59,24 @@ def build_parser() -> argparse.ArgumentParser:
         cmd.add_argument("-c", "--config", required=True,
                          help="TOML file with [channels.<id>] tables (and [tags], for a long file)")
         cmd.add_argument("--json", action="store_true", help="print the result as JSON")
-        cmd.add_argument("--forgetting-factor", type=float, metavar="LAMBDA",
-                         help="override every channel's forgetting factor, to compare settings")
+        if name == "replay":
+            cmd.add_argument("--forgetting-factor", type=_values, metavar="LAMBDA[,LAMBDA...]",
+                             help="override every channel's forgetting factor; several values (and several of "
+                                  "the threshold overrides below) compare every combination side by side, in "
+                                  "one pass over the file")
+        else:
+            cmd.add_argument("--forgetting-factor", type=float, metavar="LAMBDA",
+                             help="override every channel's forgetting factor")
         cmd.add_argument("--no-progress", action="store_true", help="never show the progress bar")
         if name == "replay":
             cmd.add_argument("--report", metavar="OUT.html",
                              help="also write a commissioning report: plots per channel, alarms, OLS against WLS")
-            cmd.add_argument("--offset-h", type=float, metavar="H", help="override every offset CUSUM threshold")
-            cmd.add_argument("--variance-h", type=float, metavar="H", help="override every variance CUSUM threshold")
-            cmd.add_argument("--drift-alpha", type=float, metavar="ALPHA",
-                             help="override every drift test's level per check")
+            cmd.add_argument("--offset-h", type=_values, metavar="H[,H...]",
+                             help="override every offset CUSUM threshold (several: a sweep)")
+            cmd.add_argument("--variance-h", type=_values, metavar="H[,H...]",
+                             help="override every variance CUSUM threshold (several: a sweep)")
+            cmd.add_argument("--drift-alpha", type=_values, metavar="ALPHA[,ALPHA...]",
+                             help="override every drift test's level per check (several: a sweep)")
 
     helptext = "validate a configuration file and explain errors by key"
     check = sub.add_parser("check-config", help=helptext, description=(
@@ -136,10 +144,30 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _with_thresholds(config: RwlsConfig, args: argparse.Namespace) -> tuple[RwlsConfig, dict[str, float]]:
-    """The detector threshold overrides of ``replay`` applied to every channel, and which were given."""
-    given = {name: value for name, value in (("offset_h", args.offset_h), ("variance_h", args.variance_h),
-                                              ("drift_alpha", args.drift_alpha)) if value is not None}
+def _values(text: str) -> list[float]:
+    """``0.99,0.995``: one value or several, comma-separated."""
+    try:
+        return [float(part) for part in text.split(",")]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number or numbers separated by commas, got {text!r}") from None
+
+
+THRESHOLDS = ("offset_h", "variance_h", "drift_alpha")
+
+
+def _settings(args: argparse.Namespace) -> list[dict[str, float]]:
+    """Every combination of ``replay``'s override values, in the order given (one setting: no lists)."""
+    settings: list[dict[str, float]] = [{}]
+    for name in ("forgetting_factor", *THRESHOLDS):
+        values = getattr(args, name)
+        if values is not None:
+            settings = [{**setting, name: value} for setting in settings for value in values]
+    return settings
+
+
+def _with_thresholds(config: RwlsConfig, given: dict[str, float]) -> RwlsConfig:
+    """The detector threshold overrides of ``replay`` (those of ``given``) applied to every channel."""
+    given = {name: value for name, value in given.items() if name in THRESHOLDS}
     problems = [f"--{name.replace('_', '-')}: must be positive, got {value}" for name, value in given.items()
                 if not (math.isfinite(value) and value > 0.0)]
     if "drift_alpha" in given and not given["drift_alpha"] < 1.0:
@@ -154,7 +182,7 @@ def _with_thresholds(config: RwlsConfig, args: argparse.Namespace) -> tuple[Rwls
             "variance": d.variance.model_copy(update={"h": given.get("variance_h", d.variance.h)}),
             "drift": d.drift.model_copy(update={"alpha": given.get("drift_alpha", d.drift.alpha)})})
         channels[cid] = ch.model_copy(update={"detectors": d})
-    return config.model_copy(update={"channels": channels}), given
+    return config.model_copy(update={"channels": channels})
 
 
 def _write_report(result: RunResult, trace: ReplayTrace, args: argparse.Namespace,
@@ -301,18 +329,31 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _simulate(args)
         if args.command == "token":
             return _token(args)
-        config = _with_forgetting(load_config(args.config), args.forgetting_factor)
+        config = load_config(args.config)
         show = False if args.no_progress else None
         if args.command == "replay":
-            config, overrides = _with_thresholds(config, args)
-            if args.forgetting_factor is not None:
-                overrides = {"forgetting_factor": args.forgetting_factor, **overrides}
+            settings = _settings(args)
+            configs = [_with_thresholds(_with_forgetting(config, setting.get("forgetting_factor")), setting)
+                       for setting in settings]
+            if len(settings) > 1:
+                if args.report:
+                    raise ConfigError(["--report: one setting at a time (give each override one value)"])
+                results = sweep_file(args.data, configs, show_progress=show)
+                if args.json:
+                    document = {"sweep": [{"setting": setting, **r.to_json()}
+                                          for setting, r in zip(settings, results, strict=True)]}
+                    json.dump(document, sys.stdout, indent=2, allow_nan=False)
+                    sys.stdout.write("\n")
+                else:
+                    sys.stdout.write(render_sweep(results, settings))
+                return 0
+            overrides = settings[0]
             trace = ReplayTrace() if args.report else None
-            result: RunResult = replay_file(args.data, config, show_progress=show, trace=trace)
+            result: RunResult = replay_file(args.data, configs[0], show_progress=show, trace=trace)
             if trace is not None:
                 _write_report(result, trace, args, overrides)
         else:
-            result = fit_file(args.data, config, show_progress=show)
+            result = fit_file(args.data, _with_forgetting(config, args.forgetting_factor), show_progress=show)
     except ConfigError as exc:
         print("configuration error:", file=sys.stderr)
         for problem in exc.problems:

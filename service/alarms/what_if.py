@@ -54,10 +54,20 @@ class WhatIf:
         The hold is journaled at the first sample's time, the start of the history.
         """
         bank.take_events()
-        self._held = {c: bank.baseline_version(c) is not None for c in bank.channel_ids}
+        self.start_held({c: bank.baseline_version(c) is not None for c in bank.channel_ids})
+
+    def start_held(self, held: dict[str, bool]) -> None:
+        """:meth:`start` given each channel's ``has a baseline`` (its bank's events already taken)."""
+        self._held = held
 
     def observe(self, bank: ChannelBank, channel: str, t: float | None) -> None:
         """After one applied sample of ``channel`` at sample time ``t`` (None: unknown): take the bank's events."""
+        events = bank.take_events()
+        self.observe_events(channel, t, events, {c: bank.baseline_version(c) for c in {e.channel for e in events}})
+
+    def observe_events(self, channel: str, t: float | None, events: list[ChannelEvent],
+                       versions: dict[str, int | None]) -> None:
+        """:meth:`observe` given the bank's events after the sample and the baseline versions of their channels."""
         index = self._samples.get(channel, 0)
         self._samples[channel] = index + 1
         now = float(index) if t is None else t
@@ -65,26 +75,30 @@ class WhatIf:
         if self._held is not None:
             self._feed.hold_uncommissioned(self._held, now)
             self._held = None
-        events = bank.take_events()
         if events:
-            self._feed.take(events, now, {c: bank.baseline_version(c) for c in {e.channel for e in events}})
+            self._feed.take(events, now, versions)
 
     def observe_chunk(self, bank: ChannelBank, before: dict[str, int | None], first_t: float) -> None:
         """After a chunk of timed samples applied at once (``rwls replay``'s columnar path): the same transitions
         as :meth:`observe` after each of them.
 
         ``before`` maps each channel to its baseline version before the chunk, ``first_t`` is the time of the
-        chunk's first applied sample (the start of the history, if this is the first chunk). Every event of a
-        timed sample carries that sample's time, and each channel's events come in its sample order; the
-        baseline version an event is journaled with is the one in force after its sample, as :meth:`observe`
-        reads it: the version before the chunk, moved on by the channel's own ``baseline`` and ``restart``
-        notices up to and including that sample's.
+        chunk's first applied sample (the start of the history, if this is the first chunk).
+        """
+        self.observe_chunk_events(bank.take_events(), before, first_t)
+
+    def observe_chunk_events(self, events: list[ChannelEvent], before: dict[str, int | None], first_t: float) -> None:
+        """:meth:`observe_chunk` given the bank's events after the chunk, in :meth:`ChannelBank.take_events` order.
+
+        Every event of a timed sample carries that sample's time, and each channel's events come in its sample
+        order; the baseline version an event is journaled with is the one in force after its sample, as
+        :meth:`observe` reads it: the version before the chunk, moved on by the channel's own ``baseline`` and
+        ``restart`` notices up to and including that sample's.
         """
         self._timed = True
         if self._held is not None:
             self._feed.hold_uncommissioned(self._held, first_t)
             self._held = None
-        events = bank.take_events()
         versions = dict(before)
         start = 0
         while start < len(events):

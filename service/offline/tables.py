@@ -8,7 +8,7 @@ from datetime import UTC, datetime
 from service.engine.channel_report import ChannelReport
 from service.offline.replay import RunResult
 
-__all__ = ["SHOWN_PROBLEMS", "render_text"]
+__all__ = ["SHOWN_PROBLEMS", "render_sweep", "render_text"]
 
 SHOWN_PROBLEMS = 20       # problem lines in the text output; --json lists more, the counts are of all
 
@@ -98,4 +98,47 @@ def render_text(result: RunResult, command: str) -> str:
     if result.layout == "long" and (result.tag_updates_unused or result.tag_updates_not_newer):
         out.append(f"tag updates: {result.tag_updates_unused} of tags no channel names, "
                    f"{result.tag_updates_not_newer} not later than their tag's newest (not kept)")
+    return "\n".join(out) + "\n"
+
+
+_SHORT = {"forgetting_factor": "lambda"}
+
+
+def render_sweep(results: list[RunResult], settings: list[dict[str, float]]) -> str:
+    """Several settings' replays side by side: per channel, one column per setting.
+
+    Rows: each term's estimate and standard error, the tracked noise sigma (units of y), samples applied
+    and rejected, and the alarm conditions raised (``condition_on`` transitions) per kind.
+    """
+    labels = [" ".join(f"{_SHORT.get(name, name)}={value:g}" for name, value in setting.items()) or "as configured"
+              for setting in settings]
+    width = max(14, *(len(label) for label in labels))
+    out = [f"sweep: {len(results)} settings in one pass over {results[0].rows} rows"]
+    for cid, first in results[0].channels.items():
+        channels = [r.channels[cid] for r in results]
+        rows: list[tuple[str, list[str]]] = []
+        for term in first["terms"]:
+            rows.append((f"{term}", [_num(ch["parameters"][term], 8) for ch in channels]))
+            rows.append(("  std error", [_num(ch["std_errors"][term], 4) for ch in channels]))
+        rows.append(("noise sigma (y)", [_num(ch["noise_sigma"]) for ch in channels]))
+        rows.append(("samples", [str(ch["samples"]) for ch in channels]))
+        rows.append(("rejected", [str(ch["rejected"]) for ch in channels]))
+        kinds = sorted({str(a["kind"]) for ch in channels for a in ch.get("alarms", [])
+                        if a["action"] == "condition_on"})
+        for kind in kinds:
+            rows.append((f"{kind} alarms raised", [str(sum(1 for a in ch.get("alarms", [])
+                                                          if a["kind"] == kind and a["action"] == "condition_on"))
+                                                   for ch in channels]))
+        if not kinds:
+            rows.append(("alarms raised", ["0"] * len(channels)))
+        name_width = max(16, *(len(name) for name, _ in rows))
+        out.append("")
+        out.append(f"channel {cid}")
+        out.append(f"  {'':<{name_width}}  " + "  ".join(f"{label:>{width}}" for label in labels))
+        out += [f"  {name:<{name_width}}  " + "  ".join(f"{v:>{width}}" for v in values) for name, values in rows]
+    total = sum(results[0].problems_by_reason.values())
+    out.append("")
+    out.append(f"{results[0].rows} rows read, {results[0].bad_rows} unreadable; problems per setting: "
+               + ", ".join(str(sum(r.problems_by_reason.values())) for r in results)
+               + (" (--json lists them)" if total else ""))
     return "\n".join(out) + "\n"

@@ -18,7 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from service.config.settings import RwlsConfig, parse_config
-from service.offline.replay import fit_file, replay_file
+from service.offline.replay import fit_file, replay_file, sweep_file
 
 T0 = 1_780_000_000.0        # seconds, UTC: the first row's time
 
@@ -94,3 +94,37 @@ def test_fit_in_chunks_of_any_size_equals_the_exact_path(history: tuple[Path, Rw
     path, config, _, fitted = history
     result = fit_file(path, config, show_progress=False, chunk_samples=chunk)
     assert json.dumps(result.to_json(), sort_keys=True) == fitted
+
+
+def _setting(config: RwlsConfig, forgetting_factor: float, offset_h: float) -> RwlsConfig:
+    channels = {}
+    for cid, ch in config.channels.items():
+        offset = ch.detectors.offset.model_copy(update={"h": offset_h})
+        channels[cid] = ch.model_copy(update={"forgetting_factor": forgetting_factor,
+                                              "detectors": ch.detectors.model_copy(update={"offset": offset})})
+    return config.model_copy(update={"channels": channels})
+
+
+@pytest.mark.parametrize("chunk", [7, 65_536])
+def test_a_sweep_gives_each_setting_what_its_own_replay_gives(history: tuple[Path, RwlsConfig, str, str],
+                                                              chunk: int) -> None:
+    path, config, _, _ = history
+    configs = [_setting(config, lam, h) for lam, h in ((0.95, 3.0), (0.99, 3.0), (0.99, 12.0))]
+    swept = [json.dumps(r.to_json(), sort_keys=True)
+             for r in sweep_file(path, configs, show_progress=False, chunk_samples=chunk)]
+    alone = [json.dumps(replay_file(path, c, show_progress=False, exact=True).to_json(), sort_keys=True)
+             for c in configs]
+    assert swept == alone
+    assert len(set(alone)) == 3                    # the settings do differ: the comparison is not of one run
+
+
+def test_a_sweep_of_untimed_samples_takes_the_exact_path_and_still_matches(tmp_path: Path) -> None:
+    path = tmp_path / "untimed.csv"
+    rng = np.random.default_rng(5)
+    u = rng.uniform(-1.0, 1.0, 300).tolist()
+    path.write_text("y,u\n" + "".join(f"{1.0 + 0.5 * x + 0.01 * k % 0.03!r},{x!r}\n" for k, x in enumerate(u)))
+    config = parse_config({"channels": {"a": {"terms": ["1", "u"]}}})
+    configs = [_setting(config, lam, 5.0) for lam in (0.9, 0.99)]
+    swept = [r.to_json() for r in sweep_file(path, configs, show_progress=False)]
+    assert swept == [replay_file(path, c, show_progress=False).to_json() for c in configs]
+    assert swept[0] != swept[1]

@@ -156,6 +156,29 @@ def test_fit_reports_a_not_identifiable_channel(tmp_path: Path, capsys: pytest.C
     assert report["parameters"] == {"1": None, "u": None}
 
 
+def test_several_forgetting_factors_replay_side_by_side_in_one_run(capsys: pytest.CaptureFixture[str]) -> None:
+    sweep = _json(capsys, "replay", str(DEMO_CSV), "--config", str(DEMO_TOML), "--forgetting-factor", "0.99,0.995",
+                  "--offset-h", "6")["sweep"]
+    assert [run["setting"] for run in sweep] == [{"forgetting_factor": 0.99, "offset_h": 6.0},
+                                                {"forgetting_factor": 0.995, "offset_h": 6.0}]
+    assert [{r["forgetting_factor"] for r in run["channels"].values()} for run in sweep] == [{0.99}, {0.995}]
+    assert main(["replay", str(DEMO_CSV), "--config", str(DEMO_TOML), "--no-progress",
+                 "--forgetting-factor", "0.99,0.995"]) == 0
+    text = capsys.readouterr().out
+    assert text.startswith("sweep: 2 settings in one pass") and "lambda=0.99" in text and "lambda=0.995" in text
+
+
+def test_a_sweep_refuses_the_report_and_bad_lists(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["replay", str(DEMO_CSV), "--config", str(DEMO_TOML), "--forgetting-factor", "0.99,0.995",
+                 "--report", str(tmp_path / "r.html")]) == 2
+    assert "--report: one setting at a time" in capsys.readouterr().err
+    assert not (tmp_path / "r.html").exists()
+    with pytest.raises(SystemExit):
+        main(["replay", str(DEMO_CSV), "--config", str(DEMO_TOML), "--forgetting-factor", "0.99,x"])
+    assert "expected a number or numbers separated by commas" in capsys.readouterr().err
+    assert main(["replay", str(DEMO_CSV), "--config", str(DEMO_TOML), "--forgetting-factor", "0.99,1.5"]) == 2
+
+
 def test_progress_bar_draws_only_when_enabled() -> None:
     shown, hidden = io.StringIO(), io.StringIO()
     for stream, enabled in ((shown, True), (hidden, None)):
