@@ -4,9 +4,10 @@ Issue 15's table, one run: wide CSV histories of ``y = 1 + 2 load + noise`` (ter
 tracked weights, detectors on as configured by default), one row a minute per channel, rows interleaved
 across channels in time order:
 
-* 10 channels x 100,000 samples (1,000,000 rows): replay and fit (each in its own process: wall time and
-  peak resident memory), the exact path of before (every sample alone through ``ChannelBank.apply_one``,
-  ``exact=True``) on the first tenth of the rows, and the bare loop;
+* 10 channels x 100,000 samples (1,000,000 rows): replay, fit and a replay sweep of three forgetting
+  factors (each in its own process: wall time and peak resident memory), the exact path of before
+  (every sample alone through ``ChannelBank.apply_one``, ``exact=True``) on the first tenth of the
+  rows, and the bare loop;
 * 1,000 channels x 10,000 samples (10,000,000 rows): replay's time and peak resident memory;
 * 1 channel x 1,000,000 samples: the sequential limit (one channel cannot be vectorised across channels).
 
@@ -86,14 +87,14 @@ def _bare_loop(path: Path) -> tuple[float, dict[str, np.ndarray]]:
     return time.perf_counter() - start, theta
 
 
-def _run_cli(command: str, path: Path) -> tuple[float, float, dict[str, object]]:
+def _run_cli(command: str, path: Path, *extra: str) -> tuple[float, float, dict[str, object]]:
     """Wall seconds, peak resident MiB and the JSON of ``rwls <command> --json`` in its own process."""
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     out_path, err_path = path.with_suffix(".out.json"), path.with_suffix(".err.txt")
     with out_path.open("wb") as out, err_path.open("wb") as err:
         start = time.perf_counter()
         child = subprocess.Popen([sys.executable, "-m", "service.cli", command, str(path), "-c", f"{path}.toml",
-                                  "--json", "--no-progress"], stdout=out, stderr=err, env=env, cwd=ROOT)
+                                  "--json", "--no-progress", *extra], stdout=out, stderr=err, env=env, cwd=ROOT)
         _, status, usage = os.wait4(child.pid, 0)          # this child's own peak resident memory
         seconds = time.perf_counter() - start
     child.returncode = os.waitstatus_to_exitcode(status)
@@ -150,6 +151,11 @@ def test_replay_and_fit_against_the_bare_loop(tmp_path: Path) -> None:
             fit_s, fit_mib, _ = _run_cli("fit", path)
             table.append([size, "fit --json", f"{fit_s:.1f}", _us(fit_s, rows), f"{fit_mib:.0f}",
                           f"{bare:.1f}", f"{fit_s / bare:.2f}"])
+            sweep_s, sweep_mib, _ = _run_cli("replay", path, "--forgetting-factor", "0.99,0.995,0.999")
+            table.append([size, "replay --json, sweep of 3 forgetting factors", f"{sweep_s:.1f}",
+                          _us(sweep_s, rows), f"{sweep_mib:.0f}", f"{bare:.1f}", f"{sweep_s / bare:.2f}"])
+            table.append([size, "  (the sweep against 2 single replays)", "-", "-", "-", "-",
+                          f"{sweep_s / (2 * replay_s):.2f}"])
             head = rows // 10
             exact_s = _exact_replay(path, head)
             bare_head = bare * head / rows
