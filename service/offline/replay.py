@@ -1,13 +1,12 @@
-"""Offline runs over a CSV history: ``replay`` (the recursive estimator) and ``fit`` (batch closed form).
+"""Offline runs over a CSV history: ``replay`` (the recursive estimator), its sweeps, and ``fit`` (batch closed form).
 
-Both read the file as a :class:`~service.offline.sample_source.SampleSource`, chosen by its header:
-the wide layout (one sample per row, :class:`~service.offline.sample_source.WideSamples`) or the
-long one historians export (one tag update per row, ``time``, ``tag``, ``value``; the service's tag
-path forms the samples, :class:`~service.offline.tag_feed.TagSamples`). Every sample goes through
-the same :class:`estimator.channels.channel_bank.ChannelBank` the live service uses, so they accept
-exactly the same samples with exactly the same weights.
-``fit`` then solves the weighted least squares problem in closed form
-(:func:`estimator.recursive.batch.fit_wls`) on the applied samples, forgetting included.
+All read the file once, as :func:`~service.offline.history_pass.run_pass` does: the wide layout (one
+sample per row) or the long one historians export (one tag update per row; the service's tag path
+forms the samples). Every sample goes through the same :class:`estimator.channels.channel_bank.ChannelBank`
+the live service uses, so they accept exactly the same samples with exactly the same weights.
+A sweep runs several settings of the same channels in that one pass. ``fit`` keeps the applied
+samples (regressor rows, outputs, weights used) as arrays during the pass and then solves the weighted
+least squares problem in closed form (:func:`estimator.recursive.batch.fit_wls`), forgetting included.
 """
 
 from __future__ import annotations

@@ -130,10 +130,23 @@ def test_columns_give_the_bits_and_outcomes_of_the_exact_path(
     for lo, hi in itertools.pairwise(bounds):
         batch = samples[lo:hi]
         expected = exact.apply(batch)
-        got = columnar.apply_columns(_columns(batch))
+        keep = len(batch) % 2 == 1                   # the fitted rows asked for in every other batch, or so
+        got = columnar.apply_columns(_columns(batch), keep_rows=keep)
         for cid in {s.channel for s in batch}:
             mine = [o for s, o in zip(batch, expected, strict=True) if s.channel == cid]
             result = got[cid]
+            if keep:
+                # The rows rwls fit takes: each applied sample's regressor, output and the weight its update used.
+                ys = [s.y for s in batch if s.channel == cid]
+                rows = result.rows
+                assert rows is not None
+                applied_at = [k for k, o in enumerate(mine) if o.status == "applied"]
+                assert rows.position.tolist() == applied_at
+                assert rows.Z.tolist() == [mine[k].regressor for k in applied_at]
+                assert rows.w.tolist() == [mine[k].weight for k in applied_at]
+                assert rows.y.tolist() == [ys[k] for k in applied_at]
+            else:
+                assert result.rows is None
             assert result.applied == sum(o.status == "applied" for o in mine)
             assert result.warmup == sum(o.status == "warmup" for o in mine)
             assert result.refused == [(k, o.reason) for k, o in enumerate(mine) if o.status == "refused"]
@@ -164,6 +177,23 @@ def test_clean_columns_take_the_vectorised_rounds() -> None:
     reference = ChannelBank(PLANT)
     reference.apply(batch)
     assert_same_state(bank.state(), reference.state())
+
+
+def test_the_rounds_keep_the_rows_and_weights_the_exact_path_applied() -> None:
+    # Every channel in the vectorised rounds (tracked weights made per round included): rwls fit's rows.
+    bank = ChannelBank(PLANT, PathTuning(vector_min=1, column_min_samples=1))
+    reference = ChannelBank(PLANT)
+    rng = np.random.default_rng(11)
+    batch = [_sample(rng, cid, k, None) for k in range(1, 40) for cid in PLANT]
+    outcomes = bank.apply_columns(_columns(batch), keep_rows=True)
+    expected = reference.apply(batch)
+    for cid in PLANT:
+        mine = [(s, o) for s, o in zip(batch, expected, strict=True) if s.channel == cid and o.status == "applied"]
+        rows = outcomes[cid].rows
+        assert rows is not None and rows.position.shape[0] == len(mine) > 0
+        assert rows.Z.tolist() == [o.regressor for _, o in mine]
+        assert rows.w.tolist() == [o.weight for _, o in mine]
+        assert rows.y.tolist() == [s.y for s, _ in mine]
 
 
 def _both_paths() -> tuple[ChannelBank, ChannelBank]:

@@ -22,9 +22,11 @@ from service.offline.replay import fit_file, replay_file, sweep_file
 
 T0 = 1_780_000_000.0        # seconds, UTC: the first row's time
 
+TRACKED = {"terms": ["1", "u"], "forgetting_factor": 0.95, "weighting": "tracked",
+           "detectors": {"commissioning_samples": 60, "calibration_samples": 0, "drift": {"every": 5}}}
+ALIKE = [f"a{k}" for k in range(9)]      # channels alike: more than PathTuning.vector_min, so rounds run
 CONFIG = {"channels": {
-    "a": {"terms": ["1", "u"], "forgetting_factor": 0.95, "weighting": "tracked",
-          "detectors": {"commissioning_samples": 60, "calibration_samples": 0, "drift": {"every": 5}}},
+    **{cid: TRACKED for cid in ALIKE},
     "b": {"terms": ["1", "y[-1]", "u"], "forgetting_factor": 0.99,
           "detectors": {"commissioning_samples": 80, "calibration_samples": 0}},
     "c": {"terms": ["1", "u"], "weighting": "sample", "forgetting_factor": 0.98,
@@ -33,21 +35,25 @@ CONFIG = {"channels": {
 
 
 def _history(path: Path) -> None:
-    """Three channels interleaved, one row a second each; channel a's gain steps up at row 250."""
+    """Channels interleaved, one row a second each; the gain of a0, a1 and a2 steps up at row 250."""
     rng = np.random.default_rng(11)
     lines = ["t,channel,y,u,sigma"]
     for k in range(400):
         t = T0 + k
-        u = rng.uniform(-1.0, 1.0, 3).tolist()
-        gain = 0.5 if k < 250 else 0.8
-        e = (0.02 * rng.standard_normal(3)).tolist()
-        lines.append(f"{t},a,{1.0 + gain * u[0] + e[0]!r},{u[0]!r},")
-        lines.append(f"{t},b,{2.0 + 0.3 * u[1] + e[1]!r},{u[1]!r},")
-        lines.append(f"{t},c,{-1.0 + 0.4 * u[2] + e[2]!r},{u[2]!r},0.02")
+        for j, cid in enumerate(ALIKE):
+            u = float(rng.uniform(-1.0, 1.0))
+            gain = 0.8 if k >= 250 and j < 3 else 0.5
+            lines.append(f"{t},{cid},{1.0 + gain * u + 0.02 * float(rng.standard_normal())!r},{u!r},")
+        u = rng.uniform(-1.0, 1.0, 2).tolist()
+        e = (0.02 * rng.standard_normal(2)).tolist()
+        lines.append(f"{t},b,{2.0 + 0.3 * u[0] + e[0]!r},{u[0]!r},")
+        lines.append(f"{t},c,{-1.0 + 0.4 * u[1] + e[1]!r},{u[1]!r},0.02")
         if k % 37 == 5:
-            lines.append(f"{t},a,abc,{u[0]!r},")               # bad_number
+            lines.append(f"{t},a4,abc,0.5,")                  # bad_number
         if k % 53 == 7:
             lines.append(f"{t - 5},b,1.0,0.5,")                # not later than the last: refused
+        if k % 89 == 8:
+            lines.append(f"{t - 3},a5,1.0,0.5,")               # refused in a channel the rounds run
         if k % 41 == 9:
             lines.append(f"{t + 0.5},c,1.0,nan,0.02")           # non-finite input: refused
         if k % 61 == 3:
@@ -73,7 +79,27 @@ def test_the_history_has_alarms_refusals_and_bad_rows(history: tuple[Path, RwlsC
     assert document["bad_rows"] > 0
     assert set(document["problems_by_reason"]) == {"bad_number", "unknown_channel", "non_finite", "missing_weight",
                                                    "out_of_order"}
-    assert any(item["action"] == "condition_on" for item in document["channels"]["a"]["alarms"])
+    assert all(any(item["action"] == "condition_on" for item in document["channels"][cid]["alarms"])
+               for cid in ("a0", "a1", "a2"))
+
+
+def test_the_chunks_run_in_vectorised_rounds(history: tuple[Path, RwlsConfig, str, str],
+                                             monkeypatch: pytest.MonkeyPatch) -> None:
+    # What the comparisons above hold to the exact path must include the lockstep rounds, not only the
+    # exact path apply_columns falls back to for small work.
+    from estimator.channels import column_rounds
+
+    rounds: list[int] = []
+    original = column_rounds._run_rounds
+
+    def counted(group: object, prep: object, runnable: np.ndarray) -> np.ndarray:
+        rounds.append(int(runnable.shape[0]))
+        return original(group, prep, runnable)   # type: ignore[arg-type]
+
+    monkeypatch.setattr(column_rounds, "_run_rounds", counted)
+    replay_file(history[0], history[1], show_progress=False, chunk_samples=1000)
+    # a5's chunks hold a refusal, so a5 takes the exact path there: the rounds run the other eight.
+    assert rounds and max(rounds) == len(ALIKE) - 1
 
 
 @settings(max_examples=12, deadline=None, derandomize=True, database=None,
