@@ -20,7 +20,7 @@ number, unreadable rows and rows of the wrong width as ``bad_row``.
 from __future__ import annotations
 
 import csv
-from collections.abc import Generator, Iterable, Iterator
+from collections.abc import Callable, Generator, Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import cast
@@ -178,35 +178,43 @@ class CsvSource:
         if missing:
             rows.close()
             raise CsvError(f"{self.path}: header lacks column(s): {', '.join(missing)}")
+        parse = self._parser(columns)
         for item in rows:
-            yield item if isinstance(item, BadRow) else self._parse(item[0], item[1], columns)
+            yield item if isinstance(item, BadRow) else parse(item[0], item[1])
 
-    def _parse(self, line: int, fields: list[str], columns: dict[str, int]) -> CsvRow | BadRow:
-        def cell(name: str) -> str:
-            index = columns.get(name)
-            return fields[index].strip() if index is not None else ""
+    def _parser(self, columns: dict[str, int]) -> Callable[[int, list[str]], CsvRow | BadRow]:
+        """A row's parse with the column positions looked up once (a missing optional column reads as empty)."""
+        y_at = columns["y"]
+        inputs_at = [(name, columns[name]) for name in self._input_names]
+        sigma_at, weight_at = columns.get("sigma"), columns.get("weight")
+        t_at, channel_at = columns.get("t"), columns.get("channel")
 
-        def number(name: str) -> float | None:
-            text = cell(name)
+        def number(fields: list[str], index: int | None) -> float | None:
+            if index is None:
+                return None
+            text = fields[index].strip()
             return parse_number(text) if text else None
 
-        try:
-            y = number("y")
-            inputs = {}
-            for name in self._input_names:
-                value = number(name)
-                if value is not None:
-                    inputs[name] = value
-            sigma = number("sigma")
-            weight = number("weight")
-        except ValueError as exc:
-            return BadRow(line, "bad_number", str(exc)[:200])
-        if y is None:
-            return BadRow(line, "missing_value", "y is empty")
-        t_text = cell("t")
-        try:
-            t = parse_time(t_text) if t_text else None
-        except (ValueError, OverflowError):
-            return BadRow(line, "bad_time", f"cannot read time {t_text[:40]!r}")
-        channel = cell("channel") or None
-        return CsvRow(line, channel, t, y, inputs, sigma, weight)
+        def parse(line: int, fields: list[str]) -> CsvRow | BadRow:
+            try:
+                y = number(fields, y_at)
+                inputs = {}
+                for name, index in inputs_at:
+                    value = number(fields, index)
+                    if value is not None:
+                        inputs[name] = value
+                sigma = number(fields, sigma_at)
+                weight = number(fields, weight_at)
+            except ValueError as exc:
+                return BadRow(line, "bad_number", str(exc)[:200])
+            if y is None:
+                return BadRow(line, "missing_value", "y is empty")
+            t_text = fields[t_at].strip() if t_at is not None else ""
+            try:
+                t = parse_time(t_text) if t_text else None
+            except (ValueError, OverflowError):
+                return BadRow(line, "bad_time", f"cannot read time {t_text[:40]!r}")
+            channel = (fields[channel_at].strip() if channel_at is not None else "") or None
+            return CsvRow(line, channel, t, y, inputs, sigma, weight)
+
+        return parse
