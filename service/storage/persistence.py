@@ -35,6 +35,7 @@ import numpy as np
 
 from estimator import export_state, import_state
 from service.broker_link.messages import Message
+from service.engine.host_faults import FaultPart, HostFaults
 from service.engine.operations import operation_from_record
 from service.engine.snapshot import ChannelEntry
 from service.engine.writer import EngineStats
@@ -82,11 +83,15 @@ class Persistence:
     checkpoint_seconds : a checkpoint at most this often (the engine's periodic job), and at stop
     history_step : a history row per channel at most every this many seconds (sample time, else wall)
     history_retention : rows older than this (seconds) before the newest row are deleted
+    faults : where a store that cannot be reached is held (shared with the engine, whose input log keeps
+        every input meanwhile); checkpoints are then retried with its backoff, not every ``checkpoint_seconds``
     """
 
     def __init__(self, store: Store, input_log: InputLog, *, checkpoint_seconds: float = 30.0,
-                 history_step: float = 60.0, history_retention: float = 30 * 86400.0) -> None:
+                 history_step: float = 60.0, history_retention: float = 30 * 86400.0,
+                 faults: HostFaults | None = None) -> None:
         self.store = store
+        self.faults = faults if faults is not None else HostFaults()
         self.log = input_log
         self.checkpoint_seconds = checkpoint_seconds
         self.history_step = history_step
@@ -163,10 +168,14 @@ class Persistence:
                 # its checksum, the one before still has every record after it.
                 self._positions = [*self._positions, position][-KEEP_CHECKPOINTS:]
                 self.log.discard_through(self._positions[0])
-            except Exception:
-                log.exception("checkpoint at input %d failed; the input log still holds everything", position)
+            except Exception as exc:
+                # One transaction: nothing of it is in the store. The log keeps every record after the
+                # last good checkpoint until one succeeds; the fault says so once, not at every retry.
+                log.debug("checkpoint at input %d failed", position, exc_info=True)
+                self.faults.failed(FaultPart.STORE, exc)
                 self._handed_seq = self.persisted_seq          # hand the entries again next time
                 return
+            self.faults.cleared(FaultPart.STORE)
             self.persisted_seq = max(self.persisted_seq, newest_seq or 0)
             self.last_checkpoint_seconds = time.perf_counter() - started
             self.last_checkpoint_bytes = len(body)
@@ -182,14 +191,22 @@ class Persistence:
     def periodic(self, engine: Engine) -> None:
         """The engine's once-a-second job: a checkpoint when one is due, history pruning now and then."""
         now = time.time()
-        if self.last_checkpoint_at is None or now - self.last_checkpoint_at >= self.checkpoint_seconds:
+        store_down = self.faults.fault(FaultPart.STORE) is not None
+        if store_down:
+            due = self.faults.wait(FaultPart.STORE) == 0.0          # the retry, on the fault's backoff
+        else:
+            due = self.last_checkpoint_at is None or now - self.last_checkpoint_at >= self.checkpoint_seconds
+        if due:
             self.checkpoint(engine, wait=False)
         newest = max(self._history_last.values(), default=None)
-        if newest is not None and now - self._last_prune > 600.0:
+        if newest is not None and not store_down and now - self._last_prune > 600.0:
             # Retention counts in the rows' own time (sample time): a replayed or compressed-time plant
             # keeps its last history_retention of history, whatever the wall clock says.
             self._last_prune = now
-            self.store.prune_history(newest - self.history_retention)
+            try:
+                self.store.prune_history(newest - self.history_retention)
+            except Exception as exc:
+                self.faults.failed(FaultPart.STORE, exc)
 
     # --------------------------------------------------------------- recovery
     def recover(self, engine: Engine) -> dict[str, Any]:
@@ -288,9 +305,15 @@ class Persistence:
                     "limits": {k: _finite(r.limit) for k, r in view.detectors.items()},
                     "residual": _finite(view.last_innovation), "residual_spread": _finite(view.last_spread)}
             self._history_rows.append((cid, t, body))
-        if len(self._history_rows) >= 10_000:          # between checkpoints, do not let it pile up
+        if len(self._history_rows) >= 10_000 and self.faults.fault(FaultPart.STORE) is None:
+            # Between checkpoints, do not let it pile up (while the store is away, the next good
+            # checkpoint takes them all).
             rows = list(self._history_rows)
-            self.store.save_history(rows)               # stored first, then no longer pending: never unseen
+            try:
+                self.store.save_history(rows)           # stored first, then no longer pending: never unseen
+            except Exception as exc:
+                self.faults.failed(FaultPart.STORE, exc)
+                return
             del self._history_rows[:len(rows)]
 
     def history(self, channel: str, since: float | None, until: float | None, limit: int) -> list[dict[str, Any]]:
