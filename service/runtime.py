@@ -204,6 +204,8 @@ class Runtime:
                                   history_step=store_config.history_step,
                                   history_retention=store_config.history_retention_days * 86400.0,
                                   faults=self.faults)
+        if self.alarms is not None:
+            persistence.hold_journal(self.alarms.journal)
         self._engine = self._build_engine(input_log, periodic=[persistence.periodic],
                                           publish_hooks=[persistence.note], publish_when=persistence.row_due)
         self.recovery = persistence.recover(self._engine)

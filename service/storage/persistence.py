@@ -34,6 +34,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from estimator import export_state, import_state
+from service.alarms.journal import Journal
 from service.broker_link.messages import Message
 from service.engine.host_faults import FaultPart, HostFaults
 from service.engine.operations import operation_from_record
@@ -111,6 +112,13 @@ class Persistence:
         self._history_writing: list[tuple[str, float, dict[str, Any]]] = []
         self._last_prune = 0.0
         self._recovering = False
+        self._journal: Journal | None = None
+
+    def hold_journal(self, journal: Journal) -> None:
+        """Keep in ``journal``'s memory every entry the store does not have yet (call before the engine makes
+        any: 400,000 start-up suppressions at 100,000 channels outnumber the journal's memory limit)."""
+        self._journal = journal
+        journal.durable_through(self.persisted_seq)
 
     # ------------------------------------------------------------ checkpoints
     def state(self, engine: Engine) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
@@ -177,6 +185,8 @@ class Persistence:
                 return
             self.faults.cleared(FaultPart.STORE)
             self.persisted_seq = max(self.persisted_seq, newest_seq or 0)
+            if self._journal is not None:
+                self._journal.durable_through(self.persisted_seq)
             self.last_checkpoint_seconds = time.perf_counter() - started
             self.last_checkpoint_bytes = len(body)
             self.checkpoints += 1
