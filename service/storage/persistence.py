@@ -29,9 +29,11 @@ import math
 import threading
 import time
 import zipfile
+from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import sqlalchemy.exc
 
 from estimator import export_state, import_state
 from service.alarms.journal import Journal
@@ -46,12 +48,16 @@ from service.storage.store import KEEP_CHECKPOINTS, Store
 if TYPE_CHECKING:
     from service.engine.writer import Engine
 
-__all__ = ["CorruptCheckpoint", "Persistence", "decode_checkpoint", "encode_checkpoint"]
+__all__ = ["CorruptCheckpoint", "Persistence", "StoreUnavailable", "decode_checkpoint", "encode_checkpoint"]
 
 log = logging.getLogger(__name__)
 
 REPLAY_BATCH = 2000
 _META = "__meta__"
+
+
+class StoreUnavailable(RuntimeError):
+    """The store did not answer a read (the service goes on; ``/ready`` names the fault)."""
 
 
 class CorruptCheckpoint(ValueError):
@@ -332,14 +338,22 @@ class Persistence:
         unsaved = [*self._history_writing, *self._history_rows]        # copies: other threads replace them
         pending = [{"t": t, **body} for cid, t, body in unsaved
                    if cid == channel and (since is None or t >= since) and (until is None or t <= until)]
-        stored = self.store.history(channel, since, until, limit) if len(pending) < limit else []
+        stored = self._read(lambda: self.store.history(channel, since, until, limit)) if len(pending) < limit else []
         newest = stored[-1]["t"] if stored else -math.inf
         return (stored + [row for row in pending if row["t"] > newest])[-limit:]
+
+    def _read(self, read: Callable[[], list[dict[str, Any]]]) -> list[dict[str, Any]]:
+        """A read of the store; one it cannot answer (gone away, locked) is a :class:`StoreUnavailable`."""
+        try:
+            return read()
+        except sqlalchemy.exc.SQLAlchemyError as exc:
+            self.faults.failed(FaultPart.STORE, exc)          # the periodic checkpoint's retry clears it
+            raise StoreUnavailable(f"the store cannot be reached ({type(exc).__name__}); retry later") from None
 
     # ---------------------------------------------------------------- journal
     def journal(self, engine: Engine, after: int, limit: int, channel: str | None) -> list[dict[str, Any]]:
         """Entries with seq > after: the store's, then those not yet in a checkpoint."""
-        found = self.store.journal(after, limit, channel) if after < self.persisted_seq else []
+        found = self._read(lambda: self.store.journal(after, limit, channel)) if after < self.persisted_seq else []
         if len(found) < limit and engine.alarms is not None:
             start = max([after, self.persisted_seq, *(e["seq"] for e in found)])
             found += [e.to_dict() for e in engine.alarms.entries(start, limit - len(found), channel)]

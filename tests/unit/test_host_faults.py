@@ -208,3 +208,34 @@ def test_backoff_doubles_per_failure_up_to_its_cap_and_clears() -> None:
     assert (faults.started[FaultPart.STORE], faults.failures[FaultPart.STORE]) == (1, 4)
     with pytest.raises(ValueError, match="first retry"):
         HostFaults({FaultPart.INPUT_LOG: (3.0, 1.0)})
+
+
+def test_reads_of_a_store_that_went_away_answer_503_and_say_so(tmp_path: Path,
+                                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    from sqlalchemy.exc import OperationalError
+
+    from service.api.app import create_app
+    from tests.support.clients import api_client
+
+    runtime = offline_runtime(CHANNELS, tmp_path / "store", store_options={"checkpoint_seconds": 3600})
+    runtime.start()
+    try:
+        feed(runtime, _messages(0, 5))
+        persistence = runtime.persistence
+        assert persistence is not None
+
+        def refused(*args: Any, **kwargs: Any) -> Any:
+            raise OperationalError("SELECT", {}, ConnectionRefusedError("connection refused"))
+
+        monkeypatch.setattr(persistence.store, "history", refused)
+        monkeypatch.setattr(persistence.store, "journal", refused)
+        persistence.persisted_seq = max(persistence.persisted_seq, 1)     # the journal's start is in the store
+        with api_client(create_app(runtime, manage_runtime=False)) as client:
+            for path in ("/api/v1/channels/c0/history?limit=5000", "/api/v1/alarms/journal?after=0"):
+                response = client.get(path)
+                assert response.status_code == 503, path
+                assert "store cannot be reached" in response.json()["detail"]
+                assert int(response.headers["Retry-After"]) > 0
+            assert [f["part"] for f in client.get("/api/v1/ready").json()["faults"]] == ["store"]
+    finally:
+        runtime.stop()
