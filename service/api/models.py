@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict
+from pydantic import BaseModel, ConfigDict, Field
 
 from service.engine.quality import Quality, QualityReason
 
@@ -278,8 +278,18 @@ class BrokerState(_Model):
     reconnects: int
 
 
+class HostFaultState(_Model):
+    part: str = Field(description="input_log (ingest held: MQTT not acknowledged, HTTP ingest answers 503) or "
+                      "store (checkpoints and history wait; the input log keeps every input)")
+    reason: str = Field(description="the last error")
+    since: float = Field(description="when the fault began, epoch seconds")
+    attempts: int = Field(description="failed tries so far")
+    retry_in_seconds: float = Field(description="pause before the next try (doubles per failure, capped)")
+
+
 class Readiness(_Model):
     ready: bool
+    faults: list[HostFaultState] = Field(description="faults of the host in force: not ready while any is")
     engine_alive: bool
     queue_depth: int
     queue_capacity: int

@@ -33,6 +33,7 @@ import numpy as np
 import pytest
 
 from tests.benchmarks._common import RESYMMETRISE_EVERY, print_header, print_table
+from tests.support.child_processes import service_environment
 
 pytestmark = pytest.mark.benchmark
 
@@ -89,7 +90,7 @@ def _bare_loop(path: Path) -> tuple[float, dict[str, np.ndarray]]:
 
 def _run_cli(command: str, path: Path, *extra: str) -> tuple[float, float, dict[str, object]]:
     """Wall seconds, peak resident MiB and the JSON of ``rwls <command> --json`` in its own process."""
-    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    env = {**service_environment(), "PYTHONPATH": str(ROOT)}
     out_path, err_path = path.with_suffix(".out.json"), path.with_suffix(".err.txt")
     with out_path.open("wb") as out, err_path.open("wb") as err:
         start = time.perf_counter()
