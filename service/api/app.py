@@ -21,6 +21,7 @@ from fastapi import APIRouter, FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp
 
 from service.advisory import ADVISORY
 from service.api import alarm_routes, baseline_routes, channel_routes, ingest_routes, status_routes
@@ -31,6 +32,7 @@ from service.api.docs import add_docs
 from service.api.errors import validation_problems
 from service.api.guard import add_guards
 from service.api.metrics import ServiceMetrics
+from service.api.security_headers import SecurityHeaders
 from service.runtime import Runtime
 
 __all__ = ["ADVISORY", "create_app"]
@@ -40,6 +42,14 @@ log = logging.getLogger(__name__)
 # One router per concern, in the order the OpenAPI document lists them.
 ROUTERS: tuple[APIRouter, ...] = (channel_routes.router, ingest_routes.router, status_routes.router,
                                   alarm_routes.router, baseline_routes.router)
+
+
+class _App(FastAPI):
+    """FastAPI with :class:`SecurityHeaders` outside everything, so even a 500 carries the headers."""
+
+    def build_middleware_stack(self) -> ASGIApp:
+        hsts_seconds = self.state.runtime.config.http.hsts_seconds
+        return SecurityHeaders(super().build_middleware_stack(), hsts_seconds=hsts_seconds)
 
 
 def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
@@ -57,7 +67,7 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             if manage_runtime:
                 runtime.stop()
 
-    app = FastAPI(title="rwls", version="1", lifespan=lifespan, docs_url=None, redoc_url=None,
+    app = _App(title="rwls", version="1", lifespan=lifespan, docs_url=None, redoc_url=None,
                   description="Recursive weighted least squares for sensor monitoring. " + ADVISORY)
     app.state.runtime = runtime
     app.state.access = Access(runtime.config.auth)
