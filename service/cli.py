@@ -12,8 +12,10 @@ import gc
 import json
 import logging
 import math
+import re
 import sys
 from collections.abc import Sequence
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 from service.advisory import ADVISORY
@@ -112,6 +114,9 @@ def build_parser() -> argparse.ArgumentParser:
         "the settings entry with its SHA-256 to standard error."))
     token.add_argument("--name", required=True, help="its holder, as the alarm journal will record it")
     token.add_argument("--role", required=True, choices=list(ROLES), help="what it may do (see README, Access)")
+    token.add_argument("--expires", metavar="WHEN",
+                       help="when it ends: a span from now (90d, 12h, 30m) or a UTC date-time (2027-03-05 or "
+                            "2027-03-05T11:30:00Z); written into the entry (default: never)")
 
     helptext = "publish the demo plant (Larkspur Valley, substation 7) to a broker"
     simulate = sub.add_parser("simulate", help=helptext, formatter_class=_HelpWithDefaults, description=(
@@ -238,6 +243,27 @@ def _simulate(args: argparse.Namespace) -> int:
     return 0 if stats.refused == 0 and stats.acknowledged == stats.published else 1
 
 
+_SPANS = {"d": 86400, "h": 3600, "m": 60}
+
+
+def token_end(text: str, now: datetime) -> datetime:
+    """The end ``--expires`` names: ``90d``/``12h``/``30m`` from ``now``, or a date or date-time (UTC unless
+    it carries an offset), to the second; ValueError saying what it takes."""
+    span = re.fullmatch(r"([1-9][0-9]{0,5})([dhm])", text.strip())
+    if span:
+        end = now + timedelta(seconds=int(span.group(1)) * _SPANS[span.group(2)])
+    else:
+        try:
+            end = datetime.fromisoformat(text.strip())
+        except ValueError:
+            raise ValueError(f"--expires takes 90d, 12h, 30m, a date (2027-03-05) or a UTC date-time "
+                             f"(2027-03-05T11:30:00Z), got {text!r}") from None
+        end = end if end.utcoffset() is not None else end.replace(tzinfo=UTC)
+    if end <= now:
+        raise ValueError(f"--expires {text!r} is already past")
+    return end.astimezone(UTC).replace(microsecond=0)
+
+
 def _token(args: argparse.Namespace) -> int:
     from pydantic import ValidationError
 
@@ -245,14 +271,20 @@ def _token(args: argparse.Namespace) -> int:
 
     token = new_token()
     try:
-        entry = TokenConfig(name=args.name, role=args.role, sha256=token_digest(token))
+        expires = None if args.expires is None else token_end(args.expires, datetime.now(UTC))
+    except ValueError as exc:
+        print(f"rwls token: {exc}", file=sys.stderr)
+        return 2
+    try:
+        entry = TokenConfig(name=args.name, role=args.role, sha256=token_digest(token), expires=expires)
     except ValidationError as exc:
         print(f"rwls token: --name {exc.errors()[0]['msg'].removeprefix('Value error, ')}", file=sys.stderr)
         return 2
+    ends = "" if expires is None else f"expires = {expires.isoformat().replace('+00:00', 'Z')}\n"
     print(token)
     print(f"# Give the token above to its holder; it is shown only now. Add to the settings file:\n"
           f"[[auth.tokens]]\nname = {json.dumps(entry.name)}\nrole = {json.dumps(entry.role)}\n"
-          f"sha256 = {json.dumps(entry.sha256)}", file=sys.stderr)
+          f"sha256 = {json.dumps(entry.sha256)}\n{ends}", end="", file=sys.stderr)
     return 0
 
 

@@ -33,6 +33,7 @@ from service.api.errors import validation_problems
 from service.api.guard import add_guards
 from service.api.metrics import ServiceMetrics
 from service.api.security_headers import SecurityHeaders
+from service.api.throttle import AuthThrottle
 from service.runtime import Runtime
 
 __all__ = ["ADVISORY", "create_app"]
@@ -70,8 +71,12 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     app = _App(title="rwls", version="1", lifespan=lifespan, docs_url=None, redoc_url=None,
                   description="Recursive weighted least squares for sensor monitoring. " + ADVISORY)
     app.state.runtime = runtime
-    app.state.access = Access(runtime.config.auth)
-    app.state.metrics = ServiceMetrics(runtime)
+    http = runtime.config.http
+    throttle = AuthThrottle(http.auth_failures, http.auth_window, http.auth_block_seconds,
+                            http.auth_block_max_seconds)
+    app.state.access = Access(runtime.config.auth, throttle)
+    app.state.metrics = ServiceMetrics(runtime, app.state.access)
+    app.state.http_warnings = []             # set by the server that listens (service/api/server.py)
     app.state.flat_snapshot = FlatSnapshot()
     add_docs(app, "rwls", ADVISORY)          # /docs with Swagger UI served from here, not from a CDN
     add_guards(app, runtime.config.http, app.state.access, exempt=lambda path: path.endswith("/samples"))

@@ -8,6 +8,7 @@ from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 
+from service.api.auth import Access
 from service.engine.quality import Quality
 from service.engine.writer import EngineStats
 from service.runtime import Runtime
@@ -76,12 +77,39 @@ class _EngineCollector(Collector):
                                       "refused after waiting out a full queue", value=ingest.publish_failures)
 
 
-class ServiceMetrics:
-    """A registry of one runtime's counters; :meth:`text` is the scrape body."""
+class _GuardCollector(Collector):
+    """The HTTP face's guards: failed and throttled authentications, expired tokens."""
 
-    def __init__(self, runtime: Runtime) -> None:
+    def __init__(self, access: Access) -> None:
+        self._access = access
+
+    def collect(self) -> Any:
+        access, throttle = self._access, self._access.throttle
+        yield CounterMetricFamily("rwls_auth_expired_tokens", "Requests with a token past its end (401)",
+                                  value=access.expired_total)
+        yield GaugeMetricFamily("rwls_auth_tokens_expiring", "Tokens that end within auth.expiry_warning_days "
+                                "or have ended", value=len(access.expiring()))
+        if throttle is not None:
+            yield CounterMetricFamily("rwls_auth_failures", "Requests with a token that is not one of ours (401)",
+                                      value=throttle.failed_total)
+            yield CounterMetricFamily("rwls_auth_throttled", "Authentications refused with 429 from a blocked "
+                                      "client address", value=throttle.throttled_total)
+            yield CounterMetricFamily("rwls_auth_blocks", "Client addresses blocked after too many failures "
+                                      "(each block counted)", value=throttle.blocks_total)
+            yield GaugeMetricFamily("rwls_auth_blocked_addresses", "Client addresses blocked now",
+                                    value=throttle.blocked())
+            yield GaugeMetricFamily("rwls_auth_failure_limit", "Failed authentications within the window that "
+                                    "block an address (http.auth_failures)", value=throttle.failures)
+
+
+class ServiceMetrics:
+    """A registry of one runtime's counters (and its HTTP guards'); :meth:`text` is the scrape body."""
+
+    def __init__(self, runtime: Runtime, access: Access | None = None) -> None:
         self._registry = CollectorRegistry()
         self._registry.register(_EngineCollector(runtime))
+        if access is not None:
+            self._registry.register(_GuardCollector(access))
 
     def text(self) -> bytes:
         return generate_latest(self._registry)

@@ -63,7 +63,7 @@ class HttpConfig(BaseModel):
     max_event_streams_per_address: int = Field(default=20, ge=1, le=100_000,
                                                description="open /api/v1/events streams from one client address")
     # Throttled guessing: failed authentications per client address.
-    auth_failures: int = Field(default=5, ge=1, le=1000,
+    auth_failures: int = Field(default=5, ge=1, le=1_000_000,
                                description="failed authentications from one address within auth_window before 429")
     auth_window: float = Field(default=60.0, gt=0.0, le=86400.0, allow_inf_nan=False, description="seconds")
     auth_block_seconds: float = Field(default=30.0, gt=0.0, le=86400.0, allow_inf_nan=False,
