@@ -186,9 +186,10 @@ def _with_forgetting(config: RwlsConfig, value: float | None) -> RwlsConfig:
 
 
 def _serve(args: argparse.Namespace) -> int:
-    import uvicorn
+    import ssl
 
     from service.api.app import create_app
+    from service.api.server import PlainHttpRefused, http_server, plain_http_warnings
     from service.runtime import AlreadyRunning, Runtime, exit_on_signal
 
     # Start-up makes objects that live as long as the process (100,000 channels: millions): the collector's
@@ -199,8 +200,23 @@ def _serve(args: argparse.Namespace) -> int:
         config = load_config(args.config)
         if args.shard:
             config = config.model_copy(update={"fleet": config.fleet.model_copy(update={"shard": args.shard})})
-        runtime = Runtime(config)           # checks the topics and the shard (ConfigError by key)
         host = args.host or config.http.host
+        try:
+            warnings = plain_http_warnings(config, host)
+        except PlainHttpRefused as exc:
+            print(f"rwls serve: refusing to start: {exc}", file=sys.stderr)
+            return 2
+        runtime = Runtime(config)           # checks the topics and the shard (ConfigError by key)
+        # One process, one worker: the engine is the single writer (see service/runtime.py).
+        app = create_app(runtime, manage_runtime=False)
+        app.state.http_warnings = warnings
+        try:
+            server = http_server(app, config, log_level=args.log_level)      # loads the TLS files now
+        except (ssl.SSLError, OSError) as exc:
+            print(f"rwls serve: cannot load the TLS files (http.tls_cert_file, http.tls_key_file, "
+                  f"http.tls_client_ca_file): {exc}", file=sys.stderr)
+            return 2
+        _raise_descriptor_limit(config.http.max_connections)
         port = config.http.port if args.port is None else args.port
         sock = bind_listener(host, port)     # PortUnavailable: one line naming the port (main)
         try:
@@ -210,17 +226,34 @@ def _serve(args: argparse.Namespace) -> int:
             return 2
     finally:
         gc.enable()
-    # One process, one worker: the engine is the single writer (see service/runtime.py).
-    app = create_app(runtime, manage_runtime=False)
-    # Open event streams never end by themselves: shutdown waits at most 3 s for them.
-    server = uvicorn.Server(uvicorn.Config(app, log_level=args.log_level, lifespan="on", timeout_graceful_shutdown=3))
-    print(f"rwls: serving http://{host}:{sock.getsockname()[1]}/ ; {ADVISORY}", flush=True)
+    for warning in warnings:
+        log.warning("%s", warning)
+    scheme = "https" if config.http.tls else "http"
+    print(f"rwls: serving {scheme}://{host}:{sock.getsockname()[1]}/ ; {ADVISORY}", flush=True)
     exit_on_signal()
     try:
         server.run(sockets=[sock])
     finally:
         runtime.stop()
     return 0
+
+
+def _raise_descriptor_limit(connections: int) -> None:
+    """Raise the soft limit of open files to the hard one (common practice for servers), and warn when even
+    that leaves too few for ``connections`` plus the store's and the broker's."""
+    import resource
+
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if hard == resource.RLIM_INFINITY or soft < hard:
+        target = hard if hard != resource.RLIM_INFINITY else max(soft, connections + 1024)
+        try:
+            resource.setrlimit(resource.RLIMIT_NOFILE, (target, hard))
+            soft = target
+        except (ValueError, OSError):
+            pass
+    if soft < connections + 256:
+        log.warning("open-file limit %d leaves too few descriptors for http.max_connections = %d: raise the "
+                    "limit (LimitNOFILE in the systemd unit) or lower the setting", soft, connections)
 
 
 def _simulate(args: argparse.Namespace) -> int:

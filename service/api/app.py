@@ -27,6 +27,7 @@ from service.advisory import ADVISORY
 from service.api import alarm_routes, baseline_routes, channel_routes, ingest_routes, status_routes
 from service.api.auth import Access
 from service.api.channel_routes import FlatSnapshot
+from service.api.connection_limits import ConnectionLimits, Slots
 from service.api.dashboard_routes import add_dashboard
 from service.api.docs import add_docs
 from service.api.errors import validation_problems
@@ -75,7 +76,12 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     throttle = AuthThrottle(http.auth_failures, http.auth_window, http.auth_block_seconds,
                             http.auth_block_max_seconds)
     app.state.access = Access(runtime.config.auth, throttle)
-    app.state.metrics = ServiceMetrics(runtime, app.state.access)
+    app.state.event_streams = Slots(http.max_event_streams, http.max_event_streams_per_address, "event_streams")
+    # Counted by the server's protocol (service/api/server.py); here so that /metrics can read them.
+    app.state.connection_limits = ConnectionLimits(http.max_connections, http.max_connections_per_address,
+                                                   http.header_timeout)
+    app.state.metrics = ServiceMetrics(runtime, app.state.access, app.state.connection_limits,
+                                       app.state.event_streams)
     app.state.http_warnings = []             # set by the server that listens (service/api/server.py)
     app.state.flat_snapshot = FlatSnapshot()
     add_docs(app, "rwls", ADVISORY)          # /docs with Swagger UI served from here, not from a CDN
