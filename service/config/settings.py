@@ -396,6 +396,10 @@ class FleetConfig(_StrictValues):
     reads: Literal["proxy", "redirect"] = Field(
         default="proxy", description="a read of another replica's channel: fetched for the caller, or 307")
     peer_timeout: float = Field(default=2.0, gt=0.0, le=60.0, allow_inf_nan=False, description="seconds")
+    ca_file: str = Field(default="", description="PEM CA that signed the replicas' HTTPS certificates "
+                                                 "(empty: the system's)")
+    cert_file: str = Field(default="", description="PEM client certificate for replicas that require one")
+    key_file: str = Field(default="", description="PEM private key of cert_file")
 
     @field_validator("replicas", mode="before")
     @classmethod
