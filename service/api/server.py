@@ -1,6 +1,8 @@
 """The HTTP server of ``rwls serve``: uvicorn with TLS when configured, the connection limits, and the
 secure-by-default rule.
 
+Under TLS, a connection that never completes its handshake is closed after ``http.header_timeout`` as well.
+
 Secure by default: tokens that may write (any role but ``viewer``) must not cross a network in clear text.
 A service holding such tokens that listens beyond loopback without TLS refuses to start, saying how to fix
 it, unless ``http.allow_plain_http`` accepts it; then it warns at every start and in ``/api/v1/ready``.
@@ -12,6 +14,8 @@ every client during the handshake (mutual TLS).
 
 from __future__ import annotations
 
+import asyncio
+import asyncio.constants
 import logging
 import ssl
 from collections.abc import Callable
@@ -82,6 +86,11 @@ def http_server(app: FastAPI, config: RwlsConfig, *, log_level: str = "info") ->
     limits: ConnectionLimits = app.state.connection_limits
     tls: dict[str, object] = {}
     if http.tls:
+        # asyncio completes the TLS handshake before the protocol (and its header timeout and caps) sees the
+        # connection; a client that never finishes a handshake is bounded by asyncio's handshake timeout
+        # (60 s by default), read when each connection is accepted: it gets the header timeout too. Nothing
+        # else in the service makes asyncio TLS connections (MQTT, webhooks and fleet reads use their own).
+        asyncio.constants.SSL_HANDSHAKE_TIMEOUT = http.header_timeout
         tls = {"ssl_certfile": http.tls_cert_file, "ssl_keyfile": http.tls_key_file,
                "ssl_context_factory": tls_context}
         if http.tls_client_ca_file:

@@ -5,8 +5,10 @@ which then warns in /api/v1/ready."""
 
 from __future__ import annotations
 
+import contextlib
 import socket
 import ssl
+import time
 from pathlib import Path
 from typing import Any
 
@@ -131,3 +133,23 @@ def test_tls_settings_go_together() -> None:
         _config(tls_cert_file="/etc/rwls/server.pem")
     with pytest.raises(Exception, match="tls_client_ca_file needs"):
         _config(tls_client_ca_file="/etc/rwls/ca.pem")
+
+
+def test_connections_that_never_finish_the_tls_handshake_are_dropped_after_the_header_timeout(
+        tmp_path: Path) -> None:
+    ca = trustme.CA()
+    http = {**_tls_files(tmp_path, ca), "header_timeout": 1.0}
+    with running_server(CHANNELS, tmp_path / "store", http=http) as served:
+        stalled = [socket.create_connection(("127.0.0.1", served.port), timeout=10.0) for _ in range(200)]
+        started = time.monotonic()
+        try:
+            _, answer = _handshake(served.port, _client_context(ca))          # served meanwhile
+            assert answer.startswith(b"HTTP/1.1 200")
+            for sock in stalled:
+                with contextlib.suppress(ConnectionResetError):
+                    assert sock.recv(1) == b""
+            waited = time.monotonic() - started
+        finally:
+            for sock in stalled:
+                sock.close()
+    assert waited < 8.0, f"held {waited:.1f} s (asyncio's own handshake timeout is 60 s)"
