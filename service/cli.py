@@ -77,7 +77,8 @@ def build_parser() -> argparse.ArgumentParser:
         helptext + ": every problem in one pass, each naming its key; with a false-alarm budget, the thresholds "
         "it derives and their detection delays. Exit status 0 when the file can be used, 2 when not."))
     check.add_argument("config", help="TOML file")
-    check.add_argument("--serve", action="store_true", help="also require what serving needs (channel topics)")
+    check.add_argument("--serve", action="store_true", help="also require what serving needs (channel topics; "
+                                                            "HTTPS beyond loopback with write tokens)")
 
     helptext = "run the live service: MQTT ingest, engine and REST API (and the dashboard at /)"
     serve = sub.add_parser("serve", help=helptext, description=(
@@ -337,7 +338,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.command == "check-config":
             config = load_config(args.config)
             if args.serve:
+                from service.api.server import PlainHttpRefused, plain_http_warnings
+
                 config.require_topics()
+                try:
+                    for warning in plain_http_warnings(config, config.http.host):
+                        print(f"warning: {warning}", file=sys.stderr)
+                except PlainHttpRefused as exc:
+                    raise ConfigError([f"http: {exc}"]) from None
             tags = tag_path_of(config)
             print(f"{args.config}: ok, {len(config.channels)} channel(s): {', '.join(config.channels)}")
             if tags is not None:

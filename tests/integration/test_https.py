@@ -111,6 +111,14 @@ def test_write_tokens_beyond_loopback_without_tls_refuse_to_start_saying_how_to_
     err = capsys.readouterr().err
     assert "refusing to start" in err and "http.tls_cert_file" in err and "http.allow_plain_http" in err
     assert not (tmp_path / "store").exists()          # refused before anything started
+    exposed = tmp_path / "exposed.toml"
+    exposed.write_text(path.read_text() + '\n[http]\nhost = "0.0.0.0"\n')
+    assert main(["check-config", str(exposed)]) == 0 and main(["check-config", str(exposed), "--serve"]) == 2
+    assert "http: http.host '0.0.0.0' reaches beyond this machine" in capsys.readouterr().err
+    accepted = tmp_path / "accepted.toml"
+    accepted.write_text(exposed.read_text() + "allow_plain_http = true\n")
+    assert main(["check-config", str(accepted), "--serve"]) == 0
+    assert "warning: plain HTTP beyond loopback" in capsys.readouterr().err
     with pytest.raises(PlainHttpRefused, match="test-engineer"):
         plain_http_warnings(_config(), "192.0.2.10")
     assert plain_http_warnings(_config(), "127.0.0.1") == [] and plain_http_warnings(_config(), "::1") == []
