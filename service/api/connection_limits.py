@@ -97,6 +97,8 @@ def _refusal(reason: str) -> bytes:
     body = b'{"detail":"too many connections: retry later"}'
     return (b"HTTP/1.1 503 Service Unavailable\r\ncontent-type: application/json\r\n"
             b"retry-after: " + str(RETRY_AFTER_SECONDS).encode() + b"\r\nconnection: close\r\n"
+            b"x-content-type-options: nosniff\r\nx-frame-options: DENY\r\nreferrer-policy: no-referrer\r\n"
+            b"content-security-policy: default-src 'none'; frame-ancestors 'none'\r\n"
             b"x-rwls-limit: " + reason.encode() + b"\r\ncontent-length: " + str(len(body)).encode() +
             b"\r\n\r\n" + body)
 

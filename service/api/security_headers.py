@@ -42,6 +42,7 @@ class SecurityHeaders:
 
         async def with_headers(message: Message) -> None:
             if message["type"] == "http.response.start":
+                message.setdefault("headers", [])          # optional in ASGI
                 headers = MutableHeaders(scope=message)
                 for name, value in BASELINE_HEADERS.items():
                     if name not in headers:

@@ -146,7 +146,7 @@ def test_connections_over_the_caps_answer_503_with_retry_after_and_are_counted(t
             with _open(served.port, ATTACKER) as sixth:
                 answer = _answer(sixth, get)
             assert answer.startswith(b"HTTP/1.1 503") and b"retry-after: 5" in answer.lower()
-            assert b"too many connections" in answer
+            assert b"too many connections" in answer and b"x-content-type-options: nosniff" in answer
             with _open(served.port, "127.0.0.1") as other:                  # another address: served
                 assert _answer(other, get).startswith(b"HTTP/1.1 200")
             with _held(served.port, "127.0.0.3", 5), _held(served.port, "127.0.0.4", 2), \
