@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import asyncio
 import logging
+from collections import Counter
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
@@ -80,12 +81,14 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     # Counted by the server's protocol (service/api/server.py); here so that /metrics can read them.
     app.state.connection_limits = ConnectionLimits(http.max_connections, http.max_connections_per_address,
                                                    http.header_timeout)
+    app.state.body_refusals = Counter[str]()      # request bodies over http.max_body_bytes (413)
     app.state.metrics = ServiceMetrics(runtime, app.state.access, app.state.connection_limits,
-                                       app.state.event_streams)
+                                       app.state.event_streams, app.state.body_refusals)
     app.state.http_warnings = []             # set by the server that listens (service/api/server.py)
     app.state.flat_snapshot = FlatSnapshot()
     add_docs(app, "rwls", ADVISORY)          # /docs with Swagger UI served from here, not from a CDN
-    add_guards(app, runtime.config.http, app.state.access, exempt=lambda path: path.endswith("/samples"))
+    add_guards(app, runtime.config.http, app.state.access, exempt=lambda path: path.endswith("/samples"),
+               refused=app.state.body_refusals)
 
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> JSONResponse:

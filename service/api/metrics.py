@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections import Counter
 from typing import Any
 
 from prometheus_client import CollectorRegistry, generate_latest
@@ -82,10 +83,13 @@ class _GuardCollector(Collector):
     """The HTTP face's guards: failed and throttled authentications, expired tokens, connections and event
     streams held and refused, request heads too slow, and the limits in force."""
 
-    def __init__(self, access: Access, limits: ConnectionLimits | None, streams: Slots | None) -> None:
+    def __init__(self, access: Access, limits: ConnectionLimits | None, streams: Slots | None,
+                 bodies: Counter[str] | None, max_body_bytes: int) -> None:
+        self._max_body_bytes = max_body_bytes
         self._access = access
         self._limits = limits
         self._streams = streams
+        self._bodies = bodies
 
     def collect(self) -> Any:
         yield from self._slots()
@@ -127,6 +131,9 @@ class _GuardCollector(Collector):
             limit.add_metric(["max_event_streams_per_address"], self._streams.per_address)
             for reason in ("event_streams", "event_streams_per_address"):
                 refused.add_metric([reason], self._streams.refusals().get(reason, 0))
+        if self._bodies is not None:
+            refused.add_metric(["body_too_large"], self._bodies["body_too_large"])
+        limit.add_metric(["max_body_bytes"], self._max_body_bytes)
         throttle = self._access.throttle
         if throttle is not None:
             limit.add_metric(["auth_failures"], throttle.failures)
@@ -141,11 +148,12 @@ class ServiceMetrics:
     """A registry of one runtime's counters (and its HTTP guards'); :meth:`text` is the scrape body."""
 
     def __init__(self, runtime: Runtime, access: Access | None = None, limits: ConnectionLimits | None = None,
-                 streams: Slots | None = None) -> None:
+                 streams: Slots | None = None, bodies: Counter[str] | None = None) -> None:
         self._registry = CollectorRegistry()
         self._registry.register(_EngineCollector(runtime))
         if access is not None:
-            self._registry.register(_GuardCollector(access, limits, streams))
+            self._registry.register(_GuardCollector(access, limits, streams, bodies,
+                                                    runtime.config.http.max_body_bytes))
 
     def text(self) -> bytes:
         return generate_latest(self._registry)

@@ -102,6 +102,9 @@ def test_pages_outside_the_schema_refusals_and_errors_carry_them_too(
                      client.post("/api/v1/channels/dp/reset", content=b"x" * 200_000,      # 413
                                  headers=bearer("engineer"))):
         _assert_secure(response.headers, f"refusal {response.status_code}", https=https)
+    metrics = client.get("/metrics").text
+    assert 'rwls_http_refused_total{reason="body_too_large"} 1.0' in metrics
+    assert 'rwls_http_limit{name="max_body_bytes"} 65536.0' in metrics
 
 
 def test_an_internal_error_carries_the_headers(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
