@@ -20,8 +20,9 @@ from service.api.server import PlainHttpRefused, plain_http_warnings
 from service.cli import main
 from service.config.settings import parse_config
 from tests.support.auth_tokens import auth_section, bearer
+from tests.support.configs import mqtt_settings
 from tests.support.http_servers import running_server
-from tests.support.service_process import toml_text
+from tests.support.service_process import ServiceProcess, toml_text
 
 pytestmark = pytest.mark.integration
 
@@ -161,3 +162,21 @@ def test_connections_that_never_finish_the_tls_handshake_are_dropped_after_the_h
             for sock in stalled:
                 sock.close()
     assert waited < 8.0, f"held {waited:.1f} s (asyncio's own handshake timeout is 60 s)"
+
+
+def test_rwls_serve_serves_https_from_its_settings(tmp_path: Path, mqtt_broker: Any, unique_prefix: str,
+                                                  client_id: Any) -> None:
+    ca = trustme.CA()
+    settings = mqtt_settings(CHANNELS, prefix=unique_prefix, port=mqtt_broker.port, client_id=client_id("rwls"),
+                             store=tmp_path / "data", auth=auth_section(), http=_tls_files(tmp_path, ca))
+    service = ServiceProcess(settings, tmp_path / "service").start()
+    try:
+        assert service.url.startswith("https://127.0.0.1:")
+        port = int(service.url.rsplit(":", 1)[1])
+        version, answer = _handshake(port, _client_context(ca))
+        assert version in ("TLSv1.2", "TLSv1.3") and answer.startswith(b"HTTP/1.1 200")
+        assert b"strict-transport-security: max-age=31536000" in answer.lower()
+        with pytest.raises(httpx.HTTPError):
+            httpx.get(f"http://127.0.0.1:{port}/api/v1/health", timeout=5.0)
+    finally:
+        service.stop()
