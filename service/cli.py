@@ -326,10 +326,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``rwls`` console script; returns the exit status."""
     args = build_parser().parse_args(argv)
     if args.command in ("serve", "demo"):
-        # paho's network thread and the engine share one interpreter: a shorter switch
-        # interval (default 5 ms) hands the GIL to paho sooner, which halves the time a
-        # message waits before on_message at high rates (measured in tests/benchmarks).
-        sys.setswitchinterval(0.0005)
+        from service.runtime import tune_for_serving
+
+        tune_for_serving()
     level = logging.INFO if args.command in ("serve", "demo") else logging.WARNING
     logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     for chatty in ("amqtt", "transitions"):      # the embedded broker's state machine logs every step

@@ -82,6 +82,8 @@ class Journal:
         self._limit = limit
         self._parts: list[_Part] = []
         self._length = 0
+        self._durable_through: int | None = None     # None: no store waits for entries, trim freely
+        self._trim_at = 0 if limit is None else limit + limit // 10
 
     def __len__(self) -> int:
         return self._length
@@ -108,13 +110,27 @@ class Journal:
         self._parts = []
         self._length = 0
 
+    def durable_through(self, seq: int) -> None:
+        """Entries up to ``seq`` are in the store: only those may leave memory (any thread; one assignment).
+
+        Until the first call every entry may; after it, an entry the store does not have yet stays
+        however long the journal grows (a store that cannot be reached loses no entry)."""
+        self._durable_through = seq
+        if self._limit is not None:
+            self._trim_at = self._limit + self._limit // 10         # try again at the next entry
+
     def _trim(self) -> None:
         # Memory holds the newest entries; the durable store keeps them all. Trimmed by a tenth at a time.
         limit = self._limit
-        if limit is None or self._length <= limit + limit // 10:
+        if limit is None or self._length <= self._trim_at:
             return
-        excess = self._length - limit
         parts = list(self._parts)
+        excess = min(self._length - limit, self._removable(parts))
+        # Entries waiting for the store: look again once another tenth came (or the store took some).
+        self._trim_at = max(limit + limit // 10, self._length - excess + limit // 10)
+        if excess <= 0:
+            return
+        removed = excess
         whole = 0
         while excess and whole < len(parts) and (size := _size(parts[whole])) <= excess:
             excess -= size
@@ -123,7 +139,22 @@ class Journal:
         if isinstance(run, SuppressionRun):           # the oldest part kept is a run, partly gone
             parts[whole] = run.tail(excess)
         self._parts = parts[whole:]                   # replaced whole: readers hold the old list
-        self._length = limit
+        self._length -= removed
+
+    def _removable(self, parts: list[_Part]) -> int:
+        """How many of the oldest entries the store has already (all, when no store waits)."""
+        floor = self._durable_through
+        if floor is None:
+            return self._length
+        count = 0
+        for part in parts:
+            if _last_seq(part) <= floor:
+                count += _size(part)
+                continue
+            if isinstance(part, SuppressionRun) and part.first_seq <= floor:
+                count += floor - part.first_seq + 1
+            break
+        return count
 
     def since(self, seq: int) -> list[JournalEntry]:
         """Every entry with a sequence number above ``seq``, oldest first."""

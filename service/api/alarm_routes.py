@@ -64,7 +64,7 @@ def alarms(runtime: ServiceRuntime, channel: str | None = None, kind: str | None
 
 
 @router.get("/alarms/journal", dependencies=[READ], summary="Alarm transitions with seq > after, oldest first",
-            response_model=models.Journal, responses=models.errors(401, 403, 422))
+            response_model=models.Journal, responses=models.errors(401, 403, 422, 503))
 def journal(runtime: ServiceRuntime, after: int = Query(default=0, ge=0),
             limit: int = Query(default=100, ge=1, le=10_000), channel: str | None = None) -> dict[str, object]:
     entries = runtime.journal(after, limit, channel)

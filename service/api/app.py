@@ -37,6 +37,7 @@ from service.api.metrics import ServiceMetrics
 from service.api.security_headers import SecurityHeaders
 from service.api.throttle import AuthThrottle
 from service.runtime import Runtime
+from service.storage.persistence import StoreUnavailable
 
 __all__ = ["ADVISORY", "create_app"]
 
@@ -97,6 +98,10 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
     @app.exception_handler(RequestValidationError)
     async def validation_error(request: Request, exc: RequestValidationError) -> JSONResponse:
         return JSONResponse(validation_problems(exc.errors()), status_code=422)
+
+    @app.exception_handler(StoreUnavailable)
+    async def store_unavailable(request: Request, exc: StoreUnavailable) -> JSONResponse:
+        return JSONResponse({"detail": str(exc)}, status_code=503, headers={"Retry-After": "5"})
 
     @app.exception_handler(Exception)
     async def internal_error(request: Request, exc: Exception) -> JSONResponse:

@@ -24,6 +24,10 @@ def _too_large() -> JSONResponse:
              responses=models.errors(400, 401, 403, 404, 413, 422, 503),
              summary="Ingest samples over HTTP (the MQTT payload contract, same validation)")
 async def post_samples(channel_id: str, request: Request, runtime: ServiceRuntime) -> dict[str, object] | JSONResponse:
+    held = runtime.ingest_held()
+    if held is not None:
+        # Nothing taken that could not be made durable; the fault heals by itself (see /api/v1/ready).
+        return JSONResponse({"detail": f"{held}; retry later"}, status_code=503, headers={"Retry-After": "5"})
     settings = runtime.channels.get(channel_id)
     if settings is None:
         runtime.refuse_http(SampleRefusal.UNKNOWN_CHANNEL)

@@ -11,6 +11,7 @@ from prometheus_client.registry import Collector
 
 from service.api.auth import Access
 from service.api.connection_limits import ConnectionLimits, Slots
+from service.engine.host_faults import FaultPart
 from service.engine.quality import Quality
 from service.engine.writer import EngineStats
 from service.runtime import Runtime
@@ -55,6 +56,20 @@ class _EngineCollector(Collector):
         yield CounterMetricFamily("rwls_dead_letter_failures", "Dead letters the broker did not take",
                                   value=stats.dead_letter_failures)
         yield GaugeMetricFamily("rwls_queue_depth", "Messages waiting for the engine", value=runtime.intake.qsize())
+        faults = runtime.faults
+        active = {fault.part for fault in faults.active()}
+        in_force = GaugeMetricFamily("rwls_host_fault", "1 while a part of the host fails (input_log: ingest held; "
+                                     "store: checkpoints wait)", labels=["part"])
+        begun = CounterMetricFamily("rwls_host_faults", "Host faults begun", labels=["part"])
+        failures = CounterMetricFamily("rwls_host_fault_tries_failed", "Failed tries of a failing part (first "
+                                       "included)", labels=["part"])
+        for part in FaultPart:
+            in_force.add_metric([str(part)], 1.0 if part in active else 0.0)
+            begun.add_metric([str(part)], faults.started[part])
+            failures.add_metric([str(part)], faults.failures[part])
+        yield in_force
+        yield begun
+        yield failures
         yield CounterMetricFamily("rwls_batches", "Micro-batches applied", value=stats.batches)
         yield CounterMetricFamily("rwls_batch_seconds", "Time spent applying micro-batches",
                                   value=stats.batch_seconds_total)

@@ -289,8 +289,18 @@ class TokenExpiry(_Model):
     expired: bool
 
 
+class HostFaultState(_Model):
+    part: str = Field(description="input_log (ingest held: MQTT not acknowledged, HTTP ingest answers 503) or "
+                      "store (checkpoints and history wait; the input log keeps every input)")
+    reason: str = Field(description="the last error")
+    since: float = Field(description="when the fault began, epoch seconds")
+    attempts: int = Field(description="failed tries so far")
+    retry_in_seconds: float = Field(description="pause before the next try (doubles per failure, capped)")
+
+
 class Readiness(_Model):
     ready: bool
+    faults: list[HostFaultState] = Field(description="faults of the host in force: not ready while any is")
     engine_alive: bool
     queue_depth: int
     queue_capacity: int

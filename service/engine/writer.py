@@ -38,6 +38,7 @@ from service.broker_link.payload_columns import decode_columns
 from service.broker_link.redelivery import RecentlyLogged
 from service.broker_link.tag_refusal import TagRefusal
 from service.engine.activity import ChannelActivity
+from service.engine.host_faults import FaultPart, HostFaults
 from service.engine.intake import Command, Intake
 from service.engine.operations import Operation, operation_record
 from service.engine.publisher import PublishHook, SnapshotPublisher
@@ -97,14 +98,24 @@ class _Origins:
         return origin.message, None if origin.indexes is None else origin.indexes[position - self._starts[k]]
 
 
+@dataclass
+class _Held:
+    """A batch the input log could not take: kept, in order, until a write of it succeeds."""
+
+    batch: list[Message]                  # to log and apply
+    acks: list[tuple[int, int]]           # redeliveries already logged, acknowledged with it
+    taken: int                            # messages taken from the queue for it (done once applied)
+    command: Command | None = None        # came after the batch: runs once the batch applied
+
+
 class InputRecorder(Protocol):
     """Where the engine writes every message and operation before it applies them (the storage's input log)."""
 
     def append(self, records: Sequence[tuple[str, tuple[Any, ...]]]) -> int:
-        """Write records ``(kind, fields)``; the sequence number of the last."""
+        """Write records ``(kind, fields)``; the sequence number of the last. OSError: nothing of them kept."""
 
     def sync(self) -> int:
-        """Make everything appended durable."""
+        """Make everything appended durable. OSError: what was appended since the last sync is undone."""
 
 
 class EngineBusy(RuntimeError):
@@ -136,6 +147,7 @@ class Engine:
     publish_when : ``(channel, t)`` of a channel's newest applied sample; True publishes at once, however
         busy (a history row is due: rows follow sample time, not how batches happened to coalesce)
     tags : the tag path of the channels assembled from tags; messages without a channel go through it
+    faults : where the input log's faults are held (shared with the store's checkpoints); one of its own if None
     """
 
     def __init__(self, channels: Mapping[str, ChannelSettings], *, queue_size: int = 100_000,
@@ -149,8 +161,11 @@ class Engine:
                  periodic: Sequence[Callable[[Engine], None]] = (),
                  publish_hooks: Sequence[PublishHook] = (),
                  publish_when: Callable[[str, float], bool] | None = None,
-                 tags: TagPath | None = None) -> None:
+                 tags: TagPath | None = None, faults: HostFaults | None = None) -> None:
         self.bank = ChannelBank(channels)
+        self.faults = faults if faults is not None else HostFaults()
+        self._held: _Held | None = None                        # a batch waiting for the input log to heal
+        self._log_failing = False
         self.tags = tags
         self._fed_by_tags = frozenset(tags.channel_ids if tags is not None else ())
         self.log = input_log
@@ -202,6 +217,9 @@ class Engine:
         Exception
             Whatever the operation raised (an alarm action the state does not allow, for instance).
         """
+        failing = self.faults.fault(FaultPart.INPUT_LOG) if operation.logged else None
+        if failing is not None:
+            raise EngineBusy(f"the input log cannot be written ({failing.reason}); retry later")
         command = Command(operation, concurrent.futures.Future())
         try:
             self._queue.put(command, timeout=timeout)
@@ -299,6 +317,12 @@ class Engine:
     def _run(self) -> None:
         while True:
             self._heartbeat = time.monotonic()
+            if self._held is not None:
+                if not self._retry_held() and self._stopping.is_set():
+                    log.error("stopping with %d messages not in the input log: MQTT ones were not acknowledged "
+                              "(the broker redelivers them), HTTP ones are lost", len(self._held.batch))
+                    return
+                continue
             try:
                 first = self._queue.get(timeout=0.25)
             except queue.Empty:
@@ -309,20 +333,52 @@ class Engine:
                 continue
             batch, command = self._collect(first)
             if batch:
-                try:
-                    self._process(batch)
-                except Exception:          # the loop must outlive any bug in one batch
-                    log.exception("engine batch failed; %d messages dead-lettered", len(batch))
-                    for message in batch:
-                        self._refuse(message, EngineRefusal.INTERNAL_ERROR, "engine failed on this batch", None)
-                finally:
-                    self._queue.task_done(len(batch))
+                self._take_batch(batch, command)
+                if self._held is not None:
+                    continue                                   # the command waits with the batch
             if command is not None:
                 self._execute(command)
             self._tick()
             if self._stopping.is_set() and self._queue.empty():
                 self.publisher.flush()
                 return
+
+    def _take_batch(self, batch: list[Message], command: Command | None) -> None:
+        """Log, acknowledge and apply a micro-batch; held instead when the input log cannot take it."""
+        taken = len(batch)
+        try:
+            if not self._process(batch) and self._held is not None:
+                self._held.taken, self._held.command = taken, command
+        except Exception:          # the loop must outlive any bug in one batch
+            log.exception("engine batch failed; %d messages dead-lettered", len(batch))
+            for message in batch:
+                self._refuse(message, EngineRefusal.INTERNAL_ERROR, "engine failed on this batch", None)
+        finally:
+            if self._held is None:
+                self._queue.task_done(taken)
+
+    def _retry_held(self) -> bool:
+        """Try the held batch's log write again once its backoff passed; True when it went through."""
+        held = self._held
+        assert held is not None
+        pause = self.faults.wait(FaultPart.INPUT_LOG)
+        if pause > 0.0:
+            self._stopping.wait(min(pause, 0.25))
+            return False
+        if not self._log_batch(held.batch, held.acks):
+            return False
+        self._held = None
+        try:
+            self._apply(held.batch)
+        except Exception:
+            log.exception("engine batch failed; %d messages dead-lettered", len(held.batch))
+            for message in held.batch:
+                self._refuse(message, EngineRefusal.INTERNAL_ERROR, "engine failed on this batch", None)
+        finally:
+            self._queue.task_done(held.taken)
+        if held.command is not None:
+            self._execute(held.command)
+        return True
 
     def _collect(self, first: Message | Command | None) -> tuple[list[Message], Command | None]:
         """A micro-batch: messages until full, ``max_wait`` passes, or a command (which runs after them)."""
@@ -347,8 +403,15 @@ class Engine:
     def _execute(self, command: Command) -> None:
         try:
             if command.operation.logged and self.log is not None:
-                self.position = self.log.append([("o", operation_record(command.operation))])
-                self.log.sync()
+                try:
+                    position = self.log.append([("o", operation_record(command.operation))])
+                    self.log.sync()
+                except OSError as exc:
+                    self._log_failing = True
+                    self.faults.failed(FaultPart.INPUT_LOG, exc)
+                    raise EngineBusy(f"the input log cannot be written ({exc}); retry later") from None
+                self._log_healed()
+                self.position = position
             command.future.set_result(self.apply_operation(command.operation))
         except Exception as exc:      # the caller gets it; the loop goes on
             command.future.set_exception(exc)
@@ -429,13 +492,23 @@ class Engine:
                 kept.append(m)
         return kept, acks
 
-    def _log_batch(self, batch: list[Message], acks: list[tuple[int, int]]) -> None:
-        """Into the input log, synced, before anything is applied; then acknowledge (MQTT) or release (HTTP)."""
+    def _log_batch(self, batch: list[Message], acks: list[tuple[int, int]]) -> bool:
+        """Into the input log, synced, before anything is applied; then acknowledge (MQTT) or release (HTTP).
+
+        False when the log could not take it (a full disk, an I/O error): nothing of it was kept,
+        acknowledged or applied, and the fault is held (:class:`HostFaults`) for the retry."""
         if self.log is None:
-            return
-        self.position = self.log.append([("m", (m.channel, m.payload, m.source, m.topic, m.received))
-                                         for m in batch])
-        self.log.sync()
+            return True
+        try:
+            position = self.log.append([("m", (m.channel, m.payload, m.source, m.topic, m.received))
+                                        for m in batch])
+            self.log.sync()
+        except OSError as exc:
+            self._log_failing = True
+            self.faults.failed(FaultPart.INPUT_LOG, exc)
+            return False
+        self._log_healed()
+        self.position = position
         self.recently_logged.add_all((m.topic, m.payload) for m in batch if m.source == "mqtt" and m.topic is not None)
         acks = acks + [m.ack for m in batch if m.ack is not None]
         if acks and self._acknowledge is not None:
@@ -446,6 +519,12 @@ class Engine:
         for m in batch:
             if m.durable is not None:
                 m.durable.set()
+        return True
+
+    def _log_healed(self) -> None:
+        if self._log_failing:
+            self._log_failing = False
+            self.faults.cleared(FaultPart.INPUT_LOG)
 
     def reapply(self, batch: list[Message]) -> None:
         """Apply messages from the input log (recovery): not logged again, no dead letters sent again."""
@@ -455,11 +534,19 @@ class Engine:
         finally:
             self._dead_letter = dead_letter
 
-    def _process(self, batch: list[Message], logged: bool = False) -> None:
-        started = time.perf_counter()
+    def _process(self, batch: list[Message], logged: bool = False) -> bool:
+        """Log (unless ``logged``: recovery), acknowledge and apply; False when held for the input log."""
         if not logged:
             batch, redelivery_acks = self._skip_redelivered(batch) if self.log is not None else (batch, [])
-            self._log_batch(batch, redelivery_acks)
+            if not self._log_batch(batch, redelivery_acks):
+                self._held = _Held(batch, redelivery_acks, len(batch))
+                return False
+        self._apply(batch)
+        return True
+
+    def _apply(self, batch: list[Message]) -> None:
+        """Apply logged messages: decode, assemble tag samples, update the bank, refuse, publish."""
+        started = time.perf_counter()
         columns: dict[str, SampleColumns] = {}
         origins: dict[str, _Origins] = {}      # where each channel's samples came from
         tagged: list[Message] = []

@@ -16,6 +16,7 @@ is cut off at the last whole record when the log is opened.
 
 from __future__ import annotations
 
+import contextlib
 import itertools
 import logging
 import os
@@ -57,6 +58,8 @@ class InputLog:
         self.synced_seq = 0
         self._file: Any = None
         self._size = 0
+        self._synced_size = 0
+        self._pending_cut: tuple[Path, int] | None = None     # a failed write's tail still to cut off
         for path in self._segments():
             last = self._scan(path)
             if last is not None:
@@ -94,39 +97,91 @@ class InputLog:
         return last
 
     def _open_segment(self) -> None:
+        if self._pending_cut is not None:
+            # A failed write's tail must go before anything is written after it: its whole records
+            # carry seqs that the next write gives out again.
+            path, size = self._pending_cut
+            os.truncate(path, size)
+            self._pending_cut = None
         if self._file is not None and self._size < self.segment_bytes:
             return
         if self._file is not None:
             self._file.close()
         path = self.directory / f"{_PREFIX}{self.last_seq + 1:020d}{_SUFFIX}"
         self._file = path.open("ab")
-        self._size = path.stat().st_size
+        self._size = self._synced_size = self._file.tell()
         _sync_directory(self.directory)
 
     # ----------------------------------------------------------------- writes
     def append(self, records: Sequence[tuple[str, tuple[Any, ...]]]) -> int:
-        """Write records (kind, fields); returns the seq of the last. Not durable until :meth:`sync`."""
+        """Write records (kind, fields); returns the seq of the last. Not durable until :meth:`sync`.
+
+        Raises
+        ------
+        OSError
+            The write failed (a full disk, an I/O error): everything since the last successful
+            :meth:`sync` is undone (file cut back, seqs given back), so the same records may be written again.
+        """
         if not records:
             return self.last_seq
-        self._open_segment()
-        chunks = []
-        for kind, fields in records:
-            self.last_seq += 1
-            body = _encode([self.last_seq, kind, *fields])
-            chunks.append(_HEADER.pack(len(body), zlib.crc32(body)))
-            chunks.append(body)
-        data = b"".join(chunks)
-        self._file.write(data)
+        try:
+            self._open_segment()
+            chunks = []
+            seq = self.last_seq
+            for kind, fields in records:
+                seq += 1
+                body = _encode([seq, kind, *fields])
+                chunks.append(_HEADER.pack(len(body), zlib.crc32(body)))
+                chunks.append(body)
+            data = b"".join(chunks)
+            self._file.write(data)
+        except OSError:
+            self._undo_unsynced()
+            raise
+        self.last_seq = seq
         self._size += len(data)
         return self.last_seq
 
     def sync(self) -> int:
-        """Make everything appended durable (fsync); returns the synced seq."""
+        """Make everything appended durable (fsync); returns the synced seq.
+
+        Raises
+        ------
+        OSError
+            The flush or sync failed: what was appended since the last successful sync is undone, as
+            for :meth:`append` (after a failed fsync the kernel may have dropped the pages: write again).
+        """
         if self._file is not None and self.synced_seq < self.last_seq:
-            self._file.flush()
-            os.fdatasync(self._file.fileno())
+            try:
+                self._file.flush()
+                os.fdatasync(self._file.fileno())
+            except OSError:
+                self._undo_unsynced()
+                raise
         self.synced_seq = self.last_seq
+        self._synced_size = self._size
         return self.synced_seq
+
+    def _undo_unsynced(self) -> None:
+        """Back to the last synced state: the segment cut to its synced size; the next append opens a segment.
+
+        Should the cut itself fail (the disk still failing), the next append tries it first and
+        writes nothing until it succeeds."""
+        file, self._file = self._file, None
+        self.last_seq = self.synced_seq
+        self._size = self._synced_size
+        if file is None:
+            return
+        path = Path(file.name)
+        with contextlib.suppress(OSError):
+            file.close()              # a buffered writer closes its descriptor even when its last flush fails
+        try:
+            os.truncate(path, self._synced_size)
+        except OSError as exc:
+            log.warning("input log %s: could not cut back to %d bytes yet (%s)", path.name, self._synced_size, exc)
+            self._pending_cut = (path, self._synced_size)
+        else:
+            self._pending_cut = None
 
     def close(self) -> None:
         if self._file is not None:
@@ -172,7 +227,7 @@ class InputLog:
             self.sync()
             self._file.close()
             self._file = None
-            self._size = 0
+            self._size = self._synced_size = 0
 
 
 def _sync_directory(directory: Path) -> None:

@@ -29,12 +29,16 @@ import math
 import threading
 import time
 import zipfile
+from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import sqlalchemy.exc
 
 from estimator import export_state, import_state
+from service.alarms.journal import Journal
 from service.broker_link.messages import Message
+from service.engine.host_faults import FaultPart, HostFaults
 from service.engine.operations import operation_from_record
 from service.engine.snapshot import ChannelEntry
 from service.engine.writer import EngineStats
@@ -44,12 +48,16 @@ from service.storage.store import KEEP_CHECKPOINTS, Store
 if TYPE_CHECKING:
     from service.engine.writer import Engine
 
-__all__ = ["CorruptCheckpoint", "Persistence", "decode_checkpoint", "encode_checkpoint"]
+__all__ = ["CorruptCheckpoint", "Persistence", "StoreUnavailable", "decode_checkpoint", "encode_checkpoint"]
 
 log = logging.getLogger(__name__)
 
 REPLAY_BATCH = 2000
 _META = "__meta__"
+
+
+class StoreUnavailable(RuntimeError):
+    """The store did not answer a read (the service goes on; ``/ready`` names the fault)."""
 
 
 class CorruptCheckpoint(ValueError):
@@ -82,11 +90,15 @@ class Persistence:
     checkpoint_seconds : a checkpoint at most this often (the engine's periodic job), and at stop
     history_step : a history row per channel at most every this many seconds (sample time, else wall)
     history_retention : rows older than this (seconds) before the newest row are deleted
+    faults : where a store that cannot be reached is held (shared with the engine, whose input log keeps
+        every input meanwhile); checkpoints are then retried with its backoff, not every ``checkpoint_seconds``
     """
 
     def __init__(self, store: Store, input_log: InputLog, *, checkpoint_seconds: float = 30.0,
-                 history_step: float = 60.0, history_retention: float = 30 * 86400.0) -> None:
+                 history_step: float = 60.0, history_retention: float = 30 * 86400.0,
+                 faults: HostFaults | None = None) -> None:
         self.store = store
+        self.faults = faults if faults is not None else HostFaults()
         self.log = input_log
         self.checkpoint_seconds = checkpoint_seconds
         self.history_step = history_step
@@ -106,6 +118,13 @@ class Persistence:
         self._history_writing: list[tuple[str, float, dict[str, Any]]] = []
         self._last_prune = 0.0
         self._recovering = False
+        self._journal: Journal | None = None
+
+    def hold_journal(self, journal: Journal) -> None:
+        """Keep in ``journal``'s memory every entry the store does not have yet (call before the engine makes
+        any: 400,000 start-up suppressions at 100,000 channels outnumber the journal's memory limit)."""
+        self._journal = journal
+        journal.durable_through(self.persisted_seq)
 
     # ------------------------------------------------------------ checkpoints
     def state(self, engine: Engine) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
@@ -163,11 +182,17 @@ class Persistence:
                 # its checksum, the one before still has every record after it.
                 self._positions = [*self._positions, position][-KEEP_CHECKPOINTS:]
                 self.log.discard_through(self._positions[0])
-            except Exception:
-                log.exception("checkpoint at input %d failed; the input log still holds everything", position)
+            except Exception as exc:
+                # One transaction: nothing of it is in the store. The log keeps every record after the
+                # last good checkpoint until one succeeds; the fault says so once, not at every retry.
+                log.debug("checkpoint at input %d failed", position, exc_info=True)
+                self.faults.failed(FaultPart.STORE, exc)
                 self._handed_seq = self.persisted_seq          # hand the entries again next time
                 return
+            self.faults.cleared(FaultPart.STORE)
             self.persisted_seq = max(self.persisted_seq, newest_seq or 0)
+            if self._journal is not None:
+                self._journal.durable_through(self.persisted_seq)
             self.last_checkpoint_seconds = time.perf_counter() - started
             self.last_checkpoint_bytes = len(body)
             self.checkpoints += 1
@@ -182,14 +207,22 @@ class Persistence:
     def periodic(self, engine: Engine) -> None:
         """The engine's once-a-second job: a checkpoint when one is due, history pruning now and then."""
         now = time.time()
-        if self.last_checkpoint_at is None or now - self.last_checkpoint_at >= self.checkpoint_seconds:
+        store_down = self.faults.fault(FaultPart.STORE) is not None
+        if store_down:
+            due = self.faults.wait(FaultPart.STORE) == 0.0          # the retry, on the fault's backoff
+        else:
+            due = self.last_checkpoint_at is None or now - self.last_checkpoint_at >= self.checkpoint_seconds
+        if due:
             self.checkpoint(engine, wait=False)
         newest = max(self._history_last.values(), default=None)
-        if newest is not None and now - self._last_prune > 600.0:
+        if newest is not None and not store_down and now - self._last_prune > 600.0:
             # Retention counts in the rows' own time (sample time): a replayed or compressed-time plant
             # keeps its last history_retention of history, whatever the wall clock says.
             self._last_prune = now
-            self.store.prune_history(newest - self.history_retention)
+            try:
+                self.store.prune_history(newest - self.history_retention)
+            except Exception as exc:
+                self.faults.failed(FaultPart.STORE, exc)
 
     # --------------------------------------------------------------- recovery
     def recover(self, engine: Engine) -> dict[str, Any]:
@@ -288,9 +321,15 @@ class Persistence:
                     "limits": {k: _finite(r.limit) for k, r in view.detectors.items()},
                     "residual": _finite(view.last_innovation), "residual_spread": _finite(view.last_spread)}
             self._history_rows.append((cid, t, body))
-        if len(self._history_rows) >= 10_000:          # between checkpoints, do not let it pile up
+        if len(self._history_rows) >= 10_000 and self.faults.fault(FaultPart.STORE) is None:
+            # Between checkpoints, do not let it pile up (while the store is away, the next good
+            # checkpoint takes them all).
             rows = list(self._history_rows)
-            self.store.save_history(rows)               # stored first, then no longer pending: never unseen
+            try:
+                self.store.save_history(rows)           # stored first, then no longer pending: never unseen
+            except Exception as exc:
+                self.faults.failed(FaultPart.STORE, exc)
+                return
             del self._history_rows[:len(rows)]
 
     def history(self, channel: str, since: float | None, until: float | None, limit: int) -> list[dict[str, Any]]:
@@ -299,14 +338,22 @@ class Persistence:
         unsaved = [*self._history_writing, *self._history_rows]        # copies: other threads replace them
         pending = [{"t": t, **body} for cid, t, body in unsaved
                    if cid == channel and (since is None or t >= since) and (until is None or t <= until)]
-        stored = self.store.history(channel, since, until, limit) if len(pending) < limit else []
+        stored = self._read(lambda: self.store.history(channel, since, until, limit)) if len(pending) < limit else []
         newest = stored[-1]["t"] if stored else -math.inf
         return (stored + [row for row in pending if row["t"] > newest])[-limit:]
+
+    def _read(self, read: Callable[[], list[dict[str, Any]]]) -> list[dict[str, Any]]:
+        """A read of the store; one it cannot answer (gone away, locked) is a :class:`StoreUnavailable`."""
+        try:
+            return read()
+        except sqlalchemy.exc.SQLAlchemyError as exc:
+            self.faults.failed(FaultPart.STORE, exc)          # the periodic checkpoint's retry clears it
+            raise StoreUnavailable(f"the store cannot be reached ({type(exc).__name__}); retry later") from None
 
     # ---------------------------------------------------------------- journal
     def journal(self, engine: Engine, after: int, limit: int, channel: str | None) -> list[dict[str, Any]]:
         """Entries with seq > after: the store's, then those not yet in a checkpoint."""
-        found = self.store.journal(after, limit, channel) if after < self.persisted_seq else []
+        found = self._read(lambda: self.store.journal(after, limit, channel)) if after < self.persisted_seq else []
         if len(found) < limit and engine.alarms is not None:
             start = max([after, self.persisted_seq, *(e["seq"] for e in found)])
             found += [e.to_dict() for e in engine.alarms.entries(start, limit - len(found), channel)]

@@ -58,8 +58,9 @@ def estimator_fingerprint() -> str:
 
 def environment_line() -> str:
     """One line naming the software and the machine the figures come from."""
-    return (f"numpy {np.__version__} | python {platform.python_version()} | "
-            f"{os.cpu_count()} CPUs | {platform.machine()} {platform.system()} | "
+    return (f"numpy {np.__version__} | python {platform.python_version()} (GIL switch interval "
+            f"{sys.getswitchinterval() * 1000:g} ms) | {os.cpu_count()} CPUs | "
+            f"{platform.machine()} {platform.system()} | "
             f"estimator sources sha256 {estimator_fingerprint()}")
 
 

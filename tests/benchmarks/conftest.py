@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import sys
 from collections.abc import Callable, Iterator
 
 import numpy as np
 import pytest
 
+from service.runtime import tune_for_serving
 from tests.benchmarks._common import environment_line
 from tests.benchmarks._mqtt_load import BROKER_LIMITS, Broker
 from tests.benchmarks._raw_paho import RawFigures, RawTagFigures, measure_raw, measure_raw_tags
@@ -15,6 +17,15 @@ from tests.support.mqtt_brokers import find_mosquitto, mosquitto_version, start_
 
 def pytest_report_header() -> str:
     return f"benchmarks on: {environment_line()}"
+
+
+@pytest.fixture(scope="session", autouse=True)
+def serving_interpreter() -> Iterator[None]:
+    """The interpreter as ``rwls serve`` tunes it: the service benchmarks run a Runtime in this process."""
+    before = sys.getswitchinterval()
+    tune_for_serving()
+    yield
+    sys.setswitchinterval(before)
 
 
 @pytest.fixture

@@ -19,6 +19,7 @@ import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
 from service.demo.instruments import CHANNELS as DEMO_CHANNELS
+from tests.support.child_processes import service_environment
 from tests.support.waits import wait_until
 
 pytestmark = pytest.mark.integration
@@ -65,7 +66,7 @@ def _demo(data_dir: Path) -> Iterator[_Demo]:
     rwls = Path(sys.executable).with_name("rwls")
     process = subprocess.Popen([str(rwls), "demo", "--port", "0", "--rate", "200", "--exit-after", "60",
                                 "--data-dir", str(data_dir)],
-                               stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+                               stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, env=service_environment())
     try:
         yield _Demo(process)
     finally:
@@ -166,7 +167,7 @@ def test_demo_on_a_taken_port_says_so_in_one_line(tmp_path: Path) -> None:
     try:
         rwls = Path(sys.executable).with_name("rwls")
         run = subprocess.run([str(rwls), "demo", "--port", str(port), "--data-dir", str(tmp_path / "d")],
-                             capture_output=True, text=True, timeout=60, check=False)
+                             capture_output=True, text=True, timeout=60, check=False, env=service_environment())
     finally:
         holder.close()
     assert run.returncode == 2

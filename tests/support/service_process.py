@@ -22,7 +22,7 @@ from pathlib import Path
 from typing import Any
 
 from tests.support.addresses import LOOPBACK
-from tests.support.child_processes import signal_and_wait
+from tests.support.child_processes import service_environment, signal_and_wait
 
 __all__ = ["ServiceProcess", "toml_text"]
 
@@ -79,7 +79,7 @@ class ServiceProcess:
     def start(self) -> ServiceProcess:
         if self._proc is not None and self._proc.poll() is None:
             raise RuntimeError(f"service already running (pid {self._proc.pid})")
-        env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+        env = service_environment()
         with self.log_path.open("a") as log:
             self._proc = subprocess.Popen(  # our own interpreter and module, our own config file
                 [sys.executable, "-m", "service.cli", "serve", "-c", str(self.config_path),

@@ -97,6 +97,23 @@ def test_the_journal_keeps_the_newest_entries_cutting_into_a_run() -> None:
     assert [e.seq for e in only] == [157, 158, 159, 160] and {e.channel for e in only} == {"c39"}
 
 
+def test_entries_the_store_does_not_have_yet_stay_in_memory_past_the_limit() -> None:
+    limit = 100
+    book, whole = _book(60, journal_limit=limit), _book(60)
+    book.journal.durable_through(0)                    # a store that has none of them yet
+    for b in (book, whole):
+        b.suppress_many([f"c{k}" for k in range(40)], DETECTOR_KINDS, 1.0, "commissioning")   # 160 entries
+        for k in range(30):
+            b.condition(f"c{50 + k % 10}", "offset", k % 2 == 0, 2.0 + k, Evidence(9.0, 8.0))
+    made = len(_entries(whole))
+    assert made > limit + limit // 10                  # past where the journal would cut ...
+    assert len(book.journal) == made and _entries(book) == _entries(whole)      # ... but nothing the store lacks
+    book.journal.durable_through(150)                  # the store took the first 150, cutting into the run
+    book.condition("c51", "offset", True, 40.0, Evidence(9.0, 8.0))
+    newest = _entries(whole)[-1]["seq"] + 1
+    assert [e.seq for e in book.journal] == list(range(newest - limit + 1, newest + 1))    # cut back to the limit
+
+
 def test_an_unknown_kind_or_priority_is_refused_naming_it() -> None:
     with pytest.raises(ValueError, match="alarm kind must be one of"):
         AlarmBook({"a": {"colour": "low"}})

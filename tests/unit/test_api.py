@@ -20,6 +20,7 @@ from fastapi import FastAPI
 from prometheus_client.parser import text_string_to_metric_families
 
 from service.api.app import create_app
+from service.engine.host_faults import FaultPart
 from service.offline.replay import replay_file
 from service.runtime import AlreadyRunning, Runtime
 from tests.support.auth_tokens import auth_section, bearer
@@ -727,3 +728,21 @@ def test_second_runtime_on_the_same_store_fails_with_already_running(
         assert second.engine.alive()
     finally:
         second.stop()
+
+
+def test_while_the_input_log_cannot_be_written_http_ingest_is_503_and_ready_says_why(
+        served: tuple[Runtime, TestClient]) -> None:
+    runtime, client = served
+    sample = _history(seed=19, n=1)["temp"][0]
+    runtime.faults.failed(FaultPart.INPUT_LOG, OSError(28, "No space left on device"))
+    refused = client.post("/api/v1/channels/temp/samples", json=sample)
+    assert refused.status_code == 503
+    assert int(refused.headers["Retry-After"]) > 0
+    assert "input log cannot be written" in refused.json()["detail"]
+    ready = client.get("/api/v1/ready")
+    assert ready.status_code == 503
+    assert [(f["part"], f["attempts"]) for f in ready.json()["faults"]] == [("input_log", 1)]
+    assert 'rwls_host_fault{part="input_log"} 1.0' in client.get("/metrics").text
+    runtime.faults.cleared(FaultPart.INPUT_LOG)
+    assert client.post("/api/v1/channels/temp/samples", json=sample).status_code == 202
+    assert client.get("/api/v1/ready").json()["faults"] == []
