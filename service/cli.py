@@ -12,8 +12,10 @@ import gc
 import json
 import logging
 import math
+import re
 import sys
 from collections.abc import Sequence
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 from service.advisory import ADVISORY
@@ -83,7 +85,8 @@ def build_parser() -> argparse.ArgumentParser:
         helptext + ": every problem in one pass, each naming its key; with a false-alarm budget, the thresholds "
         "it derives and their detection delays. Exit status 0 when the file can be used, 2 when not."))
     check.add_argument("config", help="TOML file")
-    check.add_argument("--serve", action="store_true", help="also require what serving needs (channel topics)")
+    check.add_argument("--serve", action="store_true", help="also require what serving needs (channel topics; "
+                                                            "HTTPS beyond loopback with write tokens)")
 
     helptext = "run the live service: MQTT ingest, engine and REST API (and the dashboard at /)"
     serve = sub.add_parser("serve", help=helptext, description=(
@@ -120,6 +123,9 @@ def build_parser() -> argparse.ArgumentParser:
         "the settings entry with its SHA-256 to standard error."))
     token.add_argument("--name", required=True, help="its holder, as the alarm journal will record it")
     token.add_argument("--role", required=True, choices=list(ROLES), help="what it may do (see README, Access)")
+    token.add_argument("--expires", metavar="WHEN",
+                       help="when it ends: a span from now (90d, 12h, 30m) or a UTC date-time (2027-03-05 or "
+                            "2027-03-05T11:30:00Z); written into the entry (default: never)")
 
     helptext = "publish the demo plant (Larkspur Valley, substation 7) to a broker"
     simulate = sub.add_parser("simulate", help=helptext, formatter_class=_HelpWithDefaults, description=(
@@ -209,9 +215,10 @@ def _with_forgetting(config: RwlsConfig, value: float | None) -> RwlsConfig:
 
 
 def _serve(args: argparse.Namespace) -> int:
-    import uvicorn
+    import ssl
 
     from service.api.app import create_app
+    from service.api.server import PlainHttpRefused, http_server, plain_http_warnings
     from service.runtime import AlreadyRunning, Runtime, exit_on_signal
 
     # Start-up makes objects that live as long as the process (100,000 channels: millions): the collector's
@@ -222,8 +229,23 @@ def _serve(args: argparse.Namespace) -> int:
         config = load_config(args.config)
         if args.shard:
             config = config.model_copy(update={"fleet": config.fleet.model_copy(update={"shard": args.shard})})
-        runtime = Runtime(config)           # checks the topics and the shard (ConfigError by key)
         host = args.host or config.http.host
+        try:
+            warnings = plain_http_warnings(config, host)
+        except PlainHttpRefused as exc:
+            print(f"rwls serve: refusing to start: {exc}", file=sys.stderr)
+            return 2
+        runtime = Runtime(config)           # checks the topics and the shard (ConfigError by key)
+        # One process, one worker: the engine is the single writer (see service/runtime.py).
+        app = create_app(runtime, manage_runtime=False)
+        app.state.http_warnings = warnings
+        try:
+            server = http_server(app, config, log_level=args.log_level)      # loads the TLS files now
+        except (ssl.SSLError, OSError) as exc:
+            print(f"rwls serve: cannot load the TLS files (http.tls_cert_file, http.tls_key_file, "
+                  f"http.tls_client_ca_file): {exc}", file=sys.stderr)
+            return 2
+        _raise_descriptor_limit(config.http.max_connections)
         port = config.http.port if args.port is None else args.port
         sock = bind_listener(host, port)     # PortUnavailable: one line naming the port (main)
         try:
@@ -233,17 +255,34 @@ def _serve(args: argparse.Namespace) -> int:
             return 2
     finally:
         gc.enable()
-    # One process, one worker: the engine is the single writer (see service/runtime.py).
-    app = create_app(runtime, manage_runtime=False)
-    # Open event streams never end by themselves: shutdown waits at most 3 s for them.
-    server = uvicorn.Server(uvicorn.Config(app, log_level=args.log_level, lifespan="on", timeout_graceful_shutdown=3))
-    print(f"rwls: serving http://{host}:{sock.getsockname()[1]}/ ; {ADVISORY}", flush=True)
+    for warning in warnings:
+        log.warning("%s", warning)
+    scheme = "https" if config.http.tls else "http"
+    print(f"rwls: serving {scheme}://{host}:{sock.getsockname()[1]}/ ; {ADVISORY}", flush=True)
     exit_on_signal()
     try:
         server.run(sockets=[sock])
     finally:
         runtime.stop()
     return 0
+
+
+def _raise_descriptor_limit(connections: int) -> None:
+    """Raise the soft limit of open files to the hard one (common practice for servers), and warn when even
+    that leaves too few for ``connections`` plus the store's and the broker's."""
+    import resource
+
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if hard == resource.RLIM_INFINITY or soft < hard:
+        target = hard if hard != resource.RLIM_INFINITY else max(soft, connections + 1024)
+        try:
+            resource.setrlimit(resource.RLIMIT_NOFILE, (target, hard))
+            soft = target
+        except (ValueError, OSError):
+            pass
+    if soft < connections + 256:
+        log.warning("open-file limit %d leaves too few descriptors for http.max_connections = %d: raise the "
+                    "limit (LimitNOFILE in the systemd unit) or lower the setting", soft, connections)
 
 
 def _simulate(args: argparse.Namespace) -> int:
@@ -266,6 +305,27 @@ def _simulate(args: argparse.Namespace) -> int:
     return 0 if stats.refused == 0 and stats.acknowledged == stats.published else 1
 
 
+_SPANS = {"d": 86400, "h": 3600, "m": 60}
+
+
+def token_end(text: str, now: datetime) -> datetime:
+    """The end ``--expires`` names: ``90d``/``12h``/``30m`` from ``now``, or a date or date-time (UTC unless
+    it carries an offset), to the second; ValueError saying what it takes."""
+    span = re.fullmatch(r"([1-9][0-9]{0,5})([dhm])", text.strip())
+    if span:
+        end = now + timedelta(seconds=int(span.group(1)) * _SPANS[span.group(2)])
+    else:
+        try:
+            end = datetime.fromisoformat(text.strip())
+        except ValueError:
+            raise ValueError(f"--expires takes 90d, 12h, 30m, a date (2027-03-05) or a UTC date-time "
+                             f"(2027-03-05T11:30:00Z), got {text!r}") from None
+        end = end if end.utcoffset() is not None else end.replace(tzinfo=UTC)
+    if end <= now:
+        raise ValueError(f"--expires {text!r} is already past")
+    return end.astimezone(UTC).replace(microsecond=0)
+
+
 def _token(args: argparse.Namespace) -> int:
     from pydantic import ValidationError
 
@@ -273,14 +333,20 @@ def _token(args: argparse.Namespace) -> int:
 
     token = new_token()
     try:
-        entry = TokenConfig(name=args.name, role=args.role, sha256=token_digest(token))
+        expires = None if args.expires is None else token_end(args.expires, datetime.now(UTC))
+    except ValueError as exc:
+        print(f"rwls token: {exc}", file=sys.stderr)
+        return 2
+    try:
+        entry = TokenConfig(name=args.name, role=args.role, sha256=token_digest(token), expires=expires)
     except ValidationError as exc:
         print(f"rwls token: --name {exc.errors()[0]['msg'].removeprefix('Value error, ')}", file=sys.stderr)
         return 2
+    ends = "" if expires is None else f"expires = {expires.isoformat().replace('+00:00', 'Z')}\n"
     print(token)
     print(f"# Give the token above to its holder; it is shown only now. Add to the settings file:\n"
           f"[[auth.tokens]]\nname = {json.dumps(entry.name)}\nrole = {json.dumps(entry.role)}\n"
-          f"sha256 = {json.dumps(entry.sha256)}", file=sys.stderr)
+          f"sha256 = {json.dumps(entry.sha256)}\n{ends}", end="", file=sys.stderr)
     return 0
 
 
@@ -299,7 +365,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.command == "check-config":
             config = load_config(args.config)
             if args.serve:
+                from service.api.server import PlainHttpRefused, plain_http_warnings
+
                 config.require_topics()
+                try:
+                    for warning in plain_http_warnings(config, config.http.host):
+                        print(f"warning: {warning}", file=sys.stderr)
+                except PlainHttpRefused as exc:
+                    raise ConfigError([f"http: {exc}"]) from None
             tags = tag_path_of(config)
             print(f"{args.config}: ok, {len(config.channels)} channel(s): {', '.join(config.channels)}")
             if tags is not None:

@@ -129,7 +129,8 @@ class Runtime:
         every_channel = list(config.channels)
         config, self.shard = own_share(config)
         self.fleet = (Fleet(self.shard, config.fleet.replicas, every_channel, reads=config.fleet.reads,
-                            timeout=config.fleet.peer_timeout)
+                            timeout=config.fleet.peer_timeout, ca_file=config.fleet.ca_file,
+                            cert_file=config.fleet.cert_file, key_file=config.fleet.key_file)
                       if self.shard is not None and config.fleet.replicas else None)
         self.config = config
         self.tag_path = tag_path_of(config)

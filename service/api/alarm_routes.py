@@ -15,10 +15,12 @@ import time
 from collections.abc import AsyncIterator, Callable
 
 from fastapi import APIRouter, Query, Request
-from fastapi.responses import JSONResponse, StreamingResponse
+from fastapi.responses import JSONResponse, Response, StreamingResponse
+from starlette.background import BackgroundTask
 
 from service.alarms.lifecycle import AlarmRefused
 from service.api import models
+from service.api.connection_limits import RETRY_AFTER_SECONDS, Slots
 from service.api.dependencies import READ, Operator, ServiceRuntime
 from service.api.write_bodies import ACTION_ERRORS, AckBody, ShelveBody, actor, busy
 from service.engine.operations import Acknowledge, Remove, Restore, Shelve, Unshelve
@@ -97,8 +99,22 @@ def shelve(alarm_id: str, body: ShelveBody, who: Operator, runtime: ServiceRunti
             responses={200: {"content": {"text/event-stream": {"schema": {
                 "type": "object", "properties": {"data": {"type": "string", "description": "JSON text"}}}}},
                              "description": "one `data:` line of JSON per alarm state, then per transition"},
-                       **models.errors(401, 403)})
-async def events(request: Request, runtime: ServiceRuntime) -> StreamingResponse:
+                       **models.errors(401, 403),
+                       503: {"model": models.ErrorBody, "description": "too many event streams open (all clients, "
+                             "or from this address: http.max_event_streams[_per_address]); see Retry-After"}})
+async def events(request: Request, runtime: ServiceRuntime) -> Response:
+    slots: Slots = request.app.state.event_streams
+    address = request.client.host if request.client is not None else "unknown"
+    refused = slots.take(address)
+    if refused is not None:
+        return JSONResponse({"detail": f"too many event streams open ({refused.replace('_', ' ')}): retry later"},
+                            status_code=503, headers={"Retry-After": str(RETRY_AFTER_SECONDS)})
+    held = [True]
+
+    def give_back() -> None:             # once, whichever of the stream's end and the background task is first
+        if held.pop() if held else False:
+            slots.give_back(address)
+
     hub = runtime.events
     hub.bind(asyncio.get_running_loop())
     q = hub.subscribe()
@@ -120,7 +136,9 @@ async def events(request: Request, runtime: ServiceRuntime) -> StreamingResponse
                 yield b"data: " + body + b"\n\n"
         finally:
             hub.unsubscribe(q)
+            give_back()
 
-    return StreamingResponse(stream(), media_type="text/event-stream",
+    # The background task gives the slot back should the stream never start (the client gone at once).
+    return StreamingResponse(stream(), media_type="text/event-stream", background=BackgroundTask(give_back),
                              headers={"Cache-Control": "no-cache", "X-Accel-Buffering": "no"})
 

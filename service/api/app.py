@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import asyncio
 import logging
+from collections import Counter
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
@@ -21,16 +22,20 @@ from fastapi import APIRouter, FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp
 
 from service.advisory import ADVISORY
 from service.api import alarm_routes, baseline_routes, channel_routes, ingest_routes, status_routes
 from service.api.auth import Access
 from service.api.channel_routes import FlatSnapshot
+from service.api.connection_limits import ConnectionLimits, Slots
 from service.api.dashboard_routes import add_dashboard
 from service.api.docs import add_docs
 from service.api.errors import validation_problems
 from service.api.guard import add_guards
 from service.api.metrics import ServiceMetrics
+from service.api.security_headers import SecurityHeaders
+from service.api.throttle import AuthThrottle
 from service.runtime import Runtime
 from service.storage.persistence import StoreUnavailable
 
@@ -41,6 +46,14 @@ log = logging.getLogger(__name__)
 # One router per concern, in the order the OpenAPI document lists them.
 ROUTERS: tuple[APIRouter, ...] = (channel_routes.router, ingest_routes.router, status_routes.router,
                                   alarm_routes.router, baseline_routes.router)
+
+
+class _App(FastAPI):
+    """FastAPI with :class:`SecurityHeaders` outside everything, so even a 500 carries the headers."""
+
+    def build_middleware_stack(self) -> ASGIApp:
+        hsts_seconds = self.state.runtime.config.http.hsts_seconds
+        return SecurityHeaders(super().build_middleware_stack(), hsts_seconds=hsts_seconds)
 
 
 def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
@@ -58,14 +71,25 @@ def create_app(runtime: Runtime, *, manage_runtime: bool = True) -> FastAPI:
             if manage_runtime:
                 runtime.stop()
 
-    app = FastAPI(title="rwls", version="1", lifespan=lifespan, docs_url=None, redoc_url=None,
+    app = _App(title="rwls", version="1", lifespan=lifespan, docs_url=None, redoc_url=None,
                   description="Recursive weighted least squares for sensor monitoring. " + ADVISORY)
     app.state.runtime = runtime
-    app.state.access = Access(runtime.config.auth)
-    app.state.metrics = ServiceMetrics(runtime)
+    http = runtime.config.http
+    throttle = AuthThrottle(http.auth_failures, http.auth_window, http.auth_block_seconds,
+                            http.auth_block_max_seconds)
+    app.state.access = Access(runtime.config.auth, throttle)
+    app.state.event_streams = Slots(http.max_event_streams, http.max_event_streams_per_address, "event_streams")
+    # Counted by the server's protocol (service/api/server.py); here so that /metrics can read them.
+    app.state.connection_limits = ConnectionLimits(http.max_connections, http.max_connections_per_address,
+                                                   http.header_timeout)
+    app.state.body_refusals = Counter[str]()      # request bodies over http.max_body_bytes (413)
+    app.state.metrics = ServiceMetrics(runtime, app.state.access, app.state.connection_limits,
+                                       app.state.event_streams, app.state.body_refusals)
+    app.state.http_warnings = []             # set by the server that listens (service/api/server.py)
     app.state.flat_snapshot = FlatSnapshot()
     add_docs(app, "rwls", ADVISORY)          # /docs with Swagger UI served from here, not from a CDN
-    add_guards(app, runtime.config.http, app.state.access, exempt=lambda path: path.endswith("/samples"))
+    add_guards(app, runtime.config.http, app.state.access, exempt=lambda path: path.endswith("/samples"),
+               refused=app.state.body_refusals)
 
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> JSONResponse:

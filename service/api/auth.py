@@ -16,6 +16,9 @@ alarms, *configure* learns or sets baselines and resets channels. Without a
 token a request is 401 (``WWW-Authenticate: Bearer``); with a token that lacks
 the permission, 403. A presented token is hashed and compared with every
 configured hash in constant time; the token itself is never logged or kept.
+A token past its ``expires`` is refused (401, saying it expired). A client
+address that presents too many wrong tokens is answered 429 for a while
+(:mod:`service.api.throttle`).
 
 Each route's dependency (``Access.needs``) decides 401 or 403. FastAPI decodes
 a JSON body before it runs dependencies, so :class:`WriteGate` sits in front:
@@ -28,8 +31,10 @@ from __future__ import annotations
 import hashlib
 import hmac
 import secrets
+import time
 from collections.abc import Callable
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from typing import Literal
 
 from fastapi import Depends, HTTPException, Request
@@ -37,6 +42,7 @@ from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from starlette.responses import JSONResponse
 from starlette.types import ASGIApp, Receive, Scope, Send
 
+from service.api.throttle import AuthThrottle
 from service.config.token_settings import AuthConfig
 
 __all__ = ["PERMISSIONS", "Access", "Permission", "Principal", "WriteGate", "new_token", "requires", "token_digest"]
@@ -81,37 +87,100 @@ def _unauthorized(error: str | None, detail: str) -> HTTPException:
     return HTTPException(status_code=401, detail=detail, headers={"WWW-Authenticate": challenge})
 
 
+def _throttled(seconds: float) -> HTTPException:
+    return HTTPException(status_code=429, detail="too many invalid tokens from this address: retry later",
+                         headers={"Retry-After": AuthThrottle.header(seconds)})
+
+
+def _iso(epoch: float) -> str:
+    return datetime.fromtimestamp(epoch, UTC).isoformat().replace("+00:00", "Z")
+
+
 class Access:
-    """Token verification for one configuration: who holds a token, and what they may do."""
+    """Token verification for one configuration: who holds a token, until when, and what they may do.
 
-    def __init__(self, config: AuthConfig) -> None:
+    Parameters
+    ----------
+    config : the ``[auth]`` table
+    throttle : failed authentications per client address (None: never throttled)
+    clock : seconds since the epoch (a token's end is compared with it)
+    """
+
+    def __init__(self, config: AuthConfig, throttle: AuthThrottle | None = None, *,
+                 clock: Callable[[], float] = time.time) -> None:
         self.reads_open = config.reads == "open"
-        self._tokens = [(bytes.fromhex(t.sha256), Principal(t.name, t.role, PERMISSIONS[t.role]))
-                        for t in config.tokens]
+        self.throttle = throttle
+        self.expiry_warning_seconds = config.expiry_warning_days * 86400.0
+        self._clock = clock
+        self._tokens = [(bytes.fromhex(t.sha256), Principal(t.name, t.role, PERMISSIONS[t.role]),
+                         None if t.expires is None else t.expires.timestamp()) for t in config.tokens]
+        self.expired_total = 0               # expired tokens presented
 
-    def verify(self, token: str) -> Principal | None:
-        """The holder of ``token``, or None. Every configured hash is compared, in constant time each."""
+    def _match(self, token: str) -> tuple[Principal, float | None] | None:
+        """The holder of ``token`` and its end (epoch seconds), expired or not. Every configured hash is
+        compared, in constant time each."""
         if len(token) > _MAX_TOKEN_CHARS:
             return None
         presented = hashlib.sha256(token.encode("utf-8", "surrogatepass")).digest()
         found = None
-        for digest, principal in self._tokens:
+        for digest, principal, expires in self._tokens:
             if hmac.compare_digest(presented, digest):
-                found = principal            # no early exit: the time does not tell which one matched
+                found = principal, expires   # no early exit: the time does not tell which one matched
         return found
 
-    def identify(self, credentials: HTTPAuthorizationCredentials | None) -> Principal | None:
-        """The principal behind an Authorization header; None when none was sent; 401 for a bad token."""
-        if credentials is None:
+    def verify(self, token: str) -> Principal | None:
+        """The holder of ``token`` while it has not expired, or None."""
+        found = self._match(token)
+        if found is None or (found[1] is not None and found[1] <= self._clock()):
             return None
-        principal = self.verify(credentials.credentials)
-        if principal is None:
+        return found[0]
+
+    def authenticate(self, token: str, address: str | None) -> Principal:
+        """The holder of ``token`` presented from client ``address``.
+
+        Raises
+        ------
+        HTTPException
+            429 with ``Retry-After`` while ``address`` is throttled (the token is not checked); 401 for a
+            token that is not one of ours (counted against ``address``) or one that has expired.
+        """
+        where = address or "unknown"
+        if self.throttle is not None:
+            wait = self.throttle.retry_after(where)
+            if wait is not None:
+                raise _throttled(wait)
+        found = self._match(token)
+        if found is None:
+            if self.throttle is not None:
+                self.throttle.failed(where)
             raise _unauthorized("invalid_token", "invalid token")
+        principal, expires = found
+        if expires is not None and expires <= self._clock():
+            self.expired_total += 1
+            raise _unauthorized("invalid_token", f"token expired at {_iso(expires)}: ask for a new one "
+                                                 f"(`rwls token`)")
         return principal
 
-    def authorize(self, permission: Permission, credentials: HTTPAuthorizationCredentials | None) -> Principal:
-        """The principal allowed ``permission``; 401 without a (valid) token, 403 for a role without it."""
-        principal = self.identify(credentials)
+    def expiring(self) -> list[dict[str, object]]:
+        """Tokens that end within the warning period (or have ended), soonest first: name, end, expired."""
+        now = self._clock()
+        soon = sorted((expires, principal.name) for _, principal, expires in self._tokens
+                      if expires is not None and expires - now <= self.expiry_warning_seconds)
+        return [{"name": name, "expires": _iso(expires), "expired": expires <= now} for expires, name in soon]
+
+    def identify(self, credentials: HTTPAuthorizationCredentials | None, address: str | None = None
+                 ) -> Principal | None:
+        """The principal behind an Authorization header; None when none was sent; 401 for a bad token, 429
+        while ``address`` is throttled."""
+        if credentials is None:
+            return None
+        return self.authenticate(credentials.credentials, address)
+
+    def authorize(self, permission: Permission, credentials: HTTPAuthorizationCredentials | None,
+                  address: str | None = None) -> Principal:
+        """The principal allowed ``permission``; 401 without a (valid) token, 403 for a role without it, 429
+        while ``address`` is throttled."""
+        principal = self.identify(credentials, address)
         if principal is None:
             if permission == "read" and self.reads_open:
                 return ANONYMOUS
@@ -127,7 +196,7 @@ def requires(permission: Permission) -> Callable[..., Principal]:
 
     def check(request: Request, credentials: HTTPAuthorizationCredentials | None = _BEARER) -> Principal:
         access: Access = request.app.state.access
-        return access.authorize(permission, credentials)
+        return access.authorize(permission, credentials, None if request.client is None else request.client.host)
 
     return check
 
@@ -153,11 +222,16 @@ class WriteGate:
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] == "http" and scope["method"] not in _READ_METHODS:
             token = _bearer_token(scope)
-            refusal = (_unauthorized(None, "token required") if token is None
-                       else _unauthorized("invalid_token", "invalid token") if self.access.verify(token) is None
-                       else None)
+            refusal = _unauthorized(None, "token required") if token is None else None
+            if token is not None:
+                client = scope.get("client")
+                try:
+                    self.access.authenticate(token, None if client is None else client[0])
+                except HTTPException as exc:
+                    refusal = exc
             if refusal is not None:
-                response = JSONResponse({"detail": refusal.detail}, status_code=401, headers=refusal.headers)
+                response = JSONResponse({"detail": refusal.detail}, status_code=refusal.status_code,
+                                        headers=refusal.headers)
                 await response(scope, receive, send)
                 return
         await self.app(scope, receive, send)

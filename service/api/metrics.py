@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+from collections import Counter
 from typing import Any
 
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 
+from service.api.auth import Access
+from service.api.connection_limits import ConnectionLimits, Slots
 from service.engine.host_faults import FaultPart
 from service.engine.quality import Quality
 from service.engine.writer import EngineStats
@@ -91,12 +94,81 @@ class _EngineCollector(Collector):
                                       "refused after waiting out a full queue", value=ingest.publish_failures)
 
 
-class ServiceMetrics:
-    """A registry of one runtime's counters; :meth:`text` is the scrape body."""
+class _GuardCollector(Collector):
+    """The HTTP face's guards: failed and throttled authentications, expired tokens, connections and event
+    streams held and refused, request heads too slow, and the limits in force."""
 
-    def __init__(self, runtime: Runtime) -> None:
+    def __init__(self, access: Access, limits: ConnectionLimits | None, streams: Slots | None,
+                 bodies: Counter[str] | None, max_body_bytes: int) -> None:
+        self._max_body_bytes = max_body_bytes
+        self._access = access
+        self._limits = limits
+        self._streams = streams
+        self._bodies = bodies
+
+    def collect(self) -> Any:
+        yield from self._slots()
+        access, throttle = self._access, self._access.throttle
+        yield CounterMetricFamily("rwls_auth_expired_tokens", "Requests with a token past its end (401)",
+                                  value=access.expired_total)
+        yield GaugeMetricFamily("rwls_auth_tokens_expiring", "Tokens that end within auth.expiry_warning_days "
+                                "or have ended", value=len(access.expiring()))
+        if throttle is not None:
+            yield CounterMetricFamily("rwls_auth_failures", "Requests with a token that is not one of ours (401)",
+                                      value=throttle.failed_total)
+            yield CounterMetricFamily("rwls_auth_throttled", "Authentications refused with 429 from a blocked "
+                                      "client address", value=throttle.throttled_total)
+            yield CounterMetricFamily("rwls_auth_blocks", "Client addresses blocked after too many failures "
+                                      "(each block counted)", value=throttle.blocks_total)
+            yield GaugeMetricFamily("rwls_auth_blocked_addresses", "Client addresses blocked now",
+                                    value=throttle.blocked())
+
+    def _slots(self) -> Any:
+        limit = GaugeMetricFamily("rwls_http_limit", "The limits in force ([http] settings of the same name)",
+                                  labels=["name"])
+        refused = CounterMetricFamily("rwls_http_refused", "Connections and event streams refused with 503 over "
+                                      "a cap", labels=["reason"])
+        if self._limits is not None:
+            connections = self._limits.connections
+            yield GaugeMetricFamily("rwls_http_connections", "Open HTTP connections", value=connections.held)
+            yield CounterMetricFamily("rwls_http_connections_accepted", "HTTP connections accepted within the caps",
+                                      value=connections.admitted_total)
+            yield CounterMetricFamily("rwls_http_header_timeouts", "Connections closed for not sending a request "
+                                      "head within http.header_timeout", value=self._limits.header_timeouts)
+            limit.add_metric(["max_connections"], connections.limit)
+            limit.add_metric(["max_connections_per_address"], connections.per_address)
+            limit.add_metric(["header_timeout"], self._limits.header_timeout)
+            for reason in ("connections", "connections_per_address"):
+                refused.add_metric([reason], connections.refusals().get(reason, 0))
+        if self._streams is not None:
+            yield GaugeMetricFamily("rwls_event_streams", "Open /api/v1/events streams", value=self._streams.held)
+            limit.add_metric(["max_event_streams"], self._streams.limit)
+            limit.add_metric(["max_event_streams_per_address"], self._streams.per_address)
+            for reason in ("event_streams", "event_streams_per_address"):
+                refused.add_metric([reason], self._streams.refusals().get(reason, 0))
+        if self._bodies is not None:
+            refused.add_metric(["body_too_large"], self._bodies["body_too_large"])
+        limit.add_metric(["max_body_bytes"], self._max_body_bytes)
+        throttle = self._access.throttle
+        if throttle is not None:
+            limit.add_metric(["auth_failures"], throttle.failures)
+            limit.add_metric(["auth_window"], throttle.window)
+            limit.add_metric(["auth_block_seconds"], throttle.block)
+            limit.add_metric(["auth_block_max_seconds"], throttle.block_max)
+        yield limit
+        yield refused
+
+
+class ServiceMetrics:
+    """A registry of one runtime's counters (and its HTTP guards'); :meth:`text` is the scrape body."""
+
+    def __init__(self, runtime: Runtime, access: Access | None = None, limits: ConnectionLimits | None = None,
+                 streams: Slots | None = None, bodies: Counter[str] | None = None) -> None:
         self._registry = CollectorRegistry()
         self._registry.register(_EngineCollector(runtime))
+        if access is not None:
+            self._registry.register(_GuardCollector(access, limits, streams, bodies,
+                                                    runtime.config.http.max_body_bytes))
 
     def text(self) -> bytes:
         return generate_latest(self._registry)

@@ -43,8 +43,13 @@ class ErrorBody(_Model):
 
 def errors(*codes: int) -> dict[int | str, dict[str, Any]]:
     """The ``responses=`` entry documenting error statuses with :class:`ErrorBody` (422 included: this
-    replaces FastAPI's default validation-error schema, which is not the shape this service answers with)."""
-    return {code: {"model": ErrorBody} for code in codes}
+    replaces FastAPI's default validation-error schema, which is not the shape this service answers with).
+    Where a token is checked (401), 429 too: a client address that presented too many wrong tokens waits."""
+    documented: dict[int | str, dict[str, Any]] = {code: {"model": ErrorBody} for code in codes}
+    if 401 in codes:
+        documented[429] = {"model": ErrorBody, "description": "too many invalid tokens from this address: wait "
+                                                              "the seconds the Retry-After header says"}
+    return documented
 
 
 RESPONSES_NOT_FOUND = errors(404)
@@ -278,6 +283,12 @@ class BrokerState(_Model):
     reconnects: int
 
 
+class TokenExpiry(_Model):
+    name: str
+    expires: str = Field(description="ISO 8601, UTC")
+    expired: bool
+
+
 class HostFaultState(_Model):
     part: str = Field(description="input_log (ingest held: MQTT not acknowledged, HTTP ingest answers 503) or "
                       "store (checkpoints and history wait; the input log keeps every input)")
@@ -297,3 +308,6 @@ class Readiness(_Model):
     snapshot_age_seconds: float | None
     checkpoint_age_seconds: float | None
     input_log_position: int
+    tokens_expiring: list[TokenExpiry] = Field(
+        default_factory=list, description="tokens that end within auth.expiry_warning_days, or have ended")
+    warnings: list[str] = Field(default_factory=list, description="settings that leave the service exposed")

@@ -6,6 +6,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse, Response
 
 from service.api import models
+from service.api.auth import Access
 from service.api.dependencies import READ, ServiceRuntime
 from service.api.metrics import PROMETHEUS_TEXT, ServiceMetrics
 from service.engine.channel_report import finite_or_null
@@ -23,10 +24,14 @@ def health(runtime: ServiceRuntime) -> dict[str, object] | JSONResponse:
 
 
 @router.get("/api/v1/ready", summary="Readiness: broker connected, engine alive, queue not full",
+            description="Also names the tokens that end soon (or have ended) and settings that leave the service "
+                        "exposed (plain HTTP beyond loopback); neither makes it not ready.",
             response_model=models.Readiness,
             responses={503: {"model": models.Readiness, "description": "not ready: the same document says why"}})
-def ready(runtime: ServiceRuntime) -> dict[str, object] | JSONResponse:
-    state = runtime.readiness()
+def ready(request: Request, runtime: ServiceRuntime) -> dict[str, object] | JSONResponse:
+    access: Access = request.app.state.access
+    state = {**runtime.readiness(), "tokens_expiring": access.expiring(),
+             "warnings": list(request.app.state.http_warnings)}
     return finite_or_null(state) if state["ready"] else JSONResponse(finite_or_null(state), 503)
 
 

@@ -46,6 +46,7 @@ from service.config.alarm_settings import (
 )
 from service.config.environment import apply_environment
 from service.config.false_alarm_budget import BudgetThresholds, derive_thresholds
+from service.config.http_settings import HttpConfig
 from service.config.shared_tables import validate_alike_once
 from service.config.tag_settings import ChannelTagsConfig, TagsConfig
 from service.config.token_settings import AuthConfig
@@ -357,29 +358,6 @@ class BrokerConfig(_StrictValues):
         return _split_broker_url(self.url)[2]
 
 
-class HttpConfig(_StrictValues):
-    """``[http]``: where the REST API and dashboard listen."""
-
-    host: str = Field(default="127.0.0.1", min_length=1)
-    port: int = Field(default=8080, ge=0, le=65535, description="0 picks a free port")
-    cors_origins: tuple[str, ...] = Field(default=(), description="origins allowed cross-site (none: CORS off)")
-    max_body_bytes: int = Field(default=65536, ge=1024, le=16 * 1024 * 1024,
-                                description="request bodies above this are refused (samples: broker.max_payload_bytes)")
-
-    @field_validator("cors_origins", mode="before")
-    @classmethod
-    def _as_tuple(cls, value: object) -> object:
-        return tuple(value) if isinstance(value, list) else value
-
-    @field_validator("cors_origins")
-    @classmethod
-    def _origins(cls, value: tuple[str, ...]) -> tuple[str, ...]:
-        for origin in value:
-            if origin == "*" or not origin.startswith(("http://", "https://")) or origin.rstrip("/") != origin:
-                raise ValueError(f"each origin is scheme://host[:port] (no '*', no path), got {origin!r}")
-        return value
-
-
 class StoreConfig(_StrictValues):
     """``[store]``: where the service keeps its data.
 
@@ -418,6 +396,10 @@ class FleetConfig(_StrictValues):
     reads: Literal["proxy", "redirect"] = Field(
         default="proxy", description="a read of another replica's channel: fetched for the caller, or 307")
     peer_timeout: float = Field(default=2.0, gt=0.0, le=60.0, allow_inf_nan=False, description="seconds")
+    ca_file: str = Field(default="", description="PEM CA that signed the replicas' HTTPS certificates "
+                                                 "(empty: the system's)")
+    cert_file: str = Field(default="", description="PEM client certificate for replicas that require one")
+    key_file: str = Field(default="", description="PEM private key of cert_file")
 
     @field_validator("replicas", mode="before")
     @classmethod

@@ -8,7 +8,10 @@ reads = "open"                 # "token": every read needs a token too (any role
 name = "control-room"          # recorded in the alarm journal as the one who acted
 role = "operator"              # viewer | source | operator | engineer
 sha256 = "9f86d081884c7d65..." # of the token; `rwls token` makes a token and prints this line
+expires = 2027-03-05T11:30:00Z # optional (a TOML date-time with its offset); refused from then on
 ```
+
+``expiry_warning_days`` (default 14) is how long before its end ``/api/v1/ready`` names a token.
 
 Tokens can also come from the environment:
 ``RWLS_AUTH__TOKENS='[{name="scada", role="viewer", sha256="..."}]'``. Only the
@@ -20,6 +23,7 @@ would need a slow salted one; these are not passwords).
 from __future__ import annotations
 
 import re
+from datetime import datetime
 from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
@@ -40,6 +44,7 @@ class TokenConfig(BaseModel):
     name: str = Field(description="the holder, as the journal records it")
     role: Role
     sha256: str = Field(description="hex SHA-256 of the token (never the token itself)")
+    expires: datetime | None = Field(default=None, description="when the token ends (with its UTC offset)")
 
     @field_validator("name")
     @classmethod
@@ -55,6 +60,13 @@ class TokenConfig(BaseModel):
             raise ValueError("must be 64 lowercase hex digits (the SHA-256 of the token; `rwls token` prints it)")
         return value
 
+    @field_validator("expires")
+    @classmethod
+    def _aware(cls, value: datetime | None) -> datetime | None:
+        if value is not None and value.utcoffset() is None:
+            raise ValueError("needs its UTC offset, e.g. 2027-03-05T11:30:00Z (a local time is ambiguous)")
+        return value
+
 
 class AuthConfig(BaseModel):
     """``[auth]``: writes always need a token with the right role; reads are open or need a token."""
@@ -63,6 +75,8 @@ class AuthConfig(BaseModel):
 
     reads: Literal["open", "token"] = Field(default="open", description="token: every read needs a token")
     tokens: tuple[TokenConfig, ...] = ()
+    expiry_warning_days: float = Field(default=14.0, ge=0.0, le=3650.0, allow_inf_nan=False,
+                                       description="/ready names tokens that end within this many days")
 
     @field_validator("tokens", mode="before")
     @classmethod

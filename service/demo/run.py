@@ -14,12 +14,12 @@ import tomllib
 from datetime import UTC, datetime
 from pathlib import Path
 
-import uvicorn
-
 from service.advisory import ADVISORY
 from service.api.app import create_app
 from service.api.auth import new_token, token_digest
 from service.api.listen_socket import bind_listener
+from service.api.server import http_server
+from service.config.http_settings import is_loopback
 from service.config.settings import RwlsConfig, parse_config
 from service.demo.embedded_broker import EmbeddedBroker
 from service.demo.simulate import simulate
@@ -74,8 +74,8 @@ def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 200.0, 
     runtime = Runtime(config)
     runtime.start()
     resume = recovered_positions(runtime)
-    server = uvicorn.Server(uvicorn.Config(create_app(runtime, manage_runtime=False), log_level="warning",
-                                           lifespan="on", timeout_graceful_shutdown=3))
+    # The service's own server: its connection limits and header timeout (plain HTTP: the demo has no certificate).
+    server = http_server(create_app(runtime, manage_runtime=False), config, log_level="warning")
     stop = threading.Event()
 
     def publish() -> None:
@@ -102,6 +102,10 @@ def run_demo(*, host: str = "127.0.0.1", port: int = 8080, rate: float = 200.0, 
         print(f"rwls demo: state recovered from {data_dir}/; the plant carries on after {newest} (plant time); "
               f"delete that directory to start the month afresh", flush=True)
     print(f"rwls demo: engineer token for this run (Authorization: Bearer ...): {token}", flush=True)
+    if not is_loopback(host):
+        print(f"rwls demo: warning: {host} reaches beyond this machine and the demo serves plain HTTP: this token "
+              f"and every write cross the network in clear text (the service itself refuses this without "
+              f"http.allow_plain_http)", flush=True)
     print(f"rwls demo: {ADVISORY}", flush=True)
     plant.start()
     timer.start()

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import socket
+import ssl
 import urllib.error
 import urllib.request
 from collections.abc import Mapping
@@ -68,8 +69,13 @@ class Fleet:
     """The other replicas, as seen from this one."""
 
     def __init__(self, shard: Shard, replicas: tuple[str, ...], channels: list[str], *, reads: str,
-                 timeout: float) -> None:
+                 timeout: float, ca_file: str = "", cert_file: str = "", key_file: str = "") -> None:
         self.shard = shard
+        # Replicas served over HTTPS: verified against ca_file (else the system's CAs), and a client
+        # certificate of our own when they require one (http.tls_client_ca_file).
+        self._tls = ssl.create_default_context(cafile=ca_file or None)
+        if cert_file:
+            self._tls.load_cert_chain(cert_file, key_file or None)
         self.replicas = replicas
         self.channels = list(channels)                # every channel of the fleet, in configuration order
         self.reads = reads
@@ -90,7 +96,8 @@ class Fleet:
         """GET from replica ``index``; None when it does not answer (refused, timed out, not HTTP)."""
         request = urllib.request.Request(self.url(index, path_and_query), headers=dict(headers))
         try:
-            with urllib.request.urlopen(request, timeout=self.timeout) as response:  # our own replicas
+            with urllib.request.urlopen(request, timeout=self.timeout,  # our own replicas
+                                        context=self._tls) as response:
                 return PeerAnswer(response.status, response.read(), response.headers.get("content-type", ""))
         except urllib.error.HTTPError as exc:        # it answered: its refusal is the answer
             return PeerAnswer(exc.code, exc.read(), exc.headers.get("content-type", ""))

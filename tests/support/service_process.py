@@ -92,7 +92,7 @@ class ServiceProcess:
             assert proc.stdout is not None
             with proc.stdout:                          # closed at EOF: the service and its child are gone
                 for line in proc.stdout:
-                    if not found and "serving http://" in line:
+                    if not found and "serving http" in line:
                         found.append(line.split("serving ", 1)[1].split(" ", 1)[0].rstrip("/"))
 
         threading.Thread(target=read, name="service-stdout", daemon=True).start()

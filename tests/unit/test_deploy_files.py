@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import configparser
 import copy
+import re
 import shutil
 import subprocess
 import sys
@@ -17,7 +18,8 @@ import kubernetes_validate
 import pytest
 import yaml
 
-from service.config.settings import parse_config
+from service.api.server import plain_http_warnings
+from service.config.settings import RwlsConfig, load_config, parse_config
 
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
 K8S_VERSION = "1.30.0"            # the oldest Kubernetes these manifests are meant for
@@ -59,7 +61,54 @@ def test_the_statefulset_its_services_probes_and_configuration_fit_together() ->
     assert config.fleet.shard == f"auto/{sts['spec']['replicas']}"
     assert len(config.fleet.replicas) == sts["spec"]["replicas"]
     for k, url in enumerate(config.fleet.replicas):
-        assert url == f"http://{sts['metadata']['name']}-{k}.{headless['metadata']['name']}:8080"
+        assert url == f"https://{sts['metadata']['name']}-{k}.{headless['metadata']['name']}:8443"
+
+
+def _served_as(toml_text: str, environ: dict[str, str], tmp_path: Path) -> RwlsConfig:
+    """The configuration a deployment gives the service (its file and its environment), with a write token."""
+    path = tmp_path / "rwls.toml"
+    path.write_text(toml_text)
+    token = {"RWLS_AUTH__TOKENS": f'[{{name = "scada", role = "operator", sha256 = "{"0" * 64}"}}]'}
+    return load_config(path, {**environ, **token})
+
+
+def test_the_kubernetes_replicas_serve_https_from_a_secret_and_probe_over_it(tmp_path: Path) -> None:
+    docs = {(d["kind"], d["metadata"]["name"]): d for d in _manifests()}
+    pod = docs[("StatefulSet", "rwls")]["spec"]["template"]["spec"]
+    container = pod["containers"][0]
+    environ = {e["name"]: e["value"] for e in container["env"] if "value" in e}
+    config = _served_as(docs[("ConfigMap", "rwls-config")]["data"]["rwls.toml"], environ, tmp_path)
+    assert config.http.tls and config.http.host == "0.0.0.0"
+    assert plain_http_warnings(config, config.http.host) == []        # would refuse to start otherwise
+    assert [p["containerPort"] for p in container["ports"]] == [config.http.port]
+    for probe in ("livenessProbe", "readinessProbe", "startupProbe"):
+        assert container[probe]["httpGet"]["scheme"] == "HTTPS"
+    mounts = {m["mountPath"]: m["name"] for m in container["volumeMounts"]}
+    volumes = {v["name"]: v for v in pod["volumes"]}
+    for file in (config.http.tls_cert_file, config.http.tls_key_file, config.fleet.ca_file):
+        assert "secret" in volumes[mounts[str(Path(file).parent)]]
+    for service in ("rwls", "rwls-peers"):
+        assert [p["port"] for p in docs[("Service", service)]["spec"]["ports"]] == [config.http.port]
+    assert all(url.startswith("https://") for url in config.fleet.replicas)
+
+
+def test_compose_the_image_and_the_systemd_unit_serve_https(tmp_path: Path) -> None:
+    rwls = yaml.safe_load((DEPLOY / "compose.yaml").read_text())["services"]["rwls"]
+    dockerfile = (DEPLOY / "Dockerfile").read_text()
+    image_env = dict(re.findall(r"(RWLS_\w+)=(\S+)", dockerfile))
+    config = _served_as((DEPLOY / "rwls.example.toml").read_text(), {**image_env, **rwls["environment"]}, tmp_path)
+    assert config.http.tls and config.http.host == "0.0.0.0" and config.http.port == 8443
+    assert plain_http_warnings(config, config.http.host) == []
+    assert rwls["ports"] == [f"{config.http.port}:{config.http.port}"]
+    tls_dir = str(Path(config.http.tls_cert_file).parent)
+    assert any(v.endswith(f":{tls_dir}:ro") and v.startswith("./tls") for v in rwls["volumes"])
+    assert f"EXPOSE {config.http.port}" in dockerfile and f"https://127.0.0.1:{config.http.port}/api/v1/health" \
+        in dockerfile
+    unit = (DEPLOY / "systemd" / "rwls.service").read_text()
+    credentials = dict(re.findall(r"^LoadCredential=([\w-]+):(\S+)$", unit, re.MULTILINE))
+    environment = dict(re.findall(r"^Environment=(RWLS_\w+)=(\S+)$", unit, re.MULTILINE))
+    assert environment["RWLS_HTTP__TLS_CERT_FILE"] == "%d/http-cert" and "http-cert" in credentials
+    assert environment["RWLS_HTTP__TLS_KEY_FILE"] == "%d/http-key" and "http-key" in credentials
 
 
 def test_the_compose_file_wires_broker_store_and_service() -> None:
