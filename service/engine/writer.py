@@ -345,17 +345,15 @@ class Engine:
 
     def _take_batch(self, batch: list[Message], command: Command | None) -> None:
         """Log, acknowledge and apply a micro-batch; held instead when the input log cannot take it."""
-        taken = len(batch)
         try:
-            if not self._process(batch) and self._held is not None:
-                self._held.taken, self._held.command = taken, command
+            held = not self._process(batch)
         except Exception:          # the loop must outlive any bug in one batch
-            log.exception("engine batch failed; %d messages dead-lettered", len(batch))
-            for message in batch:
-                self._refuse(message, EngineRefusal.INTERNAL_ERROR, "engine failed on this batch", None)
-        finally:
-            if self._held is None:
-                self._queue.task_done(taken)
+            self._dead_letter_batch(batch)
+            held = False
+        if held and self._held is not None:
+            self._held.taken, self._held.command = len(batch), command
+        else:
+            self._queue.task_done(len(batch))
 
     def _retry_held(self) -> bool:
         """Try the held batch's log write again once its backoff passed; True when it went through."""
@@ -371,14 +369,17 @@ class Engine:
         try:
             self._apply(held.batch)
         except Exception:
-            log.exception("engine batch failed; %d messages dead-lettered", len(held.batch))
-            for message in held.batch:
-                self._refuse(message, EngineRefusal.INTERNAL_ERROR, "engine failed on this batch", None)
-        finally:
-            self._queue.task_done(held.taken)
+            self._dead_letter_batch(held.batch)
+        self._queue.task_done(held.taken)
         if held.command is not None:
             self._execute(held.command)
         return True
+
+    def _dead_letter_batch(self, batch: list[Message]) -> None:
+        """A bug met in one batch (called while handling it): its messages dead-lettered, the loop goes on."""
+        log.exception("engine batch failed; %d messages dead-lettered", len(batch))
+        for message in batch:
+            self._refuse(message, EngineRefusal.INTERNAL_ERROR, "engine failed on this batch", None)
 
     def _collect(self, first: Message | Command | None) -> tuple[list[Message], Command | None]:
         """A micro-batch: messages until full, ``max_wait`` passes, or a command (which runs after them)."""
@@ -403,14 +404,10 @@ class Engine:
     def _execute(self, command: Command) -> None:
         try:
             if command.operation.logged and self.log is not None:
-                try:
-                    position = self.log.append([("o", operation_record(command.operation))])
-                    self.log.sync()
-                except OSError as exc:
-                    self._log_failing = True
-                    self.faults.failed(FaultPart.INPUT_LOG, exc)
-                    raise EngineBusy(f"the input log cannot be written ({exc}); retry later") from None
-                self._log_healed()
+                position = self._write_log([("o", operation_record(command.operation))])
+                if position is None:
+                    fault = self.faults.fault(FaultPart.INPUT_LOG)
+                    raise EngineBusy(f"the input log cannot be written ({fault and fault.reason}); retry later")
                 self.position = position
             command.future.set_result(self.apply_operation(command.operation))
         except Exception as exc:      # the caller gets it; the loop goes on
@@ -499,15 +496,9 @@ class Engine:
         acknowledged or applied, and the fault is held (:class:`HostFaults`) for the retry."""
         if self.log is None:
             return True
-        try:
-            position = self.log.append([("m", (m.channel, m.payload, m.source, m.topic, m.received))
-                                        for m in batch])
-            self.log.sync()
-        except OSError as exc:
-            self._log_failing = True
-            self.faults.failed(FaultPart.INPUT_LOG, exc)
+        position = self._write_log([("m", (m.channel, m.payload, m.source, m.topic, m.received)) for m in batch])
+        if position is None:
             return False
-        self._log_healed()
         self.position = position
         self.recently_logged.add_all((m.topic, m.payload) for m in batch if m.source == "mqtt" and m.topic is not None)
         acks = acks + [m.ack for m in batch if m.ack is not None]
@@ -521,10 +512,21 @@ class Engine:
                 m.durable.set()
         return True
 
-    def _log_healed(self) -> None:
+    def _write_log(self, records: list[tuple[str, tuple[Any, ...]]]) -> int | None:
+        """Append and sync: the seq of the last record, or None when the log failed (nothing of it kept; the
+        fault held for the retry)."""
+        assert self.log is not None
+        try:
+            position = self.log.append(records)
+            self.log.sync()
+        except OSError as exc:
+            self._log_failing = True
+            self.faults.failed(FaultPart.INPUT_LOG, exc)
+            return None
         if self._log_failing:
             self._log_failing = False
             self.faults.cleared(FaultPart.INPUT_LOG)
+        return position
 
     def reapply(self, batch: list[Message]) -> None:
         """Apply messages from the input log (recovery): not logged again, no dead letters sent again."""
