@@ -176,6 +176,15 @@ def _plots(cid: str, ch: ChannelReport, trace: ChannelTrace | None) -> str:
     return f'<p class="muted">{len(trace.t)} points{stride}.</p>' + "".join(parts)
 
 
+def _not_formed(counts: dict[str, int] | None) -> str:
+    """A channel assembled from tags: the output updates that formed no sample, by reason (none: nothing)."""
+    if not counts:
+        return ""
+    reasons = ", ".join(f"{_e(reason)} {n}" for reason, n in counts.items())
+    return (f'<p class="not-formed">{sum(counts.values())} output tag updates formed no sample '
+            f"(the tag messages were fine): {reasons}.</p>")
+
+
 def build_report(result: RunResult, trace: ReplayTrace, *, data: str, config: str, advisory: str,
                  overrides: dict[str, float], progress: Callable[[str], None] | None = None) -> str:
     """The report as one HTML document."""
@@ -189,6 +198,7 @@ def build_report(result: RunResult, trace: ReplayTrace, *, data: str, config: st
             f'<section class="channel" id="channel-{_e(cid)}" data-channel="{_e(cid)}"><h2>Channel {_e(cid)}</h2>'
             f'<p>{ch["samples"]} samples applied, {ch["rejected"]} rejected, {ch["warmup"]} warm-up; weighting '
             f'{_e(ch["weighting"])}, forgetting factor {_num(ch["forgetting_factor"], 8)}.</p>'
+            f"{_not_formed(result.samples_not_formed.get(cid))}"
             f"<h3>Final estimates</h3>{_estimates(ch)}"
             f"<h3>Trends</h3>{_plots(cid, ch, trace.channels.get(cid))}"
             f'<h3>Alarms that would have fired</h3>{_alarm_table(ch["alarms"])}'

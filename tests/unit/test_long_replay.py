@@ -150,6 +150,23 @@ def test_rwls_replay_and_fit_read_a_long_csv_and_report_samples_not_formed(
     assert "tag updates: " in text and "not later than their tag's newest" in text
 
 
+def test_the_html_report_of_a_long_csv_names_the_samples_not_formed(tmp_path: Path) -> None:
+    conf = tmp_path / "plant.toml"
+    conf.write_text(toml_text(tag_plant(tmp_path, PREFIX)))
+    data = tmp_path / "history.csv"
+    write_long_csv(data, tag_stream(PREFIX, seed=25, steps=80))
+    page = tmp_path / "report.html"
+    assert main(["replay", str(data), "--config", str(conf), "--report", str(page), "--no-progress"]) == 0
+    html = page.read_text()
+    expected = apply_history(data, parse_config(tag_plant(tmp_path, PREFIX)))[1].samples_not_formed
+    assert expected                                       # the stream has missing and bad inputs
+    for cid, counts in expected.items():
+        section = html.split(f'<section class="channel" id="channel-{cid}"', 1)[1].split("</section>", 1)[0]
+        assert f"{sum(counts.values())} output tag updates formed no sample" in section
+        for reason, n in counts.items():
+            assert f"{reason} {n}" in section
+
+
 def test_a_long_csv_needs_channels_assembled_from_tags(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     conf = tmp_path / "plain.toml"
     conf.write_text('[channels.c]\nterms = ["1", "u"]\n')
