@@ -23,7 +23,6 @@ import math
 from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import cast
 
 import numpy as np
 from numpy.typing import NDArray
@@ -339,20 +338,20 @@ class ChannelBank:
             histories = watch.histories
             has_baseline = watch.detectors.has_baseline[idx].tolist()
             counters = [lane.counters for lane in members]
-            identifiable = cast(list[bool], stats.identifiable.tolist())
-            finite = cast(list[bool], np.isfinite(stats.parameters).all(axis=1).tolist())
+            # Columns as arrays, not lists: the first snapshot holds every channel's (8 B a number, not 32).
+            finite = np.isfinite(stats.parameters).all(axis=1)
             blocks.append(ViewBlock(
                 channels=[lane.channel for lane in members], terms=[lane.terms for lane in members],
                 settings=[lane.settings for lane in members], parameters=stats.parameters, std_errors=std,
-                covariance=cov, residual_sd=stats.residual_sd.tolist(), dof=stats.dof.tolist(),
-                noise_sigma=np.sqrt(np.where(variance >= 0.0, variance, np.nan)).tolist(),
-                effective_count=stats.effective_count.tolist(), min_information=stats.min_information.tolist(),
-                information_condition=stats.information_condition.tolist(), identifiable=identifiable,
-                estimable=[a and b for a, b in zip(identifiable, finite, strict=True)],
+                covariance=cov, residual_sd=stats.residual_sd, dof=stats.dof,
+                noise_sigma=np.sqrt(np.where(variance >= 0.0, variance, np.nan)),
+                effective_count=stats.effective_count, min_information=stats.min_information,
+                information_condition=stats.information_condition, identifiable=stats.identifiable,
+                estimable=stats.identifiable & finite,
                 applied=[c.applied for c in counters], warmup=[c.warmup for c in counters],
                 refused=[dict(c.refused) for c in counters], last_t=[lane.last_t for lane in members],
                 baseline=[histories[lane.index].current if has else None
                           for lane, has in zip(members, has_baseline, strict=True)],
-                commissioned=watch.commissioned[idx].tolist(), statistics=statistics, limits=limits, active=active,
-                last_innovation=watch.last_innovation[idx].tolist(), last_spread=watch.last_spread[idx].tolist()))
+                commissioned=watch.commissioned[idx], statistics=statistics, limits=limits, active=active,
+                last_innovation=watch.last_innovation[idx], last_spread=watch.last_spread[idx]))
         return blocks

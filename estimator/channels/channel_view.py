@@ -72,9 +72,12 @@ class ViewBlock:
     """The state of ``m`` channels of one group (``n`` parameters each), taken at one moment.
 
     Arrays have the channels on their first axis: ``parameters`` and ``std_errors`` ``(m, n)``,
-    ``covariance`` ``(m, n, n)``; ``statistics``, ``limits`` and ``active`` hold each channel's
-    detector readings in :data:`~estimator.detection.detectors.KINDS` order. Everything else is a
-    list of length ``m``. Nothing here refers to live state: the arrays are fresh and the dicts copies.
+    ``covariance`` ``(m, n, n)``; ``statistics``, ``limits`` and ``active`` ``(m, 4)``, each row a
+    channel's detector readings in :data:`~estimator.detection.detectors.KINDS` order; the other
+    numbers are ``(m,)`` arrays (float64, bool for ``identifiable`` and ``estimable``, int for
+    ``commissioned``). Counters, times and objects are lists of length ``m``. Nothing here refers to
+    live state: the arrays are fresh and the dicts copies. :meth:`view` gives one channel in Python
+    numbers.
     """
 
     channels: list[str]
@@ -83,39 +86,39 @@ class ViewBlock:
     parameters: FloatArray
     std_errors: FloatArray
     covariance: FloatArray
-    residual_sd: list[float]
-    dof: list[float]
-    noise_sigma: list[float]
-    effective_count: list[float]
-    min_information: list[float]
-    information_condition: list[float]
-    identifiable: list[bool]
-    estimable: list[bool]                 # identifiable, with every parameter finite
+    residual_sd: FloatArray
+    dof: FloatArray
+    noise_sigma: FloatArray
+    effective_count: FloatArray
+    min_information: FloatArray
+    information_condition: FloatArray
+    identifiable: NDArray[np.bool_]
+    estimable: NDArray[np.bool_]          # identifiable, with every parameter finite
     applied: list[int]
     warmup: list[int]
     refused: list[dict[str, int]]
     last_t: list[float | None]
     baseline: list[Baseline | None]
-    commissioned: list[int]
-    statistics: list[list[float]]
-    limits: list[list[float]]
-    active: list[list[bool]]
-    last_innovation: list[float]
-    last_spread: list[float]
+    commissioned: NDArray[np.int64]
+    statistics: FloatArray
+    limits: FloatArray
+    active: NDArray[np.bool_]
+    last_innovation: FloatArray
+    last_spread: FloatArray
 
     def __len__(self) -> int:
         return len(self.channels)
 
     def view(self, k: int) -> ChannelView:
         """The :class:`ChannelView` of the block's ``k``-th channel."""
+        readings = map(DetectorReading, self.statistics[k].tolist(), self.limits[k].tolist(), self.active[k].tolist())
         return ChannelView(
             channel=self.channels[k], terms=self.terms[k], parameters=self.parameters[k],
-            std_errors=self.std_errors[k], covariance=self.covariance[k], residual_sd=self.residual_sd[k],
-            dof=self.dof[k], noise_sigma=self.noise_sigma[k], effective_count=self.effective_count[k],
-            min_information=self.min_information[k], information_condition=self.information_condition[k],
-            identifiable=self.identifiable[k], applied=self.applied[k], warmup=self.warmup[k],
-            refused=self.refused[k], last_t=self.last_t[k], settings=self.settings[k], baseline=self.baseline[k],
-            commissioned=self.commissioned[k],
-            detectors=dict(zip(KINDS, map(DetectorReading, self.statistics[k], self.limits[k], self.active[k]),
-                               strict=True)),
-            last_innovation=self.last_innovation[k], last_spread=self.last_spread[k])
+            std_errors=self.std_errors[k], covariance=self.covariance[k], residual_sd=float(self.residual_sd[k]),
+            dof=float(self.dof[k]), noise_sigma=float(self.noise_sigma[k]),
+            effective_count=float(self.effective_count[k]), min_information=float(self.min_information[k]),
+            information_condition=float(self.information_condition[k]), identifiable=bool(self.identifiable[k]),
+            applied=self.applied[k], warmup=self.warmup[k], refused=self.refused[k], last_t=self.last_t[k],
+            settings=self.settings[k], baseline=self.baseline[k], commissioned=int(self.commissioned[k]),
+            detectors=dict(zip(KINDS, readings, strict=True)),
+            last_innovation=float(self.last_innovation[k]), last_spread=float(self.last_spread[k]))

@@ -595,9 +595,9 @@ class DetectorBank:
         return {"noise_level": noise, "variance": float(s[_VAR]) if judged else math.nan,
                 "offset": float(max(s[_UP], s[_DOWN])) if judged else math.nan, "drift": float(s[_DRIFT])}
 
-    def readings_columns(self, idx: IndexArray) -> tuple[list[list[float]], list[list[float]], list[list[bool]]]:
-        """Over the channels of ``idx``: their statistics, limits and active flags, each in KINDS order
-        (whole arrays, then lists)."""
+    def readings_columns(self, idx: IndexArray) -> tuple[FloatArray, FloatArray, NDArray[np.bool_]]:
+        """Over the channels of ``idx``: their statistics and limits ``(B, 4)`` and active flags ``(B, 4)``,
+        each row in KINDS order (fresh arrays)."""
         s = self._state[idx]
         judged = self.judging(idx)
         sigma = self._sigma_ref[idx]
@@ -606,8 +606,8 @@ class DetectorBank:
                                    np.where(judged, np.maximum(s[:, _UP], s[:, _DOWN]), np.nan), s[:, _DRIFT]], axis=1)
         limits = np.stack([np.minimum(self._noise_high[idx], self._noise_ratio[idx] * sigma), self._variance_h[idx],
                            self._offset_h[idx], self._drift_limit[idx]], axis=1)
-        active = self._active[:, idx].T
-        return statistics.tolist(), limits.tolist(), active.tolist()
+        active = self._active[:, idx].T.copy()
+        return statistics, limits, active
 
     def active(self, channel: int) -> dict[str, bool]:
         """Whether each detector's alarm condition is active for one channel."""
