@@ -21,7 +21,7 @@ from service.runtime import Runtime
 from tests.support.configs import mqtt_settings
 from tests.support.host_faults import OwnPostgres, fill, small_filesystem
 from tests.support.mqtt_clients import publish_and_wait
-from tests.support.runtimes import feed, offline_runtime
+from tests.support.runtimes import assert_same_arrays, feed, offline_runtime, state_arrays
 from tests.support.waits import wait_until
 
 pytestmark = pytest.mark.integration
@@ -29,7 +29,6 @@ pytestmark = pytest.mark.integration
 CHANNELS: dict[str, dict[str, Any]] = {
     f"s{k}": {"terms": ["1", "u"], "forgetting_factor": 0.995, "weighting": "tracked",
               "detectors": {"commissioning_samples": 40, "calibration_samples": 0}} for k in range(4)}
-WALL_CLOCK = {"engine.updated_at"}        # arrival times: what the wall clock said, not the inputs
 
 
 def _samples(first: int, count: int) -> list[tuple[str, dict[str, Any]]]:
@@ -43,28 +42,14 @@ def _samples(first: int, count: int) -> list[tuple[str, dict[str, Any]]]:
     return out
 
 
-def _arrays(runtime: Runtime) -> dict[str, np.ndarray]:
-    persistence = runtime.persistence
-    assert persistence is not None
-    arrays, _ = persistence.state(runtime.engine)
-    return {name: array for name, array in arrays.items() if name not in WALL_CLOCK}
-
-
 def _uninterrupted(tmp: Path, samples: list[tuple[str, dict[str, Any]]]) -> dict[str, np.ndarray]:
     whole = offline_runtime(CHANNELS, tmp, store_options={"checkpoint_seconds": 3600})
     whole.start()
     try:
         feed(whole, [Message(cid, json.dumps(s).encode(), "http", received=time.time()) for cid, s in samples])
-        return _arrays(whole)
+        return state_arrays(whole)
     finally:
         whole.stop()
-
-
-def _assert_state(expected: dict[str, np.ndarray], runtime: Runtime) -> None:
-    got = _arrays(runtime)
-    assert got.keys() == expected.keys()
-    for name in expected:
-        assert got[name].tobytes() == expected[name].tobytes(), name
 
 
 def _applied(runtime: Runtime) -> int:
@@ -111,7 +96,7 @@ def test_a_full_disk_under_a_live_stream_costs_no_sample(mqtt_broker: Any, uniqu
         wait_until(lambda: runtime.readiness()["ready"], 15.0, "ready again")
         assert runtime.refusals() == {}
         assert _applied(runtime) == len(samples)                   # once each
-        _assert_state(expected, runtime)
+        assert_same_arrays(expected, runtime)
         runtime.stop()
 
 
@@ -140,13 +125,13 @@ def test_a_stopped_postgresql_costs_no_sample_and_heals_by_itself(own_postgres: 
         assert persistence.checkpoints > good
         assert runtime.readiness()["ready"] is True
         assert _applied(runtime) == len(messages)
-        _assert_state(expected, runtime)
+        assert_same_arrays(expected, runtime)
     finally:
         runtime.engine.stop()                # what kill -9 leaves: recovery from the store's checkpoint and the log
         runtime._release_lock()
     again = offline_runtime(CHANNELS, tmp_path / "store", store_options=options)
     again.start()
     try:
-        _assert_state(expected, again)
+        assert_same_arrays(expected, again)
     finally:
         again.stop()

@@ -7,12 +7,16 @@ from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from service.broker_link.messages import Message
 from service.config.settings import RwlsConfig
 from service.runtime import Runtime
 from tests.support.configs import offline_config
 
-__all__ = ["feed", "offline_runtime", "start_subscribed"]
+__all__ = ["assert_same_arrays", "feed", "offline_runtime", "start_subscribed", "state_arrays"]
+
+WALL_CLOCK = frozenset({"engine.updated_at"})      # arrival times: what the wall clock said, not the inputs
 
 
 def offline_runtime(channels: Mapping[str, Mapping[str, Any]], store: Path | str, *,
@@ -41,3 +45,19 @@ def feed(runtime: Runtime, messages: Iterable[Message], *, submit_timeout: float
     for message in messages:
         assert runtime.engine.submit(message, timeout=submit_timeout)
     assert runtime.engine.drain(drain_timeout)
+
+
+def state_arrays(runtime: Runtime) -> dict[str, np.ndarray]:
+    """The arrays of ``runtime``'s checkpoint state (bank, alarms, tags), without those the wall clock sets."""
+    persistence = runtime.persistence
+    assert persistence is not None, "the runtime has a store"
+    arrays, _ = persistence.state(runtime.engine)
+    return {name: array for name, array in arrays.items() if name not in WALL_CLOCK}
+
+
+def assert_same_arrays(expected: dict[str, np.ndarray], runtime: Runtime) -> None:
+    """``runtime``'s :func:`state_arrays` equal ``expected``, every array bit for bit (the differing one named)."""
+    got = state_arrays(runtime)
+    assert got.keys() == expected.keys()
+    for name in expected:
+        assert got[name].tobytes() == expected[name].tobytes(), name

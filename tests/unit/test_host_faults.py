@@ -25,11 +25,10 @@ from service.engine.operations import Acknowledge, Inspect
 from service.engine.writer import EngineBusy
 from service.runtime import Runtime
 from service.storage.input_log import InputLog
-from tests.support.runtimes import feed, offline_runtime
+from tests.support.runtimes import assert_same_arrays, feed, offline_runtime, state_arrays
 
 CHANNELS = {f"c{k}": {"terms": ["1", "u"], "forgetting_factor": 0.99, "weighting": "tracked",
                       "detectors": {"commissioning_samples": 30, "calibration_samples": 0}} for k in range(3)}
-WALL_CLOCK = {"engine.updated_at"}        # arrival times: what the wall clock said, not the inputs
 
 
 class DiskFull:
@@ -66,18 +65,8 @@ def _messages(first: int, count: int) -> list[Message]:
     return out
 
 
-def _arrays(runtime: Runtime) -> dict[str, np.ndarray]:
-    persistence = runtime.persistence
-    assert persistence is not None
-    arrays, _ = persistence.state(runtime.engine)
-    return {name: array for name, array in arrays.items() if name not in WALL_CLOCK}
-
-
 def _assert_same_state(a: Runtime | dict[str, np.ndarray], b: Runtime) -> None:
-    left, right = (a if isinstance(a, dict) else _arrays(a)), _arrays(b)
-    assert left.keys() == right.keys()
-    for name in left:
-        assert left[name].tobytes() == right[name].tobytes(), name
+    assert_same_arrays(a if isinstance(a, dict) else state_arrays(a), b)
 
 
 def _wait_for(condition: Callable[[], bool], timeout: float = 10.0) -> None:
@@ -142,7 +131,7 @@ def test_a_full_disk_holds_ingest_without_refusing_and_resumes_by_itself(tmp_pat
         assert held.refusals() == {}                                   # nothing valid refused or dead-lettered
         assert held.faults.started[FaultPart.INPUT_LOG] == 1 and held.faults.active() == []
         _assert_same_state(whole, held)
-        expected = _arrays(whole)
+        expected = state_arrays(whole)
     finally:
         whole.stop()
         held.engine.stop()                  # what kill -9 leaves: no final checkpoint, recovery from the log
